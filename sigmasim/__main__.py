@@ -1,0 +1,5 @@
+"""``python -m sigmasim`` is the same as the ``sigmasim`` command."""
+
+from sigmasim.cli import main
+
+raise SystemExit(main())

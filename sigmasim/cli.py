@@ -1,0 +1,233 @@
+"""Command line: ``sigmasim run | demo | info | config-reference``.
+
+This is the error boundary: every :class:`SigmasimError` becomes one line on
+stderr and exit status 2; an interrupted run exits with 130 after writing its
+checkpoint.
+"""
+
+from __future__ import annotations
+
+import argparse
+import signal
+import sys
+from pathlib import Path
+
+from sigmasim.errors import RunFileError, SigmasimError
+
+__all__ = ["main"]
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # one line, exit 2, no usage dump
+        sys.stderr.write(f"sigmasim: error: {message} (see sigmasim --help)\n")
+        raise SystemExit(2)
+
+
+def _set_threads(n: int) -> int:
+    import numba
+
+    avail = numba.config.NUMBA_NUM_THREADS
+    n = avail if n <= 0 else min(n, avail)
+    numba.set_num_threads(n)
+    return n
+
+
+class _StopFlag:
+    """Turns SIGINT/SIGTERM into a request to stop at the next sweep boundary."""
+
+    def __init__(self):
+        self.signal = None
+
+    def __call__(self) -> bool:
+        return self.signal is not None
+
+    def install(self):
+        def handler(signum, frame):
+            self.signal = signum
+
+        self.old = {s: signal.signal(s, handler) for s in (signal.SIGINT, signal.SIGTERM)}
+        return self
+
+    def restore(self):
+        for s, h in self.old.items():
+            signal.signal(s, h)
+
+
+def execute_run(config, resume: bool = False, overwrite: bool = False, quiet: bool = False,
+                label: str | None = None) -> Path:
+    """Run (or resume) one config to completion; returns the run file path.
+
+    Raises :class:`SigmasimError` subclasses for bad input and
+    :class:`sigmasim.chain.Interrupted` after a checkpoint when stopped.
+    """
+    from sigmasim.chain import Interrupted, Simulation, run_chain
+    from sigmasim.config import field_bytes
+    from sigmasim.progress import ProgressBar
+    from sigmasim.storage import RunWriter, check_writable, read_state
+
+    path = config.run_file
+    state = None
+    if resume:
+        if not path.exists():
+            raise RunFileError(f"nothing to resume: {path} does not exist")
+        state = read_state(path, config)
+    elif path.exists() or path.with_name(path.name + ".tmp").exists():
+        _refuse_overwrite(path, config, overwrite)
+    per_record = 16 * config.shape[0] * (config.nf**2 + 1) + 16 * (config.nf + 4) + 64
+    check_writable(path, 2 * (field_bytes(config.shape, config.nf) + per_record * config.measurements))
+    sim = Simulation(config, state)
+    if resume and sim.state.sweep >= sim.total_sweeps:
+        return path
+    writer = RunWriter(config, path, resume=resume)
+    bar = ProgressBar(label or config.name, disable=True if quiet else None)
+    flag = _StopFlag().install()
+    try:
+        run_chain(sim, (bar, writer), should_stop=flag)
+    except Interrupted:
+        bar.close()
+        writer.interrupted(sim)
+        raise
+    finally:
+        bar.close()
+        flag.restore()
+    return path
+
+
+def _refuse_overwrite(path: Path, config, overwrite: bool) -> None:
+    from sigmasim.storage import open_run
+
+    try:
+        stored = open_run(path).config
+    except SigmasimError:
+        raise RunFileError(f"refusing to overwrite {path}: it is not a readable sigmasim run file") from None
+    if stored.physics_hash() != config.physics_hash():
+        raise RunFileError(f"refusing to overwrite {path}: it was written by a different config")
+    if not overwrite:
+        raise RunFileError(f"{path} exists; use --resume to continue it or --overwrite to start again")
+    path.unlink()
+
+
+def _summary_table(paths) -> str:
+    import numpy as np
+
+    from sigmasim.storage import open_run
+
+    head = f"{'run':<22}{'theta':>8}{'<S>/V':>10}{'<Re Omega>':>12}{'<Im Omega>':>12}{'<Im det>':>10}{'acc':>7}"
+    lines = [head, "-" * len(head)]
+    for p in paths:
+        d = open_run(p)
+        s = d.series
+        acc = np.nanmean(np.where(np.isnan(s["accept_metropolis"]), s["accept_phase"], s["accept_metropolis"]))
+        lines.append(
+            f"{d.config.name:<22}{d.config.theta:>8.3f}{s['action'].mean():>10.4f}"
+            f"{s['omega'].real.mean():>12.4f}{s['omega'].imag.mean():>12.4f}"
+            f"{s['det'].imag.mean():>10.4f}{acc if acc == acc else 1.0:>7.2f}"
+        )
+    lines.append("(plain means; run 'sigmasim analyze' for errors. Research toy, not a physical prediction.)")
+    return "\n".join(lines)
+
+
+def cmd_run(args) -> int:
+    from sigmasim.chain import Interrupted
+    from sigmasim.config import load_config
+
+    overrides = {}
+    if args.output is not None:
+        overrides["output"] = args.output
+    if args.threads is not None:
+        overrides["threads"] = args.threads
+    config = load_config(args.config, overrides)
+    _set_threads(config.threads)
+    try:
+        path = execute_run(config, resume=args.resume, overwrite=args.overwrite, quiet=args.quiet)
+    except Interrupted as exc:
+        print(f"sigmasim: stopped at sweep {exc.args[0]}; checkpoint written to {config.run_file}; "
+              f"continue with: sigmasim run {args.config} --resume", file=sys.stderr)
+        return 130
+    print(_summary_table([path]))
+    print(f"run file: {path}")
+    return 0
+
+
+def cmd_demo(args) -> int:
+    from sigmasim.chain import Interrupted
+    from sigmasim.config import config_from_dict
+
+    _set_threads(0)
+    thetas = [2.6, 3.0, 3.14159265, 3.3, 3.7]
+    paths = []
+    print("demo: three flavours with a strong anomaly on an 8^3 lattice, theta across pi")
+    for th in thetas:
+        raw = {
+            "name": f"demo-theta-{th:.3f}",
+            "seed": 2026,
+            "lattice": {"shape": [8, 8, 8]},
+            "model": {"nf": 3, "beta": 0.6, "mass": 0.2, "kappa": 1.0, "theta": th},
+            "updates": {"schedule": [{"update": "heatbath", "repeat": 1}, {"update": "overrelax", "repeat": 2}]},
+            "run": {"thermalize": 100, "measurements": 300, "start": "cold", "output": args.output},
+        }
+        cfg = config_from_dict(raw)
+        if cfg.run_file.exists():
+            cfg.run_file.unlink()
+        try:
+            paths.append(execute_run(cfg, quiet=args.quiet, label=f"theta={th:.3f}"))
+        except Interrupted:
+            print("sigmasim: demo interrupted", file=sys.stderr)
+            return 130
+    print(_summary_table(paths))
+    print(f"run files: {Path(args.output) / 'demo-theta-*'}/")
+    return 0
+
+
+def cmd_info(args) -> int:
+    from sigmasim.storage import open_run
+
+    d = open_run(args.file)
+    print(f"{args.file}: status {d.status}, {len(d)} measurements")
+    print(f"config: {d.config.to_dict()}")
+    print(f"provenance: {d.provenance}")
+    return 0
+
+
+def cmd_config_reference(args) -> int:
+    from sigmasim.config import reference_markdown
+
+    print(reference_markdown())
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = _Parser(prog="sigmasim", description="Monte Carlo for chiral sigma models at arbitrary theta")
+    sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
+    r = sub.add_parser("run", help="run or resume a config")
+    r.add_argument("config", help="TOML config file")
+    r.add_argument("--resume", action="store_true", help="continue the run from its last checkpoint")
+    r.add_argument("--overwrite", action="store_true",
+                   help="start again over an existing file written by the same config")
+    r.add_argument("--threads", type=int, default=None, help="numba threads (default: config)")
+    r.add_argument("--output", default=None, help="output folder (default: config run.output)")
+    r.add_argument("--quiet", action="store_true", help="no progress bar")
+    r.set_defaults(func=cmd_run)
+    d = sub.add_parser("demo", help="run the built-in demo (about a minute)")
+    d.add_argument("--output", default="runs", help="output folder (default: runs)")
+    d.add_argument("--quiet", action="store_true")
+    d.set_defaults(func=cmd_demo)
+    i = sub.add_parser("info", help="show a run file's config, status and provenance")
+    i.add_argument("file")
+    i.set_defaults(func=cmd_info)
+    c = sub.add_parser("config-reference", help="print every config key with its default")
+    c.set_defaults(func=cmd_config_reference)
+    return p
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.func(args) or 0)
+    except SigmasimError as exc:
+        sys.stderr.write(f"sigmasim: error: {exc}\n")
+        return 2
+    except KeyboardInterrupt:
+        sys.stderr.write("sigmasim: interrupted\n")
+        return 130

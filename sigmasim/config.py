@@ -1,0 +1,362 @@
+"""Run configuration: TOML in, a frozen validated :class:`RunConfig` out.
+
+Every key is declared once in :data:`SCHEMA` with its type, default and
+meaning; the README's config reference is generated from it
+(``sigmasim config-reference``).  Validation errors are one line, name the
+key, and for an unknown key suggest the closest valid one.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+import json
+import math
+import os
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from sigmasim.errors import ConfigError
+
+__all__ = ["SCHEMA", "RunConfig", "load_config", "config_from_dict", "UPDATES", "reference_markdown"]
+
+UPDATES = ("metropolis", "heatbath", "overrelax")
+
+_DEFAULT_SCHEDULE = [{"update": "heatbath", "repeat": 1}, {"update": "overrelax", "repeat": 3}]
+
+# section -> key -> (kind, default, meaning).  kind is a short type tag checked by _check.
+SCHEMA: dict[str, dict[str, tuple]] = {
+    "": {
+        "name": ("name", "run", "run name; output goes to <output>/<name>/<name>.h5"),
+        "seed": ("int>=0", 1, "the run's one seed (any integer >= 0)"),
+    },
+    "lattice": {
+        "shape": ("shape", [8, 8, 8], "extents, time direction first; 1 to 4 even extents >= 2"),
+    },
+    "model": {
+        "group": ("choice:U,SU", "U", "field group: U(nf) or SU(nf) (SU needs nf >= 2)"),
+        "nf": ("int:1:8", 1, "number of flavours"),
+        "beta": ("real", 0.5, "nearest-neighbour coupling"),
+        "mass": ("mass", 0.1, "h_f: one number (degenerate) or a list of nf numbers; sign allowed"),
+        "kappa": ("real", 0.0, "anomaly ('t Hooft determinant) coupling"),
+        "theta": ("real", 0.0, "vacuum angle theta = nf*theta_m - theta_a (radians)"),
+        "theta_placement": (
+            "choice:mass,anomaly,split",
+            "mass",
+            "where theta sits: mass (theta_m = theta/nf), anomaly (theta_a = -theta), "
+            "split (half each); physics does not depend on it",
+        ),
+    },
+    "updates": {
+        "schedule": (
+            "schedule",
+            _DEFAULT_SCHEDULE,
+            "one sweep: list of {update = metropolis|heatbath|overrelax, repeat = n}",
+        ),
+        "metropolis_hits": ("int:1:1000", 4, "Metropolis hits per site visit"),
+        "target_acceptance": ("real:0:1", 0.5, "Metropolis acceptance the step is tuned to"),
+        "initial_step": ("real>0", 0.5, "initial Metropolis step (rotation angle scale)"),
+        "tune_every": ("int:1:100000", 10, "thermalisation sweeps between step adjustments"),
+        "reunitarize_every": ("int:1:100000000", 10, "sweeps between projections back onto the group"),
+    },
+    "run": {
+        "thermalize": ("int>=0", 200, "sweeps before measuring (Metropolis step tuned here)"),
+        "measurements": ("int:1:1000000000", 1000, "number of measurements"),
+        "measure_every": ("int:1:1000000", 1, "sweeps between measurements"),
+        "start": ("choice:cold,hot", "cold", "cold: U = 1 everywhere; hot: Haar-random U"),
+        "checkpoint_every": ("int:1:1000000000", 1000, "sweeps between checkpoints"),
+        "checkpoint_seconds": ("real>0", 60.0, "also checkpoint when this much time has passed"),
+        "output": ("str", "runs", "folder that holds the run folders"),
+        "threads": ("int:0:1024", 0, "numba threads (0: all cores); results do not depend on it"),
+    },
+}
+
+
+def _suggest(key, valid):
+    close = difflib.get_close_matches(key, valid, n=1, cutoff=0.5)
+    return f" (did you mean '{close[0]}'?)" if close else ""
+
+
+def _where(section, key):
+    return f"{section}.{key}" if section else key
+
+
+def _is_int(v):
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def _is_real(v):
+    return (isinstance(v, (int, float)) and not isinstance(v, bool))
+
+
+def _check(kind, v, where):
+    """Validate one value of the given kind; returns it normalised."""
+    if kind == "name":
+        if not isinstance(v, str) or not v or len(v) > 100:
+            raise ConfigError(f"{where} must be a non-empty string of at most 100 characters")
+        if not all(ch.isalnum() or ch in "-_." for ch in v) or v.startswith("."):
+            raise ConfigError(f"{where} may contain only letters, digits, '-', '_' and '.', got {v!r}")
+        return v
+    if kind == "str":
+        if not isinstance(v, str) or not v:
+            raise ConfigError(f"{where} must be a non-empty string, got {v!r}")
+        return v
+    if kind.startswith("choice:"):
+        choices = kind[7:].split(",")
+        if not isinstance(v, str) or v not in choices:
+            raise ConfigError(f"{where} must be one of {', '.join(choices)}, got {v!r}")
+        return v
+    if kind.startswith("int"):
+        if not _is_int(v):
+            raise ConfigError(f"{where} must be an integer, got {v!r}")
+        if kind == "int>=0":
+            lo, hi = 0, 2**63 - 1
+        else:
+            _, lo, hi = kind.split(":")
+            lo, hi = int(lo), int(hi)
+        if not lo <= v <= hi:
+            raise ConfigError(f"{where} must be between {lo} and {hi}, got {v}")
+        return int(v)
+    if kind.startswith("real"):
+        if not _is_real(v):
+            raise ConfigError(f"{where} must be a number, got {v!r}")
+        v = float(v)
+        if not math.isfinite(v):
+            raise ConfigError(f"{where} must be finite, got {v}")
+        if kind == "real>0" and not v > 0:
+            raise ConfigError(f"{where} must be > 0, got {v}")
+        if kind.startswith("real:"):
+            _, lo, hi = kind.split(":")
+            if not float(lo) < v < float(hi):
+                raise ConfigError(f"{where} must be strictly between {lo} and {hi}, got {v}")
+        if abs(v) > 1e6:
+            raise ConfigError(f"{where} = {v} is out of range (|value| <= 1e6)")
+        return v
+    if kind == "shape":
+        if not isinstance(v, list) or not all(_is_int(n) for n in v):
+            raise ConfigError(f"{where} must be a list of integers, got {v!r}")
+        if not 1 <= len(v) <= 4:
+            raise ConfigError(f"{where} must have 1 to 4 extents, got {len(v)}")
+        for n in v:
+            if n < 2 or n % 2:
+                raise ConfigError(f"{where} extents must be even and >= 2 (checkerboard), got {v}")
+        return [int(n) for n in v]
+    if kind == "mass":
+        vals = v if isinstance(v, list) else [v]
+        if not vals or not all(_is_real(x) for x in vals):
+            raise ConfigError(f"{where} must be a number or a list of numbers, got {v!r}")
+        vals = [float(x) for x in vals]
+        if not all(math.isfinite(x) and abs(x) <= 1e6 for x in vals):
+            raise ConfigError(f"{where} must be finite numbers with |h| <= 1e6, got {v!r}")
+        return vals
+    if kind == "schedule":
+        if not isinstance(v, list) or not v:
+            raise ConfigError(f"{where} must be a non-empty list of {{update = ..., repeat = n}}")
+        out = []
+        for i, item in enumerate(v):
+            if not isinstance(item, dict):
+                raise ConfigError(f"{where}[{i}] must be a table {{update = ..., repeat = n}}")
+            for k in item:
+                if k not in ("update", "repeat"):
+                    raise ConfigError(f"{where}[{i}] has unknown key '{k}'{_suggest(k, ['update', 'repeat'])}")
+            name = item.get("update")
+            if name not in UPDATES:
+                raise ConfigError(
+                    f"{where}[{i}].update must be one of {', '.join(UPDATES)}, got {name!r}"
+                    + (_suggest(name, UPDATES) if isinstance(name, str) else "")
+                )
+            rep = item.get("repeat", 1)
+            if not _is_int(rep) or not 1 <= rep <= 1000:
+                raise ConfigError(f"{where}[{i}].repeat must be an integer between 1 and 1000, got {rep!r}")
+            out.append((name, int(rep)))
+        return tuple(out)
+    raise AssertionError(kind)  # pragma: no cover - schema bug
+
+
+@dataclass(frozen=True, slots=True)
+class RunConfig:
+    """A validated run configuration (see :data:`SCHEMA` for every key)."""
+
+    name: str
+    seed: int
+    shape: tuple
+    group: str
+    nf: int
+    beta: float
+    mass: tuple
+    kappa: float
+    theta: float
+    theta_placement: str
+    schedule: tuple
+    metropolis_hits: int
+    target_acceptance: float
+    initial_step: float
+    tune_every: int
+    reunitarize_every: int
+    thermalize: int
+    measurements: int
+    measure_every: int
+    start: str
+    checkpoint_every: int
+    checkpoint_seconds: float
+    output: str
+    threads: int
+
+    @property
+    def volume(self) -> int:
+        return int(np.prod(self.shape))
+
+    @property
+    def special(self) -> bool:
+        return self.group == "SU"
+
+    @property
+    def theta_angles(self) -> tuple[float, float]:
+        """(theta_m, theta_a) with theta = nf*theta_m - theta_a.
+
+        For SU(nf) det U = 1 makes the anomaly term a constant, so the whole
+        angle sits in the mass phase whatever the placement (SU(nf) is the
+        kappa -> infinity limit of U(nf), rotated to det U = 1).
+        """
+        if self.special or self.theta_placement == "mass":
+            return self.theta / self.nf, 0.0
+        if self.theta_placement == "anomaly":
+            return 0.0, -self.theta
+        return self.theta / (2 * self.nf), -self.theta / 2
+
+    @property
+    def hdiag(self) -> np.ndarray:
+        """complex128 array (nf,): h_f e^{i theta_m}."""
+        tm, _ = self.theta_angles
+        return np.asarray(self.mass, dtype=np.float64) * np.exp(1j * tm)
+
+    @property
+    def eta(self) -> complex:
+        """e^{i theta_a}."""
+        return complex(np.exp(1j * self.theta_angles[1]))
+
+    @property
+    def run_dir(self) -> Path:
+        return Path(self.output) / self.name
+
+    @property
+    def run_file(self) -> Path:
+        return self.run_dir / f"{self.name}.h5"
+
+    def to_dict(self) -> dict:
+        """Nested dict in the TOML layout (round-trips through :func:`config_from_dict`)."""
+        d: dict = {}
+        for section, keys in SCHEMA.items():
+            target = d if not section else d.setdefault(section, {})
+            for key in keys:
+                v = getattr(self, "shape" if key == "shape" else key)
+                if key == "schedule":
+                    v = [{"update": u, "repeat": r} for u, r in v]
+                elif isinstance(v, tuple):
+                    v = list(v)
+                target[key] = v
+        return d
+
+    def physics_dict(self) -> dict:
+        """The part of the config that fixes the chain (not where or how fast it is written)."""
+        d = self.to_dict()
+        for k in ("output", "threads", "checkpoint_every", "checkpoint_seconds"):
+            d["run"].pop(k)
+        d["run"].pop("measurements")  # a run may be extended
+        return d
+
+    def physics_hash(self) -> str:
+        blob = json.dumps(self.physics_dict(), sort_keys=True).encode()
+        return hashlib.sha256(blob).hexdigest()[:16]
+
+
+def config_from_dict(raw: dict, overrides: dict | None = None) -> RunConfig:
+    """Validate a nested dict (the parsed TOML) into a :class:`RunConfig`."""
+    if not isinstance(raw, dict):
+        raise ConfigError("the config must be a TOML table")
+    values: dict = {}
+    sections = [s for s in SCHEMA if s]
+    for key, v in raw.items():
+        if key in SCHEMA[""]:
+            values[key] = _check(SCHEMA[""][key][0], v, key)
+        elif key in SCHEMA:
+            if not isinstance(v, dict):
+                raise ConfigError(f"[{key}] must be a table")
+            for k2, v2 in v.items():
+                if k2 not in SCHEMA[key]:
+                    others = [s for s in sections if k2 in SCHEMA[s]]
+                    hint = f" (it belongs in [{others[0]}])" if others else _suggest(k2, list(SCHEMA[key]))
+                    raise ConfigError(f"unknown key '{key}.{k2}'{hint}")
+                values[k2] = _check(SCHEMA[key][k2][0], v2, f"{key}.{k2}")
+        else:
+            valid = list(SCHEMA[""]) + sections
+            raise ConfigError(f"unknown key '{key}'{_suggest(key, valid)}")
+    for section, keys in SCHEMA.items():
+        for key, (kind, default, _) in keys.items():
+            if key not in values:
+                values[key] = _check(kind, default, _where(section, key))
+    if overrides:
+        values.update(overrides)
+    nf = values["nf"]
+    if values["group"] == "SU" and nf < 2:
+        raise ConfigError("model.group = 'SU' needs model.nf >= 2")
+    mass = values["mass"]
+    if len(mass) == 1:
+        mass = mass * nf
+    if len(mass) != nf:
+        raise ConfigError(f"model.mass has {len(mass)} entries but model.nf = {nf}")
+    values["mass"] = tuple(mass)
+    values["shape"] = tuple(values["shape"])
+    _check_memory(values["shape"], nf)
+    return RunConfig(**values)
+
+
+def field_bytes(shape, nf) -> int:
+    """Bytes the run needs at least: field, neighbour table and a copy for checkpoints."""
+    volume = int(np.prod([int(n) for n in shape]))
+    return volume * (2 * 8 * nf * nf * 2 + 8 * 2 * len(shape) + 8 * 3)
+
+
+def _check_memory(shape, nf):
+    need = field_bytes(shape, nf)
+    try:
+        avail = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):  # pragma: no cover - non-POSIX
+        avail = 16 * 2**30
+    if need > 0.8 * avail:
+        raise ConfigError(
+            f"lattice.shape {list(shape)} with nf = {nf} needs about {need / 2**30:.1f} GiB, "
+            f"more than this machine's {avail / 2**30:.1f} GiB allows"
+        )
+
+
+def load_config(path, overrides: dict | None = None) -> RunConfig:
+    """Read and validate a TOML config file."""
+    path = Path(path)
+    try:
+        text = path.read_text()
+    except FileNotFoundError:
+        raise ConfigError(f"config file {path} does not exist") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"cannot read config file {path}: {exc}") from None
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{path} is not valid TOML: {exc}") from None
+    return config_from_dict(raw, overrides)
+
+
+def reference_markdown() -> str:
+    """The config reference as a Markdown table (pasted into README.md)."""
+    lines = ["| key | default | meaning |", "| --- | --- | --- |"]
+    for section, keys in SCHEMA.items():
+        for key, (_, default, meaning) in keys.items():
+            if key == "schedule":
+                dflt = "heatbath x1, overrelax x3"
+            else:
+                dflt = json.dumps(default)
+            lines.append(f"| `{_where(section, key)}` | `{dflt}` | {meaning} |")
+    return "\n".join(lines)
