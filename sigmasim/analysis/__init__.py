@@ -1,0 +1,68 @@
+"""Statistical analysis of Monte Carlo output on plain numpy arrays.
+
+Independent of the simulation engine.  Submodules:
+
+* :mod:`~sigmasim.analysis.gamma` -- Wolff's Gamma method (autocorrelations,
+  errors of primary and derived quantities, replica).
+* :mod:`~sigmasim.analysis.resampling` -- binning, jackknife, bootstrap.
+* :mod:`~sigmasim.analysis.thermalisation` -- burn-in cut.
+* :mod:`~sigmasim.analysis.correlators` -- zero-momentum correlators,
+  effective masses, correlated cosh fits.
+"""
+
+from .correlators import (
+    CorrelatorEstimate,
+    FitResult,
+    WindowScanResult,
+    connected_correlator,
+    correlator_bootstrap,
+    correlator_jackknife,
+    cosh_model,
+    effective_mass,
+    effective_mass_errors,
+    fit_correlator,
+    fit_cosh,
+    scan_fit_windows,
+    symmetrise,
+)
+from .gamma import GammaResult, autocorrelation, gamma_analysis
+from .resampling import (
+    ResamplingResult,
+    auto_bin_size,
+    bin_data,
+    bootstrap,
+    bootstrap_covariance,
+    jackknife,
+    jackknife_covariance,
+    jackknife_means,
+)
+from .thermalisation import ThermalisationResult, thermalisation_cut
+
+__all__ = [
+    "CorrelatorEstimate",
+    "FitResult",
+    "GammaResult",
+    "ResamplingResult",
+    "ThermalisationResult",
+    "WindowScanResult",
+    "auto_bin_size",
+    "autocorrelation",
+    "bin_data",
+    "bootstrap",
+    "bootstrap_covariance",
+    "connected_correlator",
+    "correlator_bootstrap",
+    "correlator_jackknife",
+    "cosh_model",
+    "effective_mass",
+    "effective_mass_errors",
+    "fit_correlator",
+    "fit_cosh",
+    "gamma_analysis",
+    "jackknife",
+    "jackknife_covariance",
+    "jackknife_means",
+    "scan_fit_windows",
+    "symmetrise",
+    "thermalisation_cut",
+]
