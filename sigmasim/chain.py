@@ -20,7 +20,8 @@ from sigmasim.kernels.measure import field_is_finite, reunitarize, slice_sums
 from sigmasim.lattice import Lattice, make_lattice
 from sigmasim.updates import apply
 
-__all__ = ["ChainState", "Simulation", "run_chain", "SERIES", "Interrupted"]
+__all__ = ["ChainState", "Simulation", "run_chain", "simulate", "MemorySink", "SERIES", "SLICES",
+           "Interrupted"]
 
 # name -> (kind, description); kind: real, complex, complex_nf, int
 SERIES = {
@@ -30,6 +31,8 @@ SERIES = {
     "action_mass": ("real", "-sum_x Re Tr(H U_x) / V"),
     "action_det": ("real", "-2 kappa sum_x Re(e^{i theta_a} det U_x) / V"),
     "omega": ("complex", "Omega = sum_x Tr U_x / (nf V); Re: sigma direction, Im: eta' direction"),
+    "omega_h": ("complex", "e^{i theta_m} Omega: Omega in the frame where the mass term is real; "
+                "does not depend on where theta sits"),
     "condensate": ("complex_nf", "per-flavour condensate sum_x (U_x)_ff / V"),
     "det": ("complex", "sum_x det U_x / V"),
     "accept_metropolis": ("real", "Metropolis acceptance since the previous measurement (NaN if none)"),
@@ -90,6 +93,12 @@ def initial_field(config: RunConfig, lattice: Lattice) -> tuple[np.ndarray, np.n
     nf, volume = config.nf, lattice.volume
     if config.start == "cold":
         u = np.broadcast_to(np.eye(nf, dtype=np.complex128), (volume, nf, nf))
+    elif config.start == "branch":
+        _, theta_a = config.theta_angles
+        phase = np.exp(1j * (2 * np.pi * config.start_branch - theta_a) / nf)
+        if config.special:
+            phase = np.exp(2j * np.pi * config.start_branch / nf)
+        u = np.broadcast_to(phase * np.eye(nf, dtype=np.complex128), (volume, nf, nf))
     else:
         rng = np.random.default_rng([config.seed, 0x407])
         # Haar measure via QR with the phase fix (F. Mezzadri, Notices AMS 54 (2007) 592)
@@ -184,6 +193,7 @@ class Simulation:
             "action_mass": a_mass,
             "action_det": a_det,
             "omega": np.trace(utot) / (nf * v),
+            "omega_h": np.exp(1j * cfg.theta_angles[0]) * np.trace(utot) / (nf * v),
             "condensate": np.diagonal(utot).copy() / v,
             "det": dtot / v,
             "accept_metropolis": float(rates[0]),
@@ -232,3 +242,39 @@ def run_chain(sim: Simulation, sinks=(), should_stop=lambda: False) -> None:
             raise Interrupted(st.sweep)
     for s in sinks:
         s.finish(sim)
+
+
+class MemorySink:
+    """Sink that keeps every record in memory (for tests, validation and studies).
+
+    After the run, :meth:`arrays` gives the series as numpy arrays, named as
+    in the run file (``slices/U``, ``slices/det`` for the slice sums).
+    """
+
+    def __init__(self):
+        self.records: list[dict] = []
+
+    def start(self, sim) -> None:
+        pass
+
+    def record(self, sim, record) -> None:
+        if record is not None:
+            self.records.append(record)
+
+    def checkpoint(self, sim) -> None:
+        pass
+
+    def finish(self, sim) -> None:
+        pass
+
+    def arrays(self) -> dict:
+        if not self.records:
+            return {}
+        return {k: np.array([r[k] for r in self.records]) for k in self.records[0]}
+
+
+def simulate(config: RunConfig) -> dict:
+    """Run ``config`` in memory and return its series (see :class:`MemorySink`)."""
+    sink = MemorySink()
+    run_chain(Simulation(config), (sink,))
+    return sink.arrays()

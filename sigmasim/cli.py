@@ -112,7 +112,8 @@ def _summary_table(paths) -> str:
 
     from sigmasim.storage import open_run
 
-    head = f"{'run':<22}{'theta':>8}{'<S>/V':>10}{'<Re Omega>':>12}{'<Im Omega>':>12}{'<Im det>':>10}{'acc':>7}"
+    head = (f"{'run':<22}{'theta':>8}{'<S>/V':>10}{'<Re Omega_h>':>14}{'<Im Omega_h>':>14}"
+            f"{'<|Omega|>':>11}{'acc':>7}")
     lines = [head, "-" * len(head)]
     for p in paths:
         d = open_run(p)
@@ -120,8 +121,8 @@ def _summary_table(paths) -> str:
         acc = np.nanmean(np.where(np.isnan(s["accept_metropolis"]), s["accept_phase"], s["accept_metropolis"]))
         lines.append(
             f"{d.config.name:<22}{d.config.theta:>8.3f}{s['action'].mean():>10.4f}"
-            f"{s['omega'].real.mean():>12.4f}{s['omega'].imag.mean():>12.4f}"
-            f"{s['det'].imag.mean():>10.4f}{acc if acc == acc else 1.0:>7.2f}"
+            f"{s['omega_h'].real.mean():>14.4f}{s['omega_h'].imag.mean():>14.4f}"
+            f"{np.abs(s['omega']).mean():>11.4f}{acc if acc == acc else 1.0:>7.2f}"
         )
     lines.append("(plain means; run 'sigmasim analyze' for errors. Research toy, not a physical prediction.)")
     return "\n".join(lines)
@@ -156,15 +157,18 @@ def cmd_demo(args) -> int:
     _set_threads(0)
     thetas = [2.6, 3.0, 3.14159265, 3.3, 3.7]
     paths = []
-    print("demo: three flavours with a strong anomaly on an 8^3 lattice, theta across pi")
+    print("demo: three flavours with a strong anomaly on an 8^3 lattice, theta across pi;\n"
+          "each run starts in the tree-level vacuum (branch 0 below pi, branch -1 above;\n"
+          "at theta = pi both are degenerate and the run stays in branch 0)")
     for th in thetas:
         raw = {
             "name": f"demo-theta-{th:.3f}",
             "seed": 2026,
             "lattice": {"shape": [8, 8, 8]},
-            "model": {"nf": 3, "beta": 0.6, "mass": 0.2, "kappa": 1.0, "theta": th},
+            "model": {"nf": 3, "beta": 1.0, "mass": 0.2, "kappa": 1.0, "theta": th},
             "updates": {"schedule": [{"update": "heatbath", "repeat": 1}, {"update": "overrelax", "repeat": 2}]},
-            "run": {"thermalize": 100, "measurements": 300, "start": "cold", "output": args.output},
+            "run": {"thermalize": 100, "measurements": 300, "start": "branch",
+                    "start_branch": 0 if th <= 3.1416 else -1, "output": args.output},
         }
         cfg = config_from_dict(raw)
         if cfg.run_file.exists():

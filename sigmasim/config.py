@@ -66,7 +66,13 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "thermalize": ("int>=0", 200, "sweeps before measuring (Metropolis step tuned here)"),
         "measurements": ("int:1:1000000000", 1000, "number of measurements"),
         "measure_every": ("int:1:1000000", 1, "sweeps between measurements"),
-        "start": ("choice:cold,hot", "cold", "cold: U = 1 everywhere; hot: Haar-random U"),
+        "start": (
+            "choice:cold,hot,branch",
+            "cold",
+            "cold: U = 1; hot: Haar-random U; branch: U = e^{i (2 pi k - theta_a)/nf} 1 "
+            "(the tree-level vacuum k of degenerate flavours at large kappa)",
+        ),
+        "start_branch": ("int:-1000:1000", 0, "k for start = 'branch'"),
         "checkpoint_every": ("int:1:1000000000", 1000, "sweeps between checkpoints"),
         "checkpoint_seconds": ("real>0", 60.0, "also checkpoint when this much time has passed"),
         "output": ("str", "runs", "folder that holds the run folders"),
@@ -200,6 +206,7 @@ class RunConfig:
     measurements: int
     measure_every: int
     start: str
+    start_branch: int
     checkpoint_every: int
     checkpoint_seconds: float
     output: str
