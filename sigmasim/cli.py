@@ -118,11 +118,13 @@ def _summary_table(paths) -> str:
     for p in paths:
         d = open_run(p)
         s = d.series
-        acc = np.nanmean(np.where(np.isnan(s["accept_metropolis"]), s["accept_phase"], s["accept_metropolis"]))
+        rates = np.where(np.isnan(s["accept_metropolis"]), s["accept_phase"], s["accept_metropolis"])
+        rates = rates[~np.isnan(rates)]
+        acc = rates.mean() if rates.size else 1.0  # every move of an exact heatbath is taken
         lines.append(
             f"{d.config.name:<22}{d.config.theta:>8.3f}{s['action'].mean():>10.4f}"
             f"{s['omega_h'].real.mean():>14.4f}{s['omega_h'].imag.mean():>14.4f}"
-            f"{np.abs(s['omega']).mean():>11.4f}{acc if acc == acc else 1.0:>7.2f}"
+            f"{np.abs(s['omega']).mean():>11.4f}{acc:>7.2f}"
         )
     lines.append("(plain means; run 'sigmasim analyze' for errors. Research toy, not a physical prediction.)")
     return "\n".join(lines)
@@ -137,6 +139,8 @@ def cmd_run(args) -> int:
         overrides["output"] = args.output
     if args.threads is not None:
         overrides["threads"] = args.threads
+    if args.smoke:
+        overrides.update(thermalize=10, measurements=20, name=Path(args.config).stem + "-smoke")
     config = load_config(args.config, overrides)
     _set_threads(config.threads)
     try:
@@ -211,6 +215,8 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--threads", type=int, default=None, help="numba threads (default: config)")
     r.add_argument("--output", default=None, help="output folder (default: config run.output)")
     r.add_argument("--quiet", action="store_true", help="no progress bar")
+    r.add_argument("--smoke", action="store_true",
+                   help="10 + 20 sweeps under the name <config>-smoke, to check a config in seconds")
     r.set_defaults(func=cmd_run)
     d = sub.add_parser("demo", help="run the built-in demo (about a minute)")
     d.add_argument("--output", default="runs", help="output folder (default: runs)")

@@ -1,0 +1,164 @@
+"""The command line: one-line errors with exit 2, no overwrites, clean stops and resumes."""
+
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import h5py
+import numpy as np
+import pytest
+
+from sigmasim.cli import main
+
+ROOT = Path(__file__).resolve().parents[1]
+
+GOOD = """
+name = "cli"
+seed = 4
+[lattice]
+shape = [8, 4, 4]
+[model]
+nf = 2
+beta = 0.6
+mass = 0.3
+kappa = 0.5
+theta = 3.0
+[run]
+thermalize = 10
+measurements = 40
+checkpoint_every = 5
+"""
+
+
+def _write(tmp_path, text, name="c.toml"):
+    p = tmp_path / name
+    p.write_text(text)
+    return p
+
+
+def _run(*args, cwd=None, timeout=120):
+    return subprocess.run([sys.executable, "-m", "sigmasim", *map(str, args)], capture_output=True,
+                          text=True, cwd=cwd, timeout=timeout)
+
+
+@pytest.mark.parametrize(
+    "text, word",
+    [
+        (GOOD.replace("beta = 0.6", "betta = 0.6"), "did you mean 'beta'"),
+        (GOOD.replace("[8, 4, 4]", "[8, -4, 4]"), "lattice.shape"),
+        (GOOD.replace("[8, 4, 4]", "[8, 5, 4]"), "even"),
+        (GOOD.replace("nf = 2", 'nf = "two"'), "model.nf"),
+        (GOOD.replace("nf = 2", "nf = 1\ngroup = \"SU\""), "SU"),
+        (GOOD.replace("[model]", "[modell]"), "modell"),
+        (GOOD.replace("kappa = 0.5", "kappa = nan"), "model.kappa"),
+        (GOOD + "\nextra = 1\n", "extra"),
+        ("this is not toml", "not valid TOML"),
+    ],
+)
+def test_bad_configs_exit_2_with_one_line(tmp_path, capsys, text, word):
+    cfg = _write(tmp_path, text)
+    rc = main(["run", str(cfg), "--output", str(tmp_path / "out"), "--quiet"])
+    err = capsys.readouterr().err
+    assert rc == 2
+    assert err.count("\n") == 1 and err.startswith("sigmasim: error:") and word in err
+    assert not (tmp_path / "out").exists() or not any((tmp_path / "out").rglob("*.h5"))
+
+
+def test_subprocess_error_has_no_traceback(tmp_path):
+    cfg = _write(tmp_path, GOOD.replace("nf = 2", "nf = 0"))
+    r = _run("run", cfg, "--output", tmp_path)
+    assert r.returncode == 2
+    assert "Traceback" not in r.stderr and r.stderr.count("\n") == 1
+
+
+def test_missing_config_and_unknown_command(tmp_path, capsys):
+    assert main(["run", str(tmp_path / "none.toml")]) == 2
+    with pytest.raises(SystemExit) as info:
+        main(["frobnicate"])
+    assert info.value.code == 2
+
+
+def test_refuses_to_overwrite(tmp_path, capsys):
+    cfg = _write(tmp_path, GOOD)
+    out = tmp_path / "out"
+    assert main(["run", str(cfg), "--output", str(out), "--quiet"]) == 0
+    f = out / "cli" / "cli.h5"
+    before = f.read_bytes()
+    # same config: must ask for --resume or --overwrite
+    assert main(["run", str(cfg), "--output", str(out), "--quiet"]) == 2
+    assert "--resume" in capsys.readouterr().err
+    # different config: refused even with --overwrite
+    other = _write(tmp_path, GOOD.replace("beta = 0.6", "beta = 0.7"), "other.toml")
+    assert main(["run", str(other), "--output", str(out), "--quiet", "--overwrite"]) == 2
+    assert "different config" in capsys.readouterr().err
+    assert main(["run", str(other), "--output", str(out), "--quiet", "--resume"]) == 2
+    assert "different config" in capsys.readouterr().err
+    assert f.read_bytes() == before
+    # a foreign file with the run's name is never touched
+    foreign = out / "x" / "x.h5"
+    foreign.parent.mkdir()
+    with h5py.File(foreign, "w") as h:
+        h["data"] = np.arange(3)
+    fx = _write(tmp_path, GOOD.replace('name = "cli"', 'name = "x"'), "x.toml")
+    for extra in ([], ["--overwrite"], ["--resume"]):
+        assert main(["run", str(fx), "--output", str(out), "--quiet", *extra]) == 2
+    assert "sigmasim run file" in capsys.readouterr().err
+    with h5py.File(foreign, "r") as h:
+        assert list(h["data"][...]) == [0, 1, 2]
+
+
+def test_resume_of_missing_run(tmp_path, capsys):
+    cfg = _write(tmp_path, GOOD)
+    assert main(["run", str(cfg), "--output", str(tmp_path), "--resume"]) == 2
+    assert "nothing to resume" in capsys.readouterr().err
+
+
+def _series(path):
+    with h5py.File(path, "r") as f:
+        return {k: f["series"][k][...] for k in f["series"]}, {k: f["slices"][k][...] for k in f["slices"]}
+
+
+def test_sigterm_stops_cleanly_and_resume_matches(tmp_path):
+    long = GOOD.replace("measurements = 40", "measurements = 4000").replace("[8, 4, 4]", "[16, 8, 8]")
+    cfg = _write(tmp_path, long)
+    ref_dir, cut_dir = tmp_path / "ref", tmp_path / "cut"
+    r = _run("run", cfg, "--output", ref_dir, "--quiet", timeout=600)
+    assert r.returncode == 0, r.stderr
+    p = subprocess.Popen([sys.executable, "-m", "sigmasim", "run", str(cfg), "--output", str(cut_dir),
+                          "--quiet"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    target = cut_dir / "cli" / "cli.h5"
+    deadline = time.time() + 120
+    while not target.exists() and time.time() < deadline:
+        time.sleep(0.05)
+    time.sleep(0.5)
+    p.send_signal(signal.SIGTERM)
+    out, err = p.communicate(timeout=120)
+    if p.returncode == 0:
+        pytest.skip("run finished before the signal arrived")
+    assert p.returncode == 130, err
+    assert "--resume" in err and "Traceback" not in err
+    with h5py.File(target, "r") as f:
+        assert f.attrs["status"] == "interrupted"
+        assert 0 < f.attrs["sweep"] < 4010
+    r = _run("run", cfg, "--output", cut_dir, "--quiet", "--resume", timeout=600)
+    assert r.returncode == 0, r.stderr
+    a, b = _series(ref_dir / "cli" / "cli.h5"), _series(target)
+    for part in (0, 1):
+        for k in a[part]:
+            np.testing.assert_array_equal(a[part][k], b[part][k], err_msg=k)
+
+
+@pytest.mark.parametrize("example", sorted((ROOT / "runs").glob("*.toml")), ids=lambda p: p.name)
+def test_example_configs_run(tmp_path, example, capsys):
+    assert main(["run", str(example), "--smoke", "--output", str(tmp_path), "--quiet"]) == 0
+    assert "run file" in capsys.readouterr().out
+
+
+def test_demo_runs(tmp_path, capsys):
+    assert main(["demo", "--output", str(tmp_path), "--quiet"]) == 0
+    out = capsys.readouterr().out
+    assert "research toy" in out.lower() or "Research toy" in out
+    assert len(list(tmp_path.rglob("*.h5"))) == 5
