@@ -1,4 +1,4 @@
-"""Command line: ``sigmasim run | demo | info | config-reference``.
+"""Command line: ``sigmasim run | demo | info | vacua | validate | config-reference``.
 
 This is the error boundary: every :class:`SigmasimError` becomes one line on
 stderr and exit status 2; an interrupted run exits with 130 after writing its
@@ -197,6 +197,67 @@ def cmd_info(args) -> int:
     return 0
 
 
+def cmd_vacua(args) -> int:
+    import numpy as np
+
+    from sigmasim import vacua
+    from sigmasim.config import config_from_dict, load_config
+    from sigmasim.errors import ConfigError
+
+    if args.config is not None:
+        cfg = load_config(args.config)
+    else:
+        model = {k: v for k, v in (("nf", args.nf), ("group", args.group), ("mass", args.mass),
+                                     ("kappa", args.kappa), ("theta", args.theta),
+                                     ("theta_placement", args.placement)) if v is not None}
+        if isinstance(model.get("mass"), list) and len(model["mass"]) == 1:
+            model["mass"] = model["mass"][0]
+        cfg = config_from_dict({"lattice": {"shape": [2]}, "model": model})
+    theta_m, theta_a = cfg.theta_angles
+    kw = dict(nf=cfg.nf, group=cfg.group)
+    try:
+        pot = vacua.make_potential(list(cfg.mass), cfg.kappa, theta_m=theta_m, theta_a=theta_a, **kw)
+        minima = vacua.find_local_minima(pot)
+        scan = vacua.scan_theta(list(cfg.mass), cfg.kappa, thetas=np.linspace(0, 4 * np.pi, args.points),
+                                placement=cfg.theta_placement if cfg.group == "U" else "mass", **kw)
+    except ValueError as exc:
+        raise ConfigError(f"cannot analyse this potential: {exc}") from None
+    print(f"tree-level local minima at theta = {cfg.theta:.6g} (energies per site):")
+    print(vacua.format_table(minima))
+    print()
+    print("branches over theta in [0, 4 pi]:")
+    print(vacua.format_table(scan, step=max(1, args.points // 24)))
+    print("(tree level: classical potential only; research toy, not a physical prediction)")
+    if args.plot:
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+
+        fig, ax = plt.subplots(figsize=(8, 5))
+        vacua.plot_branches(scan, ax=ax)
+        out = Path(args.out)
+        out.parent.mkdir(parents=True, exist_ok=True)
+        fig.tight_layout()
+        fig.savefig(out.with_suffix(".png"), dpi=150)
+        fig.savefig(out.with_suffix(".pdf"))
+        plt.close(fig)
+        print(f"figure: {out.with_suffix('.png')} and .pdf")
+    return 0
+
+
+def cmd_validate(args) -> int:
+    from sigmasim import validation
+
+    _set_threads(0)
+    checks = validation.quick_checks()
+    if args.thorough:
+        checks += validation.thorough_checks()
+    print(validation.format_table(checks))
+    print("(each check: |MC - exact| <= 4 sigma, sigma from Wolff's Gamma method)")
+    return 0 if all(c.passed for c in checks) else 1
+
+
 def cmd_config_reference(args) -> int:
     from sigmasim.config import reference_markdown
 
@@ -225,6 +286,21 @@ def build_parser() -> argparse.ArgumentParser:
     i = sub.add_parser("info", help="show a run file's config, status and provenance")
     i.add_argument("file")
     i.set_defaults(func=cmd_info)
+    v = sub.add_parser("vacua", help="tree-level vacuum branches of a config's potential")
+    v.add_argument("config", nargs="?", default=None, help="TOML config (its [model] is used)")
+    v.add_argument("--nf", type=int)
+    v.add_argument("--group", choices=["U", "SU"])
+    v.add_argument("--mass", type=float, nargs="+", help="one mass or nf masses")
+    v.add_argument("--kappa", type=float)
+    v.add_argument("--theta", type=float)
+    v.add_argument("--placement", choices=["mass", "anomaly", "split"])
+    v.add_argument("--points", type=int, default=241, help="theta grid points over [0, 4 pi]")
+    v.add_argument("--plot", action="store_true", help="draw E_k(theta) for every branch")
+    v.add_argument("--out", default="vacua", help="figure path without suffix (default: vacua)")
+    v.set_defaults(func=cmd_vacua)
+    val = sub.add_parser("validate", help="compare the installed engine with exact results")
+    val.add_argument("--thorough", action="store_true", help="also the longer checks (O(4) ratio)")
+    val.set_defaults(func=cmd_validate)
     c = sub.add_parser("config-reference", help="print every config key with its default")
     c.set_defaults(func=cmd_config_reference)
     return p
@@ -241,3 +317,6 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         sys.stderr.write("sigmasim: interrupted\n")
         return 130
+    except BrokenPipeError:  # output piped into head and closed early
+        sys.stderr.close()
+        return 0

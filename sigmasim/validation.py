@@ -21,7 +21,8 @@ from sigmasim.analysis.gamma import gamma_analysis
 from sigmasim.chain import simulate
 from sigmasim.config import config_from_dict
 
-__all__ = ["Check", "zero_dim", "u1_chain", "o4_ratio", "SCHEDULES", "quick_checks", "format_table"]
+__all__ = ["Check", "zero_dim", "u1_chain", "o4_ratio", "SCHEDULES", "quick_checks", "thorough_checks",
+           "format_table"]
 
 SCHEDULES = {
     "metropolis": [{"update": "metropolis", "repeat": 1}],
@@ -166,6 +167,17 @@ def quick_checks() -> list[Check]:
         out += zero_dim(3, -0.6, 0.9, 3.0, algorithm=algorithm, placement="mass")
         out += zero_dim(2, 1.3, 0.0, 1.0, group="SU", algorithm=algorithm)
     out += u1_chain(algorithm="heatbath")
+    return out
+
+
+def thorough_checks() -> list[Check]:
+    """The longer set added by ``sigmasim validate --thorough``."""
+    out = []
+    for algorithm in ("heatbath", "metropolis"):
+        out += zero_dim(4, 0.7, 0.6, 2.0, algorithm=algorithm, placement="anomaly", n_meas=3000)
+        out += zero_dim(3, 0.8, 0.0, 2.5, group="SU", algorithm=algorithm, n_meas=3000)
+        out += u1_chain(algorithm=algorithm, n_meas=40000)
+    out += o4_ratio()
     return out
 
 

@@ -162,3 +162,12 @@ def test_demo_runs(tmp_path, capsys):
     out = capsys.readouterr().out
     assert "research toy" in out.lower() or "Research toy" in out
     assert len(list(tmp_path.rglob("*.h5"))) == 5
+
+
+def test_vacua_command(tmp_path, capsys):
+    assert main(["vacua", "--nf", "3", "--mass", "0.2", "--kappa", "1.0", "--theta", "3.4",
+                 "--points", "61", "--plot", "--out", str(tmp_path / "v")]) == 0
+    out = capsys.readouterr().out
+    assert "first-order" in out and "research toy" in out
+    assert (tmp_path / "v.png").exists() and (tmp_path / "v.pdf").exists()
+    assert main(["vacua", "--nf", "9"]) == 2
