@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -129,6 +129,15 @@ class Simulation:
         t = config.shape[0]
         self._buf = (np.empty(t), np.empty(t), np.empty((t, config.nf**2), np.complex128),
                      np.empty(t, np.complex128))
+
+    def set_theta(self, theta: float) -> None:
+        """Move the chain to another theta without touching the field (hysteresis, tempering).
+
+        The placement stays that of the config.  The chain's state (field, step
+        counter) is kept, so a protocol that changes theta stays reproducible.
+        """
+        self.config = replace(self.config, theta=float(theta))
+        self.hdiag = self.config.hdiag.astype(np.complex128)
 
     @property
     def total_sweeps(self) -> int:
