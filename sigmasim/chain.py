@@ -20,7 +20,7 @@ from sigmasim.kernels.measure import field_is_finite, reunitarize, slice_sums
 from sigmasim.lattice import Lattice, make_lattice
 from sigmasim.updates import apply
 
-__all__ = ["ChainState", "Simulation", "run_chain", "simulate", "MemorySink", "SERIES", "SLICES",
+__all__ = ["ChainState", "Simulation", "run_chain", "simulate", "make_simulation", "MemorySink", "SERIES", "SLICES",
            "Interrupted"]
 
 # name -> (kind, description); kind: real, complex, complex_nf, int
@@ -282,8 +282,13 @@ class MemorySink:
         return {k: np.array([r[k] for r in self.records]) for k in self.records[0]}
 
 
+def make_simulation(config: RunConfig, state: ChainState | None = None) -> Simulation:
+    """The simulation class for the config's model (the one place models are dispatched)."""
+    return Simulation(config, state)
+
+
 def simulate(config: RunConfig) -> dict:
     """Run ``config`` in memory and return its series (see :class:`MemorySink`)."""
     sink = MemorySink()
-    run_chain(Simulation(config), (sink,))
+    run_chain(make_simulation(config), (sink,))
     return sink.arrays()

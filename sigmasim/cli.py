@@ -60,7 +60,7 @@ def execute_run(config, resume: bool = False, overwrite: bool = False, quiet: bo
     Raises :class:`SigmasimError` subclasses for bad input and
     :class:`sigmasim.chain.Interrupted` after a checkpoint when stopped.
     """
-    from sigmasim.chain import Interrupted, Simulation, run_chain
+    from sigmasim.chain import Interrupted, make_simulation, run_chain
     from sigmasim.config import field_bytes
     from sigmasim.progress import ProgressBar
     from sigmasim.storage import RunWriter, check_writable, read_state
@@ -75,7 +75,7 @@ def execute_run(config, resume: bool = False, overwrite: bool = False, quiet: bo
         _refuse_overwrite(path, config, overwrite)
     per_record = 16 * config.shape[0] * (config.nf**2 + 1) + 16 * (config.nf + 4) + 64
     check_writable(path, 2 * (field_bytes(config.shape, config.nf) + per_record * config.measurements))
-    sim = Simulation(config, state)
+    sim = make_simulation(config, state)
     if resume and sim.state.sweep >= sim.total_sweeps:
         return path
     writer = RunWriter(config, path, resume=resume)
