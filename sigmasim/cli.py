@@ -71,8 +71,12 @@ def execute_run(config, resume: bool = False, overwrite: bool = False, quiet: bo
         if not path.exists():
             raise RunFileError(f"nothing to resume: {path} does not exist")
         state = read_state(path, config)
-    elif path.exists() or path.with_name(path.name + ".tmp").exists():
+    elif path.exists():
         _refuse_overwrite(path, config, overwrite)
+    tmp = path.with_name(path.name + ".tmp")
+    if tmp.exists():
+        # a checkpoint copy left by a crash mid-write: never the committed result, always ours
+        tmp.unlink()
     per_record = 16 * config.shape[0] * (config.nf**2 + 1) + 16 * (config.nf + 4) + 64
     check_writable(path, 2 * (field_bytes(config.shape, config.nf) + per_record * config.measurements))
     sim = make_simulation(config, state)
