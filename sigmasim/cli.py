@@ -1,4 +1,4 @@
-"""Command line: ``sigmasim run | demo | info | vacua | validate | config-reference``.
+"""Command line: ``sigmasim run | demo | info | analyze | vacua | validate | config-reference``.
 
 This is the error boundary: every :class:`SigmasimError` becomes one line on
 stderr and exit status 2; an interrupted run exits with 130 after writing its
@@ -201,6 +201,12 @@ def cmd_info(args) -> int:
     return 0
 
 
+def cmd_analyze(args) -> int:
+    from sigmasim.analysis.report import analyze_command
+
+    return analyze_command(args.files, plot=args.plot, out_dir=args.out, quiet=args.quiet)
+
+
 def cmd_vacua(args) -> int:
     import numpy as np
 
@@ -290,6 +296,12 @@ def build_parser() -> argparse.ArgumentParser:
     i = sub.add_parser("info", help="show a run file's config, status and provenance")
     i.add_argument("file")
     i.set_defaults(func=cmd_info)
+    a = sub.add_parser("analyze", help="errors, autocorrelations, masses (and figures) of run files")
+    a.add_argument("files", nargs="+", help="run files (.h5)")
+    a.add_argument("--plot", action="store_true", help="also write figures (PNG and PDF)")
+    a.add_argument("--out", default=None, help="folder for figures (default: next to each run)")
+    a.add_argument("--quiet", action="store_true")
+    a.set_defaults(func=cmd_analyze)
     v = sub.add_parser("vacua", help="tree-level vacuum branches of a config's potential")
     v.add_argument("config", nargs="?", default=None, help="TOML config (its [model] is used)")
     v.add_argument("--nf", type=int)

@@ -8,8 +8,20 @@ Independent of the simulation engine.  Submodules:
 * :mod:`~sigmasim.analysis.thermalisation` -- burn-in cut.
 * :mod:`~sigmasim.analysis.correlators` -- zero-momentum correlators,
   effective masses, correlated cosh fits.
+* :mod:`~sigmasim.analysis.channels` -- pion / eta' / sigma operators from the
+  run file's time-slice sums, their correlators, tree-level references.
+* :mod:`~sigmasim.analysis.report` -- ``sigmasim analyze``: table, JSON, CSV.
+* :mod:`~sigmasim.analysis.plots` -- its figures (matplotlib, imported lazily).
 """
 
+from .channels import (
+    ChannelData,
+    channel_correlator,
+    channel_operators,
+    gell_mann,
+    meson_correlators,
+    tree_level,
+)
 from .correlators import (
     CorrelatorEstimate,
     FitResult,
@@ -36,9 +48,21 @@ from .resampling import (
     jackknife_covariance,
     jackknife_means,
 )
+from .report import RunAnalysis, analyze_command, analyze_data, analyze_run, format_table
 from .thermalisation import ThermalisationResult, thermalisation_cut
 
 __all__ = [
+    "ChannelData",
+    "RunAnalysis",
+    "analyze_command",
+    "analyze_data",
+    "analyze_run",
+    "channel_correlator",
+    "channel_operators",
+    "format_table",
+    "gell_mann",
+    "meson_correlators",
+    "tree_level",
     "CorrelatorEstimate",
     "FitResult",
     "GammaResult",

@@ -1,0 +1,230 @@
+"""Figures of ``sigmasim analyze --plot`` (matplotlib, Agg backend, imported lazily).
+
+Every figure carries a title line with the run's parameters and
+"research toy", labelled axes with their conventions and a legend.
+
+Vacuum directions
+-----------------
+In the frame ``V = e^{i theta_m} U`` the action reads
+``-beta sum Re Tr(V_x^+ V_{x+mu}) - sum Re Tr(diag(h) V_x)
+- 2 kappa sum Re(e^{-i theta} det V_x)``, because
+``e^{i theta_a} det U = e^{i (theta_a - nf theta_m)} det V = e^{-i theta} det V``.
+For degenerate masses the tree-level vacua are ``V = e^{i alpha} 1``; at large
+kappa the det term fixes ``nf alpha - theta = 2 pi k``, so branch ``k`` has
+
+    V = e^{i (2 pi k + theta) / nf} 1,    arg Omega_h = (2 pi k + theta) / nf,
+
+``k = 0 .. nf-1`` (mod 2 pi), and the mass term ``-h nf cos alpha`` selects the
+``k`` with the smallest ``|2 pi k + theta|`` (for SU(nf) the same directions
+follow from the centre ``U = e^{2 pi i k / nf}`` and ``theta_m = theta / nf``).
+In the U frame this is ``arg Omega = (2 pi k - theta_a) / nf`` (the
+``start = "branch"`` field of the config).  Checked numerically: U(2), theta = 2,
+kappa = 2, h = 0.3 gives ``arg Omega_h = 0.97`` for every theta placement
+(tree level 1.0; the mass term pulls towards 0).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+__all__ = ["branch_phases", "plot_phase_history", "plot_omega_plane", "plot_autocorrelation",
+           "plot_effective_mass", "plot_all", "FIGURES"]
+
+FIGURES = ("phase_history", "omega_plane", "autocorrelation", "effective_mass")
+_TOY = "research toy"
+
+
+def _plt():
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def branch_phases(nf: int, theta: float) -> np.ndarray:
+    """``(2 pi k + theta) / nf`` wrapped to ``(-pi, pi]``, ``k = 0..nf-1`` (module docstring)."""
+    k = np.arange(nf)
+    a = (2 * np.pi * k + theta) / nf
+    return np.angle(np.exp(1j * a))
+
+
+def _branch_k(nf, theta):
+    """The k of each wrapped phase, labelled in the legend."""
+    return list(range(nf))
+
+
+def _title(fig, ra, what):
+    fig.suptitle(f"{what}\n{ra.label} -- {_TOY}", fontsize=9)
+
+
+def _save(fig, out: Path, stem: str, name: str) -> list[Path]:
+    paths = []
+    for ext in ("png", "pdf"):
+        p = out / f"{stem}.{name}.{ext}"
+        fig.savefig(p, dpi=120 if ext == "png" else None)
+        paths.append(p)
+    _plt().close(fig)
+    return paths
+
+
+def plot_phase_history(ra, ax=None):
+    """Time history of ``arg Omega_h`` with the nf tree-level branch directions."""
+    plt = _plt()
+    fig = None
+    if ax is None:
+        fig, ax = plt.subplots(figsize=(9, 4.2), layout="constrained")
+    c = ra.config
+    om = ra.data["omega_h"]
+    sw = ra.data["sweep"]
+    ax.plot(sw, np.angle(om), ".", ms=2, color="C0", label=r"arg $\Omega_h$ per measurement")
+    for k, a in zip(_branch_k(c.nf, c.theta), branch_phases(c.nf, c.theta)):
+        ax.axhline(a, color=f"C{k + 1}", ls="--", lw=1.2,
+                   label=fr"branch k={k}: $(2\pi k+\theta)/N_f$ = {a:.3f}")
+    if ra.cut:
+        ax.axvline(sw[ra.cut], color="k", ls=":", lw=1, label=f"thermalisation cut ({ra.cut} meas.)")
+    ax.set_ylim(-np.pi * 1.05, np.pi * 1.05)
+    ax.set_yticks(np.linspace(-np.pi, np.pi, 5), [r"$-\pi$", r"$-\pi/2$", "0", r"$\pi/2$", r"$\pi$"])
+    ax.set_xlabel("sweep")
+    ax.set_ylabel(r"arg $\Omega_h$,  $\Omega_h = e^{i\theta_m}\sum_x \mathrm{Tr}\,U_x/(N_f V)$")
+    ax.legend(fontsize=7, loc="upper right", ncol=2, framealpha=0.85)
+    if fig is not None:
+        _title(fig, ra, "phase of the condensate")
+    return fig
+
+
+def plot_omega_plane(ra, ax=None):
+    """2-d histogram of ``Omega_h``: the whole disk with the Z_nf directions, and a zoom."""
+    plt = _plt()
+    c = ra.config
+    om = ra.data["omega_h"][ra.cut:]
+    fig, (ax, az) = plt.subplots(1, 2, figsize=(10.5, 5.0), layout="constrained")
+    r = 1.05
+    phi = np.linspace(0, 2 * np.pi, 400)
+    m = om.mean() if om.size else 0j
+    for a_ in (ax, az):
+        a_.plot(np.cos(phi), np.sin(phi), color="0.5", lw=0.8, label=r"$|\Omega_h| = 1$")
+        for k, a in zip(_branch_k(c.nf, c.theta), branch_phases(c.nf, c.theta)):
+            a_.plot([0, np.cos(a)], [0, np.sin(a)], ls="--", color=f"C{k + 1}", lw=1.2,
+                    label=fr"branch k={k}: arg = $(2\pi k+\theta)/N_f$ = {a:.3f}")
+        a_.set_xlabel(r"Re $\Omega_h$ ($\sigma$ direction)")
+        a_.set_ylabel(r"Im $\Omega_h$ ($\eta'$ direction)")
+    ax.hist2d(om.real, om.imag, bins=120, range=[[-r, r], [-r, r]], cmin=1, cmap="viridis")
+    ax.plot([m.real], [m.imag], "x", color="r", ms=9, mew=2, label=r"mean $\Omega_h$")
+    ax.set_xlim(-r, r)
+    ax.set_ylim(-r, r)
+    ax.set_aspect("equal")
+    ax.set_title("unit disk", fontsize=8)
+    ax.legend(fontsize=7, loc="lower left", framealpha=0.85)
+    # zoom: a square around the data (at least 0.05 wide)
+    lo = np.array([om.real.min(), om.imag.min()]) if om.size else np.zeros(2)
+    hi = np.array([om.real.max(), om.imag.max()]) if om.size else np.ones(2)
+    cen, half = 0.5 * (lo + hi), max(0.025, 0.55 * float(np.max(hi - lo)))
+    h = az.hist2d(om.real, om.imag, bins=60, range=[[cen[0] - half, cen[0] + half],
+                                                     [cen[1] - half, cen[1] + half]],
+                  cmin=1, cmap="viridis")
+    az.plot([m.real], [m.imag], "x", color="r", ms=9, mew=2)
+    az.set_xlim(cen[0] - half, cen[0] + half)
+    az.set_ylim(cen[1] - half, cen[1] + half)
+    az.set_aspect("equal")
+    az.set_title("zoom on the measurements", fontsize=8)
+    cb = fig.colorbar(h[3], ax=az, shrink=0.8)
+    cb.set_label("measurements per bin")
+    fig.suptitle(f"Omega_h = exp(i theta_m) sum_x Tr U_x / (nf V), after the thermalisation cut\n"
+                 f"{ra.label} -- {_TOY}", fontsize=9)
+    return fig
+
+
+def plot_autocorrelation(ra, names=("action", "omega_h.re", "omega_h.im", "abs_omega"), ax=None):
+    """Normalised autocorrelation functions rho(t) with the Gamma-method window W marked."""
+    from .gamma import autocorrelation
+
+    plt = _plt()
+    fig = None
+    if ax is None:
+        fig, ax = plt.subplots(figsize=(8, 4.2), layout="constrained")
+    tmax_all = 1
+    for i, k in enumerate(names):
+        s = ra.series.get(k)
+        x = ra.data["series"].get(k)
+        if s is None or x is None or not np.isfinite(s.tau_int) or s.n < 8 or s.error == 0:
+            continue
+        tmax = int(min(x.size // 2, max(10, 3 * s.window)))
+        tmax_all = max(tmax_all, tmax)
+        rho = autocorrelation(x, tmax)
+        ax.plot(np.arange(rho.size), rho, "o-", ms=3, color=f"C{i}", lw=1.3,
+                label=fr"{k}: $\tau_{{int}}$ = {s.tau_int:.2f}({s.tau_int_error:.2f}), W = {s.window}")
+        ax.axvline(s.window + 0.04 * (i - 1.5), color=f"C{i}", ls="--", lw=1)
+    ax.axhline(0, color="0.4", lw=0.7)
+    ax.set_xlim(0, tmax_all)
+    ax.set_xlabel("lag t (measurements)")
+    ax.set_ylabel(r"$\rho(t) = \Gamma(t)/\Gamma(0)$")
+    ax.legend(fontsize=7, title=r"dashed: window W;  $\tau_{int} = 1/2 + \sum_{t\leq W}\rho(t)$",
+              title_fontsize=7)
+    if fig is not None:
+        _title(fig, ra, "autocorrelation (Wolff Gamma method, S = 1.5)")
+    return fig
+
+
+def plot_effective_mass(ra, channels=None):
+    """Cosh effective masses per channel with the fitted mass band over the fit window."""
+    plt = _plt()
+    chans = [c for c in (channels or ra.masses) if c in ra.masses]
+    n = max(1, len(chans))
+    cols = min(2, n)
+    rows = (n + cols - 1) // cols
+    fig, axes = plt.subplots(rows, cols, figsize=(5.2 * cols, 3.6 * rows), layout="constrained",
+                             squeeze=False)
+    for ax, ch in zip(axes.flat, chans):
+        m = ra.masses[ch]
+        T = ra.config.shape[0]
+        t = np.arange(m.m_eff.size)
+        sel = t < T // 2
+        y, e = m.m_eff[sel], m.m_eff_error[sel]
+        ok = np.isfinite(y)
+        ax.errorbar(t[sel][ok] + 0.5, y[ok], yerr=np.where(np.isfinite(e[ok]), e[ok], 0), fmt="o",
+                    ms=3.5, capsize=2, color="C0", label=r"$m_{eff}(t)$ (cosh, t+1/2)")
+        if m.t_min is not None and np.isfinite(m.mass):
+            x = [m.t_min, m.t_max]
+            ax.fill_between(x, m.mass - m.error, m.mass + m.error, color="C1", alpha=0.35,
+                            label=f"fit [{m.t_min},{m.t_max}]: {m.mass:.4f}({m.error:.4f}), "
+                            f"p={m.p_value:.2f}" + ("" if m.acceptable else " (!)"))
+            ax.plot(x, [m.mass, m.mass], color="C1")
+        if m.tree_level_mass is not None:
+            ax.axhline(m.tree_level_mass, color="C2", ls="--", lw=1.2,
+                       label=f"tree level (LO 1/beta) {m.tree_level_mass:.4f}")
+        good = y[ok & np.isfinite(e) & (e < 0.5 * np.abs(y) + 0.05)]
+        if good.size:
+            lo, hi = np.min(good), np.max(good)
+            ref = [v for v in (m.mass, m.tree_level_mass) if v is not None and np.isfinite(v)]
+            lo, hi = min([lo] + ref), max([hi] + ref)
+            pad = 0.25 * (hi - lo) + 0.02
+            ax.set_ylim(max(0, lo - pad), hi + pad)
+        ax.set_xlabel("t (lattice units, time = direction 0)")
+        ax.set_ylabel(r"$a\,m_{eff}$")
+        ax.set_title(f"{ch}: {m.operator}", fontsize=8)
+        ax.legend(fontsize=7)
+    for ax in list(axes.flat)[len(chans):]:
+        ax.axis("off")
+    fig.suptitle("cosh effective masses of zero-momentum correlators; operators of W = vacuum-aligned "
+                 f"V = exp(i theta_m) U\n{ra.label} -- {_TOY}",
+                 fontsize=9)
+    return fig
+
+
+def plot_all(ra, out_dir) -> list[Path]:
+    """Write every figure as PNG and PDF into ``out_dir``; returns the paths."""
+    out = Path(out_dir)
+    stem = ra.path.with_suffix("").name if ra.path is not None else ra.name
+    written = []
+    if ra.data.get("omega_h") is not None and ra.n_used > 0:
+        written += _save(plot_phase_history(ra), out, stem, "phase_history")
+        written += _save(plot_omega_plane(ra), out, stem, "omega_plane")
+    if ra.series:
+        written += _save(plot_autocorrelation(ra), out, stem, "autocorrelation")
+    if ra.masses:
+        written += _save(plot_effective_mass(ra), out, stem, "effective_mass")
+    return written

@@ -1,0 +1,604 @@
+"""Back end of ``sigmasim analyze``: one run (or several) -> table, JSON, CSV, figures.
+
+Procedure for one run
+---------------------
+1. Thermalisation: :func:`sigmasim.analysis.thermalisation.thermalisation_cut`
+   on ``action``, ``Re omega_h`` and ``|Omega|``; the largest cut is applied to
+   every series and to the slices (the reason of the deciding series is reported).
+2. Every series (real and imaginary parts of complex ones, per-flavour
+   condensates, ``|Omega|``, acceptances): mean, error, ``tau_int`` and its
+   error, ``n_independent = N / (2 tau_int)`` by Wolff's Gamma method
+   (:func:`sigmasim.analysis.gamma.gamma_analysis`, ``S = 1.5``).  NaN entries
+   (acceptance windows without a proposal) are dropped; series that are
+   constant are reported with error 0.
+3. Masses: the channel correlators of :mod:`sigmasim.analysis.channels`
+   (frame ``V = e^{i theta_m} U``, aligned with the measured vacuum,
+   zero momentum, source-time averaged, spatial-volume normalised,
+   symmetrised, jackknife over bins), cosh effective masses, and correlated
+   single-cosh fits on ``[t_min, t_max]``: ``t_max`` is ``T/2`` or, if earlier,
+   the last time slice before the correlator's signal-to-noise falls below 2;
+   ``t_min`` is the earliest value with ``p >= 0.05``
+   (:func:`sigmasim.analysis.correlators.scan_fit_windows`).  If no window is
+   acceptable the fit with the largest ``p`` is reported with a warning; with
+   fewer than ``MIN_FIT_BINS`` = 20 jackknife bins no fit is made (warning).
+4. Leading order in ``1/beta`` (theta = 0, degenerate h > 0 only): the
+   tree-level masses of :func:`sigmasim.analysis.channels.tree_level` are
+   reported next to the fits for orientation; they are not a prediction at
+   small beta.
+
+Output files (next to the run file ``<dir>/<name>.h5``)
+-------------------------------------------------------
+``<dir>/<name>.analysis.json`` -- keys:
+
+* ``format`` = ``"sigmasim-analysis"``, ``format_version`` = 1, ``note``;
+* ``run`` (path), ``name``, ``status`` (run file status), ``config`` (the
+  run's config as a nested dict), ``label`` (one-line parameter summary);
+* ``n_measurements`` (records in the file), ``n_used`` (after the cut);
+* ``thermalisation``: ``cut``, ``reason``, ``thermalised``, ``series``
+  (the series deciding the cut), ``checked`` (series -> cut);
+* ``series``: name -> ``mean``, ``error``, ``tau_int``, ``tau_int_error``,
+  ``n_independent``, ``window``, ``n``, ``note``; names are the run file's
+  series with suffixes ``.re``/``.im`` for complex ones, ``condensate[f].re``,
+  ``abs_omega``;
+* ``acceptance``: ``metropolis``, ``phase`` (means, or null if not used),
+  ``max_unitarity_drift``;
+* ``masses``: channel -> ``operator``, ``mass``, ``error``, ``t_min``,
+  ``t_max``, ``chi2``, ``dof``, ``chi2_dof``, ``p_value``, ``amplitude`` (A of
+  ``A cosh(m (t - T/2))``), ``amplitude_error``,
+  ``window_reason``, ``acceptable`` (p >= 0.05), ``tree_level_mass`` (or null),
+  ``n_bins``, ``bin_size``, ``m_eff``, ``m_eff_error``, ``correlator``,
+  ``correlator_error`` (lists over t), ``warning``;
+* ``vacuum_alignment_phases``: ``alpha_f`` of the channel frame;
+* ``warnings``: list of strings (also printed in the table).
+
+NaN and infinities are written as ``null``.
+
+``<dir>/<name>.analysis.csv`` -- one row per quantity, columns
+:data:`CSV_COLUMNS`: ``section`` is ``series``, ``acceptance``, ``mass`` or
+``thermalisation``.
+
+Figures (``plot=True``): ``<name>.<figure>.png`` and ``.pdf`` for the figures
+of :mod:`sigmasim.analysis.plots` (``phase_history``, ``omega_plane``,
+``autocorrelation``, ``effective_mass``), in ``out_dir`` or next to the run.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import math
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from sigmasim.errors import RunFileError, SigmasimError
+
+from .channels import CHANNELS, meson_correlators, tree_level
+from .correlators import effective_mass_errors, fit_correlator, scan_fit_windows
+from .gamma import MIN_SAMPLES, gamma_analysis
+from .thermalisation import thermalisation_cut
+
+__all__ = [
+    "SeriesSummary",
+    "MassSummary",
+    "RunAnalysis",
+    "analyze_run",
+    "analyze_data",
+    "format_table",
+    "analysis_dict",
+    "write_outputs",
+    "analyze_command",
+    "run_label",
+    "CSV_COLUMNS",
+    "TOY_NOTE",
+]
+
+TOY_NOTE = "Results are a research toy, not a physical prediction."
+CSV_COLUMNS = ("run", "section", "name", "value", "error", "tau_int", "tau_int_error",
+               "n_independent", "t_min", "t_max", "chi2_dof", "p_value", "note")
+P_MIN = 0.05
+#: fewest jackknife bins accepted for a correlated fit (common practice, no source: the
+#: covariance of up to T/2 + 1 points must be estimated with some accuracy)
+MIN_FIT_BINS = 20
+#: series whose thermalisation cut is tested (the largest cut is applied)
+THERM_SERIES = ("action", "omega_h.re", "abs_omega")
+#: series shown in the text table (all are in JSON/CSV)
+TABLE_SERIES = ("action", "action_beta", "action_mass", "action_det", "omega_h.re", "omega_h.im",
+                "abs_omega", "det.re", "det.im")
+
+
+@dataclass
+class SeriesSummary:
+    """Gamma-method summary of one real series."""
+
+    name: str
+    mean: float
+    error: float
+    tau_int: float
+    tau_int_error: float
+    n_independent: float
+    window: int
+    n: int
+    note: str = ""
+    rho: np.ndarray | None = None
+
+
+@dataclass
+class MassSummary:
+    """Fit of one channel's correlator."""
+
+    channel: str
+    operator: str
+    mass: float = math.nan
+    error: float = math.nan
+    t_min: int | None = None
+    t_max: int | None = None
+    chi2: float = math.nan
+    dof: int | None = None
+    p_value: float = math.nan
+    amplitude: float = math.nan
+    amplitude_error: float = math.nan
+    acceptable: bool = False
+    window_reason: str = ""
+    tree_level_mass: float | None = None
+    n_bins: int = 0
+    bin_size: int = 0
+    m_eff: np.ndarray | None = None
+    m_eff_error: np.ndarray | None = None
+    correlator: np.ndarray | None = None
+    correlator_error: np.ndarray | None = None
+    warning: str = ""
+
+    @property
+    def chi2_dof(self) -> float:
+        return self.chi2 / self.dof if self.dof else math.nan
+
+
+@dataclass
+class RunAnalysis:
+    """Everything :func:`analyze_run` found for one run."""
+
+    path: Path | None
+    name: str
+    config: object
+    status: str
+    n_measurements: int
+    n_used: int = 0
+    cut: int = 0
+    cut_reason: str = ""
+    cut_series: str = ""
+    thermalised: bool = True
+    cut_checked: dict = field(default_factory=dict)
+    series: dict = field(default_factory=dict)
+    acceptance: dict = field(default_factory=dict)
+    masses: dict = field(default_factory=dict)
+    alpha: np.ndarray | None = None
+    warnings: list = field(default_factory=list)
+    data: dict = field(default_factory=dict)  # the cut series used (for plots), not serialised
+
+    @property
+    def label(self) -> str:
+        return run_label(self.config, self.name)
+
+
+def run_label(config, name: str | None = None) -> str:
+    """One line with the run's parameters: nf, group, beta, h, kappa, theta, lattice."""
+    c = config
+    h = c.mass[0] if len(set(c.mass)) == 1 else "[" + ",".join(f"{m:g}" for m in c.mass) + "]"
+    lat = "x".join(str(n) for n in c.shape)
+    nm = f"{name}: " if name else ""
+    return (f"{nm}{c.group}({c.nf}) beta={c.beta:g} h={h if isinstance(h, str) else f'{h:g}'} "
+            f"kappa={c.kappa:g} theta={c.theta:.4g} lattice {lat}")
+
+
+# ----------------------------------------------------------------------------
+# pieces
+# ----------------------------------------------------------------------------
+
+
+def _real_series(series: dict, nf: int) -> dict[str, np.ndarray]:
+    """Flatten the run's series to real 1-d arrays with JSON-friendly names."""
+    out = {}
+    for k, v in series.items():
+        if k == "sweep":
+            continue
+        a = np.asarray(v)
+        if a.ndim == 2:  # (n, nf) complex per-flavour
+            for f in range(a.shape[1]):
+                out[f"{k}[{f}].re"] = a[:, f].real.astype(float)
+                out[f"{k}[{f}].im"] = a[:, f].imag.astype(float)
+        elif np.iscomplexobj(a):
+            out[f"{k}.re"] = a.real.astype(float)
+            out[f"{k}.im"] = a.imag.astype(float)
+        else:
+            out[k] = a.astype(float)
+        if k == "omega":
+            out["abs_omega"] = np.abs(a).astype(float)
+    return out
+
+
+def summarise_series(name: str, x: np.ndarray) -> SeriesSummary:
+    """Gamma-method summary; drops NaN; handles constant and too short series."""
+    x = np.asarray(x, dtype=float)
+    finite = np.isfinite(x)
+    note = ""
+    if not finite.all():
+        if not finite.any():
+            return SeriesSummary(name, math.nan, math.nan, math.nan, math.nan, math.nan, 0, 0,
+                                 "not measured (all entries NaN)")
+        note = f"{int((~finite).sum())} NaN entries dropped"
+        x = x[finite]
+    n = x.size
+    if n == 0:
+        return SeriesSummary(name, math.nan, math.nan, math.nan, math.nan, math.nan, 0, 0, "no data")
+    if np.ptp(x) == 0.0:
+        return SeriesSummary(name, float(x[0]), 0.0, 0.5, 0.0, float(n), 0, n,
+                             (note + "; " if note else "") + "constant")
+    if n < MIN_SAMPLES:
+        err = float(np.std(x, ddof=1) / np.sqrt(n)) if n > 1 else math.nan
+        return SeriesSummary(name, float(x.mean()), err, math.nan, math.nan, math.nan, 0, n,
+                             f"only {n} samples: naive error, no tau_int")
+    g = gamma_analysis(x)
+    return SeriesSummary(name, g.value, g.error, g.tau_int, g.tau_int_error, g.n_independent,
+                         g.window, n, note, g.rho)
+
+
+def _thermalisation(reals: dict, n: int) -> tuple[int, str, str, bool, dict]:
+    n_blocks = min(20, n // 4)
+    # the reference half is split in quarters, each needs MIN_SAMPLES for the Gamma method
+    if n_blocks < 2 or n < 4 * MIN_SAMPLES:
+        return 0, f"only {n} measurements: too few for a thermalisation check; no cut", "", False, {}
+    best = (-1, "", "", True)
+    checked = {}
+    for name in THERM_SERIES:
+        x = reals.get(name)
+        if x is None or not np.all(np.isfinite(x)) or np.ptp(x) == 0:
+            continue
+        try:
+            r = thermalisation_cut(x, n_blocks=n_blocks)
+        except ValueError as exc:  # pragma: no cover - guarded by the length check above
+            checked[name] = f"skipped ({exc})"
+            continue
+        checked[name] = r.cut
+        if r.cut > best[0] or (r.cut == best[0] and not r.thermalised):
+            best = (r.cut, r.reason, name, r.thermalised and best[3])
+        else:
+            best = best[:3] + (best[3] and r.thermalised,)
+    if best[0] < 0:
+        return 0, "no non-constant series to check; no cut", "", True, checked
+    return best[0], best[1], best[2], best[3], checked
+
+
+def _fit_channel(channel: str, est, tree: float | None) -> MassSummary:
+    ms = MassSummary(channel, CHANNELS.get(channel, "Im Tr W_t (SU(nf): no eta', multi-pion)"),
+                     tree_level_mass=tree, n_bins=est.n_bins)
+    m, me = effective_mass_errors(est, "cosh")
+    ms.m_eff, ms.m_eff_error = m, me
+    ms.correlator, ms.correlator_error = est.mean, est.error
+    T = est.T
+    half = T // 2
+    with np.errstate(divide="ignore", invalid="ignore"):
+        snr = est.mean / est.error
+    t_max = half
+    for t in range(1, half + 1):
+        if not snr[t] >= 2.0:
+            t_max = t - 1
+            break
+    if est.n_bins < MIN_FIT_BINS:
+        ms.warning = (f"{channel}: too few samples for a correlated fit (N_bins = {est.n_bins} < "
+                      f"{MIN_FIT_BINS}); effective mass only")
+        return ms
+    if t_max < 3:
+        ms.warning = (f"{channel}: signal lost after t = {t_max} (C/err < 2); no fit "
+                      f"(N_bins = {est.n_bins})")
+        return ms
+    scan = scan_fit_windows(est, t_max=t_max, t_min_start=1, p_min=P_MIN)
+    fit = scan.best
+    if fit is None:
+        if not scan.fits:
+            ms.warning = (f"{channel}: too few samples for a correlated fit (N_bins = {est.n_bins}, "
+                          f"window up to t = {t_max}); effective mass only")
+            return ms
+        fit = max(scan.fits.values(), key=lambda f: f.p_value)
+        ms.warning = (f"{channel}: no fit window with p >= {P_MIN:g}; showing the best one "
+                      f"[{fit.t_min}, {fit.t_max}] with p = {fit.p_value:.2g}")
+        ms.window_reason = f"largest p among windows [t_min, {t_max}]"
+    else:
+        ms.acceptable = True
+        ms.window_reason = scan.reason
+    ms.mass, ms.error = fit.mass, fit.mass_error
+    ms.t_min, ms.t_max = fit.t_min, fit.t_max
+    ms.chi2, ms.dof, ms.p_value = fit.chi2, fit.dof, fit.p_value
+    ms.amplitude = float(fit.params[0])
+    ms.amplitude_error = float(fit.errors[0])
+    return ms
+
+
+def analyze_data(series: dict, slices: dict, config, *, status: str = "complete",
+                 path=None, name: str | None = None, masses: bool = True) -> RunAnalysis:
+    """Analyse in-memory data (``RunData.series``/``.slices`` or :func:`sigmasim.chain.simulate`).
+
+    ``slices`` holds ``"U"`` and ``"det"`` (for ``simulate`` output pass
+    ``{"U": d["slices/U"], "det": d["slices/det"]}``, or the dict itself: keys
+    ``slices/U``, ``slices/det`` are recognised).
+    """
+    from sigmasim.chain import SERIES
+
+    series = {k: v for k, v in series.items() if not k.startswith("slices/")}
+    if "slices/U" in slices or "slices/det" in slices:
+        slices = {k.split("/", 1)[1]: v for k, v in slices.items() if k.startswith("slices/")}
+    n = int(len(series.get("sweep", series.get("action", ()))))
+    ra = RunAnalysis(Path(path) if path else None, name or config.name, config, status, n)
+    if status != "complete":
+        ra.warnings.append(
+            f"run status is '{status}': the file is still being written or was stopped; "
+            f"results use the {n} records of the last checkpoint")
+    missing = [k for k in SERIES if k not in series]
+    if missing:
+        ra.warnings.append(f"missing series: {', '.join(missing)}")
+    if n == 0:
+        ra.warnings.append("no measurements in the run; nothing to analyse")
+        return ra
+    reals = _real_series(series, config.nf)
+    cut, reason, deciding, ok, checked = _thermalisation(reals, n)
+    ra.cut, ra.cut_reason, ra.cut_series, ra.thermalised, ra.cut_checked = cut, reason, deciding, ok, checked
+    if not ok:
+        ra.warnings.append(f"thermalisation: not established ({deciding or 'check skipped'}): "
+                           + reason.split(". ")[0])
+    ra.n_used = n - cut
+    cut_reals = {k: v[cut:] for k, v in reals.items()}
+    ra.data = {"series": cut_reals, "sweep": np.asarray(series.get("sweep", np.arange(1, n + 1))),
+               "omega_h": np.asarray(series["omega_h"]) if "omega_h" in series else None,
+               "cut": cut}
+    for k, v in cut_reals.items():
+        ra.series[k] = summarise_series(k, v)
+    acc_m = ra.series.get("accept_metropolis")
+    acc_p = ra.series.get("accept_phase")
+    drift = reals.get("unitarity_drift")
+    ra.acceptance = {
+        "metropolis": acc_m.mean if acc_m and math.isfinite(acc_m.mean) else None,
+        "phase": acc_p.mean if acc_p and math.isfinite(acc_p.mean) else None,
+        "max_unitarity_drift": float(np.nanmax(drift)) if drift is not None and drift.size else None,
+    }
+    if not masses:
+        return ra
+    if "U" not in slices or "det" not in slices:
+        ra.warnings.append("missing slices/U or slices/det: no correlators or masses")
+        return ra
+    su, sd = np.asarray(slices["U"])[cut:], np.asarray(slices["det"])[cut:]
+    degenerate = len(set(config.mass)) == 1 and config.mass[0] > 0 and config.theta == 0.0
+    tree = {}
+    if degenerate and config.beta > 0:
+        tl = tree_level(config.nf, config.beta, config.mass[0], config.kappa, special=config.special)
+        tree = {"pion": tl["mass_pion"], "eta_prime": tl.get("mass_eta_prime"),
+                "eta_prime_det": tl.get("mass_eta_prime")}
+    try:
+        cd = meson_correlators(su, sd, config.shape, theta_m=config.theta_angles[0],
+                               special=config.special)
+    except ValueError as exc:
+        ra.warnings.append(f"masses: too few samples for correlators ({exc})")
+        return ra
+    ra.alpha = cd.alpha
+    for ch, est in cd.correlators.items():
+        try:
+            ms = _fit_channel(ch, est, tree.get(ch))
+        except ValueError as exc:  # pragma: no cover - defensive
+            ms = MassSummary(ch, CHANNELS.get(ch, ""), warning=f"{ch}: fit failed ({exc})")
+        ms.bin_size = cd.bin_size
+        ra.masses[ch] = ms
+        if ms.warning:
+            ra.warnings.append(ms.warning)
+    if "sigma" in ra.masses:
+        ra.masses["sigma"].window_reason += (" [sigma = Re Tr W is a two-pion state at tree level;"
+                                              " its cosh mass includes wrap-around terms]")
+    return ra
+
+
+def analyze_run(path, masses: bool = True) -> RunAnalysis:
+    """Open and analyse one run file (raises :class:`RunFileError` for a bad file)."""
+    from sigmasim.storage import open_run
+
+    d = open_run(path)
+    return analyze_data(d.series, d.slices, d.config, status=d.status, path=path, masses=masses)
+
+
+# ----------------------------------------------------------------------------
+# output
+# ----------------------------------------------------------------------------
+
+
+def fmt_err(v, e) -> str:
+    """``value(error)`` with two significant digits of the error."""
+    if v is None or not np.isfinite(v):
+        return "-"
+    if e is None or not np.isfinite(e):
+        return f"{v:.5g}"
+    if e == 0:
+        return f"{v:.6g}(0)"
+    digits = max(0, 1 - int(math.floor(math.log10(abs(e)))))
+    if digits > 12:
+        return f"{v:.3e}({e:.1e})"
+    ee = round(e * 10**digits)
+    return f"{v:.{digits}f}({ee})"
+
+
+def _f(x, spec=".3g"):
+    return "-" if x is None or not np.isfinite(x) else format(x, spec)
+
+
+def format_table(analyses) -> str:
+    """Aligned text: one block per run, warnings marked, the research-toy note at the bottom."""
+    lines = []
+    for ra in analyses:
+        bar = "=" * 96
+        lines += [bar, ra.label, f"file: {ra.path}  status: {ra.status}  measurements: "
+                  f"{ra.n_measurements}  used: {ra.n_used} (thermalisation cut {ra.cut}"
+                  f"{', from ' + ra.cut_series if ra.cut_series else ''})"]
+        if ra.cut_reason:
+            lines.append(f"  cut reason: {ra.cut_reason.split('. ')[0].rstrip('.')}.")
+        lines.append(bar)
+        if ra.series:
+            head = f"{'observable':<22}{'mean(err)':>22}{'tau_int':>16}{'N_indep':>10}  note"
+            lines += [head, "-" * len(head)]
+            names = [k for k in TABLE_SERIES if k in ra.series]
+            names += [k for k in ra.series if k.startswith("condensate")]
+            for k in names:
+                s = ra.series[k]
+                tau = fmt_err(s.tau_int, s.tau_int_error) if np.isfinite(s.tau_int) else "-"
+                lines.append(f"{k:<22}{fmt_err(s.mean, s.error):>22}{tau:>16}"
+                             f"{_f(s.n_independent, '.0f'):>10}  {s.note}")
+            acc = ra.acceptance
+            lines.append(f"{'acceptance':<22}metropolis {_f(acc.get('metropolis'))}, phase moves "
+                         f"{_f(acc.get('phase'))}, max unitarity drift {_f(acc.get('max_unitarity_drift'))}")
+        if ra.masses:
+            head = (f"{'channel':<15}{'mass(err)':>16}{'LO 1/beta':>11}{'window':>10}{'chi2/dof':>10}"
+                    f"{'p':>8}{'bins':>7}  operator")
+            lines += ["", head, "-" * len(head)]
+            for ch, m in ra.masses.items():
+                win = f"[{m.t_min},{m.t_max}]" if m.t_min is not None else "-"
+                flag = "" if m.acceptable or m.t_min is None else " !"
+                lines.append(f"{ch:<15}{fmt_err(m.mass, m.error):>16}{_f(m.tree_level_mass, '.4f'):>11}"
+                             f"{win:>10}{_f(m.chi2_dof, '.2f'):>10}{_f(m.p_value, '.2f'):>8}"
+                             f"{m.n_bins:>7}  {m.operator}{flag}")
+            if ra.alpha is not None and np.any(np.abs(ra.alpha) > 1e-3):
+                lines.append(f"  (operators in the vacuum-aligned frame, alpha_f = "
+                             f"{', '.join(f'{a:.3f}' for a in ra.alpha)})")
+        for w in ra.warnings:
+            lines.append(f"  !! WARNING: {w}")
+        lines.append("")
+    lines.append("Masses in lattice units (cosh fits of zero-momentum correlators, frame V = e^{i theta_m} U); "
+                 "LO 1/beta = tree level, theta = 0 only.")
+    lines.append(TOY_NOTE)
+    return "\n".join(lines)
+
+
+def _clean(x):
+    """JSON-safe: numpy to Python, NaN/inf to None."""
+    if isinstance(x, dict):
+        return {str(k): _clean(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_clean(v) for v in x]
+    if isinstance(x, np.ndarray):
+        return _clean(x.tolist())
+    if isinstance(x, (np.integer,)):
+        return int(x)
+    if isinstance(x, (float, np.floating)):
+        return float(x) if math.isfinite(x) else None
+    return x
+
+
+def analysis_dict(ra: RunAnalysis) -> dict:
+    """The JSON document (keys in the module docstring)."""
+    series = {k: {"mean": s.mean, "error": s.error, "tau_int": s.tau_int,
+                  "tau_int_error": s.tau_int_error, "n_independent": s.n_independent,
+                  "window": s.window, "n": s.n, "note": s.note} for k, s in ra.series.items()}
+    masses = {}
+    for ch, m in ra.masses.items():
+        masses[ch] = {"operator": m.operator, "mass": m.mass, "error": m.error, "t_min": m.t_min,
+                      "t_max": m.t_max, "chi2": m.chi2, "dof": m.dof, "chi2_dof": m.chi2_dof,
+                      "p_value": m.p_value, "amplitude": m.amplitude,
+                      "amplitude_error": m.amplitude_error, "acceptable": m.acceptable,
+                      "window_reason": m.window_reason, "tree_level_mass": m.tree_level_mass,
+                      "n_bins": m.n_bins, "bin_size": m.bin_size, "m_eff": m.m_eff,
+                      "m_eff_error": m.m_eff_error, "correlator": m.correlator,
+                      "correlator_error": m.correlator_error, "warning": m.warning}
+    return _clean({
+        "format": "sigmasim-analysis", "format_version": 1, "note": TOY_NOTE,
+        "run": str(ra.path) if ra.path else None, "name": ra.name, "status": ra.status,
+        "label": ra.label, "config": ra.config.to_dict(),
+        "n_measurements": ra.n_measurements, "n_used": ra.n_used,
+        "thermalisation": {"cut": ra.cut, "reason": ra.cut_reason, "thermalised": ra.thermalised,
+                           "series": ra.cut_series, "checked": ra.cut_checked},
+        "series": series, "acceptance": ra.acceptance, "masses": masses,
+        "vacuum_alignment_phases": ra.alpha, "warnings": ra.warnings,
+    })
+
+
+def _csv_rows(ra: RunAnalysis):
+    run = ra.name
+    yield dict(run=run, section="thermalisation", name="cut", value=ra.cut, note=ra.cut_reason)
+    for k, s in ra.series.items():
+        yield dict(run=run, section="series", name=k, value=s.mean, error=s.error, tau_int=s.tau_int,
+                   tau_int_error=s.tau_int_error, n_independent=s.n_independent, note=s.note)
+    for k, v in ra.acceptance.items():
+        yield dict(run=run, section="acceptance", name=k, value=v)
+    for ch, m in ra.masses.items():
+        yield dict(run=run, section="mass", name=ch, value=m.mass, error=m.error, t_min=m.t_min,
+                   t_max=m.t_max, chi2_dof=m.chi2_dof, p_value=m.p_value,
+                   note=m.warning or m.window_reason)
+
+
+def output_paths(run_path) -> tuple[Path, Path]:
+    """``(<dir>/<name>.analysis.json, <dir>/<name>.analysis.csv)`` for ``<dir>/<name>.h5``."""
+    p = Path(run_path)
+    stem = p.with_suffix("") if p.suffix == ".h5" else p
+    return stem.with_name(stem.name + ".analysis.json"), stem.with_name(stem.name + ".analysis.csv")
+
+
+def write_outputs(ra: RunAnalysis, json_path=None, csv_path=None) -> tuple[Path, Path]:
+    """Write the JSON and CSV files (default: :func:`output_paths` of the run)."""
+    if json_path is None or csv_path is None:
+        if ra.path is None:
+            raise SigmasimError("in-memory analysis: give json_path and csv_path")
+        dj, dc = output_paths(ra.path)
+        json_path, csv_path = json_path or dj, csv_path or dc
+    json_path, csv_path = Path(json_path), Path(csv_path)
+    try:
+        json_path.write_text(json.dumps(analysis_dict(ra), indent=1, allow_nan=False) + "\n")
+        with open(csv_path, "w", newline="") as fh:
+            w = csv.DictWriter(fh, fieldnames=CSV_COLUMNS)
+            w.writeheader()
+            for row in _csv_rows(ra):
+                w.writerow({k: ("" if v is None or (isinstance(v, float) and not math.isfinite(v))
+                                else (f"{v:.10g}" if isinstance(v, float) else v))
+                            for k, v in row.items()})
+    except OSError as exc:
+        raise RunFileError(f"cannot write the analysis next to {ra.path}: {exc.strerror or exc}") from None
+    return json_path, csv_path
+
+
+def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = None,
+                    quiet: bool = False) -> int:
+    """``sigmasim analyze PATH... [--plot] [--out-dir DIR] [--quiet]``.
+
+    Opens every run first (a bad file raises :class:`RunFileError` with a
+    one-line message before any work), analyses each, prints the table
+    (unless ``quiet``), writes ``<run>.analysis.json`` / ``.csv`` next to each
+    run and, with ``plot``, the figures (PNG and PDF) into ``out_dir`` or next
+    to the run.  Returns 0.
+    """
+    from sigmasim.storage import open_run
+
+    if not paths:
+        raise SigmasimError("analyze: give at least one run file")
+    resolved = []
+    for p in paths:
+        p = Path(p)
+        if p.is_dir():  # a run folder <output>/<name>/ holds <name>.h5
+            cand = p / f"{p.name}.h5"
+            if not cand.exists():
+                raise RunFileError(f"{p} is a folder without {cand.name}")
+            p = cand
+        resolved.append(p)
+    data = [(p, open_run(p)) for p in resolved]
+    analyses, written = [], []
+    for p, d in data:
+        ra = analyze_data(d.series, d.slices, d.config, status=d.status, path=p)
+        analyses.append(ra)
+        written += list(write_outputs(ra))
+        if plot:
+            from .plots import plot_all
+
+            target = Path(out_dir) if out_dir else p.parent
+            try:
+                target.mkdir(parents=True, exist_ok=True)
+            except OSError as exc:
+                raise RunFileError(f"cannot create the figure folder {target}: {exc.strerror}") from None
+            written += plot_all(ra, target)
+    if not quiet:
+        print(format_table(analyses))
+        print("written: " + ", ".join(str(w) for w in written))
+        sys.stdout.flush()
+    return 0

@@ -1,0 +1,272 @@
+"""`sigmasim analyze` back end: table, JSON, CSV, figures, and bad input.
+
+Small real runs are written with the production writer (RunWriter +
+run_chain), so the reader path is the one the command line uses.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import shutil
+
+import h5py
+import numpy as np
+import pytest
+
+from sigmasim.analysis.channels import (
+    channel_correlator,
+    channel_operators,
+    frame_field,
+    gell_mann,
+)
+from sigmasim.analysis.correlators import correlator_jackknife
+from sigmasim.analysis.report import (
+    CSV_COLUMNS,
+    TOY_NOTE,
+    analyze_command,
+    analyze_data,
+    analyze_run,
+    output_paths,
+)
+from sigmasim.chain import Simulation, run_chain
+from sigmasim.config import config_from_dict
+from sigmasim.errors import RunFileError, SigmasimError
+from sigmasim.storage import RunWriter
+
+
+@pytest.fixture(scope="module", autouse=True)
+def one_thread():
+    """One numba thread: robust timing on a shared machine (results do not depend on it)."""
+    import numba
+
+    old = numba.get_num_threads()
+    numba.set_num_threads(1)
+    yield
+    numba.set_num_threads(old)
+
+
+def write_run(folder, name="small", n_meas=400, nf=2, group="U", theta=0.0, kappa=0.2,
+              shape=(16, 4, 4), beta=6.0, h=0.5):
+    cfg = config_from_dict({
+        "name": name, "seed": 7, "lattice": {"shape": list(shape)},
+        "model": {"group": group, "nf": nf, "beta": beta, "mass": h, "kappa": kappa,
+                  "theta": theta},
+        "run": {"thermalize": 50, "measurements": n_meas, "start": "cold", "output": str(folder)},
+    })
+    cfg.run_dir.mkdir(parents=True, exist_ok=True)
+    run_chain(Simulation(cfg), (RunWriter(cfg, cfg.run_file),))
+    return cfg.run_file
+
+
+@pytest.fixture(scope="module")
+def run_file(tmp_path_factory):
+    return write_run(tmp_path_factory.mktemp("runs"))
+
+
+def _one_line_error(exc_info):
+    msg = str(exc_info.value)
+    assert msg and "\n" not in msg
+    return msg
+
+
+def test_analyze_table_json_csv_plots(run_file, tmp_path, capsys):
+    figs = tmp_path / "figs"
+    assert analyze_command([str(run_file)], plot=True, out_dir=str(figs)) == 0
+    out = capsys.readouterr().out
+    # the table: parameters, series, masses, the toy note last
+    assert "U(2) beta=6 h=0.5 kappa=0.2 theta=0 lattice 16x4x4" in out
+    for word in ("action", "omega_h.re", "abs_omega", "condensate[1].re", "tau_int", "pion",
+                 "eta_prime", "sigma", "chi2/dof", "thermalisation cut"):
+        assert word in out
+    assert out.rstrip().splitlines()[-2] == TOY_NOTE
+    # JSON next to the run with the documented keys
+    jpath, cpath = output_paths(run_file)
+    assert jpath.name == "small.analysis.json" and jpath.parent == run_file.parent
+    doc = json.loads(jpath.read_text())
+    for key in ("format", "format_version", "note", "run", "name", "status", "label", "config",
+                "n_measurements", "n_used", "thermalisation", "series", "acceptance", "masses",
+                "vacuum_alignment_phases", "warnings"):
+        assert key in doc, key
+    assert doc["format"] == "sigmasim-analysis" and doc["n_measurements"] == 400
+    assert set(doc["thermalisation"]) >= {"cut", "reason", "thermalised", "series"}
+    s = doc["series"]["action"]
+    assert set(s) >= {"mean", "error", "tau_int", "tau_int_error", "n_independent", "window"}
+    assert s["error"] > 0 and s["tau_int"] > 0
+    for name in ("omega.re", "omega.im", "omega_h.re", "omega_h.im", "abs_omega", "det.re",
+                 "condensate[0].re", "condensate[1].im", "accept_phase", "unitarity_drift"):
+        assert name in doc["series"], name
+    pion = doc["masses"]["pion"]
+    for key in ("mass", "error", "t_min", "t_max", "chi2_dof", "p_value", "m_eff", "correlator",
+                "tree_level_mass", "window_reason"):
+        assert key in pion, key
+    assert pion["mass"] > 0 and pion["t_min"] >= 1 and pion["t_max"] <= 8
+    assert pion["tree_level_mass"] == pytest.approx(2 * np.arcsinh(np.sqrt(0.5 / 6) / 2))
+    assert doc["acceptance"]["metropolis"] is None  # heatbath/overrelax only
+    # CSV with the documented columns
+    with open(cpath) as fh:
+        rows = list(csv.DictReader(fh))
+    assert tuple(rows[0].keys()) == CSV_COLUMNS
+    sections = {r["section"] for r in rows}
+    assert sections == {"thermalisation", "series", "acceptance", "mass"}
+    assert any(r["section"] == "mass" and r["name"] == "pion" and float(r["value"]) > 0 for r in rows)
+    # figures: PNG and PDF of each
+    for fig in ("phase_history", "omega_plane", "autocorrelation", "effective_mass"):
+        for ext in ("png", "pdf"):
+            p = figs / f"small.{fig}.{ext}"
+            assert p.exists() and p.stat().st_size > 1000, p
+
+
+def test_several_runs_and_folder_argument(run_file, tmp_path, capsys):
+    other = write_run(tmp_path, name="other", n_meas=200, theta=1.0)
+    assert analyze_command([str(run_file.parent), str(other)], quiet=False) == 0
+    out = capsys.readouterr().out
+    assert "small: U(2)" in out and "other: U(2)" in out and "theta=1" in out
+    assert out.count(TOY_NOTE) == 1
+    assert output_paths(other)[0].exists()
+
+
+def test_foreign_hdf5(tmp_path):
+    p = tmp_path / "foreign.h5"
+    with h5py.File(p, "w") as f:
+        f["x"] = np.arange(3)
+    with pytest.raises(RunFileError) as e:
+        analyze_command([str(p)])
+    assert "not a sigmasim run file" in _one_line_error(e)
+
+
+def test_truncated_file(run_file, tmp_path):
+    p = tmp_path / "truncated.h5"
+    p.write_bytes(run_file.read_bytes()[:1000])
+    with pytest.raises(RunFileError) as e:
+        analyze_command([str(p)])
+    assert "truncated" in _one_line_error(e) or "cannot read" in str(e.value)
+
+
+def test_text_file_and_missing(tmp_path):
+    p = tmp_path / "notes.txt"
+    p.write_text("not a run\n")
+    with pytest.raises(RunFileError) as e:
+        analyze_command([str(p)])
+    _one_line_error(e)
+    with pytest.raises(RunFileError) as e:
+        analyze_command([str(tmp_path / "nothing.h5")])
+    assert "does not exist" in _one_line_error(e)
+    with pytest.raises(SigmasimError):
+        analyze_command([])
+
+
+def test_bad_file_fails_before_any_output(run_file, tmp_path):
+    good = tmp_path / "good.h5"
+    shutil.copy(run_file, good)
+    bad = tmp_path / "bad.txt"
+    bad.write_text("x")
+    with pytest.raises(RunFileError):
+        analyze_command([str(good), str(bad)], quiet=True)
+    assert not output_paths(good)[0].exists()
+
+
+def test_too_few_samples_is_a_warning(tmp_path, capsys):
+    p = write_run(tmp_path, name="tiny", n_meas=12)
+    assert analyze_command([str(p)], plot=True) == 0
+    out = capsys.readouterr().out
+    assert "!! WARNING" in out
+    assert "too few" in out
+    doc = json.loads(output_paths(p)[0].read_text())
+    assert doc["warnings"]
+    assert doc["masses"]["pion"]["mass"] is None
+
+
+def test_running_file_warns(run_file, tmp_path, capsys):
+    p = tmp_path / "live.h5"
+    shutil.copy(run_file, p)
+    with h5py.File(p, "a") as f:
+        f.attrs["status"] = "running"
+    assert analyze_command([str(p)]) == 0
+    out = capsys.readouterr().out
+    assert "!! WARNING: run status is 'running'" in out
+
+
+def test_missing_observable(run_file, tmp_path):
+    # in a file, a missing dataset is damage: the reader refuses it with one line
+    p = tmp_path / "holey.h5"
+    shutil.copy(run_file, p)
+    with h5py.File(p, "a") as f:
+        del f["series"]["det"]
+    with pytest.raises(RunFileError) as e:
+        analyze_command([str(p)])
+    assert "series/det" in _one_line_error(e)
+    # in memory (e.g. an older or partial record set) it is a warning
+    from sigmasim.storage import open_run
+
+    d = open_run(run_file)
+    series = {k: v for k, v in d.series.items() if k != "det"}
+    ra = analyze_data(series, {"U": d.slices["U"]}, d.config)
+    assert any("missing series: det" in w for w in ra.warnings)
+    assert any("missing slices" in w for w in ra.warnings)
+    assert "action" in ra.series and not ra.masses
+
+
+@pytest.mark.parametrize("nf,group", [(1, "U"), (2, "SU"), (3, "U")])
+def test_other_groups_analyse(tmp_path, nf, group):
+    p = write_run(tmp_path, name=f"g{nf}{group}", n_meas=150, nf=nf, group=group,
+                  kappa=0.0 if group == "SU" else 0.2, shape=(8, 4))
+    ra = analyze_run(p)
+    if nf == 1:
+        assert "pion" not in ra.masses
+    else:
+        assert "pion" in ra.masses
+    assert ("eta_prime" in ra.masses) == (group == "U")
+
+
+# -- channel building blocks ------------------------------------------------
+
+
+@pytest.mark.parametrize("nf", [2, 3, 4])
+def test_gell_mann_basis(nf):
+    g = gell_mann(nf)
+    assert g.shape == (nf * nf - 1, nf, nf)
+    np.testing.assert_allclose(g, np.conj(np.swapaxes(g, 1, 2)), atol=1e-15)  # hermitian
+    np.testing.assert_allclose(np.trace(g, axis1=1, axis2=2), 0, atol=1e-15)  # traceless
+    gram = np.einsum("aij,bji->ab", g, g)
+    np.testing.assert_allclose(gram, 0.5 * np.eye(nf * nf - 1), atol=1e-14)
+
+
+def test_pion_operator_is_phi_over_two():
+    # U = exp(i eps T_a) (a single site per slice): Im Tr(T_b U) = eps/2 delta_ab + O(eps^3)
+    g = gell_mann(3)
+    eps = 1e-4
+    w, v = np.linalg.eigh(g[4])
+    u = (v * np.exp(1j * eps * w)) @ v.conj().T
+    slices = np.broadcast_to(u, (5, 4, 3, 3)).copy()
+    ops = channel_operators(slices, np.linalg.det(slices), align=False)
+    expect = np.zeros(8)
+    expect[4] = eps / 2
+    np.testing.assert_allclose(ops["pion"][0, :, 0], expect, atol=1e-11)
+
+
+def test_frame_and_alignment():
+    rng = np.random.default_rng(3)
+    u = np.exp(0.3j) * (np.eye(2) + 0.05 * rng.normal(size=(50, 6, 2, 2)))
+    d = np.linalg.det(u)
+    w, dw, alpha = frame_field(u, d, theta_m=0.2, align=True)
+    np.testing.assert_allclose(alpha, 0.5, atol=0.02)
+    # aligned frame: mean diagonal is real; the det transforms with exp(i(nf theta_m - sum alpha))
+    assert np.all(np.abs(np.angle(np.diagonal(w.mean(axis=(0, 1))))) < 1e-12)
+    np.testing.assert_allclose(dw, np.exp(1j * (2 * 0.2 - alpha.sum())) * d)
+    w0, _, a0 = frame_field(np.exp(0.2j) * u, d, theta_m=0.0, align=True)
+    np.testing.assert_allclose(w0, w, atol=1e-13)
+
+
+def test_channel_correlator_matches_library():
+    rng = np.random.default_rng(5)
+    x = rng.normal(size=(200, 8)) + 3.0
+    a = channel_correlator(x, bin_size=4, spatial_volume=9, symmetrise_result=False)
+    b = correlator_jackknife(x, bin_size=4, spatial_volume=9)
+    np.testing.assert_allclose(a.mean, b.mean, rtol=1e-12, atol=1e-14)
+    np.testing.assert_allclose(a.error, b.error, rtol=1e-10)
+    # average over components = mean of the per-component correlators
+    y = rng.normal(size=(200, 3, 8))
+    c = channel_correlator(y, bin_size=4, symmetrise_result=False)
+    per = [correlator_jackknife(y[:, k], bin_size=4).mean for k in range(3)]
+    np.testing.assert_allclose(c.mean, np.mean(per, axis=0), rtol=1e-12, atol=1e-14)
