@@ -1,4 +1,5 @@
-"""Command line: ``sigmasim run | demo | info | analyze | vacua | validate | config-reference``.
+"""Command line: ``sigmasim run | demo | info | analyze | sweep | temper | lifetimes | vacua | validate |
+config-reference``.
 
 This is the error boundary: every :class:`SigmasimError` becomes one line on
 stderr and exit status 2; an interrupted run exits with 130 after writing its
@@ -134,6 +135,23 @@ def _summary_table(paths) -> str:
     return "\n".join(lines)
 
 
+PROTOCOL_TABLES = {"sweep": "sweep", "tempering": "temper", "lifetimes": "lifetimes"}
+
+
+def _refuse_protocol_tables(path) -> None:
+    import tomllib
+
+    from sigmasim.errors import ConfigError
+
+    try:
+        raw = tomllib.loads(Path(path).read_text())
+    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError):
+        return  # load_config reports it
+    for table, command in PROTOCOL_TABLES.items():
+        if table in raw:
+            raise ConfigError(f"{path} has a [{table}] table: run it with 'sigmasim {command} {path}'")
+
+
 def cmd_run(args) -> int:
     from sigmasim.chain import Interrupted
     from sigmasim.config import load_config
@@ -145,6 +163,7 @@ def cmd_run(args) -> int:
         overrides["threads"] = args.threads
     if args.smoke:
         overrides.update(thermalize=10, measurements=20, name=Path(args.config).stem + "-smoke")
+    _refuse_protocol_tables(args.config)
     config = load_config(args.config, overrides)
     _set_threads(config.threads)
     try:
@@ -205,6 +224,24 @@ def cmd_analyze(args) -> int:
     from sigmasim.analysis.report import analyze_command
 
     return analyze_command(args.files, plot=args.plot, out_dir=args.out, quiet=args.quiet)
+
+
+def cmd_sweep(args) -> int:
+    from sigmasim.protocols import sweep_command
+
+    return sweep_command(args.config, plot=args.plot, out=args.out)
+
+
+def cmd_temper(args) -> int:
+    from sigmasim.protocols import temper_command
+
+    return temper_command(args.config, out=args.out)
+
+
+def cmd_lifetimes(args) -> int:
+    from sigmasim.protocols import lifetimes_command
+
+    return lifetimes_command(args.config, out=args.out, workers=args.workers)
 
 
 def cmd_vacua(args) -> int:
@@ -302,6 +339,20 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("--out", default=None, help="folder for figures (default: next to each run)")
     a.add_argument("--quiet", action="store_true")
     a.set_defaults(func=cmd_analyze)
+    sw = sub.add_parser("sweep", help="hysteresis: move theta up and down without re-thermalising")
+    sw.add_argument("config", help="run TOML with a [sweep] table")
+    sw.add_argument("--plot", action="store_true", help="draw the loop(s) with the tree-level branches")
+    sw.add_argument("--out", default=None, help="sweep file (default <output>/<name>/<name>-sweep.h5)")
+    sw.set_defaults(func=cmd_sweep)
+    te = sub.add_parser("temper", help="replica exchange over a ladder of theta values")
+    te.add_argument("config", help="run TOML with a [tempering] table")
+    te.add_argument("--out", default=None, help="output folder (default: run.output)")
+    te.set_defaults(func=cmd_temper)
+    lt = sub.add_parser("lifetimes", help="escape times from a metastable branch against the volume")
+    lt.add_argument("config", help="run TOML with a [lifetimes] table and run.start = 'branch'")
+    lt.add_argument("--out", default=None, help="JSON file for the table and fits")
+    lt.add_argument("--workers", type=int, default=0, help="parallel starts (0: all cores)")
+    lt.set_defaults(func=cmd_lifetimes)
     v = sub.add_parser("vacua", help="tree-level vacuum branches of a config's potential")
     v.add_argument("config", nargs="?", default=None, help="TOML config (its [model] is used)")
     v.add_argument("--nf", type=int)

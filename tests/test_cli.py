@@ -151,10 +151,28 @@ def test_sigterm_stops_cleanly_and_resume_matches(tmp_path):
             np.testing.assert_array_equal(a[part][k], b[part][k], err_msg=k)
 
 
-@pytest.mark.parametrize("example", sorted((ROOT / "runs").glob("*.toml")), ids=lambda p: p.name)
+EXAMPLES = sorted((ROOT / "runs").glob("*.toml"))
+PLAIN = [p for p in EXAMPLES if not any(f"[{t}]" in p.read_text() for t in ("sweep", "tempering", "lifetimes"))]
+PROTOCOL = [p for p in EXAMPLES if p not in PLAIN]
+
+
+@pytest.mark.parametrize("example", PLAIN, ids=lambda p: p.name)
 def test_example_configs_run(tmp_path, example, capsys):
     assert main(["run", str(example), "--smoke", "--output", str(tmp_path), "--quiet"]) == 0
     assert "run file" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize("example", PROTOCOL, ids=lambda p: p.name)
+def test_protocol_configs_are_sent_to_their_command(tmp_path, example, capsys):
+    assert main(["run", str(example), "--output", str(tmp_path), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "run it with 'sigmasim" in err
+
+
+def test_example_sweep_runs(tmp_path, capsys):
+    out = tmp_path / "s.h5"
+    assert main(["sweep", str(ROOT / "runs" / "sweep-u3.toml"), "--out", str(out)]) == 0
+    assert out.exists()
 
 
 def test_demo_runs(tmp_path, capsys):

@@ -1,0 +1,232 @@
+"""Hysteresis sweeps in theta (small lattices, fixed seeds) and protocol config validation."""
+
+import math
+
+import numba
+import numpy as np
+import pytest
+
+from sigmasim.config import config_from_dict
+from sigmasim.errors import ConfigError, RunFileError
+from sigmasim.protocols import (SweepParams, load_protocol, read_sweep, run_sweep, split_protocol,
+                                SWEEP_SCHEMA, sweep_command, tree_level, write_sweep)
+
+
+@pytest.fixture(autouse=True, scope="module")
+def one_thread():
+    # small lattices: threading overhead dominates, and results do not depend on the thread count
+    old = numba.get_num_threads()
+    numba.set_num_threads(1)
+    yield
+    numba.set_num_threads(old)
+
+
+def u3_config(nf=3, seed=1):
+    return config_from_dict({
+        "seed": seed,
+        "lattice": {"shape": [4, 4, 4]},
+        "model": {"nf": nf, "beta": 1.0, "mass": 0.5, "kappa": 2.0},
+        "updates": {"schedule": [{"update": "heatbath", "repeat": 1}, {"update": "overrelax", "repeat": 2}]},
+        "run": {"thermalize": 100, "start": "cold"},
+    })
+
+
+def sweep(nf, sweeps_per_step, cycles=4, seed=1):
+    p = SweepParams(start=0.0, stop=2 * math.pi, step=0.2, sweeps_per_step=sweeps_per_step, cycles=cycles)
+    return run_sweep(u3_config(nf, seed), p)
+
+
+@pytest.fixture(scope="module")
+def u3_sweeps():
+    return {rate: sweep(3, rate) for rate in (6, 60)}
+
+
+def test_u3_jumps_beyond_pi_before_spinodal_and_mirrored(u3_sweeps):
+    tree = tree_level(u3_config(), 0.0, 2 * math.pi, n=121)
+    ends = [t for (t, b), kind in zip(tree["spinodals"], tree["spinodal_kinds"]) if kind == "end"]
+    spin = min(t for t in ends if t > math.pi)        # branch 0 stops being a minimum (about 4.75)
+    for rate, res in u3_sweeps.items():
+        s = res.summary
+        res_err = s["jump_resolution"]
+        assert all(math.isfinite(j) for j in s["jump_up_per_cycle"] + s["jump_down_per_cycle"])
+        assert s["jump_up"] > math.pi
+        assert s["jump_up"] <= spin + res_err                   # near or before the tree-level spinodal
+        assert s["jump_down"] < math.pi
+        assert s["jump_down"] >= 2 * math.pi - spin - res_err   # mirror spinodal
+        # mirror about pi: (up + down) / 2 = pi within errors and the grid resolution
+        err = math.hypot(s["jump_up_error"], s["jump_down_error"])
+        assert abs(0.5 * (s["jump_up"] + s["jump_down"]) - math.pi) < 2 * err + res_err
+        # the branch reached past the jump is k = 2 (= -1): Im omega_h changes sign
+        st = res.steps
+        up = (st["cycle"] == 0) & (st["direction"] == 1)
+        assert st["branch"][up][0] == 0 and st["branch"][up][-1] == 2
+        assert st["im_omega_h"][up][0] == pytest.approx(0.0, abs=0.05)
+
+
+def test_u3_loop_area_shrinks_when_slowed(u3_sweeps):
+    fast, slow = u3_sweeps[6].summary, u3_sweeps[60].summary
+    assert fast["area"] > 0 and slow["area"] > 0
+    diff_err = math.hypot(fast["area_error"], slow["area_error"])
+    assert fast["area"] - slow["area"] > 3 * diff_err
+    # significant hysteresis at both rates
+    assert slow["area"] > 4 * slow["area_error"]
+
+
+def test_u1_has_no_loop():
+    s = sweep(1, 6).summary
+    assert math.isnan(s["jump_up"]) and math.isnan(s["jump_down"])
+    assert abs(s["area"]) < 4 * max(s["area_error"], s["area_error_stat"])
+
+
+def test_sweep_file_and_plot(tmp_path, u3_sweeps):
+    res = u3_sweeps[6]
+    res.tree = tree_level(res.config, 0.0, 2 * math.pi, n=61)
+    path = write_sweep(tmp_path / "s.h5", res)
+    back = read_sweep(path)
+    assert back["summary"]["area"] == pytest.approx(res.summary["area"])
+    assert np.array_equal(back["steps"]["branch"], res.steps["branch"])
+    assert back["series"]["omega_h"].dtype == np.complex128
+    assert back["tree"]["im_omega_h"].shape[1] == 61
+    from sigmasim.protocols import plot_sweep
+    png = plot_sweep(res, tmp_path / "s.png")
+    assert png.stat().st_size > 10000
+    with pytest.raises(RunFileError):
+        read_sweep(tmp_path / "missing.h5")
+
+
+def test_protocol_config_errors(tmp_path):
+    with pytest.raises(ConfigError, match="unknown key 'sweep.sweeps_per_stp'.*did you mean 'sweeps_per_step'"):
+        split_protocol({"sweep": {"sweeps_per_stp": 1}}, "sweep", SWEEP_SCHEMA)
+    with pytest.raises(ConfigError, match="sweep.cycles must be an integer"):
+        split_protocol({"sweep": {"cycles": 1.5}}, "sweep", SWEEP_SCHEMA)
+    with pytest.raises(ConfigError, match="no \\[sweep\\] table"):
+        split_protocol({"model": {}}, "sweep", SWEEP_SCHEMA)
+    with pytest.raises(ConfigError, match="sweep.stop must be > sweep.start"):
+        SweepParams(start=1.0, stop=0.5)
+    with pytest.raises(ConfigError, match="sweep.band"):
+        SweepParams(band=1.5)
+    cfg = tmp_path / "c.toml"
+    cfg.write_text('name = "t"\n[model]\nnf = 3\n[sweep]\nstep = 0.5\ncycles = 2\n[run]\noutput = "%s"\n'
+                   % tmp_path)
+    config, params = load_protocol(cfg, "sweep", SWEEP_SCHEMA)
+    assert config.nf == 3 and params["step"] == 0.5 and params["cycles"] == 2
+    bad = tmp_path / "b.toml"
+    bad.write_text('[model]\nnf = 3\nbogus = 1\n[sweep]\n')
+    with pytest.raises(ConfigError, match="unknown key 'model.bogus'"):
+        load_protocol(bad, "sweep", SWEEP_SCHEMA)
+    with pytest.raises(ConfigError, match="does not exist"):
+        sweep_command(str(tmp_path / "nope.toml"), False, None)
+
+
+def test_sweep_command_end_to_end(tmp_path, capsys):
+    cfg = tmp_path / "c.toml"
+    cfg.write_text(f'name = "t"\n[lattice]\nshape = [2, 2]\n[model]\nnf = 2\nmass = 0.3\nkappa = 1.0\n'
+                   f'[run]\nthermalize = 5\noutput = "{tmp_path}"\n'
+                   f'[sweep]\nstart = 0.0\nstop = 1.0\nstep = 0.5\nsweeps_per_step = 10\n')
+    assert sweep_command(str(cfg), False, None) == 0
+    assert (tmp_path / "t" / "t-sweep.h5").exists()
+    assert "loop area" in capsys.readouterr().out
+
+
+# ---------------------------------------------------------------- tempering
+from sigmasim.analysis.gamma import gamma_analysis  # noqa: E402
+from sigmasim.analysis.tunnelling import tunnelling_analysis  # noqa: E402
+from sigmasim.exact import one_site_u  # noqa: E402
+from sigmasim.protocols import TemperParams, run_tempering, temper_command  # noqa: E402
+from sigmasim.storage import open_run  # noqa: E402
+
+
+def beta0_config(tmp_path, meas=3000):
+    return config_from_dict({
+        "name": "tp", "seed": 4, "lattice": {"shape": [4]},
+        "model": {"nf": 2, "beta": 0.0, "mass": 1.0, "kappa": 0.5},
+        "run": {"thermalize": 50, "measurements": meas, "output": str(tmp_path), "checkpoint_every": 1000},
+    })
+
+
+def test_tempering_slots_sample_their_theta_exactly(tmp_path):
+    # beta = 0: each slot must reproduce the exact one-site <omega_h>(theta); a wrong swap rule biases it
+    cfg = beta0_config(tmp_path)
+    thetas = (0.0, 1.0, 2.0, 3.0)
+    res = run_tempering(cfg, TemperParams(thetas=thetas), write=True)
+    assert np.all(res.swap_tried > 0) and np.all((res.acceptance > 0.05) & (res.acceptance < 1.0))
+    assert len(res.round_trips) > 10
+    for i, t in enumerate(thetas):
+        ex = one_site_u(2, 1.0, 0.5, t / 2, 0.0)
+        om = res.series[i]["omega_h"]
+        for part, want in ((om.real, ex["re_tr_thetam_u"]), (om.imag, ex["im_tr_thetam_u"])):
+            g = gamma_analysis(part)
+            assert abs(g.value - want) < 4 * g.error
+        # each slot is an ordinary run file at its theta, usable by the tunnelling analysis
+        run = open_run(res.files[i])
+        assert run.config.theta == t and run.config.name == f"tp-t{i}" and run.status == "complete"
+        assert np.allclose(run.series["omega_h"], om)
+        tunnelling_analysis(run.series["omega_h"], t, 2, sweeps=run.series["sweep"])
+    # reproducible from the seed
+    again = run_tempering(cfg, TemperParams(thetas=thetas), write=False)
+    assert np.array_equal(again.replica_at, res.replica_at)
+    assert np.array_equal(again.series[2]["omega_h"], res.series[2]["omega_h"])
+    # refuses to overwrite
+    with pytest.raises(RunFileError, match="exists"):
+        run_tempering(cfg, TemperParams(thetas=thetas), write=True)
+
+
+def test_tempering_config_errors(tmp_path):
+    cfg = tmp_path / "t.toml"
+    cfg.write_text('[model]\nnf = 2\n[tempering]\nthetas = [1.0, 0.5]\n')
+    with pytest.raises(ConfigError, match="tempering.thetas must be strictly increasing"):
+        temper_command(str(cfg))
+    cfg.write_text('[model]\nnf = 2\n[tempering]\nthetas = [0.0, 0.5]\nswap_evry = 2\n')
+    with pytest.raises(ConfigError, match="unknown key 'tempering.swap_evry'.*swap_every"):
+        temper_command(str(cfg))
+    cfg.write_text('[model]\nnf = 2\n[tempering]\nswap_every = 2\n')
+    with pytest.raises(ConfigError, match="needs thetas"):
+        temper_command(str(cfg))
+
+
+# ---------------------------------------------------------------- lifetimes
+from sigmasim.protocols import (_lifetime_params, fit_log_lifetimes, lifetime_estimate,  # noqa: E402
+                                lifetimes_command, run_lifetimes)
+
+
+def test_lifetime_fits_recover_exact_lines():
+    sizes = np.array([4, 6, 8, 10])
+    tau = np.exp(0.5 + 0.03 * sizes ** 2)
+    fits = fit_log_lifetimes(sizes, tau, 0.05 * tau, d=3)
+    assert fits["surface"]["slope"] == pytest.approx(0.03) and fits["surface"]["intercept"] == pytest.approx(0.5)
+    assert fits["surface"]["chi2"] == pytest.approx(0.0, abs=1e-12) and fits["surface"]["dof"] == 2
+    assert fits["volume"]["chi2"] > 1.0           # the wrong power does not fit
+    # censored exponential MLE: exposure / escapes
+    tau_hat, err, n = lifetime_estimate([10.0, 30.0, 100.0], [True, True, False])
+    assert (tau_hat, n) == (70.0, 2) and err == pytest.approx(70.0 / math.sqrt(2))
+    assert math.isnan(lifetime_estimate([5.0], [False])[0])
+
+
+def test_lifetime_params_validation():
+    with pytest.raises(ConfigError, match="even"):
+        _lifetime_params({"sizes": [3, 4]})
+    with pytest.raises(ConfigError, match="unknown key 'lifetimes.start'.*starts"):
+        _lifetime_params({"sizes": [2, 4], "start": 3})
+    with pytest.raises(ConfigError, match="needs sizes"):
+        _lifetime_params({})
+
+
+def test_lifetimes_end_to_end_parallel(tmp_path):
+    # metastable branch 0 past theta = pi decays; two worker processes, reproducible from the seed
+    cfg = config_from_dict({
+        "seed": 2, "lattice": {"shape": [4, 4, 4]},
+        "model": {"nf": 3, "beta": 1.0, "mass": 0.5, "kappa": 2.0, "theta": 4.0},
+        "updates": {"schedule": [{"update": "heatbath", "repeat": 1}, {"update": "overrelax", "repeat": 2}]},
+        "run": {"thermalize": 0, "start": "branch", "start_branch": 0},
+    })
+    params = _lifetime_params({"sizes": [2, 4], "starts": 4, "max_sweeps": 2000, "stay": 10, "workers": 2})
+    a = run_lifetimes(cfg, params)
+    assert np.all(a.n_escaped == 4) and np.all(a.tau > 0)
+    b = run_lifetimes(cfg, {**params, "workers": 1})
+    assert all(np.array_equal(a.times[L], b.times[L]) for L in (2, 4))
+    with pytest.raises(ConfigError, match="start = 'branch'"):
+        run_lifetimes(u3_config(), params)
+    toml = tmp_path / "l.toml"
+    toml.write_text('[model]\nnf = 3\n[run]\nstart = "cold"\n[lifetimes]\nsizes = [2]\n')
+    with pytest.raises(ConfigError, match="start = 'branch'"):
+        lifetimes_command(str(toml))
