@@ -244,6 +244,26 @@ def cmd_lifetimes(args) -> int:
     return lifetimes_command(args.config, out=args.out, workers=args.workers)
 
 
+def cmd_export(args) -> int:
+    from sigmasim.export import export_command
+
+    return export_command(args.run, args.format, args.out, reference=args.reference)
+
+
+def cmd_synth(args) -> int:
+    from sigmasim.synth import synth_command
+
+    params = {k: getattr(args, k) for k in ("replicas", "length", "rho", "amplitude", "shape", "m2",
+                                              "configs", "method", "p01", "p10", "noise")}
+    return synth_command(args.kind, args.out, args.seed, **{k: v for k, v in params.items() if v is not None})
+
+
+def cmd_score(args) -> int:
+    from sigmasim.score import score_command
+
+    return score_command(args.truth, args.estimates)
+
+
 def cmd_vacua(args) -> int:
     import numpy as np
 
@@ -353,6 +373,33 @@ def build_parser() -> argparse.ArgumentParser:
     lt.add_argument("--out", default=None, help="JSON file for the table and fits")
     lt.add_argument("--workers", type=int, default=0, help="parallel starts (0: all cores)")
     lt.set_defaults(func=cmd_lifetimes)
+    ex = sub.add_parser("export", help="a run's arrays as npz/csv/hdf5 plus a JSON sidecar with known answers")
+    ex.add_argument("run", help="run file (.h5)")
+    ex.add_argument("--format", choices=["npz", "csv", "hdf5"], default="npz")
+    ex.add_argument("--out", default=None, help="output prefix (default: RUN without .h5 + '_export')")
+    ex.add_argument("--reference", action="store_true",
+                    help="add the run's own Gamma-method means as 'high-statistics estimate' truths")
+    ex.set_defaults(func=cmd_export)
+    sy = sub.add_parser("synth", help="synthetic data with exactly known answers (npz + JSON sidecar)")
+    sy.add_argument("kind", choices=["ar1", "free-field", "telegraph"])
+    sy.add_argument("--out", required=True, help="output prefix")
+    sy.add_argument("--seed", type=int, required=True)
+    sy.add_argument("--replicas", type=int, help="ar1, telegraph: independent series")
+    sy.add_argument("--length", type=int, help="ar1, telegraph: samples per series")
+    sy.add_argument("--rho", help="ar1: coefficient(s), comma separated")
+    sy.add_argument("--amplitude", help="ar1: weight(s) of a sum of processes, comma separated")
+    sy.add_argument("--shape", help="free-field: lattice T,L,...")
+    sy.add_argument("--m2", type=float, help="free-field: mass squared")
+    sy.add_argument("--configs", type=int, help="free-field: configurations")
+    sy.add_argument("--method", choices=["slice", "field"], help="free-field: sampling method")
+    sy.add_argument("--p01", type=float, help="telegraph: switching probability 0 -> 1 per step")
+    sy.add_argument("--p10", type=float, help="telegraph: switching probability 1 -> 0 per step")
+    sy.add_argument("--noise", type=float, help="telegraph: Gaussian noise on the two levels")
+    sy.set_defaults(func=cmd_synth)
+    sc = sub.add_parser("score", help="pulls of your estimates against a sidecar's truth")
+    sc.add_argument("truth", help="sidecar JSON with a truth section")
+    sc.add_argument("estimates", help="your estimates: JSON of name, value, error (see sigmasim.score)")
+    sc.set_defaults(func=cmd_score)
     v = sub.add_parser("vacua", help="tree-level vacuum branches of a config's potential")
     v.add_argument("config", nargs="?", default=None, help="TOML config (its [model] is used)")
     v.add_argument("--nf", type=int)
