@@ -13,6 +13,7 @@ import numpy as np
 
 from sigmasim.kernels.general import heatbath, metropolis, overrelax
 from sigmasim.kernels.u1 import heatbath_u1, metropolis_u1, overrelax_u1
+from sigmasim.kernels.u3 import metropolis_u3, pack_table3
 from sigmasim.rng import step_key
 
 __all__ = ["apply", "proposal_table", "TABLE_SIZE"]
@@ -73,7 +74,11 @@ def apply(sim, name: str) -> tuple[int, int]:
                 const = hdiag[0] + 2.0 * kappa * eta
                 acc += metropolis_u1(re[0], im[0], nbr, start, stop, beta, const.real, const.imag,
                                      table[:, 0, 0].real.copy(), table[:, 0, 0].imag.copy(),
-                                     cfg.metropolis_hits, key)
+                                     cfg.metropolis_hits, key, sim.blocks)
+            elif nf == 3:
+                k2 = 2.0 * kappa * eta
+                acc += metropolis_u3(re, im, nbr, start, stop, beta, hdiag, k2.real, k2.imag,
+                                     pack_table3(table, tdet), cfg.metropolis_hits, key, sim.blocks)
             else:
                 acc += metropolis(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, table, tdet,
                                   cfg.metropolis_hits, key, sim.blocks)

@@ -1,0 +1,462 @@
+#!/usr/bin/env python3
+"""Speed benchmark of sigmasim's kernels against the hand-written C yardstick.
+
+    python benchmarks/bench.py [--quick] [--threads N] [--no-c] [--no-compile]
+
+Measures, through the public path (config_from_dict + Simulation.sweep, after
+thermalisation and Metropolis step tuning), site-hits per second of
+
+  (a) U(1), d = 3, L = 32, beta = 0.45, h = 0.05, theta = 3.0, kappa = 0
+      (Metropolis 1 hit per visit, heatbath, overrelaxation);
+  (b) U(3), d = 3, L = 16, beta = 0.5, h = 0.1, kappa = 0.2, theta = 3.0 in the
+      mass phase (Metropolis 4 hits per visit, heatbath, overrelaxation);
+
+on 1 thread and on all threads; builds and runs the yardstick's `c`,
+`c_omp2` and `c_scalar` Metropolis programs in the same run and prints the
+ratios; times the JIT compile (empty cache, in a subprocess with a temporary
+NUMBA_CACHE_DIR) and the cached load; the start-up of `sigmasim run` on a tiny
+config with a warm cache; and the memory a run adds compared with its field
+arrays.  One JSON line per measurement goes to benchmarks/results/.
+
+Machines are noisy: only ratios measured in one run mean anything.  Before
+every timed run the foreign load (busy fraction of all cores, from
+/proc/stat) is printed; a run next to a busy core is flagged [contended].
+
+The yardstick is looked up in $SIGMASIM_PERF_DIR, else ../shared/perf
+relative to the repository root; without it the C comparison is skipped.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parent.parent
+RESULTS = ROOT / "benchmarks" / "results"
+sys.path.insert(0, str(ROOT))
+
+MODELS = {
+    "U1_d3": dict(nf=1, shape=[32, 32, 32], beta=0.45, mass=0.05, kappa=0.0, theta=3.0, hits=1, step=1.0),
+    "U3_d3": dict(nf=3, shape=[16, 16, 16], beta=0.5, mass=0.1, kappa=0.2, theta=3.0, hits=4, step=0.3),
+}
+ALGO_NAMES = {  # the yardstick's algorithm names where it has the algorithm
+    ("U1_d3", "metropolis"): "metropolis",
+    ("U1_d3", "heatbath"): "heatbath_best_fisher",
+    ("U3_d3", "metropolis"): "metropolis_4hit",
+    ("U3_d3", "heatbath"): "heatbath_cabibbo_marinari",
+}
+
+
+def config(model: str, algo: str, thermalize: int, seed: int = 11):
+    from sigmasim.config import config_from_dict
+
+    m = MODELS[model]
+    return config_from_dict({
+        "name": "bench",
+        "seed": seed,
+        "lattice": {"shape": m["shape"]},
+        "model": {"nf": m["nf"], "beta": m["beta"], "mass": m["mass"], "kappa": m["kappa"],
+                  "theta": m["theta"], "theta_placement": "mass"},
+        "updates": {"schedule": [{"update": algo}], "metropolis_hits": m["hits"],
+                    "initial_step": m["step"], "tune_every": 10, "target_acceptance": 0.5},
+        "run": {"thermalize": thermalize, "measurements": 1, "start": "cold"},
+    })
+
+
+# ----------------------------------------------------------------------------- load
+def _cpu_times():
+    with open("/proc/stat") as f:
+        v = [int(x) for x in f.readline().split()[1:]]
+    idle = v[3] + (v[4] if len(v) > 4 else 0)
+    return sum(v), idle
+
+
+def foreign_load(seconds: float = 0.3) -> float:
+    """Busy fraction of all cores over ``seconds`` while this process sleeps (NaN if unknown)."""
+    try:
+        t0, i0 = _cpu_times()
+        time.sleep(seconds)
+        t1, i1 = _cpu_times()
+    except OSError:
+        return float("nan")
+    return 1.0 - (i1 - i0) / max(1, t1 - t0)
+
+
+def contended(load: float, threads: int) -> bool:
+    ncpu = os.cpu_count() or 1
+    lim = 0.25 if threads > 1 else 1.0 - 1.0 / ncpu + 0.1
+    return load > lim
+
+
+# ----------------------------------------------------------------------------- numba
+def blocked_mean(x, nblocks: int = 20):
+    x = np.asarray(x, dtype=float)
+    nb = min(nblocks, len(x))
+    if nb < 2:
+        return float(x.mean()), float("nan")
+    bl = len(x) // nb
+    b = x[: nb * bl].reshape(nb, bl).mean(axis=1)
+    return float(x.mean()), float(b.std(ddof=1) / np.sqrt(nb))
+
+
+def run_numba(model: str, algo: str, threads: int, seconds: float, thermalize: int) -> dict:
+    import numba
+
+    from sigmasim.chain import Simulation
+
+    numba.set_num_threads(threads)
+    cfg = config(model, algo, thermalize)
+    sim = Simulation(cfg)
+    for _ in range(thermalize):
+        sim.sweep()
+    st = sim.state
+    st.win_acc[:] = 0
+    st.win_tried[:] = 0
+    load = foreign_load()
+    action, retr = [], []
+    t_upd = 0.0
+    n = 0
+    t_start = time.perf_counter()
+    while n < 20 or time.perf_counter() - t_start < seconds:
+        t0 = time.perf_counter()
+        sim.sweep()
+        t_upd += time.perf_counter() - t0
+        n += 1
+        # measured outside the timed part, as the yardstick does (win_* are reset by measure)
+        acc, tried = int(st.win_acc[0]), int(st.win_tried[0])
+        rec = sim.measure()
+        st.win_acc[0] += acc
+        st.win_tried[0] += tried
+        action.append(rec["action"])
+        retr.append(rec["omega"].real)
+    hits = cfg.metropolis_hits if algo == "metropolis" else 1
+    a, ae = blocked_mean(action)
+    r, re_ = blocked_mean(retr)
+    acc = st.win_acc[0] / st.win_tried[0] if algo == "metropolis" and st.win_tried[0] else 1.0
+    impl = "numba" if threads == 1 else f"numba_{threads}threads"
+    return {
+        "model": model, "algorithm": ALGO_NAMES.get((model, algo), algo), "implementation": impl,
+        "lattice": "x".join(map(str, cfg.shape)), "threads": threads, "sweeps": n,
+        "therm": thermalize, "hits_per_site": hits, "seconds": t_upd,
+        "site_hits_per_second": n * cfg.volume * hits / t_upd, "acceptance": float(acc),
+        "step": st.step_size, "action_per_site": a, "action_per_site_err": ae,
+        "retr_over_nf": r, "retr_over_nf_err": re_, "foreign_load_before": load,
+        "contended": contended(load, threads),
+    }
+
+
+# ----------------------------------------------------------------------------- C yardstick
+def perf_dir() -> Path | None:
+    p = Path(os.environ.get("SIGMASIM_PERF_DIR", ROOT.parent / "shared" / "perf"))
+    return p if (p / "src" / "u1.c").is_file() and (p / "src" / "u3.c").is_file() else None
+
+
+def build_c(src: Path, work: Path) -> dict:
+    """Build the yardstick's Metropolis programs as its run_all.sh does; returns name -> argv prefix."""
+    cc = os.environ.get("CC", "gcc")
+    flags = ["-O3", "-march=native", "-fno-math-errno", "-std=gnu11", "-Wall", "-Wno-unknown-pragmas"]
+    shutil.copytree(src / "src", work / "src")
+    (work / "build").mkdir()
+    jobs = {
+        "u1": ["-fopenmp-simd", "-o", "build/u1", "src/u1.c", "-lm"],
+        "u1_omp": ["-fopenmp", "-o", "build/u1_omp", "src/u1.c", "-lm"],
+        "u1_scalar": ["-fno-tree-vectorize", "-o", "build/u1_scalar", "src/u1.c", "-lm"],
+        "u3": ["-o", "build/u3", "src/u3.c", "-lm"],
+        "u3_omp": ["-fopenmp", "-o", "build/u3_omp", "src/u3.c", "-lm"],
+        "u3_scalar": ["-DVL=1", "-fno-tree-vectorize", "-o", "build/u3_scalar", "src/u3.c", "-lm"],
+    }
+    procs = {k: subprocess.Popen([cc, *flags, *v], cwd=work, stderr=subprocess.PIPE, text=True)
+             for k, v in jobs.items()}
+    for k, p in procs.items():
+        _, err = p.communicate()
+        if p.returncode:
+            raise RuntimeError(f"building {k} failed:\n{err}")
+    return {k: str(work / "build" / k) for k in jobs}
+
+
+def run_c(exe: str, args: list, threads: int, impl: str | None) -> dict:
+    env = dict(os.environ, OMP_NUM_THREADS=str(threads))
+    cmd = [exe, *args] + (["--impl", impl] if impl else [])
+    load = foreign_load()
+    out = subprocess.run(cmd, env=env, capture_output=True, text=True, timeout=300, check=True).stdout
+    d = json.loads(out.strip().splitlines()[-1])
+    d["foreign_load_before"] = load
+    d["contended"] = contended(load, threads)
+    return d
+
+
+# ----------------------------------------------------------------------------- compile / start-up / memory
+_COMPILE_SNIPPET = r"""
+import json, sys, time
+t0 = time.perf_counter()
+sys.path.insert(0, sys.argv[1])
+sys.argv = sys.argv[:1] + sys.argv[2:]
+import numba
+from benchmarks.bench import config
+from sigmasim.chain import Simulation
+t_import = time.perf_counter() - t0
+out = {"import": t_import}
+for model in ("U1_d3", "U3_d3"):
+    for algo in ("metropolis", "heatbath", "overrelax"):
+        sim = Simulation(config(model, algo, 0))
+        t0 = time.perf_counter()
+        sim.sweep()
+        sim.measure()
+        out[model + "/" + algo] = time.perf_counter() - t0
+print(json.dumps(out))
+"""
+
+_MEMORY_SNIPPET = r"""
+import json, resource, sys
+sys.path.insert(0, sys.argv[1])
+model, threads = sys.argv[2], int(sys.argv[3])
+import numba
+numba.set_num_threads(threads)
+from benchmarks.bench import config, MODELS
+from sigmasim.chain import Simulation
+from sigmasim.config import config_from_dict
+def rss():
+    for line in open("/proc/self/status"):
+        if line.startswith("VmRSS"):
+            return int(line.split()[1]) * 1024
+# JIT code in memory first (small lattice of the same model), then the real one
+m = MODELS[model]
+for algo in ("metropolis", "heatbath", "overrelax"):
+    c = config(model, algo, 0).to_dict(); c["lattice"]["shape"] = [4, 4, 4]
+    s = Simulation(config_from_dict(c)); s.sweep(); s.measure()
+before = rss()
+peak_before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+sims = []
+for algo in ("metropolis", "heatbath", "overrelax"):
+    sim = Simulation(config(model, algo, 0))
+    for _ in range(12):
+        sim.sweep()
+    sim.measure()
+    field = sim.state.re.nbytes + sim.state.im.nbytes
+    nbr = sim.lattice.neighbours.nbytes + sim.lattice.slice_sites.nbytes + sim.lattice.natural.nbytes + sim.lattice.time.nbytes
+    after = rss()
+    del sim
+print(json.dumps({"rss_before": before, "rss_after": after, "added": after - before,
+                  "maxrss": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024,
+                  "maxrss_before": peak_before, "field_bytes": field, "lattice_bytes": nbr}))
+"""
+
+
+def compile_times() -> dict:
+    with tempfile.TemporaryDirectory() as cache:
+        env = dict(os.environ, NUMBA_CACHE_DIR=cache)
+        res = {}
+        for label in ("cold", "cached"):
+            t0 = time.perf_counter()
+            out = subprocess.run([sys.executable, "-c", _COMPILE_SNIPPET, str(ROOT)], env=env,
+                                 capture_output=True, text=True, check=True).stdout
+            res[label] = json.loads(out.strip().splitlines()[-1])
+            res[label]["process"] = time.perf_counter() - t0
+    return res
+
+
+def startup_time() -> dict:
+    tiny = """name = "tiny"\nseed = 1\n[lattice]\nshape = [4, 4]\n[model]\nnf = 1\nbeta = 0.5\n
+[run]\nthermalize = 5\nmeasurements = 5\n"""
+    with tempfile.TemporaryDirectory() as d:
+        cfg = Path(d) / "tiny.toml"
+        cfg.write_text(tiny)
+        cmd = [sys.executable, "-m", "sigmasim", "run", str(cfg), "--output", str(Path(d) / "out"),
+               "--quiet", "--overwrite"]
+        env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+        walls = []
+        for _ in range(3):  # the first warms the cache
+            t0 = time.perf_counter()
+            p = subprocess.run(cmd, env=env, capture_output=True, text=True)
+            walls.append(time.perf_counter() - t0)
+            if p.returncode:
+                return {"error": (p.stderr or p.stdout).strip().splitlines()[-1:]}
+        t0 = time.perf_counter()
+        subprocess.run([sys.executable, "-c", "import numba, h5py"], env=env, check=True)
+        base = time.perf_counter() - t0
+    return {"first": walls[0], "warm": min(walls[1:]), "python_numba_h5py_import": base}
+
+
+def memory(model: str, threads: int) -> dict:
+    out = subprocess.run([sys.executable, "-c", _MEMORY_SNIPPET, str(ROOT), model, str(threads)],
+                         capture_output=True, text=True, check=True).stdout
+    return json.loads(out.strip().splitlines()[-1])
+
+
+# ----------------------------------------------------------------------------- main
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--quick", action="store_true", help="shorter runs (about a minute)")
+    ap.add_argument("--threads", type=int, default=0, help="the 'all threads' count (default: all cores)")
+    ap.add_argument("--no-c", action="store_true", help="skip the C yardstick")
+    ap.add_argument("--no-compile", action="store_true", help="skip compile, start-up and memory timings")
+    args = ap.parse_args(argv)
+
+    import numba
+
+    nall = args.threads or numba.config.NUMBA_NUM_THREADS
+    secs = 1.0 if args.quick else 3.0
+    therm = {"U1_d3": 100 if args.quick else 200, "U3_d3": 60 if args.quick else 100}
+    RESULTS.mkdir(parents=True, exist_ok=True)
+    out_path = RESULTS / time.strftime("bench-%Y%m%d-%H%M%S.jsonl")
+    lines = []
+
+    def emit(d):
+        lines.append(d)
+        with open(out_path, "a") as f:
+            f.write(json.dumps(d) + "\n")
+
+    def show(d):
+        flag = "  [contended]" if d.get("contended") else ""
+        print(f"  {d['model']:6s} {d['algorithm']:26s} {d['implementation']:16s} th={d['threads']} "
+              f"{d['site_hits_per_second']:10.3e} hits/s  acc {d['acceptance']:.3f}  "
+              f"S/V {d['action_per_site']:.5f}+-{d['action_per_site_err']:.5f}  "
+              f"ReTrU/nf {d['retr_over_nf']:.5f}+-{d['retr_over_nf_err']:.5f}  "
+              f"load {d['foreign_load_before']:.2f}{flag}", flush=True)
+
+    print(f"sigmasim benchmark  (numba {numba.__version__}, {os.cpu_count()} cpus, "
+          f"threading layer {numba.config.THREADING_LAYER}, all threads = {nall})")
+    print(f"foreign load now: {foreign_load(1.0):.2f} (busy fraction of all cores)")
+
+    # warm the JIT cache so that no compile lands in a timed run
+    for model in MODELS:
+        for algo in ("metropolis", "heatbath", "overrelax"):
+            c = config(model, algo, 0).to_dict()
+            c["lattice"]["shape"] = [4, 4, 4]
+            from sigmasim.chain import Simulation
+            from sigmasim.config import config_from_dict
+            s = Simulation(config_from_dict(c))
+            s.sweep()
+            s.measure()
+
+    pdir = None if args.no_c else perf_dir()
+    exes = None
+    work = None
+    if args.no_c:
+        print("C yardstick: skipped (--no-c)")
+    elif pdir is None:
+        print("C yardstick: NOT FOUND (set SIGMASIM_PERF_DIR or put it at ../shared/perf); "
+              "ratios to C skipped")
+    else:
+        work = Path(tempfile.mkdtemp(prefix="sigmasim-perf-"))
+        try:
+            exes = build_c(pdir, work)
+            print(f"C yardstick: {pdir}, built in {work}")
+        except (RuntimeError, OSError) as exc:
+            print(f"C yardstick: build failed, ratios to C skipped ({exc})")
+            exes = None
+
+    c_sweeps = {"U1_d3": (1500, 200) if args.quick else (3000, 200),
+                "U3_d3": (600, 100) if args.quick else (1500, 100)}
+    c_scalar_sweeps = {"U1_d3": (300, 200), "U3_d3": (150, 100) if args.quick else (300, 100)}
+    res = {}
+    for model in MODELS:
+        print(f"== {model}")
+        for algo in ("metropolis", "heatbath", "overrelax"):
+            for th in sorted({1, nall}):
+                d = run_numba(model, algo, th, secs, therm[model])
+                emit(d)
+                show(d)
+                res[(model, algo, th)] = d
+            if algo == "metropolis" and exes:
+                prog = "u1" if model == "U1_d3" else "u3"
+                extra = ["--algo", "metro"] if prog == "u1" else []
+                n, t = c_sweeps[model]
+                for impl, exe, th in (("c", exes[prog], 1), ("c_omp2", exes[prog + "_omp"], 2),
+                                      ("c_scalar", exes[prog + "_scalar"], 1)):
+                    if impl == "c_scalar":
+                        n, t = c_scalar_sweeps[model]
+                    try:
+                        d = run_c(exe, [*extra, "--sweeps", str(n), "--therm", str(t), "--seed", "1001"],
+                                  th, "c_scalar" if impl == "c_scalar" else None)
+                    except (subprocess.SubprocessError, OSError, ValueError) as exc:
+                        print(f"  {impl}: failed ({exc})")
+                        continue
+                    d["implementation"] = impl
+                    emit(d)
+                    show(d)
+                    res[(model, "c:" + impl)] = d
+
+    print("== ratios (same run)")
+    for model in MODELS:
+        for algo in ("metropolis", "heatbath", "overrelax"):
+            one = res[(model, algo, 1)]["site_hits_per_second"]
+            if nall > 1:
+                many = res[(model, algo, nall)]["site_hits_per_second"]
+                print(f"  {model} {algo:11s} numba {nall} threads / 1 thread: {many / one:5.2f}x")
+        m1 = res[(model, "metropolis", 1)]
+        for impl in ("c", "c_scalar", "c_omp2"):
+            c = res.get((model, "c:" + impl))
+            if c is None:
+                continue
+            print(f"  {model} metropolis numba(1 thread) / {impl}: "
+                  f"{m1['site_hits_per_second'] / c['site_hits_per_second']:5.2f}")
+        if nall > 1 and (model, "c:c_omp2") in res:
+            mn = res[(model, "metropolis", nall)]["site_hits_per_second"]
+            print(f"  {model} metropolis numba({nall} threads) / c_omp2: "
+                  f"{mn / res[(model, 'c:c_omp2')]['site_hits_per_second']:5.2f}")
+        if (model, "c:c") in res and (model, "c:c_omp2") in res:
+            print(f"  {model} metropolis C 2-thread speed-up: "
+                  f"{res[(model, 'c:c_omp2')]['site_hits_per_second'] / res[(model, 'c:c')]['site_hits_per_second']:5.2f}x")
+
+    print("== physics sanity (Metropolis; numba vs C, each mean +- blocked error; z = difference / error)")
+    for model in MODELS:
+        nb = res[(model, "metropolis", 1)]
+        c = res.get((model, "c:c"))
+        if c is None:
+            print(f"  {model}: numba S/V {nb['action_per_site']:.5f}+-{nb['action_per_site_err']:.5f}, "
+                  f"ReTrU/nf {nb['retr_over_nf']:.5f}+-{nb['retr_over_nf_err']:.5f} (no C run)")
+            continue
+        z = []
+        for k in ("action_per_site", "retr_over_nf"):
+            e = np.hypot(nb[k + "_err"], c[k + "_err"])
+            z.append((nb[k] - c[k]) / e if e > 0 else float("nan"))
+        print(f"  {model}: S/V numba {nb['action_per_site']:.5f}+-{nb['action_per_site_err']:.5f} "
+              f"C {c['action_per_site']:.5f}+-{c['action_per_site_err']:.5f} (z {z[0]:+.1f});  "
+              f"ReTrU/nf numba {nb['retr_over_nf']:.5f}+-{nb['retr_over_nf_err']:.5f} "
+              f"C {c['retr_over_nf']:.5f}+-{c['retr_over_nf_err']:.5f} (z {z[1]:+.1f})"
+              + ("  <-- CHECK" if max(abs(x) for x in z) > 4 else ""))
+
+    if not args.no_compile:
+        print("== JIT compile (first sweep + measure of each update; subprocess, temporary NUMBA_CACHE_DIR)")
+        ct = compile_times()
+        for label in ("cold", "cached"):
+            r = ct[label]
+            parts = "  ".join(f"{k} {v:.2f}s" for k, v in r.items() if "/" in k)
+            total = sum(v for k, v in r.items() if "/" in k)
+            print(f"  {label:6s} total {total:6.2f}s  (import {r['import']:.2f}s, process {r['process']:.2f}s)  {parts}")
+            emit({"measurement": "compile", "cache": label, **r})
+        print("== start-up of `sigmasim run` on a tiny config (warm cache, wall time of the process)")
+        su = startup_time()
+        if "error" in su:
+            print(f"  failed: {su['error']}")
+        else:
+            print(f"  warm {su['warm']:.2f}s (goal < 3 s; first run {su['first']:.2f}s; "
+                  f"bare `import numba, h5py` {su['python_numba_h5py_import']:.2f}s)")
+        emit({"measurement": "startup", **su})
+        print("== memory (subprocess: RSS added by the three simulations of a model, JIT code loaded first)")
+        for model in MODELS:
+            mem = memory(model, nall)
+            f = mem["field_bytes"]
+            print(f"  {model}: field arrays {f / 2**20:.2f} MiB (+ lattice tables {mem['lattice_bytes'] / 2**20:.2f} MiB); "
+                  f"RSS added {mem['added'] / 2**20:.2f} MiB = {mem['added'] / f:.2f}x the field, "
+                  f"{mem['added'] / (f + mem['lattice_bytes']):.2f}x field + tables; "
+                  f"peak RSS of the process {mem['maxrss'] / 2**20:.0f} MiB (interpreter, numba, LLVM)")
+            emit({"measurement": "memory", "model": model, **mem})
+    print(f"results: {out_path}")
+    if work is not None:
+        shutil.rmtree(work, ignore_errors=True)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
