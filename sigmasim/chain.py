@@ -224,13 +224,29 @@ def run_chain(sim: Simulation, sinks=(), should_stop=lambda: False) -> None:
     A checkpoint is taken every ``checkpoint_every`` sweeps, every
     ``checkpoint_seconds`` seconds, at the end, and when ``should_stop()``
     turns true (then :class:`Interrupted` is raised after the checkpoint).
+
+    The field is checked for NaN/inf before every sweep, before every
+    checkpoint and before the end: a non-finite field raises
+    :class:`NumericalError` naming the sweep and the site, and is never
+    written, so the last checkpoint on disk stays the last good state.
     """
     cfg, st = sim.config, sim.state
+
+    def check_finite() -> None:
+        # one O(V nf^2) scan, cheap next to a sweep; checked *before* each sweep because
+        # the rejection samplers of the kernels do not terminate on NaN input
+        site = field_is_finite(st.re, st.im)
+        if site >= 0:
+            coords = tuple(int(c) for c in sim.lattice.coordinates()[site])
+            raise NumericalError(f"non-finite field after sweep {st.sweep} at site {site} "
+                                 f"(coordinates {coords}); the last checkpoint is the last good state")
+
     for s in sinks:
         s.start(sim)
     last = time.monotonic()
     total = sim.total_sweeps
     while st.sweep < total:
+        check_finite()
         sim.sweep()
         past = st.sweep - cfg.thermalize
         record = None
@@ -241,14 +257,13 @@ def run_chain(sim: Simulation, sinks=(), should_stop=lambda: False) -> None:
         now = time.monotonic()
         stop = should_stop()
         if st.sweep % cfg.checkpoint_every == 0 or now - last >= cfg.checkpoint_seconds or stop:
-            if field_is_finite(st.re, st.im) >= 0:
-                site = field_is_finite(st.re, st.im)
-                raise NumericalError(f"non-finite field at sweep {st.sweep}, site {site}")
+            check_finite()
             for s in sinks:
                 s.checkpoint(sim)
             last = time.monotonic()
         if stop and st.sweep < total:
             raise Interrupted(st.sweep)
+    check_finite()
     for s in sinks:
         s.finish(sim)
 

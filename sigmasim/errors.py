@@ -8,7 +8,15 @@ __all__ = ["SigmasimError", "ConfigError", "RunFileError", "NumericalError"]
 
 
 class SigmasimError(Exception):
-    """Base class of all errors caused by input or run state."""
+    """Base class of all errors caused by input or run state.
+
+    Its message is always one line (the command line prints it as
+    ``sigmasim: error: <message>``): line breaks from wrapped messages, e.g.
+    h5py's or TOML's, are folded into spaces.
+    """
+
+    def __str__(self) -> str:
+        return " ".join(super().__str__().split())
 
 
 class ConfigError(SigmasimError):

@@ -93,28 +93,115 @@ def check_writable(path: Path, need_bytes: int) -> None:
         )
 
 
+def _one_line(exc: BaseException) -> str:
+    return " ".join(str(exc).split()) or type(exc).__name__
+
+
 def _open_checked(path: Path, mode: str = "r") -> h5py.File:
+    path = Path(path)
     if not path.exists():
         raise RunFileError(f"{path} does not exist")
+    if not path.is_file():
+        raise RunFileError(f"{path} is not a file")
     try:
         f = h5py.File(path, mode)
-    except OSError:
+    except Exception:  # OSError for truncated/foreign files; never let h5py's text through
         raise RunFileError(f"{path} is not a readable HDF5 file (truncated or damaged?)") from None
-    if f.attrs.get("format") != FORMAT:
-        f.close()
-        raise RunFileError(f"{path} is not a sigmasim run file")
-    if int(f.attrs.get("format_version", -1)) != FORMAT_VERSION:
+    try:
+        fmt = f.attrs.get("format")
+        if isinstance(fmt, bytes):
+            fmt = fmt.decode("utf-8", "replace")
+        if not isinstance(fmt, str) or fmt != FORMAT:
+            raise RunFileError(f"{path} is not a sigmasim run file")
         v = f.attrs.get("format_version")
+        if not (isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_))
+                and int(v) == FORMAT_VERSION):
+            shown = v if isinstance(v, (int, np.integer, float, str, bytes)) else type(v).__name__
+            raise RunFileError(f"{path} has format version {shown!r}; this sigmasim reads version "
+                               f"{FORMAT_VERSION}")
+    except RunFileError:
         f.close()
-        raise RunFileError(f"{path} has format version {v}; this sigmasim reads version {FORMAT_VERSION}")
+        raise
+    except Exception as exc:  # attributes of a damaged file can fail to decode
+        f.close()
+        raise RunFileError(f"{path} has damaged attributes ({_one_line(exc)})") from None
     return f
 
 
 def _stored_config(f: h5py.File, path) -> RunConfig:
     try:
-        return config_from_dict(json.loads(f.attrs["config"]))
-    except (KeyError, ValueError, TypeError, ConfigError) as exc:
-        raise RunFileError(f"{path} holds no valid config ({exc})") from None
+        text = f.attrs["config"]
+        if isinstance(text, bytes):
+            text = text.decode("utf-8")
+        if not isinstance(text, str):
+            raise TypeError(f"the config attribute is {type(text).__name__}, not a JSON string")
+        raw = json.loads(text)
+        return config_from_dict(raw)
+    except (KeyError, ValueError, TypeError, ConfigError, RecursionError, OSError) as exc:
+        raise RunFileError(f"{path} holds no valid config ({_one_line(exc)})") from None
+
+
+def _layout(cfg: RunConfig) -> dict:
+    """Every dataset of the run file: path -> (numpy dtype, shape per record or None for /state)."""
+    nf, t = cfg.nf, cfg.shape[0]
+    out = {}
+    for name, (kind, _) in SERIES.items():
+        dtype = {"int": np.int64, "real": np.float64}.get(kind, np.complex128)
+        out[f"series/{name}"] = (np.dtype(dtype), (nf,) if kind == "complex_nf" else ())
+    for name in SLICES:
+        out[f"slices/{name}"] = (np.dtype(np.complex128), (t, nf, nf) if name == "U" else (t,))
+    return out
+
+
+def _dataset(f: h5py.File, key: str, path, dtype: np.dtype) -> h5py.Dataset:
+    """The dataset ``key`` after checking it is a plain numeric array of ``dtype``'s kind.
+
+    Only numeric arrays are ever read: an object, string, opaque, compound or
+    reference dtype is refused before any data is touched.
+    """
+    obj = f.get(key)
+    if obj is None:
+        raise RunFileError(f"{path} is damaged: /{key} is missing")
+    if not isinstance(obj, h5py.Dataset):
+        raise RunFileError(f"{path} is damaged: /{key} is not a dataset")
+    dt = obj.dtype
+    if dt.kind != np.dtype(dtype).kind or dt.itemsize != np.dtype(dtype).itemsize or dt.fields:
+        raise RunFileError(f"{path} is damaged: /{key} has dtype {dt}, expected {np.dtype(dtype)}")
+    return obj
+
+
+def _check_file(f: h5py.File, path, cfg: RunConfig) -> int:
+    """Check the whole layout against ``cfg``; returns the number of records."""
+    try:
+        n_meas = f.attrs["n_meas"]
+        sweep = f.attrs["sweep"]
+        if not all(isinstance(x, (int, np.integer)) for x in (n_meas, sweep)):
+            raise TypeError("n_meas and sweep must be integers")
+        n_meas, sweep = int(n_meas), int(sweep)
+    except (KeyError, TypeError, ValueError, OSError) as exc:
+        raise RunFileError(f"{path} is damaged: bad root attributes ({_one_line(exc)})") from None
+    if not isinstance(f.get("provenance"), h5py.Group):
+        raise RunFileError(f"{path} is damaged: /provenance is missing")
+    for key, (dtype, per_record) in _layout(cfg).items():
+        d = _dataset(f, key, path, dtype)
+        if d.ndim != 1 + len(per_record) or tuple(d.shape[1:]) != per_record:
+            raise RunFileError(f"{path} is damaged: /{key} has shape {d.shape}, expected "
+                               f"(n,) + {per_record}")
+        if d.shape[0] != n_meas:
+            raise RunFileError(f"{path} is damaged: /{key} has {d.shape[0]} records but the file "
+                               f"says n_meas = {n_meas}")
+    past = sweep - cfg.thermalize
+    expect = past // cfg.measure_every if past > 0 else 0
+    if sweep < 0 or n_meas != expect:
+        raise RunFileError(f"{path} is damaged: {n_meas} records after sweep {sweep}, expected {expect}")
+    comps = None
+    for name in ("re", "im"):
+        d = _dataset(f, f"state/{name}", path, np.dtype(np.float64))
+        if d.ndim != 2 or d.shape[1] != cfg.volume or (comps is not None and d.shape != comps):
+            raise RunFileError(f"{path} is damaged: /state/{name} has shape {d.shape}, expected "
+                               f"(components, {cfg.volume})")
+        comps = d.shape
+    return n_meas
 
 
 class RunWriter:
@@ -130,7 +217,10 @@ class RunWriter:
         self.wall_before = 0.0
         if resume:
             with _open_checked(self.path) as f:
-                self.wall_before = float(f["provenance"].attrs.get("wall_seconds", 0.0))
+                try:
+                    self.wall_before = float(f["provenance"].attrs.get("wall_seconds", 0.0))
+                except (KeyError, TypeError, ValueError, OSError) as exc:
+                    raise RunFileError(f"{self.path} is damaged: bad /provenance ({_one_line(exc)})") from None
 
     # sink protocol -----------------------------------------------------
     def start(self, sim) -> None:
@@ -152,10 +242,22 @@ class RunWriter:
 
     # -------------------------------------------------------------------
     def _create(self, sim) -> None:
+        # The first file is built under its own name, not <name>.h5.tmp: a crash here must not
+        # leave a lone <name>.h5.tmp (the command line refuses a fresh run beside one), and
+        # a leftover of this name is never a checkpoint, so it is simply replaced.
+        new = self.path.with_name(self.path.name + ".new")
+        try:
+            new.unlink(missing_ok=True)
+            self._build(sim, new)
+            self._switch(new)
+        except (OSError, RuntimeError) as exc:
+            new.unlink(missing_ok=True)
+            raise RunFileError(f"could not create {self.path} ({_strerror(exc)})") from None
+
+    def _build(self, sim, target: Path) -> None:
         cfg = self.config
         nf, t = cfg.nf, cfg.shape[0]
-        self.tmp.unlink(missing_ok=True)
-        with h5py.File(self.tmp, "w") as f:
+        with h5py.File(target, "w") as f:
             f.attrs["format"] = FORMAT
             f.attrs["format_version"] = FORMAT_VERSION
             f.attrs["config"] = json.dumps(cfg.to_dict(), sort_keys=True)
@@ -189,7 +291,9 @@ class RunWriter:
                 d.attrs["shape_per_record"] = shape_doc
             f.create_group("state")
             self._write_state(f, sim)
-        self._switch()
+            f.flush()
+        with open(target, "rb+") as fh:
+            os.fsync(fh.fileno())
 
     def _write_state(self, f: h5py.File, sim) -> None:
         st: ChainState = sim.state
@@ -232,23 +336,31 @@ class RunWriter:
                 f.flush()
             with open(self.tmp, "rb+") as fh:
                 os.fsync(fh.fileno())
-        except OSError as exc:
+            self._switch(self.tmp)
+        except (OSError, RuntimeError) as exc:  # disk full, quota, I/O error, h5py write failure
             self.tmp.unlink(missing_ok=True)
             raise RunFileError(
-                f"could not write checkpoint {self.path} ({exc.strerror or exc}); "
+                f"could not write checkpoint {self.path} ({_strerror(exc)}); "
                 "the previous checkpoint is intact, resume with --resume"
             ) from None
-        self._switch()
+        except (KeyError, TypeError, ValueError) as exc:  # the file changed under the run
+            self.tmp.unlink(missing_ok=True)
+            raise RunFileError(f"could not write checkpoint {self.path}: the file is damaged "
+                               f"({_one_line(exc)})") from None
         self.buffer = []
 
-    def _switch(self) -> None:
-        os.replace(self.tmp, self.path)
+    def _switch(self, src: Path) -> None:
+        os.replace(src, self.path)
         try:
             fd = os.open(self.path.parent, os.O_RDONLY)
             os.fsync(fd)
             os.close(fd)
         except OSError:  # pragma: no cover - some filesystems cannot fsync folders
             pass
+
+
+def _strerror(exc: BaseException) -> str:
+    return " ".join(str(getattr(exc, "strerror", None) or exc).split()) or type(exc).__name__
 
 
 def read_state(path: Path, config: RunConfig) -> ChainState:
@@ -260,21 +372,32 @@ def read_state(path: Path, config: RunConfig) -> ChainState:
                 f"{path} was written by a different config (model, lattice, seed or schedule differ); "
                 "refusing to resume it"
             )
+        _check_file(f, path, stored)
         try:
             g = f["state"]
             st = ChainState(np.ascontiguousarray(g["re"][...]), np.ascontiguousarray(g["im"][...]))
             for k in ChainState.SCALARS:
-                setattr(st, k, type(getattr(st, k))(g.attrs[k]))
-            st.win_acc = np.asarray(g.attrs["win_acc"], dtype=np.int64)
-            st.win_tried = np.asarray(g.attrs["win_tried"], dtype=np.int64)
-            n_rec = f["series"]["sweep"].shape[0]
-        except (KeyError, ValueError, TypeError, OSError) as exc:
-            raise RunFileError(f"{path} has a damaged checkpoint ({exc})") from None
+                v = g.attrs[k]
+                if not isinstance(v, (int, float, np.integer, np.floating)) or isinstance(v, (bool, np.bool_)):
+                    raise TypeError(f"state attribute {k} is {type(v).__name__}, not a number")
+                setattr(st, k, type(getattr(st, k))(v))
+            for k in ("win_acc", "win_tried"):
+                v = g.attrs[k]
+                if not (isinstance(v, np.ndarray) and v.dtype.kind in "iu" and v.shape == (2,)):
+                    raise TypeError(f"state attribute {k} must be 2 integers")
+                setattr(st, k, np.asarray(v, dtype=np.int64).copy())
+        except (KeyError, ValueError, TypeError, OSError, OverflowError) as exc:
+            raise RunFileError(f"{path} has a damaged checkpoint ({_one_line(exc)})") from None
         nf, v = config.nf, config.volume
         if st.re.shape != (nf * nf, v) or st.im.shape != (nf * nf, v):
             raise RunFileError(f"{path}: stored field has shape {st.re.shape}, expected {(nf * nf, v)}")
-        if n_rec != st.n_meas:
-            raise RunFileError(f"{path}: {n_rec} records but the checkpoint says {st.n_meas}")
+        if st.n_meas != int(f.attrs["n_meas"]) or st.sweep != int(f.attrs["sweep"]):
+            raise RunFileError(f"{path}: the checkpoint says {st.n_meas} records after sweep {st.sweep}, "
+                               f"the file {int(f.attrs['n_meas'])} after sweep {int(f.attrs['sweep'])}")
+        if st.step < 0 or st.step_size <= 0 or not np.isfinite(st.step_size):
+            raise RunFileError(f"{path} has a damaged checkpoint (step {st.step}, step size {st.step_size})")
+        if not (np.isfinite(st.re).all() and np.isfinite(st.im).all()):
+            raise RunFileError(f"{path} has a damaged checkpoint (non-finite field)")
     return st
 
 
@@ -285,17 +408,38 @@ class RunData:
         self.path = Path(path)
         with _open_checked(self.path) as f:
             self.config = _stored_config(f, self.path)
-            self.status = str(f.attrs.get("status", "unknown"))
-            self.provenance = {k: (v.item() if hasattr(v, "item") else v)
-                               for k, v in f["provenance"].attrs.items()}
+            _check_file(f, self.path, self.config)
+            self.status = _text(f.attrs.get("status", "unknown"))
+            self.provenance = {k: _plain(v) for k, v in f["provenance"].attrs.items()}
+            layout = _layout(self.config)
             try:
-                self.series = {k: f["series"][k][...] for k in f["series"]}
-                self.slices = {k: f["slices"][k][...] for k in f["slices"]}
+                # only the datasets of the layout, each checked numeric before it is read
+                self.series = {k[7:]: _dataset(f, k, self.path, dt)[...]
+                               for k, (dt, _) in layout.items() if k.startswith("series/")}
+                self.slices = {k[7:]: _dataset(f, k, self.path, dt)[...]
+                               for k, (dt, _) in layout.items() if k.startswith("slices/")}
             except (KeyError, OSError) as exc:
-                raise RunFileError(f"{self.path}: damaged data ({exc})") from None
+                raise RunFileError(f"{self.path}: damaged data ({_one_line(exc)})") from None
 
     def __len__(self) -> int:
         return len(self.series.get("sweep", ()))
+
+
+def _text(v) -> str:
+    if isinstance(v, bytes):
+        return v.decode("utf-8", "replace")
+    return v if isinstance(v, str) else "unknown"
+
+
+def _plain(v):
+    """An attribute as a plain Python value; anything but numbers and strings is shown by type."""
+    if isinstance(v, (str, bytes)):
+        return _text(v)
+    if isinstance(v, np.ndarray) and v.dtype.kind in "biufc":
+        return v.tolist()
+    if isinstance(v, (np.generic, int, float)) and np.asarray(v).dtype.kind in "biufc":
+        return v.item() if hasattr(v, "item") else v
+    return f"<{type(v).__name__}>"
 
 
 def open_run(path) -> RunData:
@@ -305,4 +449,4 @@ def open_run(path) -> RunData:
     except SigmasimError:
         raise
     except Exception as exc:  # h5py raises many kinds on damaged files
-        raise RunFileError(f"{path}: cannot read ({type(exc).__name__}: {exc})") from None
+        raise RunFileError(f"{path}: cannot read ({type(exc).__name__}: {_one_line(exc)})") from None

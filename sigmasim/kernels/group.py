@@ -128,6 +128,9 @@ def sample_su2_x0(alpha, key, n):
     exact and efficient there (common practice, no source).  Returns
     ``(x0, next counter)``.
     """
+    if not (alpha >= 0.0 and alpha < np.inf):
+        # a NaN or inf field must reach the finiteness guard, not hang the rejection loop
+        return np.nan, n
     if alpha >= 2.0:
         while True:
             r1 = uniform(key, n)
@@ -156,6 +159,8 @@ def von_mises_angle(k, key, n):
     Best & Fisher, J. R. Stat. Soc. C 28 (1979) 152.  Returns
     ``(cos psi, sin psi, next counter)``.
     """
+    if not (k >= 0.0 and k < np.inf):
+        return np.nan, np.nan, n
     if k < 1e-12:
         u = uniform(key, n)
         return np.cos(2.0 * np.pi * u), np.sin(2.0 * np.pi * u), n + np.uint64(1)
