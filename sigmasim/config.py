@@ -214,7 +214,7 @@ class RunConfig:
 
     @property
     def volume(self) -> int:
-        return int(np.prod(self.shape))
+        return math.prod(self.shape)
 
     @property
     def special(self) -> bool:
@@ -323,7 +323,7 @@ def config_from_dict(raw: dict, overrides: dict | None = None) -> RunConfig:
 
 def field_bytes(shape, nf) -> int:
     """Bytes the run needs at least: field, neighbour table and a copy for checkpoints."""
-    volume = int(np.prod([int(n) for n in shape]))
+    volume = math.prod(int(n) for n in shape)
     return volume * (2 * 8 * nf * nf * 2 + 8 * 2 * len(shape) + 8 * 3)
 
 

@@ -304,9 +304,7 @@ def test_absurd_memory_requests(case):
     assert_refused(raw, where)
 
 
-@pytest.mark.xfail(strict=True, reason="reported: config.field_bytes and RunConfig.volume use np.prod, "
-                   "which wraps around int64 for huge shapes (V -> 0), so the memory guard passes and "
-                   "make_lattice raises a numpy ValueError traceback; fix: math.prod")
+# math.prod, not np.prod: np.prod wraps around int64 for huge shapes (V -> 0)
 def test_shape_whose_volume_overflows_int64():
     raw = _with("lattice", "shape", [4, 2**62])
     assert_refused(raw, "lattice.shape")
