@@ -299,6 +299,10 @@ class MemorySink:
 
 def make_simulation(config: RunConfig, state: ChainState | None = None) -> Simulation:
     """The simulation class for the config's model (the one place models are dispatched)."""
+    if config.kind == "linear":
+        from sigmasim.linear import LinearSimulation  # imports chain: no module-level import
+
+        return LinearSimulation(config, state)
     return Simulation(config, state)
 
 

@@ -49,6 +49,18 @@ SCHEMA: dict[str, dict[str, tuple]] = {
             "where theta sits: mass (theta_m = theta/nf), anomaly (theta_a = -theta), "
             "split (half each); physics does not depend on it",
         ),
+        "kind": ("choice:chiral,linear", "chiral",
+                 "chiral: U(nf)/SU(nf) field (beta, kappa); linear: general complex nf x nf field Phi "
+                 "(kinetic, mu2, lambda1, lambda2, c, lambda_s; group must be U)"),
+        "kinetic": ("real", 1.0, "linear model: factor of the kinetic term sum Tr|Phi_{x+mu} - Phi_x|^2 / 2 "
+                    "(>= 0; 0 decouples the sites)"),
+        "mu2": ("real", 1.0, "linear model: mass term (mu2/2) Tr(Phi^+ Phi); may be negative"),
+        "lambda1": ("real", 0.0, "linear model: lambda1 (Tr Phi^+ Phi)^2"),
+        "lambda2": ("real", 0.0, "linear model: lambda2 Tr((Phi^+ Phi)^2)"),
+        "c": ("real", 0.0, "linear model: determinant coupling, -c (e^{i theta_a} det Phi + c.c.)"),
+        "lambda_s": ("real", 0.0, "linear model: stabiliser lambda_s (Tr Phi^+ Phi)^p (>= 0; needed for "
+                     "nf >= 5 with c != 0)"),
+        "stab_power": ("int:1:8", 4, "linear model: p of the stabiliser; lambda_s > 0 needs 2p > max(4, nf)"),
     },
     "updates": {
         "schedule": (
@@ -60,6 +72,8 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "target_acceptance": ("real:0:1", 0.5, "Metropolis acceptance the step is tuned to"),
         "initial_step": ("real>0", 0.5, "initial Metropolis step (rotation angle scale)"),
         "tune_every": ("int:1:100000", 10, "thermalisation sweeps between step adjustments"),
+        "proposal_mu2": ("real>0", 0.5, "linear model, mu2 <= 0: the heatbath/overrelaxation Gaussian uses "
+                         "precision 2 d kinetic + proposal_mu2 (the rest is accept/rejected)"),
         "reunitarize_every": ("int:1:100000000", 10, "sweeps between projections back onto the group"),
     },
     "run": {
@@ -196,10 +210,19 @@ class RunConfig:
     kappa: float
     theta: float
     theta_placement: str
+    kind: str
+    kinetic: float
+    mu2: float
+    lambda1: float
+    lambda2: float
+    c: float
+    lambda_s: float
+    stab_power: int
     schedule: tuple
     metropolis_hits: int
     target_acceptance: float
     initial_step: float
+    proposal_mu2: float
     tune_every: int
     reunitarize_every: int
     thermalize: int
@@ -273,6 +296,12 @@ class RunConfig:
         for k in ("output", "threads", "checkpoint_every", "checkpoint_seconds"):
             d["run"].pop(k)
         d["run"].pop("measurements")  # a run may be extended
+        if self.kind == "chiral":
+            # the linear model's keys do not act on the chiral model: leave them out so chiral
+            # hashes (and run files written before model.kind existed) stay as they were
+            for k in ("kind",) + LINEAR_KEYS:
+                d["model"].pop(k)
+            d["updates"].pop("proposal_mu2")
         return d
 
     def physics_hash(self) -> str:
@@ -317,8 +346,98 @@ def config_from_dict(raw: dict, overrides: dict | None = None) -> RunConfig:
         raise ConfigError(f"model.mass has {len(mass)} entries but model.nf = {nf}")
     values["mass"] = tuple(mass)
     values["shape"] = tuple(values["shape"])
+    if values["kind"] == "linear":
+        if values["group"] != "U":
+            raise ConfigError("model.kind = 'linear' needs model.group = 'U' (Phi is a general complex matrix)")
+        if values["kappa"] != 0:
+            raise ConfigError("model.kappa is the chiral model's anomaly coupling; the linear model's is model.c")
+        if values["kinetic"] < 0:
+            raise ConfigError(f"model.kinetic must be >= 0, got {values['kinetic']}")
+        msg = linear_stability(nf, values["mu2"], values["lambda1"], values["lambda2"], values["c"],
+                               values["lambda_s"], values["stab_power"])
+        if msg:
+            raise ConfigError(msg)
     _check_memory(values["shape"], nf)
     return RunConfig(**values)
+
+
+LINEAR_KEYS = ("kinetic", "mu2", "lambda1", "lambda2", "c", "lambda_s", "stab_power")
+
+
+def _quartic_det_min(nf, lambda1, lambda2, c):
+    """min over Tr(Phi^+ Phi) = 1 of lambda1 + lambda2 Tr((Phi^+Phi)^2) - 2|c| |det Phi| (nf = 4).
+
+    With w_i = sigma_i^2 (squared singular values, sum w = 1) the function is
+    f(w) = lambda1 + lambda2 sum w^2 - 2|c| prod sqrt(w) (the det phase can always be aligned
+    with e^{-i theta_a}).  On a face (some w = 0) the det vanishes; an interior stationary point
+    solves 2 lambda2 w_i^2 - mu w_i - |c| prod sqrt(w) = 0 (Lagrange), a quadratic in w_i, so w takes
+    at most two distinct values.  The minimum is therefore on one of the families
+    (a repeated k times, b = (1 - k a)/(4 - k)), k = 1..3, which include every face minimum too
+    (common practice, no source; derived here).  Evaluated on a fine grid of a.
+    """
+    best = lambda1 + lambda2 / nf - 2 * abs(c) * nf ** (-nf / 2)  # all w equal
+    for k in range(1, nf):
+        a = np.linspace(0.0, 1.0 / k, 20001)
+        b = np.clip((1.0 - k * a) / (nf - k), 0.0, None)
+        f = lambda1 + lambda2 * (k * a**2 + (nf - k) * b**2) - 2 * abs(c) * np.sqrt(a**k * b ** (nf - k))
+        best = min(best, float(f.min()))
+    return best
+
+
+def linear_stability(nf, mu2, lambda1, lambda2, c, lambda_s, p) -> str | None:
+    """None if the linear model's action is bounded below (and exp(-S) normalisable), else the error.
+
+    Write r^2 = Tr(Phi^+ Phi) = sum_i sigma_i^2 (singular values).  Then
+    Tr((Phi^+Phi)^2) = sum sigma^4 lies in [r^4/nf, r^4] and, by the AM-GM inequality,
+    |det Phi| = prod sigma <= (r^2/nf)^{nf/2}, with equality (and the phase of det free) when all
+    sigma are equal.  The kinetic term is >= 0 and vanishes on constant fields, so the condition
+    is on the one-site potential.  q_min = lambda1 + min(lambda2, lambda2/nf) is the quartic's
+    minimum on r = 1 (nf = 1: lambda1 + lambda2).  The source Re Tr(H Phi) is linear and never
+    decides.  Strict inequalities (marginal cases are rejected):
+
+    * lambda_s > 0 with 2p > max(4, nf): the stabiliser dominates every other term: bounded.
+    * nf = 1: the det term is linear: need q_min > 0, or lambda1 = lambda2 = 0 and mu2 > 0.
+    * nf = 2: the det term is quadratic, |2c Re(e^{i theta_a} det Phi)| <= |c| r^2 (sharp): need
+      q_min > 0, or lambda1 = lambda2 = 0 and mu2 > 2|c|.
+    * nf = 3: the det term is cubic (odd, takes both signs): need q_min > 0, or
+      lambda1 = lambda2 = c = 0 and mu2 > 0.
+    * nf = 4: the det term is quartic: need min over r = 1 of
+      lambda1 + lambda2 sum sigma^4 - 2|c| prod sigma > 0 (see :func:`_quartic_det_min`); for
+      lambda2 >= 0 this is lambda1 + lambda2/4 - |c|/8 > 0.  Or all of lambda1, lambda2, c zero and
+      mu2 > 0.
+    * nf >= 5: the det term (degree nf > 4) wins over the quartic along the equal-sigma direction:
+      c != 0 needs the stabiliser; with c = 0 as for nf = 3.
+    """
+    if lambda_s < 0:
+        return f"model.lambda_s must be >= 0, got {lambda_s}"
+    if lambda_s > 0:
+        if not 2 * p > max(4, nf):
+            return (f"model.stab_power = {p} does not stabilise: lambda_s (Tr Phi^+Phi)^p needs "
+                    f"2p > max(4, nf) = {max(4, nf)}")
+        return None
+    q_min = lambda1 + (lambda2 if nf == 1 else min(lambda2, lambda2 / nf))
+    gaussian = lambda1 == 0 and lambda2 == 0
+    pre = f"the linear model's action is unbounded below for nf = {nf}: "
+    if nf == 1:
+        if q_min > 0 or (gaussian and mu2 > 0):
+            return None
+        return pre + "need lambda1 + lambda2 > 0, or lambda1 = lambda2 = 0 and mu2 > 0"
+    if nf == 2:
+        if q_min > 0 or (gaussian and mu2 > 2 * abs(c)):
+            return None
+        return pre + "need lambda1 + min(lambda2, lambda2/2) > 0, or lambda1 = lambda2 = 0 and mu2 > 2|c|"
+    if nf == 4 and c != 0:
+        m = _quartic_det_min(nf, lambda1, lambda2, c)
+        if m > 0:
+            return None
+        return (pre + f"need min over Tr Phi^+Phi = 1 of lambda1 + lambda2 Tr((Phi^+Phi)^2) - 2|c| |det Phi| "
+                f"> 0 (lambda2 >= 0: lambda1 + lambda2/4 > |c|/8), it is {m:.4g}; or add model.lambda_s")
+    if nf >= 5 and c != 0:
+        return pre + "the det term (degree nf > 4) beats the quartic: set model.lambda_s > 0 with 2 stab_power > nf"
+    if q_min > 0 or (gaussian and c == 0 and mu2 > 0):
+        return None
+    return (pre + f"need lambda1 + min(lambda2, lambda2/{nf}) > 0, or lambda1 = lambda2 = c = 0 and mu2 > 0, "
+            "or model.lambda_s > 0")
 
 
 def field_bytes(shape, nf) -> int:

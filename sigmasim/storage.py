@@ -141,15 +141,40 @@ def _stored_config(f: h5py.File, path) -> RunConfig:
         raise RunFileError(f"{path} holds no valid config ({_one_line(exc)})") from None
 
 
+def record_kinds(cfg: RunConfig) -> tuple[dict, dict]:
+    """The model's records: (series name -> (kind, description), slice name -> (dtype, shape, description)).
+
+    The chiral model records :data:`chain.SERIES` and :data:`chain.SLICES`; the
+    linear model adds its radial terms (``sigmasim.linear.LINEAR_EXTRA``).
+    """
+    nf, t = cfg.nf, cfg.shape[0]
+    series = dict(SERIES)
+    slices = {"U": (np.complex128, (t, nf, nf), SLICES["U"][1]),
+              "det": (np.complex128, (t,), SLICES["det"][1])}
+    if getattr(cfg, "kind", "chiral") == "linear":
+        from sigmasim.linear import LINEAR_EXTRA
+
+        for name, (kind, desc) in LINEAR_EXTRA.items():
+            if name.startswith("slices/"):
+                slices[name[7:]] = (np.float64, (t,), desc)
+            else:
+                series[name] = (kind, desc)
+    return series, slices
+
+
+def _series_dtype(kind):
+    return np.dtype({"int": np.int64, "real": np.float64}.get(kind, np.complex128))
+
+
 def _layout(cfg: RunConfig) -> dict:
     """Every dataset of the run file: path -> (numpy dtype, shape per record or None for /state)."""
-    nf, t = cfg.nf, cfg.shape[0]
+    nf = cfg.nf
+    series, slices = record_kinds(cfg)
     out = {}
-    for name, (kind, _) in SERIES.items():
-        dtype = {"int": np.int64, "real": np.float64}.get(kind, np.complex128)
-        out[f"series/{name}"] = (np.dtype(dtype), (nf,) if kind == "complex_nf" else ())
-    for name in SLICES:
-        out[f"slices/{name}"] = (np.dtype(np.complex128), (t, nf, nf) if name == "U" else (t,))
+    for name, (kind, _) in series.items():
+        out[f"series/{name}"] = (_series_dtype(kind), (nf,) if kind == "complex_nf" else ())
+    for name, (dtype, shape, _) in slices.items():
+        out[f"slices/{name}"] = (np.dtype(dtype), shape)
     return out
 
 
@@ -265,30 +290,38 @@ class RunWriter:
             f.attrs["status"] = "running"
             f.attrs["n_meas"] = 0
             f.attrs["sweep"] = 0
-            f.attrs["conventions"] = (
-                "S = -beta sum_{x,mu} Re Tr(U_x^+ U_{x+mu}) - sum_x Re Tr(H U_x) "
-                "- kappa sum_x 2 Re(e^{i theta_a} det U_x), H = e^{i theta_m} diag(h), "
-                "theta = nf theta_m - theta_a; time is lattice direction 0"
-            )
+            if getattr(cfg, "kind", "chiral") == "linear":
+                f.attrs["conventions"] = (
+                    "S = sum_x [ (k/2) sum_mu Tr|Phi_{x+mu} - Phi_x|^2 + (mu2/2) Tr Phi^+Phi "
+                    "+ lambda1 (Tr Phi^+Phi)^2 + lambda2 Tr (Phi^+Phi)^2 + lambda_s (Tr Phi^+Phi)^p "
+                    "- c (e^{i theta_a} det Phi + c.c.) - Re Tr(H Phi) ], H = e^{i theta_m} diag(h), "
+                    "theta = nf theta_m - theta_a; time is lattice direction 0"
+                )
+            else:
+                f.attrs["conventions"] = (
+                    "S = -beta sum_{x,mu} Re Tr(U_x^+ U_{x+mu}) - sum_x Re Tr(H U_x) "
+                    "- kappa sum_x 2 Re(e^{i theta_a} det U_x), H = e^{i theta_m} diag(h), "
+                    "theta = nf theta_m - theta_a; time is lattice direction 0"
+                )
             p = f.create_group("provenance")
             for k, v in _provenance(cfg).items():
                 p.attrs[k] = v
             p.attrs["created"] = _now()
+            series, slices = record_kinds(cfg)
             s = f.create_group("series")
-            for name, (kind, desc) in SERIES.items():
-                dtype = {"int": np.int64, "real": np.float64}.get(kind, np.complex128)
+            for name, (kind, desc) in series.items():
                 shape = (0, nf) if kind == "complex_nf" else (0,)
-                d = s.create_dataset(name, shape=shape, maxshape=(None,) + shape[1:], dtype=dtype,
-                                     chunks=(1024,) + shape[1:])
+                d = s.create_dataset(name, shape=shape, maxshape=(None,) + shape[1:],
+                                     dtype=_series_dtype(kind), chunks=(1024,) + shape[1:])
                 d.attrs["description"] = desc
             g = f.create_group("slices")
-            for name, (shape_doc, desc) in SLICES.items():
-                shape = (0, t, nf, nf) if name == "U" else (0, t)
-                chunk = (max(1, 4096 // (t * nf * nf)),) + shape[1:]
-                d = g.create_dataset(name, shape=shape, maxshape=(None,) + shape[1:],
-                                     dtype=np.complex128, chunks=chunk)
+            for name, (dtype, per_record, desc) in slices.items():
+                shape = (0,) + per_record
+                chunk = (max(1, 4096 // int(np.prod(per_record))),) + per_record
+                d = g.create_dataset(name, shape=shape, maxshape=(None,) + per_record,
+                                     dtype=dtype, chunks=chunk)
                 d.attrs["description"] = desc
-                d.attrs["shape_per_record"] = shape_doc
+                d.attrs["shape_per_record"] = str(per_record)
             f.create_group("state")
             self._write_state(f, sim)
             f.flush()
@@ -318,11 +351,12 @@ class RunWriter:
                 recs = self.buffer
                 n_new = n_old + len(recs)
                 if recs:
-                    for name in SERIES:
+                    series, slices = record_kinds(self.config)
+                    for name in series:
                         d = f["series"][name]
                         d.resize(n_new, axis=0)
                         d[n_old:n_new] = np.array([r[name] for r in recs])
-                    for name in SLICES:
+                    for name in slices:
                         d = f["slices"][name]
                         d.resize(n_new, axis=0)
                         d[n_old:n_new] = np.stack([r["slices/" + name] for r in recs])

@@ -105,6 +105,9 @@ MIN_FIT_BINS = 20
 #: series whose thermalisation cut is tested (the largest cut is applied)
 THERM_SERIES = ("action", "omega_h.re", "abs_omega")
 #: series shown in the text table (all are in JSON/CSV)
+# radial observables of the linear model, shown when present
+LINEAR_TABLE_SERIES = ("phi2", "action_kinetic", "action_mu2", "action_lambda1", "action_lambda2",
+                       "action_stab")
 TABLE_SERIES = ("action", "action_beta", "action_mass", "action_det", "omega_h.re", "omega_h.im",
                 "abs_omega", "det.re", "det.im")
 
@@ -189,7 +192,11 @@ def run_label(config, name: str | None = None) -> str:
     h = c.mass[0] if len(set(c.mass)) == 1 else "[" + ",".join(f"{m:g}" for m in c.mass) + "]"
     lat = "x".join(str(n) for n in c.shape)
     nm = f"{name}: " if name else ""
-    return (f"{nm}{c.group}({c.nf}) beta={c.beta:g} h={h if isinstance(h, str) else f'{h:g}'} "
+    hs = h if isinstance(h, str) else f"{h:g}"
+    if getattr(c, "kind", "chiral") == "linear":
+        return (f"{nm}linear {c.nf}x{c.nf} mu2={c.mu2:g} lambda1={c.lambda1:g} lambda2={c.lambda2:g} "
+                f"c={c.c:g} h={hs} theta={c.theta:.4g} lattice {lat}")
+    return (f"{nm}{c.group}({c.nf}) beta={c.beta:g} h={hs} "
             f"kappa={c.kappa:g} theta={c.theta:.4g} lattice {lat}")
 
 
@@ -360,7 +367,8 @@ def analyze_data(series: dict, slices: dict, config, *, status: str = "complete"
     ra.acceptance = {
         "metropolis": acc_m.mean if acc_m and math.isfinite(acc_m.mean) else None,
         "phase": acc_p.mean if acc_p and math.isfinite(acc_p.mean) else None,
-        "max_unitarity_drift": float(np.nanmax(drift)) if drift is not None and drift.size else None,
+        "max_unitarity_drift": (float(np.nanmax(drift))
+                                if drift is not None and np.isfinite(drift).any() else None),
     }
     if not masses:
         return ra
@@ -443,6 +451,7 @@ def format_table(analyses) -> str:
             head = f"{'observable':<22}{'mean(err)':>22}{'tau_int':>16}{'N_indep':>10}  note"
             lines += [head, "-" * len(head)]
             names = [k for k in TABLE_SERIES if k in ra.series]
+            names += [k for k in LINEAR_TABLE_SERIES if k in ra.series]
             names += [k for k in ra.series if k.startswith("condensate")]
             for k in names:
                 s = ra.series[k]

@@ -1,0 +1,241 @@
+"""The linear sigma model on the chain engine: :class:`LinearSimulation`.
+
+Field: general complex nf x nf matrices Phi_x (same layout as the chiral field).  Action
+
+.. math::
+
+    S = \\sum_x \\Big[ \\frac{k}{2}\\sum_\\mu \\mathrm{Tr}\\big((\\Phi_{x+\\mu}-\\Phi_x)^\\dagger
+        (\\Phi_{x+\\mu}-\\Phi_x)\\big) + \\frac{\\mu^2}{2}\\mathrm{Tr}\\,\\Phi_x^\\dagger\\Phi_x
+        + \\lambda_1 (\\mathrm{Tr}\\,\\Phi_x^\\dagger\\Phi_x)^2
+        + \\lambda_2 \\mathrm{Tr}\\big((\\Phi_x^\\dagger\\Phi_x)^2\\big)
+        + \\lambda_s (\\mathrm{Tr}\\,\\Phi_x^\\dagger\\Phi_x)^p
+        - c\\,(e^{i\\theta_a}\\det\\Phi_x + \\mathrm{c.c.}) - \\mathrm{Re}\\,\\mathrm{Tr}(H\\Phi_x) \\Big],
+
+``k = model.kinetic`` (default 1), ``H = e^{i theta_m} diag(h_f)``, ``theta = nf theta_m - theta_a``
+(placement as for the chiral model).  Each of the 2 nf^2 real components of Phi has, at
+lambda = c = h = 0 and k = 1, the free action sum_x [1/2 sum_mu (dx)^2 + mu2/2 x^2].
+
+Records: every key of :data:`chain.SERIES`/:data:`chain.SLICES` (so the run file is the same),
+with these meanings for the linear model
+
+* ``action_beta``: the kinetic term per site (also ``action_kinetic``);
+* ``action_mass``: -sum Re Tr(H Phi)/V;  ``action_det``: -2c sum Re(e^{i theta_a} det Phi)/V;
+* ``omega`` = sum Tr Phi/(nf V), ``omega_h``, ``condensate``, ``det`` as for U (now of Phi);
+* ``accept_metropolis``: the Metropolis acceptance; ``accept_phase``: the acceptance of the
+  heatbath and overrelaxation accept/reject steps; ``unitarity_drift``: NaN;
+
+plus keys only in the in-memory records (``simulate``/``MemorySink``; the run-file writer
+writes the chain.SERIES keys only): ``action_kinetic``, ``action_mu2``, ``action_lambda1``,
+``action_lambda2``, ``action_stab`` (per site), ``phi2`` = sum_x Tr(Phi^+Phi)/V (its
+susceptibility is V * variance of phi2), ``slices/phi2`` (T,) float per-time-slice sums of
+Tr(Phi^+Phi) (sigma-like radial correlators; ``slices/U`` holds the sums of Phi, from which
+Re Tr(T_a Phi) follows).
+
+Heatbath/overrelaxation proposal precision: P = 2 d k + mu2 when mu2 > 0 (the exact Gaussian part),
+else P = 2 d k + ``updates.proposal_mu2`` (> 0) with the difference (mu2 - proposal_mu2)/2
+Tr(Phi^+Phi) moved into the accept step (exact either way; only the acceptance changes).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from sigmasim.chain import ChainState, Simulation
+from sigmasim.config import RunConfig
+from sigmasim.errors import NumericalError
+from sigmasim.kernels.linear import heatbath_linear, metropolis_linear, overrelax_linear, slice_sums_linear
+from sigmasim.kernels.measure import field_is_finite
+from sigmasim.rng import step_key
+
+__all__ = ["LinearSimulation", "LINEAR_EXTRA", "tree_level_potential", "tree_level_minimum"]
+
+# record keys of the linear model that are not in chain.SERIES / SLICES (in-memory records only)
+LINEAR_EXTRA = {
+    "action_kinetic": ("real", "kinetic term per site, k sum_{x,mu} Tr|Phi_{x+mu} - Phi_x|^2 / (2 V)"),
+    "action_mu2": ("real", "(mu2/2) sum_x Tr(Phi^+Phi) / V"),
+    "action_lambda1": ("real", "lambda1 sum_x (Tr Phi^+Phi)^2 / V"),
+    "action_lambda2": ("real", "lambda2 sum_x Tr((Phi^+Phi)^2) / V"),
+    "action_stab": ("real", "lambda_s sum_x (Tr Phi^+Phi)^p / V"),
+    "phi2": ("real", "sum_x Tr(Phi^+Phi) / V; susceptibility V * var(phi2)"),
+    "slices/phi2": ("(T,) real", "sum over the sites of time slice t of Tr(Phi^+Phi)"),
+}
+
+_STEP_MAX = 1e3  # Metropolis box half-width cap (the chiral model caps its angle at pi)
+
+
+class LinearSimulation(Simulation):
+    """A chain of the linear sigma model; same interface as :class:`chain.Simulation`."""
+
+    def __init__(self, config: RunConfig, state: ChainState | None = None):
+        if config.kind != "linear":
+            raise ValueError("LinearSimulation needs model.kind = 'linear'")
+        super().__init__(config, state)
+        t = config.shape[0]
+        self._lbuf = tuple(np.empty(t) for _ in range(6))
+
+    # couplings -----------------------------------------------------------
+    def _couplings(self):
+        cfg = self.config
+        d = len(cfg.shape)
+        ptrue = 2.0 * d * cfg.kinetic + cfg.mu2
+        # mu2 <= 0: the Gaussian part's mean kinetic N / P runs away from the field (P small, or
+        # not positive); propose with the positive reference mass proposal_mu2 instead
+        pref = ptrue if cfg.mu2 > 0 else 2.0 * d * cfg.kinetic + cfg.proposal_mu2
+        c2 = 2.0 * cfg.c * cfg.eta
+        return ptrue, pref, c2
+
+    def _apply(self, name: str) -> tuple[int, int]:
+        st, cfg, lat = self.state, self.config, self.lattice
+        nf = cfg.nf
+        ptrue, pref, c2 = self._couplings()
+        lam1, lam2, lams, p = cfg.lambda1, cfg.lambda2, cfg.lambda_s, cfg.stab_power
+        acc = 0
+        tried = 0
+        re, im, nbr = st.re, st.im, lat.neighbours
+        for colour in (0, 1):
+            start = colour * lat.half
+            stop = start + lat.half
+            key = step_key(cfg.seed, st.step)
+            if name == "metropolis":
+                acc += metropolis_linear(re, im, nbr, start, stop, nf, cfg.kinetic, ptrue, self.hdiag, lam1,
+                                         lam2, lams, p, c2.real, c2.imag, st.step_size, cfg.metropolis_hits,
+                                         key, self.blocks)
+                tried += lat.half * cfg.metropolis_hits
+            elif name == "heatbath":
+                acc += heatbath_linear(re, im, nbr, start, stop, nf, cfg.kinetic, pref, ptrue - pref,
+                                       self.hdiag, lam1, lam2, lams, p, c2.real, c2.imag, key, self.blocks)
+                tried += lat.half
+            elif name == "overrelax":
+                acc += overrelax_linear(re, im, nbr, start, stop, nf, cfg.kinetic, pref, ptrue - pref,
+                                        self.hdiag, lam1, lam2, lams, p, c2.real, c2.imag, key, self.blocks)
+                tried += lat.half
+            else:  # pragma: no cover - config validation rejects it
+                raise ValueError(name)
+            st.step += 1
+        return int(acc), int(tried)
+
+    def sweep(self) -> None:
+        """One sweep of the schedule, then Metropolis tuning when due (no re-unitarisation)."""
+        st, cfg = self.state, self.config
+        for name, repeat in cfg.schedule:
+            for _ in range(repeat):
+                acc, tried = self._apply(name)
+                k = 0 if name == "metropolis" else 1
+                st.win_acc[k] += acc
+                st.win_tried[k] += tried
+                if k == 0:
+                    st.tune_acc += acc
+                    st.tune_tried += tried
+        st.sweep += 1
+        if st.sweep <= cfg.thermalize and self.uses_metropolis and st.sweep % cfg.tune_every == 0:
+            self._tune()
+
+    def _tune(self) -> None:
+        st = self.state
+        if st.tune_tried:
+            rate = st.tune_acc / st.tune_tried
+            factor = min(2.0, max(0.5, math.exp(2.0 * (rate - self.config.target_acceptance))))
+            st.step_size = min(_STEP_MAX, st.step_size * factor)
+        st.tune_acc = 0
+        st.tune_tried = 0
+
+    def measure(self) -> dict:
+        """Measure the current configuration; one record (chain.SERIES/SLICES keys + LINEAR_EXTRA)."""
+        st, cfg, lat = self.state, self.config, self.lattice
+        _, _, umat, dets = self._buf
+        kin, phi2, q1, q2, stab, mass = self._lbuf
+        slice_sums_linear(st.re, st.im, lat.neighbours, lat.slice_sites, cfg.nf, self.hdiag, cfg.stab_power,
+                          kin, phi2, q1, q2, stab, mass, umat, dets)
+        v = lat.volume
+        nf = cfg.nf
+        utot = umat.sum(axis=0).reshape(nf, nf)
+        dtot = dets.sum()
+        a_kin = 0.5 * cfg.kinetic * kin.sum() / v
+        a_mu2 = 0.5 * cfg.mu2 * phi2.sum() / v
+        a_l1 = cfg.lambda1 * q1.sum() / v
+        a_l2 = cfg.lambda2 * q2.sum() / v
+        a_stab = cfg.lambda_s * stab.sum() / v
+        a_mass = -mass.sum() / v
+        a_det = -2.0 * cfg.c * (cfg.eta * dtot).real / v
+        action = a_kin + a_mu2 + a_l1 + a_l2 + a_stab + a_mass + a_det
+        if not math.isfinite(action):
+            site = field_is_finite(st.re, st.im)
+            where = f" at site {site}" if site >= 0 else ""
+            raise NumericalError(f"non-finite action at sweep {st.sweep}{where}")
+        rates = np.where(st.win_tried > 0, st.win_acc / np.maximum(st.win_tried, 1), np.nan)
+        trace = np.trace(utot)
+        rec = {
+            "sweep": st.sweep,
+            "action": action,
+            "action_beta": a_kin,
+            "action_mass": a_mass,
+            "action_det": a_det,
+            "omega": trace / (nf * v),
+            "omega_h": np.exp(1j * cfg.theta_angles[0]) * trace / (nf * v),
+            "condensate": np.diagonal(utot).copy() / v,
+            "det": dtot / v,
+            "accept_metropolis": float(rates[0]),
+            "accept_phase": float(rates[1]),
+            "unitarity_drift": math.nan,
+            "slices/U": umat.reshape(-1, nf, nf).copy(),
+            "slices/det": dets.copy(),
+            "action_kinetic": a_kin,
+            "action_mu2": a_mu2,
+            "action_lambda1": a_l1,
+            "action_lambda2": a_l2,
+            "action_stab": a_stab,
+            "phi2": phi2.sum() / v,
+            "slices/phi2": phi2.copy(),
+        }
+        st.win_acc[:] = 0
+        st.win_tried[:] = 0
+        st.win_drift = 0.0
+        st.n_meas += 1
+        return rec
+
+
+def tree_level_potential(config: RunConfig, phi) -> float:
+    """Action per site of the constant field Phi_x = ``phi`` (complex (nf, nf)); kinetic term zero.
+
+    Plain numpy, independent of the kernels (the tests compare the two).
+    """
+    phi = np.asarray(phi, dtype=np.complex128).reshape(config.nf, config.nf)
+    m = phi.conj().T @ phi
+    r2 = float(np.trace(m).real)
+    h = np.diag(config.hdiag)
+    return (0.5 * config.mu2 * r2 + config.lambda1 * r2**2 + config.lambda2 * float(np.sum(np.abs(m) ** 2))
+            + config.lambda_s * r2**config.stab_power
+            - 2.0 * config.c * (config.eta * np.linalg.det(phi)).real - float(np.trace(h @ phi).real))
+
+
+def tree_level_minimum(config: RunConfig, n_random: int = 8, seed: int = 0):
+    """Global minimum of :func:`tree_level_potential` over complex nf x nf matrices (scipy BFGS).
+
+    Starts: v e^{i (2 pi k - theta_a)/nf} 1 for k = 0..nf-1 and v in (0.5, 1, 2), plus ``n_random``
+    Gaussian matrices.  Returns ``(phi, value)``.  A multi-start local search, not a proof.
+    """
+    from scipy import optimize
+
+    nf = config.nf
+    _, theta_a = config.theta_angles
+
+    def f(x):
+        return tree_level_potential(config, (x[: nf * nf] + 1j * x[nf * nf:]).reshape(nf, nf))
+
+    starts = []
+    for k in range(nf):
+        for v in (0.5, 1.0, 2.0):
+            z = v * np.exp(1j * (2 * np.pi * k - theta_a) / nf) * np.eye(nf)
+            starts.append(z)
+    rng = np.random.default_rng(seed)
+    starts += [rng.normal(size=(nf, nf)) + 1j * rng.normal(size=(nf, nf)) for _ in range(n_random)]
+    best = None
+    for z in starts:
+        x0 = np.concatenate([z.real.ravel(), z.imag.ravel()])
+        res = optimize.minimize(f, x0, method="BFGS", options={"gtol": 1e-10, "maxiter": 10000})
+        if best is None or res.fun < best.fun:
+            best = res
+    x = best.x
+    return (x[: nf * nf] + 1j * x[nf * nf:]).reshape(nf, nf), float(best.fun)
