@@ -21,7 +21,7 @@ from sigmasim.analysis.gamma import gamma_analysis
 from sigmasim.chain import simulate
 from sigmasim.config import config_from_dict
 
-__all__ = ["Check", "zero_dim", "u1_chain", "o4_ratio", "SCHEDULES", "quick_checks", "thorough_checks",
+__all__ = ["Check", "zero_dim", "u1_chain", "o4_ratio", "free_field", "SCHEDULES", "quick_checks", "thorough_checks",
            "format_table"]
 
 SCHEDULES = {
@@ -32,6 +32,7 @@ SCHEDULES = {
 SOURCE_ZERO_D = ("Leutwyler & Smilga, PRD 46 (1992) 5607; Brower, Rossi & Tan, PRD 23 (1981) 942; "
                  "Bessel generating function for the det term")
 SOURCE_CHAIN = "transfer matrix in the charge basis (common practice, no source)"
+SOURCE_FREE = "free lattice propagator sum_p cos(p t)/(m^2 + 4 sin^2(p/2))/T (standard result)"
 SOURCE_O4 = "Deng, PRE 73 (2006) 056116 (K_c); Q* of the 3d O(4) class"
 
 
@@ -132,6 +133,35 @@ def u1_chain(n_sites=10, beta=0.8, h=0.5, kappa=0.3, theta=1.2, placement="split
     return out
 
 
+def free_field(nf=2, mu2=0.5, shape=(8, 4, 4), n_meas=3000, seed=14) -> list[Check]:
+    """Linear model with lambda = c = h = 0: every real component of Phi is a free field of mass^2 mu2.
+
+    Compares the zero-momentum correlator C(t) = (1/V_s) <S(0) S(t)> of the real components
+    (S(t) their time-slice sums, averaged over components and source times) at every
+    t <= T/2, and <Tr Phi^dagger Phi> = 2 nf^2 <x^2>, with the exact lattice propagator.
+    """
+    cfg = config_from_dict({
+        "name": "validate", "seed": seed, "lattice": {"shape": list(shape)},
+        "model": {"kind": "linear", "nf": nf, "mu2": mu2, "mass": 0.0},
+        "updates": {"schedule": [{"update": "heatbath"}, {"update": "overrelax"}]},
+        "run": {"thermalize": 50, "measurements": n_meas, "start": "hot"},
+    })
+    data = simulate(cfg)
+    n, t_ext = len(data["sweep"]), shape[0]
+    s = data["slices/U"].reshape(n, t_ext, nf * nf)
+    comps = np.concatenate([s.real, s.imag], axis=2)
+    vs = int(np.prod(shape[1:]))
+    ref = exact.free_scalar_correlator(shape, mu2)
+    label = f"linear nf={nf} free field mu2={mu2} {'x'.join(map(str, shape))}"
+    out = []
+    for t in range(t_ext // 2 + 1):
+        y = (comps * np.roll(comps, -t, axis=1)).mean(axis=(1, 2)) / vs
+        out.append(_compare(f"{label}: C({t})", SOURCE_FREE, ref[t], y))
+    out.append(_compare(f"{label}: <Tr Phi^+ Phi>", SOURCE_FREE,
+                        2 * nf * nf * exact.free_scalar_phi2(shape, mu2), data["phi2"]))
+    return out
+
+
 def o4_ratio(sizes=(8, 12), n_meas=4000, seed=13, tolerance=4.0) -> list[Check]:
     """SU(2) with h = kappa = 0 is the O(4) model with K = 2 beta.
 
@@ -167,6 +197,7 @@ def quick_checks() -> list[Check]:
         out += zero_dim(3, -0.6, 0.9, 3.0, algorithm=algorithm, placement="mass")
         out += zero_dim(2, 1.3, 0.0, 1.0, group="SU", algorithm=algorithm)
     out += u1_chain(algorithm="heatbath")
+    out += free_field()
     return out
 
 

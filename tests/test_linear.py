@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy import integrate
 
-from sigmasim import exact
+from sigmasim import exact, validation
 from sigmasim.analysis.gamma import gamma_analysis
 from sigmasim.chain import Interrupted, make_simulation, run_chain, simulate
 from sigmasim.config import _quartic_det_min, config_from_dict
@@ -37,23 +37,15 @@ def _within(samples, exact_value, n_sigma=4.0):
 # ---------------------------------------------------------------------------------------------
 # (1) free field: every real component is a free scalar of mass^2 = mu2
 def test_free_field_correlator_and_phi2():
-    nf, mu2, shape = 2, 0.5, (8, 4, 4)
-    cfg = _cfg(shape=shape, nf=nf, mu2=mu2, schedule=[{"update": "heatbath"}, {"update": "overrelax"}],
-               run={"thermalize": 50, "measurements": 3000})
+    # the check lives in sigmasim.validation (shared with 'sigmasim validate')
+    checks = validation.free_field()
+    bad = [c for c in checks if not c.passed]
+    assert not bad, validation.format_table(bad)
+    cfg = _cfg(shape=(4, 4), nf=2, mu2=0.5, schedule=[{"update": "heatbath"}, {"update": "overrelax"}],
+               run={"thermalize": 5, "measurements": 20})
     r = simulate(cfg)
     assert np.all(r["accept_phase"] == 1.0)  # the Gaussian proposal is the exact conditional
-    # C(t) = (1/V_s) <S(0) S(t)>, S(t) = slice sum of one real component (exact.free_scalar_correlator)
-    s = r["slices/U"].reshape(len(r["sweep"]), shape[0], nf * nf)
-    comps = np.concatenate([s.real, s.imag], axis=2)  # (n, T, 2 nf^2) real slice sums
-    vs = np.prod(shape[1:])
-    ref = exact.free_scalar_correlator(shape, mu2)
-    for t in range(shape[0] // 2 + 1):
-        y = (comps * np.roll(comps, -t, axis=1)).mean(axis=(1, 2)) / vs
-        _within(y, ref[t])
-    # <Tr Phi^+ Phi> = 2 nf^2 <x^2> (exact.free_scalar_phi2)
-    _within(r["phi2"], 2 * nf * nf * exact.free_scalar_phi2(shape, mu2))
-    # the action terms are consistent with phi2
-    np.testing.assert_allclose(r["action_mu2"], 0.5 * mu2 * r["phi2"])
+    np.testing.assert_allclose(r["action_mu2"], 0.5 * 0.5 * r["phi2"])
     assert np.all(np.isnan(r["unitarity_drift"]))
 
 
