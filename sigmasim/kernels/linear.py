@@ -18,8 +18,18 @@ component.
 Algorithms (all exact for exp(-S); each site owns the counters ``site * SITE_STRIDE + draw``)
 ----------------------------------------------------------------------------------------------
 metropolis
-    every real component shifted by ``eps * (2u - 1)`` (symmetric box), ``nhits`` hits per
-    visit reusing B, accepted with exp(-dS_x) (here P = 2 d kinetic + mu2, m2x = 0).
+    every hit is two Metropolis steps: (a) every real component shifted by ``eps * (2u - 1)``
+    (symmetric box), accepted with exp(-dS_x) (here P = 2 d kinetic + mu2, m2x = 0); (b) a
+    rotation Phi' = R Phi, R = exp(i Y), Y = a0 1 + sum_k a_k sigma_k in a random flavour
+    pair (i, j) (nf = 1: the phase e^{i a0} alone), a0, a_k uniform in [-w, w].  R is unitary,
+    so Tr Phi^+Phi, Tr (Phi^+Phi)^2 and |det Phi| are unchanged and only the linear terms and
+    the det phase change: dS = -Re Tr(B^+ (R - 1) Phi) - Re(c2 det Phi (e^{i nf a0} - 1)).
+    Y -> -Y maps R to R^-1 with the same probability, and the width
+    w = min(pi, 1 / sqrt(|B| |Phi| + |c2| |det Phi| + 1e-300)) depends only on quantities
+    R leaves unchanged (|B| the Frobenius norm of the neighbour/source term), so the proposal
+    is symmetric and (b) is exact.  (b) moves the angular modes at large lambda, where the box
+    step is pinned to the narrow radial width.  ``nhits`` hits per visit reuse B.  The count
+    returned is the accepted box steps (the ones the step tuning targets).
 heatbath
     independence Metropolis-Hastings: Phi' drawn exactly from the Gaussian (Box-Muller from
     counter uniforms), accepted with exp(-(V(Phi') - V(Phi))) (the Gaussian factors cancel
@@ -134,6 +144,10 @@ def metropolis_linear(re, im, nbr, start, stop, nf, kin, prec, hdiag, lam1, lam2
                 pim[c] = im[c, s]
             sold = _gauss_part(pr, pim, br, bi, nc, prec) + potential(
                 pr, pim, nf, 0.0, lam1, lam2, lams, p, c2r, c2i, F, work)
+            bnorm = 0.0
+            for c in range(nc):
+                bnorm += br[c] * br[c] + bi[c] * bi[c]
+            bnorm = np.sqrt(bnorm)
             n = np.uint64(s) * SITE_STRIDE
             for hit in range(nhits):
                 for c in range(nc):
@@ -151,11 +165,88 @@ def metropolis_linear(re, im, nbr, start, stop, nf, kin, prec, hdiag, lam1, lam2
                         pim[c] = qi[c]
                     sold = snew
                     na += 1
+                # (b) rotation Phi -> R Phi (module docstring)
+                ds, n = _rotation(pr, pim, qr, qi, br, bi, nf, bnorm, c2r, c2i, key, n, F, work)
+                u = uniform(key, n)
+                n += _ONE
+                if ds <= 0.0 or u < np.exp(-ds):
+                    for c in range(nc):
+                        pr[c] = qr[c]
+                        pim[c] = qi[c]
+                    sold += ds
             for c in range(nc):
                 re[c, s] = pr[c]
                 im[c, s] = pim[c]
         acc[blk] = na
     return acc.sum()
+
+
+@njit(cache=True)
+def _rotation(pr, pi, qr, qi, br, bi, nf, bnorm, c2r, c2i, key, n, F, work):
+    """Proposal Phi' = R Phi of the rotation step into ``qr, qi``; returns (dS, next counter).
+
+    Uses 5 counters from ``n`` (pair, a0, a1..a3).
+    """
+    nc = nf * nf
+    r2 = 0.0
+    for c in range(nc):
+        r2 += pr[c] * pr[c] + pi[c] * pi[c]
+    dabs = 0.0
+    dcur = complex(0.0, 0.0)
+    if c2r != 0.0 or c2i != 0.0:
+        for a in range(nf):
+            for b in range(nf):
+                F[a, b] = complex(pr[a * nf + b], pi[a * nf + b])
+        dcur = det(F, nf, work)
+        dabs = abs(dcur)
+    c2abs = np.sqrt(c2r * c2r + c2i * c2i)
+    w = 1.0 / np.sqrt(bnorm * np.sqrt(r2) + c2abs * dabs + 1e-300)
+    if w > np.pi:
+        w = np.pi
+    a0 = w * (2.0 * uniform(key, n + _ONE) - 1.0)
+    ph = complex(np.cos(a0), np.sin(a0))
+    for c in range(nc):
+        z = ph * complex(pr[c], pi[c])
+        qr[c] = z.real
+        qi[c] = z.imag
+    if nf >= 2:
+        npair = nf * (nf - 1) // 2
+        kp = int(uniform(key, n) * npair)
+        if kp >= npair:
+            kp = npair - 1
+        # pair index kp -> (i, j), i < j
+        i = 0
+        rem = kp
+        while rem >= nf - 1 - i:
+            rem -= nf - 1 - i
+            i += 1
+        j = i + 1 + rem
+        x1 = w * (2.0 * uniform(key, n + _TWO) - 1.0)
+        x2 = w * (2.0 * uniform(key, n + np.uint64(3)) - 1.0)
+        x3 = w * (2.0 * uniform(key, n + np.uint64(4)) - 1.0)
+        al = np.sqrt(x1 * x1 + x2 * x2 + x3 * x3)
+        # exp(i a.sigma) = cos|a| + i sin|a| (a.sigma)/|a| = [[p, q], [-conj(q), conj(p)]]
+        cs = np.cos(al)
+        sn = np.sin(al) / al if al > 0.0 else 1.0
+        p = complex(cs, sn * x3)
+        q = complex(sn * x2, sn * x1)  # i (x1 sigma_1 + x2 sigma_2)_{01} = i x1 + x2
+        for b in range(nf):
+            zi = complex(qr[i * nf + b], qi[i * nf + b])
+            zj = complex(qr[j * nf + b], qi[j * nf + b])
+            ni = p * zi + q * zj
+            nj = -q.conjugate() * zi + p.conjugate() * zj
+            qr[i * nf + b] = ni.real
+            qi[i * nf + b] = ni.imag
+            qr[j * nf + b] = nj.real
+            qi[j * nf + b] = nj.imag
+    ds = 0.0
+    for c in range(nc):
+        ds -= br[c] * (qr[c] - pr[c]) + bi[c] * (qi[c] - pi[c])
+    if c2r != 0.0 or c2i != 0.0:
+        e = complex(np.cos(nf * a0), np.sin(nf * a0)) - 1.0
+        dd = dcur * e
+        ds -= c2r * dd.real - c2i * dd.imag
+    return ds, n + np.uint64(5)
 
 
 @njit(cache=True, parallel=True)
