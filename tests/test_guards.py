@@ -358,3 +358,49 @@ def test_full_disk_when_creating_the_file(tmp_path, capsys, monkeypatch):
     _one_line(err)
     assert "No space left on device" in err
     assert not [p for p in (tmp_path / "out").rglob("*") if p.is_file()]
+
+
+# ---------------------------------------------------------------------------------------------
+# the local action change of the kernels equals the difference of full actions (every term)
+@pytest.mark.parametrize("nf", range(1, 9))
+@pytest.mark.parametrize("group", ["U", "SU"])
+def test_local_action_change_equals_full_difference(nf, group):
+    from scipy.stats import unitary_group
+
+    from sigmasim.chain import Simulation
+    from sigmasim.config import config_from_dict
+    from sigmasim.kernels.general import site_action_change
+
+    if group == "SU" and nf == 1:
+        pytest.skip("SU needs nf >= 2")
+    rng = np.random.default_rng(100 + nf)
+    cfg = config_from_dict({
+        "lattice": {"shape": [4, 2, 4]},
+        "model": {"nf": nf, "group": group, "beta": 0.7, "mass": list(rng.normal(size=nf)),
+                  "kappa": 0.9, "theta": 2.3, "theta_placement": "split"},
+        "run": {"start": "hot"}, "seed": nf,
+    })
+    sim = Simulation(cfg)
+    st, lat = sim.state, sim.lattice
+
+    def full_action():
+        u = (st.re + 1j * st.im).T.reshape(-1, nf, nf)
+        link = sum(np.einsum("xab,xab->", u.conj(), u[lat.neighbours[2 * mu]]).real
+                   for mu in range(lat.ndim))
+        mass = np.einsum("f,xff->", sim.hdiag, u).real
+        return -cfg.beta * link - mass - 2 * cfg.kappa * (cfg.eta * np.linalg.det(u).sum()).real
+
+    for s in rng.choice(lat.volume, size=5, replace=False):
+        r = unitary_group.rvs(nf, random_state=rng) if nf > 1 else np.exp(1j * rng.uniform(0, 6.3, (1, 1)))
+        if group == "SU":
+            r = r / np.linalg.det(r) ** (1 / nf)
+        local = site_action_change(st.re, st.im, lat.neighbours, s, nf, cfg.beta, sim.hdiag, cfg.kappa,
+                                   cfg.eta, np.ascontiguousarray(r))
+        before = full_action()
+        u = (st.re[:, s] + 1j * st.im[:, s]).reshape(nf, nf)
+        new = (r @ u).ravel()
+        old_re, old_im = st.re[:, s].copy(), st.im[:, s].copy()
+        st.re[:, s], st.im[:, s] = new.real, new.imag
+        after = full_action()
+        st.re[:, s], st.im[:, s] = old_re, old_im
+        assert abs(local - (after - before)) < 1e-10 * max(1.0, abs(before))

@@ -41,7 +41,8 @@ from numba import njit, prange
 from sigmasim.kernels.group import det, load, sample_su2_x0, store, von_mises_angle
 from sigmasim.rng import SITE_STRIDE, bits, uniform
 
-__all__ = ["metropolis", "heatbath", "overrelax", "local_field"]
+__all__ = ["metropolis", "heatbath", "overrelax", "local_field", "rotation_action_change",
+           "site_action_change"]
 
 _ONE = np.uint64(1)
 
@@ -90,6 +91,34 @@ def _rotate_rows(M, i, j, r00, r01, r10, r11, nf):
         M[j, b] = r10 * x + r11 * y
 
 
+@njit(cache=True, inline="always")
+def rotation_action_change(W, trw, R, det_r, d, nf, kappa, eta):
+    """S(R U) - S(U) for the site whose W = U A (``trw`` = Re Tr W, ``d`` = det U).
+
+    Returns ``(dS, det(R U))``.  -Re Tr(A R U) = -Re Tr(R W) and det(R U) = det R det U.
+    """
+    trnew = 0.0
+    for a in range(nf):
+        for c in range(nf):
+            trnew += (R[a, c] * W[c, a]).real
+    dnew = det_r * d
+    return -(trnew - trw) - 2.0 * kappa * (eta * (dnew - d)).real, dnew
+
+
+@njit(cache=True)
+def site_action_change(re, im, nbr, s, nf, beta, hdiag, kappa, eta, R):
+    """S(R U_s) - S(U_s) as the Metropolis kernel computes it (for tests of the local action)."""
+    U = np.empty((nf, nf), dtype=np.complex128)
+    A = np.empty((nf, nf), dtype=np.complex128)
+    W = np.empty((nf, nf), dtype=np.complex128)
+    work = np.empty((nf, nf), dtype=np.complex128)
+    load(re, im, s, nf, U)
+    local_field(re, im, nbr, s, nf, beta, hdiag, A)
+    _matmul(U, A, nf, W)
+    return rotation_action_change(W, _retrace(W, nf), R, det(R, nf, work), det(U, nf, work), nf,
+                                  kappa, eta)[0]
+
+
 @njit(cache=True, parallel=True)
 def metropolis(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, table, tdet, nhits, key,
                nblocks):
@@ -118,12 +147,7 @@ def metropolis(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, table, tde
                 u = uniform(key, n + _ONE)
                 n += np.uint64(2)
                 R = table[idx]
-                trnew = 0.0
-                for a in range(nf):
-                    for c in range(nf):
-                        trnew += (R[a, c] * W[c, a]).real
-                dnew = tdet[idx] * d
-                dS = -(trnew - trw) - 2.0 * kappa * (eta * (dnew - d)).real
+                dS, dnew = rotation_action_change(W, trw, R, tdet[idx], d, nf, kappa, eta)
                 if dS <= 0.0 or u < np.exp(-dS):
                     _matmul(R, U, nf, T)
                     U[:, :] = T
