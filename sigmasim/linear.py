@@ -49,7 +49,7 @@ from sigmasim.kernels.linear import heatbath_linear, metropolis_linear, overrela
 from sigmasim.kernels.measure import field_is_finite
 from sigmasim.rng import step_key
 
-__all__ = ["LinearSimulation", "LINEAR_EXTRA", "tree_level_potential", "tree_level_minimum"]
+__all__ = ["LinearSimulation", "LINEAR_EXTRA", "tree_level_potential", "tree_level_minimum", "from_hopping"]
 
 # record keys of the linear model that are not in chain.SERIES / SLICES (in-memory records only)
 LINEAR_EXTRA = {
@@ -239,3 +239,26 @@ def tree_level_minimum(config: RunConfig, n_random: int = 8, seed: int = 0):
             best = res
     x = best.x
     return (x[: nf * nf] + 1j * x[nf * nf:]).reshape(nf, nf), float(best.fun)
+
+
+def from_hopping(nf: int, ndim: int, hopping: float, lambda1: float = 0.0, lambda2: float = 0.0,
+                 c: float = 0.0, h: float = 0.0) -> dict:
+    """Couplings of this action (kinetic = 1) for the hopping-parameter form of the same model.
+
+    Hopping form, field phi:
+        S = sum_x [ -2 hopping sum_mu Re Tr(phi_x^+ phi_{x+mu}) + Tr phi_x^+ phi_x
+                    + lambda1 (Tr phi^+ phi)^2 + lambda2 Tr (phi^+ phi)^2 - c (e^{i theta_a} det phi + c.c.)
+                    - Re Tr(H phi) ],  H = e^{i theta_m} h.
+    Expanding the kinetic term, (k/2) sum_mu Tr|Phi_{x+mu} - Phi_x|^2 summed over x equals
+    sum_x [k d Tr Phi^+ Phi - k sum_mu Re Tr(Phi_x^+ Phi_{x+mu})]; with Phi = s phi, s^2 = 2 hopping
+    (k = 1) the two actions agree term by term when
+        mu2 = 1 / hopping - 2 d,  lambda_i = lambda_i^hop / s^4,  c = c^hop / s^nf,  h = h^hop / s.
+    Observables linear in the field scale as <Phi> = s <phi> (common practice, no source).
+
+    Returns a dict of ``model`` keys: kinetic, mu2, lambda1, lambda2, c, mass, plus ``scale`` = s.
+    """
+    if not hopping > 0:
+        raise ValueError(f"hopping must be > 0, got {hopping}")
+    s = math.sqrt(2.0 * hopping)
+    return {"kinetic": 1.0, "mu2": 1.0 / hopping - 2.0 * ndim, "lambda1": lambda1 / s**4,
+            "lambda2": lambda2 / s**4, "c": c / s**nf, "mass": h / s, "scale": s}

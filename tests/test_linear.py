@@ -303,3 +303,30 @@ def test_update_kernels_potential_matches_numpy():
         v = potential(phi.real.ravel().copy(), phi.imag.ravel().copy(), nf, cfg.mu2, cfg.lambda1, cfg.lambda2,
                       cfg.lambda_s, cfg.stab_power, c2.real, c2.imag, *scratch)
         np.testing.assert_allclose(v, tree_level_potential(cfg, phi), rtol=1e-12)
+
+
+def test_hopping_form_is_the_same_action():
+    # S_standard(s phi) = S_hopping(phi) for a random field (conversion in linear.from_hopping)
+    from sigmasim.linear import from_hopping
+
+    nf, shape, hop, l1, l2, c, h, theta = 3, (4, 4, 2), 0.11, 0.3, 0.2, 0.05, 0.4, 1.3
+    conv = from_hopping(nf, len(shape), hop, l1, l2, c, h)
+    s = conv.pop("scale")
+    cfg = _cfg(shape=shape, nf=nf, theta=theta, **{k: v for k, v in conv.items()})
+    sim = make_simulation(cfg)
+    rng = np.random.default_rng(4)
+    phi = rng.normal(size=(cfg.volume, nf, nf)) + 1j * rng.normal(size=(cfg.volume, nf, nf))
+    flat = (s * phi).reshape(cfg.volume, nf * nf).T
+    sim.state.re[...] = flat.real
+    sim.state.im[...] = flat.imag
+    standard = sim.measure()["action"] * cfg.volume
+    lat = sim.lattice
+    u = phi
+    hopsum = sum(np.einsum("xab,xab->", u.conj(), u[lat.neighbours[2 * mu]]).real for mu in range(3))
+    m = np.einsum("xba,xbc->xac", u.conj(), u)
+    r2 = np.einsum("xaa->x", m).real
+    tm, ta = cfg.theta_angles
+    hopping = (-2 * hop * hopsum + r2.sum() + l1 * (r2**2).sum() + l2 * (np.abs(m) ** 2).sum()
+               - 2 * c * (np.exp(1j * ta) * np.linalg.det(u)).real.sum()
+               - (h * np.exp(1j * tm) * np.einsum("xaa->x", u)).real.sum())
+    assert np.isclose(standard, hopping, rtol=1e-10)
