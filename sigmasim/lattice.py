@@ -16,6 +16,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import math
+
 import numpy as np
 
 from sigmasim.errors import ConfigError
@@ -44,6 +46,22 @@ class Lattice:
         The sites of each time slice, sorted.
     natural : int64 array (V,)
         ``natural[i]`` is the lexicographic index of checkerboard site ``i``.
+    n_rows : int
+        Number of rows: sets of sites with equal coordinates except the last
+        (fastest) one, V / L_f.  Row ``r`` is the lexicographic index over
+        ``shape[:-1]``.
+    row_len_half : int
+        H = L_f / 2, the sites of one colour per row.  Row ``r`` of colour ``c``
+        is the checkerboard sites ``c V/2 + r H .. c V/2 + r H + H - 1``.
+    row_parity : int64 array (n_rows,)
+        Sum of the row's coordinates mod 2; site ``j`` of colour ``c`` in row
+        ``r`` has fastest coordinate ``2 j + (c + row_parity[r]) % 2``.
+    row_neighbours : int64 array (2 (d - 1), n_rows)
+        ``row_neighbours[2 mu]`` / ``[2 mu + 1]`` is the row shifted by +1 / -1
+        in the slow direction ``mu < d - 1``.  The neighbour of site ``j`` of
+        row ``r`` in that direction is site ``j`` of that row, other colour; in
+        the fastest direction it is ``j`` and ``j - 1`` (offset 0) or ``j`` and
+        ``j + 1`` (offset 1) of the same row, other colour, wrapping in the row.
     """
 
     shape: tuple
@@ -53,6 +71,10 @@ class Lattice:
     time: np.ndarray
     slice_sites: np.ndarray
     natural: np.ndarray
+    n_rows: int
+    row_len_half: int
+    row_parity: np.ndarray
+    row_neighbours: np.ndarray
 
     @property
     def ndim(self) -> int:
@@ -73,7 +95,7 @@ def make_lattice(shape) -> Lattice:
             raise ConfigError(
                 f"lattice.shape extents must be even and >= 2 (checkerboard), got {list(shape)}"
             )
-    volume = int(np.prod(shape))
+    volume = math.prod(shape)
     coords = np.stack(np.unravel_index(np.arange(volume), shape), axis=1)
     colour = coords.sum(axis=1) % 2
     natural = np.argsort(colour, kind="stable").astype(np.int64)
@@ -92,4 +114,18 @@ def make_lattice(shape) -> Lattice:
     slice_sites = order.reshape(shape[0], volume // shape[0]).astype(np.int64)
     for row in slice_sites:
         row.sort()
-    return Lattice(shape, volume, volume // 2, neighbours, time, slice_sites, natural)
+    rows_shape = shape[:-1]
+    n_rows = volume // shape[-1]
+    if rows_shape:
+        rc = np.stack(np.unravel_index(np.arange(n_rows), rows_shape), axis=1)
+    else:
+        rc = np.zeros((1, 0), dtype=np.int64)
+    row_parity = (rc.sum(axis=1) % 2).astype(np.int64)
+    row_neighbours = np.empty((2 * (d - 1), n_rows), dtype=np.int64)
+    for mu in range(d - 1):
+        for k, step in enumerate((1, -1)):
+            moved = rc.copy()
+            moved[:, mu] = (moved[:, mu] + step) % shape[mu]
+            row_neighbours[2 * mu + k] = np.ravel_multi_index(moved.T, rows_shape)
+    return Lattice(shape, volume, volume // 2, neighbours, time, slice_sites, natural,
+                   n_rows, shape[-1] // 2, row_parity, row_neighbours)

@@ -89,3 +89,100 @@ def is_shift(nbr, k, c0, m, off):
     for j in range(m):
         bad += np.int64(nbr[k, c0 + j] != c0 + off + j)
     return bad == 0
+
+
+# ----------------------------------------------------------------------------- Philox uniforms
+# numpy's ``Generator(Philox(seed)).uniform(lo, hi, n)`` rebuilt draw for draw
+# (SeedSequence entropy pool -> Philox4x64-10 key, counter from 0), so that a
+# per-step proposal table costs a microsecond instead of numpy's generator
+# construction.  Checked bit for bit against numpy in tests/test_rows.py.
+
+_U32 = np.uint64(0xFFFFFFFF)
+_INIT_A = np.uint64(0x43B0D7E5)
+_MULT_A = np.uint64(0x931E8875)
+_INIT_B = np.uint64(0x8B51F9DD)
+_MULT_B = np.uint64(0x58F38DED)
+_MIX_L = np.uint64(0xCA01F9DD)
+_MIX_R = np.uint64(0x4973F715)
+_XS = np.uint64(16)
+_PM0 = np.uint64(0xD2E7470EE14C6C93)
+_PM1 = np.uint64(0xCA5A826395121157)
+_PW0 = np.uint64(0x9E3779B97F4A7C15)
+_PW1 = np.uint64(0xBB67AE8584CAA73B)
+_S32 = np.uint64(32)
+
+
+@njit(cache=True, inline="always")
+def _hashmix(value, hc):
+    value = (value ^ hc) & _U32
+    hc = (hc * _MULT_A) & _U32
+    value = (value * hc) & _U32
+    return value ^ (value >> _XS), hc
+
+
+@njit(cache=True, inline="always")
+def _mulhilo(a, b):
+    a0 = a & _U32
+    a1 = a >> _S32
+    b0 = b & _U32
+    b1 = b >> _S32
+    p00 = a0 * b0
+    p01 = a0 * b1
+    p10 = a1 * b0
+    p11 = a1 * b1
+    mid = (p00 >> _S32) + (p01 & _U32) + (p10 & _U32)
+    hi = p11 + (p01 >> _S32) + (p10 >> _S32) + (mid >> _S32)
+    return hi, a * b
+
+
+@njit(cache=True)
+def philox_uniform(seed, lo, hi, n):
+    """``numpy.random.Generator(numpy.random.Philox(seed)).uniform(lo, hi, n)`` for 0 <= seed < 2**64."""
+    seed = np.uint64(seed)
+    ent = np.zeros(4, dtype=np.uint64)
+    ent[0] = seed & _U32
+    ent[1] = seed >> _S32
+    nent = 2 if ent[1] != 0 else 1
+    pool = np.zeros(4, dtype=np.uint64)
+    hc = _INIT_A
+    for i in range(4):
+        v = ent[i] if i < nent else np.uint64(0)
+        pool[i], hc = _hashmix(v, hc)
+    for i_src in range(4):
+        for i_dst in range(4):
+            if i_src != i_dst:
+                h, hc = _hashmix(pool[i_src], hc)
+                r = (_MIX_L * pool[i_dst] - _MIX_R * h) & _U32
+                pool[i_dst] = r ^ (r >> _XS)
+    words = np.empty(4, dtype=np.uint64)
+    hb = _INIT_B
+    for i in range(4):
+        v = pool[i] ^ hb
+        hb = (hb * _MULT_B) & _U32
+        v = (v * hb) & _U32
+        words[i] = v ^ (v >> _XS)
+    k0 = words[0] | (words[1] << _S32)
+    k1 = words[2] | (words[3] << _S32)
+    out = np.empty(n)
+    ctr0 = np.uint64(0)
+    i = 0
+    while i < n:
+        ctr0 += np.uint64(1)  # n < 2**64 draws: no carry into the higher counter words
+        x0 = ctr0
+        x1 = np.uint64(0)
+        x2 = np.uint64(0)
+        x3 = np.uint64(0)
+        q0 = k0
+        q1 = k1
+        for rnd in range(10):
+            if rnd > 0:
+                q0 += _PW0
+                q1 += _PW1
+            h0, l0 = _mulhilo(_PM0, x0)
+            h1, l1 = _mulhilo(_PM1, x2)
+            x0, x1, x2, x3 = h1 ^ x1 ^ q0, l1, h0 ^ x3 ^ q1, l0
+        for v in (x0, x1, x2, x3):
+            if i < n:
+                out[i] = lo + (hi - lo) * (np.float64(v >> np.uint64(11)) * (1.0 / 9007199254740992.0))
+                i += 1
+    return out

@@ -18,133 +18,221 @@ import numpy as np
 from numba import njit, prange
 
 from sigmasim.kernels.group import von_mises_angle
-from sigmasim.kernels.simd import exp_le0, is_shift, u01_from_bits
+from sigmasim.kernels.simd import exp_le0, u01_from_bits
 from sigmasim.rng import SITE_STRIDE, bits
 
-__all__ = ["metropolis_u1", "heatbath_u1", "overrelax_u1"]
+__all__ = ["metropolis_u1", "heatbath_u1", "overrelax_u1", "rows_per_chunk"]
 
-_CH = 256  # sites per chunk: the scratch of a chunk stays in L1
+CHUNK_SITES = 512  # target sites per chunk: the scratch of a chunk stays in L1
+
+
+def rows_per_chunk(h: int, target: int = CHUNK_SITES) -> int:
+    """Rows per chunk so that a chunk has about ``target`` sites (at least one row)."""
+    return max(1, target // max(1, h))
 
 
 @njit(cache=True, inline="always")
-def _field(c, s, nbr, x, beta, cr, ci):
-    sr = 0.0
-    si = 0.0
-    for k in range(nbr.shape[0]):
-        y = nbr[k, x]
-        sr += c[y]
-        si += s[y]
-    return beta * sr + cr, -beta * si + ci
+def _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, ar, ai):
+    """a = beta conj(N) + const for the rows [r0, r1) of ``colour`` into ar, ai (chunk scratch).
 
-
-@njit(cache=True, parallel=True, error_model="numpy")
-def metropolis_u1(c, s, nbr, start, stop, beta, cr, ci, tc, ts, nhits, key, nblocks):
-    """``nhits`` Metropolis hits per site of [start, stop) with rotations (tc, ts) from a table.
-
-    ``cr + i ci`` is the constant part of ``a``; the table size must be a power
-    of two.  Hit ``h`` of site ``x`` uses the single draw ``bits(key, x *
-    SITE_STRIDE + h)``: its low bits pick the rotation, its top 53 bits are the
-    accept uniform.  The sites of one colour are cut into ``nblocks`` fixed
-    blocks (the parallel unit, independent of the thread count) and each block
-    into chunks of ``_CH`` sites; every loop over a chunk is branch free and
-    call free, so LLVM vectorises it.  Returns the accepted hits.
+    All reads are contiguous runs (no gather): in a slow direction the
+    neighbours of a run of consecutive rows are a run of consecutive rows of
+    the other colour; in the fastest direction they are the same row shifted
+    by 0 and -1 or +1 with one wrapped element.  The neighbours are added in
+    the order of ``lattice.neighbours`` (directions 0 .. d-1, + before -), so
+    every sum has the bits of the site-by-site one.
     """
-    nsite = stop - start
-    nn = nbr.shape[0]
-    mask = np.uint64(tc.shape[0] - 1)
-    acc = np.zeros(nblocks, dtype=np.int64)
-    for blk in prange(nblocks):
-        lo = start + blk * nsite // nblocks
-        hi = start + (blk + 1) * nsite // nblocks
-        ar = np.empty(_CH)
-        ai = np.empty(_CH)
-        uu = np.empty(_CH)
-        rc = np.empty(_CH)
-        rs = np.empty(_CH)
-        na = 0
-        for c0 in range(lo, hi, _CH):
-            m = min(_CH, hi - c0)
-            _chunk_field(c, s, nbr, nn, c0, m, beta, cr, ci, ar, ai)
-            for hit in range(nhits):
-                h = np.uint64(hit)
-                # gathers only into block scratch: LLVM can prove that these
-                # stores alias no argument array, so the loop vectorises
-                for j in range(m):
-                    b = bits(key, np.uint64(c0 + j) * SITE_STRIDE + h)
-                    idx = np.int64(b & mask)
-                    uu[j] = u01_from_bits(b)
-                    rc[j] = tc[idx]
-                    rs[j] = ts[idx]
-                for j in range(m):
-                    x = c0 + j
-                    ur = c[x]
-                    ui = s[x]
-                    vr = ur * rc[j] - ui * rs[j]
-                    vi = ur * rs[j] + ui * rc[j]
-                    # -dS = Re(a (V - U))
-                    mds = ar[j] * (vr - ur) - ai[j] * (vi - ui)
-                    ok = uu[j] < exp_le0(min(mds, 0.0))
-                    c[x] = vr if ok else ur
-                    s[x] = vi if ok else ui
-                    na += np.int64(ok)
-        acc[blk] = na
-    return acc.sum()
-
-
-@njit(cache=True, inline="always")
-def _chunk_field(c, s, nbr, nn, c0, m, beta, cr, ci, ar, ai):
-    """a = beta conj(N) + const for the sites c0 .. c0 + m - 1 (vectorised over sites)."""
+    m = (r1 - r0) * h
     for j in range(m):
         ar[j] = 0.0
         ai[j] = 0.0
-    for k in range(nn):
-        off = nbr[k, c0] - c0
-        if is_shift(nbr, k, c0, m, off):
-            # the neighbours of the chunk are one contiguous run: plain vector loads
+    for k in range(rnbr.shape[0]):
+        g = r0
+        while g < r1:
+            g2 = g + 1
+            while g2 < r1 and rnbr[k, g2] == rnbr[k, g2 - 1] + 1:
+                g2 += 1
+            src = other + rnbr[k, g] * h
+            dst = (g - r0) * h
+            n = (g2 - g) * h
+            # views indexed from 0: affine addresses, so LLVM can bound the
+            # runs, check them for overlap once and vectorise
+            _add_run(ar[dst:dst + n], ai[dst:dst + n], c[src:src + n], s[src:src + n])
+            g = g2
+    for g in range(r0, r1):
+        src = other + g * h
+        b = (g - r0) * h
+        _fast_row(ar[b:b + h], ai[b:b + h], c[src:src + h], s[src:src + h], h,
+                  (colour + rpar[g]) % 2, beta, cr, ci)
+
+
+@njit(cache=True, inline="always")
+def _add_run(ar, ai, c, s):
+    for j in range(ar.shape[0]):
+        ar[j] += c[j]
+        ai[j] += s[j]
+
+
+@njit(cache=True, inline="always")
+def _fast_row(ar, ai, c, s, h, o, beta, cr, ci):
+    """Add the two fastest-direction neighbours (+ then -) of one row, then a = beta conj(N) + const."""
+    if o == 0:
+        # + neighbour at j, - neighbour at j - 1 (j = 0 wraps to h - 1)
+        ar[0] = beta * ((ar[0] + c[0]) + c[h - 1]) + cr
+        ai[0] = -beta * ((ai[0] + s[0]) + s[h - 1]) + ci
+        for j in range(1, h):
+            ar[j] = beta * ((ar[j] + c[j]) + c[j - 1]) + cr
+            ai[j] = -beta * ((ai[j] + s[j]) + s[j - 1]) + ci
+    else:
+        # + neighbour at j + 1 (j = h - 1 wraps to 0), - neighbour at j
+        for j in range(h - 1):
+            ar[j] = beta * ((ar[j] + c[j + 1]) + c[j]) + cr
+            ai[j] = -beta * ((ai[j] + s[j + 1]) + s[j]) + ci
+        e = h - 1
+        ar[e] = beta * ((ar[e] + c[0]) + c[e]) + cr
+        ai[e] = -beta * ((ai[e] + s[0]) + s[e]) + ci
+
+
+@njit(cache=True, parallel=True, error_model="numpy")
+def metropolis_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, tc, ts, nhits, key, rows):
+    """``nhits`` Metropolis hits on every site of ``colour`` with rotations (tc, ts) from a table.
+
+    ``rnbr``, ``rpar``, ``h`` are the lattice's row tables (``row_neighbours``,
+    ``row_parity``, ``row_len_half``); ``cr + i ci`` is the constant part of
+    ``a``; the table size must be a power of two.  Hit ``hit`` of site ``x``
+    uses the single draw ``bits(key, x * SITE_STRIDE + hit)``: its low bits
+    pick the rotation, its top 53 bits are the accept uniform, so the chain
+    does not depend on the chunking or the thread count.  The rows of the
+    colour are cut into chunks of ``rows`` consecutive rows (the parallel
+    unit); every loop over a chunk is branch free and call free, so LLVM
+    vectorises it.  Returns the accepted hits.
+    """
+    half = c.shape[0] // 2
+    nrows = rpar.shape[0]
+    start = colour * half
+    other = (1 - colour) * half
+    mask = np.uint64(tc.shape[0] - 1)
+    nch = (nrows + rows - 1) // rows
+    acc = np.zeros(nch, dtype=np.int64)
+    for ch in prange(nch):
+        r0 = ch * rows
+        r1 = min(nrows, r0 + rows)
+        m = (r1 - r0) * h
+        c0 = start + r0 * h
+        ar = np.empty(m)
+        ai = np.empty(m)
+        uu = np.empty(m)
+        rc = np.empty(m)
+        rs = np.empty(m)
+        _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, ar, ai)
+        na = 0
+        for hit in range(nhits):
+            hh = np.uint64(hit)
+            # table look-ups only into chunk scratch: LLVM can prove that these
+            # stores alias no argument array, so the loop vectorises
             for j in range(m):
-                ar[j] += c[c0 + off + j]
-                ai[j] += s[c0 + off + j]
-        else:
-            for j in range(m):
-                y = nbr[k, c0 + j]
-                ar[j] += c[y]
-                ai[j] += s[y]
-    for j in range(m):
-        ar[j] = beta * ar[j] + cr
-        ai[j] = -beta * ai[j] + ci
+                b = bits(key, np.uint64(c0 + j) * SITE_STRIDE + hh)
+                idx = np.int64(b & mask)
+                uu[j] = u01_from_bits(b)
+                rc[j] = tc[idx]
+                rs[j] = ts[idx]
+            na += _hits(c[c0:c0 + m], s[c0:c0 + m], ar, ai, uu, rc, rs)
+        acc[ch] = na
+    return acc.sum()
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _hits(c, s, ar, ai, uu, rc, rs):
+    """One hit on every site of a chunk (views of the chunk's sites); returns the accepted count."""
+    na = 0
+    for j in range(c.shape[0]):
+        ur = c[j]
+        ui = s[j]
+        vr = ur * rc[j] - ui * rs[j]
+        vi = ur * rs[j] + ui * rc[j]
+        # -dS = Re(a (V - U))
+        mds = ar[j] * (vr - ur) - ai[j] * (vi - ui)
+        ok = uu[j] < exp_le0(min(mds, 0.0))
+        c[j] = vr if ok else ur
+        s[j] = vi if ok else ui
+        na += np.int64(ok)
+    return na
 
 
 @njit(cache=True, parallel=True)
-def heatbath_u1(c, s, nbr, start, stop, beta, cr, ci, key):
-    """Exact von Mises heatbath on the sites [start, stop); returns the site count."""
-    for x in prange(start, stop):
-        ar, ai = _field(c, s, nbr, x, beta, cr, ci)
-        k = np.sqrt(ar * ar + ai * ai)
-        f, g, _ = von_mises_angle(k, key, np.uint64(x) * SITE_STRIDE)
-        if k > 1e-300:
-            # U = e^{i psi} conj(a) / |a|
-            er = ar / k
-            ei = -ai / k
-            c[x] = er * f - ei * g
-            s[x] = ei * f + er * g
-        else:
-            c[x] = f
-            s[x] = g
-    return stop - start
+def heatbath_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, key, rows):
+    """Exact von Mises heatbath on every site of ``colour``; returns the site count.
+
+    Row tables and chunking as :func:`metropolis_u1`: the local fields of a
+    chunk come from contiguous runs, then each site draws from its own counters.
+    """
+    half = c.shape[0] // 2
+    nrows = rpar.shape[0]
+    start = colour * half
+    other = (1 - colour) * half
+    nch = (nrows + rows - 1) // rows
+    for ch in prange(nch):
+        r0 = ch * rows
+        r1 = min(nrows, r0 + rows)
+        m = (r1 - r0) * h
+        c0 = start + r0 * h
+        far = np.empty(m)
+        fai = np.empty(m)
+        _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, far, fai)
+        for j in range(m):
+            x = c0 + j
+            ar = far[j]
+            ai = fai[j]
+            k = np.sqrt(ar * ar + ai * ai)
+            f, g, _ = von_mises_angle(k, key, np.uint64(x) * SITE_STRIDE)
+            if k > 1e-300:
+                # U = e^{i psi} conj(a) / |a|
+                er = ar / k
+                ei = -ai / k
+                c[x] = er * f - ei * g
+                s[x] = ei * f + er * g
+            else:
+                c[x] = f
+                s[x] = g
+    return half
 
 
-@njit(cache=True, parallel=True)
-def overrelax_u1(c, s, nbr, start, stop, beta, cr, ci):
-    """Microcanonical reflection U -> conj(a)^2 conj(U) / |a|^2 on [start, stop)."""
-    for x in prange(start, stop):
-        ar, ai = _field(c, s, nbr, x, beta, cr, ci)
-        k2 = ar * ar + ai * ai
-        if k2 > 1e-300:
-            # conj(a)^2 / |a|^2
-            er = (ar * ar - ai * ai) / k2
-            ei = -2.0 * ar * ai / k2
-            ur = c[x]
-            ui = -s[x]
-            c[x] = er * ur - ei * ui
-            s[x] = er * ui + ei * ur
-    return stop - start
+@njit(cache=True, parallel=True, error_model="numpy")
+def overrelax_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, rows):
+    """Microcanonical reflection U -> conj(a)^2 conj(U) / |a|^2 on every site of ``colour``.
+
+    Row tables and chunking as :func:`metropolis_u1`.  Returns the site count.
+    """
+    half = c.shape[0] // 2
+    nrows = rpar.shape[0]
+    start = colour * half
+    other = (1 - colour) * half
+    nch = (nrows + rows - 1) // rows
+    for ch in prange(nch):
+        r0 = ch * rows
+        r1 = min(nrows, r0 + rows)
+        m = (r1 - r0) * h
+        c0 = start + r0 * h
+        ar = np.empty(m)
+        ai = np.empty(m)
+        _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, ar, ai)
+        _reflect(c[c0:c0 + m], s[c0:c0 + m], ar, ai)
+    return half
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _reflect(c, s, ar, ai):
+    for j in range(c.shape[0]):
+        a_r = ar[j]
+        a_i = ai[j]
+        k2 = a_r * a_r + a_i * a_i
+        # conj(a)^2 / |a|^2
+        er = (a_r * a_r - a_i * a_i) / k2
+        ei = -2.0 * a_r * a_i / k2
+        ur = c[j]
+        ui = -s[j]
+        big = k2 > 1e-300
+        nr = er * ur - ei * ui
+        ni = er * ui + ei * ur
+        c[j] = nr if big else c[j]
+        s[j] = ni if big else s[j]

@@ -9,10 +9,14 @@ local field, weight exp(-S_x) with
 Re Tr(A V) = sum_{ab} (M_r V_r + M_i V_i)[a, b] with M = A^dagger = beta N +
 diag(conj h), so the field enters as the 18 real components of M.
 
-Layout of the work: the sites of one colour are cut into ``nblocks`` fixed
-blocks (the parallel unit; independent of the thread count) and each block
-into chunks of ``_CH`` sites whose U, M and det U live in block scratch
-(structure of arrays, sites innermost, in L1).  Every loop over a chunk is
+Layout of the work: the rows of one colour (sites with equal coordinates
+but the fastest, see :class:`sigmasim.lattice.Lattice`) are cut into chunks
+of whole rows, or of row segments for rows longer than ``CHUNK_SITES`` (the
+parallel unit; fixed by the geometry, not the thread count).  U, M and det U
+of a chunk live in chunk scratch (structure of arrays, sites innermost, in
+L1, of the compile-time width ``CHUNK_SITES``).  The neighbour sums are
+contiguous loads (no gather through the neighbour table), in the order of
+``lattice.neighbours``.  Every loop over a chunk is
 branch free and call free, the 3x3 complex arithmetic fully unrolled in
 scalar locals, so LLVM vectorises it across sites; the table lookups (a
 gather) go to scratch first, which lets LLVM prove that no store of the
@@ -26,12 +30,12 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
-from sigmasim.kernels.simd import exp_le0, is_shift, u01_from_bits
+from sigmasim.kernels.simd import exp_le0, u01_from_bits
 from sigmasim.rng import SITE_STRIDE, bits
 
-__all__ = ["metropolis_u3", "pack_table3"]
+__all__ = ["metropolis_u3", "pack_table3", "rows_per_chunk3"]
 
-_CH = 64  # sites per chunk: U, M, det and the looked-up table (58 x 64 doubles) stay in L1
+CHUNK_SITES = 64  # target sites per chunk: U, M, det and the looked-up table (59 x 64 doubles) stay in L1; the scratch width
 
 
 def pack_table3(table: np.ndarray, tdet: np.ndarray) -> np.ndarray:
@@ -46,83 +50,167 @@ def pack_table3(table: np.ndarray, tdet: np.ndarray) -> np.ndarray:
     return out
 
 
-@njit(cache=True, parallel=True, error_model="numpy")
-def metropolis_u3(re, im, nbr, start, stop, beta, hdiag, k2r, k2i, tab, nhits, key, nblocks):
-    """Metropolis for nf = 3 on the sites [start, stop); returns the accepted hits.
+def rows_per_chunk3(h: int, target: int = CHUNK_SITES) -> int:
+    """Rows per chunk (0: a row is longer than a chunk and is cut into segments)."""
+    return target // max(1, h)
 
-    ``hdiag`` complex (3,), ``k2r + i k2i = 2 kappa eta``, ``tab`` from
-    :func:`pack_table3` (size a power of two).
+
+@njit(cache=True, inline="always")
+def _add_run(a, b, x, y):
+    for j in range(a.shape[0]):
+        a[j] += x[j]
+        b[j] += y[j]
+
+
+@njit(cache=True, inline="always")
+def _fast_seg(a, b, x, y, h, o, j0):
+    """Add the fastest-direction neighbours (+ before -, as ``lattice.neighbours``) to the
+    sites j0 .. j0 + len(a) - 1 of one row; ``x``, ``y`` are the whole row of the other colour."""
+    n = a.shape[0]
+    if o == 0:
+        # + neighbour at j, - neighbour at j - 1 (j = 0 wraps to h - 1)
+        i0 = 0
+        if j0 == 0:
+            a[0] = (a[0] + x[0]) + x[h - 1]
+            b[0] = (b[0] + y[0]) + y[h - 1]
+            i0 = 1
+        xs = x[j0 - 1 + i0:]
+        ys = y[j0 - 1 + i0:]
+        xc = x[j0 + i0:]
+        yc = y[j0 + i0:]
+        a1 = a[i0:]
+        b1 = b[i0:]
+        for i in range(n - i0):
+            a1[i] = (a1[i] + xc[i]) + xs[i]
+            b1[i] = (b1[i] + yc[i]) + ys[i]
+    else:
+        # + neighbour at j + 1 (j = h - 1 wraps to 0), - neighbour at j
+        n1 = n
+        if j0 + n == h:
+            e = n - 1
+            a[e] = (a[e] + x[0]) + x[h - 1]
+            b[e] = (b[e] + y[0]) + y[h - 1]
+            n1 = n - 1
+        xs = x[j0 + 1:]
+        ys = y[j0 + 1:]
+        xc = x[j0:]
+        yc = y[j0:]
+        for i in range(n1):
+            a[i] = (a[i] + xs[i]) + xc[i]
+            b[i] = (b[i] + ys[i]) + yc[i]
+
+
+@njit(cache=True, parallel=True, error_model="numpy")
+def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhits, key, rows):
+    """Metropolis for nf = 3 on every site of ``colour``; returns the accepted hits.
+
+    ``rnbr``, ``rpar``, ``h`` are the lattice's row tables (``row_neighbours``,
+    ``row_parity``, ``row_len_half``); ``hdiag`` complex (3,), ``k2r + i k2i =
+    2 kappa eta``, ``tab`` from :func:`pack_table3` (size a power of two).  The
+    parallel unit is a chunk of ``rows`` consecutive rows (``rows * h <=
+    CHUNK_SITES``), or for ``rows == 0`` a segment of at most ``CHUNK_SITES``
+    sites of one row.  The neighbour sums of a chunk are built from contiguous
+    runs (no gather): a run of consecutive rows in a slow direction, the same
+    row shifted by 0 and -1 or +1 (one wrapped element) in the fastest one,
+    added in the order of ``lattice.neighbours`` so that every sum has the
+    bits of the site-by-site one.  The chunk scratch has the compile-time
+    width CHUNK_SITES, which lets LLVM vectorise the hit loop.
     """
-    nsite = stop - start
-    nn = nbr.shape[0]
+    half = re.shape[1] // 2
+    nrows = rpar.shape[0]
+    start = colour * half
+    other = (1 - colour) * half
     mask = np.uint64(tab.shape[1] - 1)
-    acc = np.zeros(nblocks, dtype=np.int64)
-    for blk in prange(nblocks):
-        lo = start + blk * nsite // nblocks
-        hi = start + (blk + 1) * nsite // nblocks
-        M = np.empty((18, _CH))
-        W = np.empty((18, _CH))  # U of the chunk
-        D = np.empty((2, _CH))
-        R = np.empty((20, _CH))
-        uu = np.empty(_CH)
-        shift = np.empty(nn, dtype=np.bool_)
+    rows = min(rows, CHUNK_SITES // h)  # a chunk must fit the scratch
+    if rows > 0:
+        nseg = 1
+        nch = (nrows + rows - 1) // rows
+    else:
+        nseg = (h + CHUNK_SITES - 1) // CHUNK_SITES
+        nch = nrows * nseg
+    acc = np.zeros(nch, dtype=np.int64)
+    for ch in prange(nch):
+        if rows > 0:
+            r0 = ch * rows
+            r1 = min(nrows, r0 + rows)
+            j0 = 0
+            w = h
+        else:
+            r0 = ch // nseg
+            r1 = r0 + 1
+            j0 = (ch % nseg) * CHUNK_SITES
+            w = min(CHUNK_SITES, h - j0)
+        m = (r1 - r0) * w
+        c0 = start + r0 * h + j0
+        M = np.empty((18, CHUNK_SITES))
+        W = np.empty((18, CHUNK_SITES))  # U of the chunk
+        D = np.empty((2, CHUNK_SITES))
+        R = np.empty((20, CHUNK_SITES))
+        uu = np.empty(CHUNK_SITES)
         na = 0
-        for c0 in range(lo, hi, _CH):
-            m = min(_CH, hi - c0)
-            # neighbours of the chunk in direction k one contiguous run? (then vector loads)
-            for k in range(nn):
-                shift[k] = is_shift(nbr, k, c0, m, nbr[k, c0] - c0)
-            # M = beta N + diag(conj h), component 3a+b (re) and 9+3a+b (im)
-            for comp in range(9):
-                for j in range(m):
-                    M[comp, j] = 0.0
-                    M[9 + comp, j] = 0.0
-                for k in range(nn):
-                    off = nbr[k, c0] - c0
-                    if shift[k]:
-                        for j in range(m):
-                            M[comp, j] += re[comp, c0 + off + j]
-                            M[9 + comp, j] += im[comp, c0 + off + j]
-                    else:
-                        for j in range(m):
-                            y = nbr[k, c0 + j]
-                            M[comp, j] += re[comp, y]
-                            M[9 + comp, j] += im[comp, y]
-                for j in range(m):
-                    M[comp, j] *= beta
-                    M[9 + comp, j] *= beta
-            for a in range(3):
-                hr = hdiag[a].real
-                hi_ = -hdiag[a].imag
-                for j in range(m):
-                    M[4 * a, j] += hr
-                    M[9 + 4 * a, j] += hi_
-            for comp in range(9):
-                for j in range(m):
-                    W[comp, j] = re[comp, c0 + j]
-                    W[9 + comp, j] = im[comp, c0 + j]
+        # M = beta N + diag(conj h), component 3a+b (re) and 9+3a+b (im)
+        for comp in range(9):
+            mr = M[comp]
+            mi = M[9 + comp]
+            xr = re[comp]
+            xi = im[comp]
             for j in range(m):
-                dr, di = _det3(W[0, j], W[9, j], W[1, j], W[10, j], W[2, j], W[11, j],
-                               W[3, j], W[12, j], W[4, j], W[13, j], W[5, j], W[14, j],
-                               W[6, j], W[15, j], W[7, j], W[16, j], W[8, j], W[17, j])
-                D[0, j] = dr
-                D[1, j] = di
-            for hit in range(nhits):
-                h = np.uint64(hit)
-                for j in range(m):
-                    b = bits(key, np.uint64(c0 + j) * SITE_STRIDE + h)
-                    idx = np.int64(b & mask)
-                    uu[j] = u01_from_bits(b)
-                    for comp in range(20):
-                        R[comp, j] = tab[comp, idx]
-                for j in range(m):
-                    na += _hit(W, M, D, R, uu, j, k2r, k2i)
-            for comp in range(9):
-                for j in range(m):
-                    re[comp, c0 + j] = W[comp, j]
-                    im[comp, c0 + j] = W[9 + comp, j]
-        acc[blk] = na
+                mr[j] = 0.0
+                mi[j] = 0.0
+            for k in range(rnbr.shape[0]):
+                g = r0
+                while g < r1:
+                    g2 = g + 1
+                    while g2 < r1 and rnbr[k, g2] == rnbr[k, g2 - 1] + 1:
+                        g2 += 1
+                    src = other + rnbr[k, g] * h + j0
+                    dst = (g - r0) * w
+                    n = (g2 - g) * w
+                    _add_run(mr[dst:dst + n], mi[dst:dst + n], xr[src:src + n], xi[src:src + n])
+                    g = g2
+            for g in range(r0, r1):
+                src = other + g * h
+                b = (g - r0) * w
+                _fast_seg(mr[b:b + w], mi[b:b + w], xr[src:src + h], xi[src:src + h], h,
+                          (colour + rpar[g]) % 2, j0)
+            for j in range(m):
+                mr[j] *= beta
+                mi[j] *= beta
+        for a in range(3):
+            hr = hdiag[a].real
+            hi_ = -hdiag[a].imag
+            for j in range(m):
+                M[4 * a, j] += hr
+                M[9 + 4 * a, j] += hi_
+        for comp in range(9):
+            _copy(W[comp, :m], W[9 + comp, :m], re[comp, c0:c0 + m], im[comp, c0:c0 + m])
+        for j in range(m):
+            dr, di = _det3(W[0, j], W[9, j], W[1, j], W[10, j], W[2, j], W[11, j],
+                           W[3, j], W[12, j], W[4, j], W[13, j], W[5, j], W[14, j],
+                           W[6, j], W[15, j], W[7, j], W[16, j], W[8, j], W[17, j])
+            D[0, j] = dr
+            D[1, j] = di
+        for hit in range(nhits):
+            hh = np.uint64(hit)
+            for j in range(m):
+                bb = bits(key, np.uint64(c0 + j) * SITE_STRIDE + hh)
+                idx = np.int64(bb & mask)
+                uu[j] = u01_from_bits(bb)
+                for comp in range(20):
+                    R[comp, j] = tab[comp, idx]
+            for j in range(m):
+                na += _hit(W, M, D, R, uu, j, k2r, k2i)
+        for comp in range(9):
+            _copy(re[comp, c0:c0 + m], im[comp, c0:c0 + m], W[comp, :m], W[9 + comp, :m])
+        acc[ch] = na
     return acc.sum()
+
+
+@njit(cache=True, inline="always")
+def _copy(a, b, x, y):
+    for j in range(a.shape[0]):
+        a[j] = x[j]
+        b[j] = y[j]
 
 
 @njit(cache=True, inline="always")

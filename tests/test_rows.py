@@ -1,0 +1,295 @@
+"""Row tables of the lattice reproduce the neighbour table exactly (no statistics)."""
+
+import numpy as np
+import pytest
+
+from sigmasim.lattice import make_lattice
+
+SHAPES = [(2,), (8,), (2, 2), (4, 6), (2, 8), (6, 2), (2, 2, 2), (4, 2, 6), (6, 4, 8),
+          (2, 4, 2, 2), (4, 4, 2, 6), (2, 2, 2, 2)]
+
+
+def row_neighbours_of_sites(lat):
+    """(2 d, V) neighbour table rebuilt from the row tables alone."""
+    d = lat.ndim
+    v2, h = lat.half, lat.row_len_half
+    out = np.empty((2 * d, lat.volume), dtype=np.int64)
+    s = np.arange(lat.volume)
+    colour = s // v2
+    pos = s % v2
+    r, j = pos // h, pos % h
+    base = (1 - colour) * v2
+    for k in range(2 * (d - 1)):
+        out[k] = base + lat.row_neighbours[k, r] * h + j
+    o = (colour + lat.row_parity[r]) % 2
+    plus = np.where(o == 0, j, (j + 1) % h)
+    minus = np.where(o == 0, (j - 1) % h, j)
+    out[2 * (d - 1)] = base + r * h + plus
+    out[2 * d - 1] = base + r * h + minus
+    return out
+
+
+@pytest.mark.parametrize("shape", SHAPES)
+def test_row_tables_give_the_neighbours(shape):
+    lat = make_lattice(shape)
+    assert lat.n_rows * 2 * lat.row_len_half == lat.volume
+    assert lat.row_neighbours.shape == (2 * (len(shape) - 1), lat.n_rows)
+    np.testing.assert_array_equal(row_neighbours_of_sites(lat), lat.neighbours)
+
+
+@pytest.mark.parametrize("shape", SHAPES)
+def test_row_layout(shape):
+    lat = make_lattice(shape)
+    coords = lat.coordinates()
+    h = lat.row_len_half
+    for c in (0, 1):
+        for r in range(lat.n_rows):
+            sites = c * lat.half + r * h + np.arange(h)
+            cs = coords[sites]
+            # one row: equal slow coordinates, lexicographic row index r
+            assert (cs[:, :-1] == cs[0, :-1]).all()
+            if len(shape) > 1:
+                assert np.ravel_multi_index(cs[0, :-1], shape[:-1]) == r
+                assert cs[0, :-1].sum() % 2 == lat.row_parity[r]
+            np.testing.assert_array_equal(cs[:, -1], 2 * np.arange(h) + (c + lat.row_parity[r]) % 2)
+
+
+# ---------------------------------------------------------------------------- kernels
+# Site-by-site references with gathers through lattice.neighbours (the layout
+# the row kernels avoid): same draws, same summation order, so the fields must
+# agree bit for bit.
+
+from numba import njit  # noqa: E402
+
+from sigmasim.kernels.group import von_mises_angle  # noqa: E402
+from sigmasim.kernels.simd import exp_le0, u01_from_bits  # noqa: E402
+from sigmasim.kernels.u1 import metropolis_u1, rows_per_chunk  # noqa: E402
+from sigmasim.kernels.u3 import _det3, _hit, metropolis_u3, pack_table3, rows_per_chunk3  # noqa: E402
+from sigmasim.rng import SITE_STRIDE, bits  # noqa: E402
+
+
+@njit(cache=True, error_model="numpy")
+def _ref_metropolis_u1(c, s, nbr, start, stop, beta, cr, ci, tc, ts, nhits, key):
+    mask = np.uint64(tc.shape[0] - 1)
+    na = 0
+    for x in range(start, stop):
+        sr = 0.0
+        si = 0.0
+        for k in range(nbr.shape[0]):
+            sr += c[nbr[k, x]]
+            si += s[nbr[k, x]]
+        ar = beta * sr + cr
+        ai = -beta * si + ci
+        for hit in range(nhits):
+            b = bits(key, np.uint64(x) * SITE_STRIDE + np.uint64(hit))
+            idx = np.int64(b & mask)
+            ur, ui = c[x], s[x]
+            vr = ur * tc[idx] - ui * ts[idx]
+            vi = ur * ts[idx] + ui * tc[idx]
+            mds = ar * (vr - ur) - ai * (vi - ui)
+            ok = u01_from_bits(b) < exp_le0(min(mds, 0.0))
+            c[x] = vr if ok else ur
+            s[x] = vi if ok else ui
+            na += np.int64(ok)
+    return na
+
+
+@njit(cache=True, error_model="numpy")
+def _ref_metropolis_u3(re, im, nbr, start, stop, beta, hdiag, k2r, k2i, tab, nhits, key):
+    mask = np.uint64(tab.shape[1] - 1)
+    M = np.empty((18, 1))
+    W = np.empty((18, 1))
+    D = np.empty((2, 1))
+    R = np.empty((20, 1))
+    uu = np.empty(1)
+    na = 0
+    for x in range(start, stop):
+        for comp in range(9):
+            sr = 0.0
+            si = 0.0
+            for k in range(nbr.shape[0]):
+                sr += re[comp, nbr[k, x]]
+                si += im[comp, nbr[k, x]]
+            M[comp, 0] = sr * beta
+            M[9 + comp, 0] = si * beta
+            W[comp, 0] = re[comp, x]
+            W[9 + comp, 0] = im[comp, x]
+        for a in range(3):
+            M[4 * a, 0] += hdiag[a].real
+            M[9 + 4 * a, 0] += -hdiag[a].imag
+        dr, di = _det3(W[0, 0], W[9, 0], W[1, 0], W[10, 0], W[2, 0], W[11, 0],
+                       W[3, 0], W[12, 0], W[4, 0], W[13, 0], W[5, 0], W[14, 0],
+                       W[6, 0], W[15, 0], W[7, 0], W[16, 0], W[8, 0], W[17, 0])
+        D[0, 0] = dr
+        D[1, 0] = di
+        for hit in range(nhits):
+            b = bits(key, np.uint64(x) * SITE_STRIDE + np.uint64(hit))
+            idx = np.int64(b & mask)
+            uu[0] = u01_from_bits(b)
+            for comp in range(20):
+                R[comp, 0] = tab[comp, idx]
+            na += _hit(W, M, D, R, uu, 0, k2r, k2i)
+        for comp in range(9):
+            re[comp, x] = W[comp, 0]
+            im[comp, x] = W[9 + comp, 0]
+    return na
+
+
+KERNEL_SHAPES = [(2,), (16,), (2, 2), (6, 4), (4, 2, 6), (8, 8, 8), (6, 4, 16), (2, 2, 2, 2),
+                 (4, 6, 2, 4), (2, 4, 4, 40)]
+
+
+def _random_unitary(rng, n, v):
+    z = rng.normal(size=(v, n, n)) + 1j * rng.normal(size=(v, n, n))
+    q, r = np.linalg.qr(z)
+    d = np.diagonal(r, axis1=1, axis2=2)
+    return q * (d / abs(d))[:, None, :]
+
+
+@pytest.mark.parametrize("shape", KERNEL_SHAPES)
+@pytest.mark.parametrize("rows", [None, 1, 3])
+def test_metropolis_u1_rows_match_site_reference(shape, rows):
+    from sigmasim.updates import proposal_table
+
+    lat = make_lattice(shape)
+    rng = np.random.default_rng(7)
+    phi = rng.uniform(-np.pi, np.pi, lat.volume)
+    c, s = np.cos(phi), np.sin(phi)
+    c_ref, s_ref = c.copy(), s.copy()
+    g = rows_per_chunk(lat.row_len_half) if rows is None else rows
+    for step in range(6):
+        table, _ = proposal_table(1, False, 1.5, 100 + step)
+        tc, ts = table[:, 0, 0].real.copy(), table[:, 0, 0].imag.copy()
+        key = np.uint64(0x1234567 + 7919 * step)
+        colour = step % 2
+        nhits = 1 + step % 3
+        a = metropolis_u1(c, s, lat.row_neighbours, lat.row_parity, lat.row_len_half, colour,
+                          0.7, 0.1, -0.05, tc, ts, nhits, key, g)
+        b = _ref_metropolis_u1(c_ref, s_ref, lat.neighbours, colour * lat.half,
+                               (colour + 1) * lat.half, 0.7, 0.1, -0.05, tc, ts, nhits, key)
+        assert a == b
+        np.testing.assert_array_equal(c, c_ref)
+        np.testing.assert_array_equal(s, s_ref)
+
+
+@pytest.mark.parametrize("shape", KERNEL_SHAPES)
+@pytest.mark.parametrize("rows", [None, 1, 3])
+def test_metropolis_u3_rows_match_site_reference(shape, rows):
+    from sigmasim.updates import proposal_table
+
+    lat = make_lattice(shape)
+    rng = np.random.default_rng(11)
+    u = _random_unitary(rng, 3, lat.volume).reshape(lat.volume, 9).T
+    re, im = np.ascontiguousarray(u.real), np.ascontiguousarray(u.imag)
+    re_ref, im_ref = re.copy(), im.copy()
+    hdiag = np.array([0.1 + 0.02j, -0.05 + 0.1j, 0.2 - 0.03j])
+    g = rows_per_chunk3(lat.row_len_half) if rows is None else rows
+    for step in range(4):
+        table, tdet = proposal_table(3, False, 0.8, 200 + step)
+        tab = pack_table3(table, tdet)
+        key = np.uint64(0xABCDEF + 104729 * step)
+        colour = step % 2
+        a = metropolis_u3(re, im, lat.row_neighbours, lat.row_parity, lat.row_len_half, colour,
+                          0.6, hdiag, 0.3, -0.1, tab, 4, key, g)
+        b = _ref_metropolis_u3(re_ref, im_ref, lat.neighbours, colour * lat.half,
+                               (colour + 1) * lat.half, 0.6, hdiag, 0.3, -0.1, tab, 4, key)
+        assert a == b
+        np.testing.assert_array_equal(re, re_ref)
+        np.testing.assert_array_equal(im, im_ref)
+
+
+@njit(cache=True)
+def _ref_field(c, s, nbr, x, beta, cr, ci):
+    sr = 0.0
+    si = 0.0
+    for k in range(nbr.shape[0]):
+        sr += c[nbr[k, x]]
+        si += s[nbr[k, x]]
+    return beta * sr + cr, -beta * si + ci
+
+
+@njit(cache=True)
+def _ref_heatbath_u1(c, s, nbr, start, stop, beta, cr, ci, key):
+    for x in range(start, stop):
+        ar, ai = _ref_field(c, s, nbr, x, beta, cr, ci)
+        k = np.sqrt(ar * ar + ai * ai)
+        f, g, _ = von_mises_angle(k, key, np.uint64(x) * SITE_STRIDE)
+        if k > 1e-300:
+            er = ar / k
+            ei = -ai / k
+            c[x] = er * f - ei * g
+            s[x] = ei * f + er * g
+        else:
+            c[x] = f
+            s[x] = g
+
+
+@njit(cache=True)
+def _ref_overrelax_u1(c, s, nbr, start, stop, beta, cr, ci):
+    for x in range(start, stop):
+        ar, ai = _ref_field(c, s, nbr, x, beta, cr, ci)
+        k2 = ar * ar + ai * ai
+        if k2 > 1e-300:
+            er = (ar * ar - ai * ai) / k2
+            ei = -2.0 * ar * ai / k2
+            ur = c[x]
+            ui = -s[x]
+            c[x] = er * ur - ei * ui
+            s[x] = er * ui + ei * ur
+
+
+@pytest.mark.parametrize("shape", KERNEL_SHAPES)
+@pytest.mark.parametrize("rows", [None, 1, 3])
+def test_heatbath_overrelax_u1_rows_match_site_reference(shape, rows):
+    from sigmasim.kernels.u1 import heatbath_u1, overrelax_u1
+
+    lat = make_lattice(shape)
+    rng = np.random.default_rng(13)
+    phi = rng.uniform(-np.pi, np.pi, lat.volume)
+    c, s = np.cos(phi), np.sin(phi)
+    c_ref, s_ref = c.copy(), s.copy()
+    g = rows_per_chunk(lat.row_len_half) if rows is None else rows
+    rt = (lat.row_neighbours, lat.row_parity, lat.row_len_half)
+    for step in range(6):
+        colour = step % 2
+        lo, hi = colour * lat.half, (colour + 1) * lat.half
+        key = np.uint64(0x5151 + 31337 * step)
+        if step % 3 == 0:
+            heatbath_u1(c, s, *rt, colour, 0.9, 0.1, 0.05, key, g)
+            _ref_heatbath_u1(c_ref, s_ref, lat.neighbours, lo, hi, 0.9, 0.1, 0.05, key)
+        else:
+            overrelax_u1(c, s, *rt, colour, 0.9, 0.1, 0.05, g)
+            _ref_overrelax_u1(c_ref, s_ref, lat.neighbours, lo, hi, 0.9, 0.1, 0.05)
+        np.testing.assert_array_equal(c, c_ref)
+        np.testing.assert_array_equal(s, s_ref)
+
+
+# ---------------------------------------------------------------------------- proposal tables
+def test_philox_uniform_is_numpys():
+    from sigmasim.kernels.simd import philox_uniform
+
+    rng = np.random.default_rng(17)
+    keys = [0, 1, 2**32 - 1, 2**32, 2**63, 2**64 - 1] + [int(k) for k in rng.integers(0, 2**63, 300)]
+    for k in keys:
+        for n in (1, 8, 13):
+            want = np.random.Generator(np.random.Philox(k)).uniform(-1.0, 1.0, size=n)
+            np.testing.assert_array_equal(philox_uniform(np.uint64(k), -1.0, 1.0, n), want)
+
+
+def test_fast_tables_equal_proposal_table():
+    from sigmasim.updates import proposal_table, table_u1, table_u3_packed
+
+    rng = np.random.default_rng(19)
+    for _ in range(200):
+        key = np.uint64(int(rng.integers(0, 2**63)) * 2 + int(rng.integers(0, 2)))
+        eps = float(rng.uniform(0.01, 3.0))
+        t, _ = proposal_table(1, False, eps, key)
+        tc, ts = table_u1(eps, key)
+        np.testing.assert_array_equal(tc, t[:, 0, 0].real)
+        np.testing.assert_array_equal(np.signbit(ts), np.signbit(t[:, 0, 0].imag))
+        np.testing.assert_array_equal(ts, t[:, 0, 0].imag)
+        for special in (False, True):
+            p = pack_table3(*proposal_table(3, special, eps, key))
+            q = table_u3_packed(special, eps, key)
+            np.testing.assert_array_equal(q, p)
+            np.testing.assert_array_equal(np.signbit(q), np.signbit(p))
