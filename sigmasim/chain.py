@@ -16,7 +16,7 @@ import numpy as np
 
 from sigmasim.config import RunConfig
 from sigmasim.errors import NumericalError
-from sigmasim.kernels.measure import field_is_finite, reunitarize, slice_sums
+from sigmasim.kernels.measure import field_is_finite, reunitarize, reunitarize_u1, slice_sums
 from sigmasim.lattice import Lattice, make_lattice
 from sigmasim.updates import apply
 
@@ -162,7 +162,11 @@ class Simulation:
                     st.tune_tried += tried
         st.sweep += 1
         if st.sweep % cfg.reunitarize_every == 0:
-            st.win_drift = max(st.win_drift, reunitarize(st.re, st.im, cfg.nf, cfg.special, self.blocks))
+            if cfg.nf == 1:
+                drift = reunitarize_u1(st.re[0], st.im[0], self.blocks)
+            else:
+                drift = reunitarize(st.re, st.im, cfg.nf, cfg.special, self.blocks)
+            st.win_drift = max(st.win_drift, drift)
         if st.sweep <= cfg.thermalize and self.uses_metropolis and st.sweep % cfg.tune_every == 0:
             self._tune()
 

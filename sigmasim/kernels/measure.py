@@ -95,3 +95,26 @@ def field_is_finite(re, im):
             if not (np.isfinite(re[c, s]) and np.isfinite(im[c, s])):
                 return s
     return -1
+
+
+@njit(cache=True, parallel=True)
+def reunitarize_u1(c, s, nblocks):
+    """U(1) fast path of :func:`reunitarize`: rescale (cos, sin) to unit length.
+
+    Returns the largest | |U|^2 - 1 | found, which is |U^dagger U - 1| for nf = 1.
+    """
+    nsite = c.shape[0]
+    drift = np.zeros(nblocks)
+    for blk in prange(nblocks):
+        lo = blk * nsite // nblocks
+        hi = (blk + 1) * nsite // nblocks
+        dmax = 0.0
+        for x in range(lo, hi):
+            r2 = c[x] * c[x] + s[x] * s[x]
+            dv = abs(r2 - 1.0)
+            dmax = dv if dv > dmax else dmax
+            inv = 1.0 / np.sqrt(r2)
+            c[x] *= inv
+            s[x] *= inv
+        drift[blk] = dmax
+    return drift.max()
