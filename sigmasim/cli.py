@@ -1,4 +1,4 @@
-"""Command line: ``sigmasim run | demo | info | analyze | sweep | temper | lifetimes | vacua | validate |
+"""Command line: ``sigmasim run | scan | demo | info | analyze | sweep | temper | lifetimes | vacua | validate |
 config-reference``.
 
 This is the error boundary: every :class:`SigmasimError` becomes one line on
@@ -177,6 +177,64 @@ def cmd_run(args) -> int:
     return 0
 
 
+def _parse_scan_values(text: str) -> list:
+    from sigmasim.errors import ConfigError
+
+    out = []
+    for item in text.split(","):
+        item = item.strip()
+        try:
+            out.append(int(item))
+        except ValueError:
+            try:
+                out.append(float(item))
+            except ValueError:
+                raise ConfigError(f"--values must be numbers separated by commas, got {item!r}") from None
+    if not out:
+        raise ConfigError("--values is empty")
+    return out
+
+
+def cmd_scan(args) -> int:
+    """Run one config at several values of one key: <name>-<key>-<value> per value."""
+    import tomllib
+
+    from sigmasim.chain import Interrupted
+    from sigmasim.config import SCHEMA, config_from_dict, load_config
+    from sigmasim.errors import ConfigError
+
+    _refuse_protocol_tables(args.config)
+    base = load_config(args.config)  # validates the file itself first
+    section, _, key = args.param.rpartition(".")
+    if section not in SCHEMA or key not in SCHEMA[section] or args.param in ("name", "lattice.shape"):
+        raise ConfigError(f"--param {args.param!r} is not a scannable config key (e.g. model.theta)")
+    raw = tomllib.loads(Path(args.config).read_text())
+    _set_threads(base.threads if args.threads is None else args.threads)
+    paths = []
+    for value in _parse_scan_values(args.values):
+        one = dict(raw)
+        tgt = one if not section else dict(one.get(section, {}))
+        tgt[key] = value
+        if section:
+            one[section] = tgt
+        one["name"] = f"{base.name}-{key}-{value}"
+        if args.output is not None:
+            one.setdefault("run", {})
+            one["run"] = {**one["run"], "output": args.output}
+        cfg = config_from_dict(one)
+        try:
+            paths.append(execute_run(cfg, resume=args.resume and cfg.run_file.exists(),
+                                     overwrite=args.overwrite, quiet=args.quiet, label=f"{key}={value}"))
+        except Interrupted as exc:
+            print(f"sigmasim: scan stopped at {key} = {value}, sweep {exc.args[0]}; "
+                  f"continue with: sigmasim scan {args.config} --param {args.param} "
+                  f"--values {args.values} --resume", file=sys.stderr)
+            return 130
+    print(_summary_table(paths))
+    print(f"run files: {', '.join(str(p) for p in paths)}")
+    return 0
+
+
 def cmd_demo(args) -> int:
     from sigmasim.chain import Interrupted
     from sigmasim.config import config_from_dict
@@ -346,6 +404,17 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--smoke", action="store_true",
                    help="10 + 20 sweeps under the name <config>-smoke, to check a config in seconds")
     r.set_defaults(func=cmd_run)
+    sn = sub.add_parser("scan", help="run one config at several values of one key (e.g. model.theta)")
+    sn.add_argument("config", help="TOML config")
+    sn.add_argument("--param", required=True, help="the key to vary, e.g. model.theta or model.mass")
+    sn.add_argument("--values", required=True, help="comma-separated values, e.g. 2.8,3.0,3.14,3.3")
+    sn.add_argument("--resume", action="store_true", help="continue the runs that exist, start the others")
+    sn.add_argument("--overwrite", action="store_true",
+                    help="start again over existing files written by the same configs")
+    sn.add_argument("--threads", type=int, default=None)
+    sn.add_argument("--output", default=None)
+    sn.add_argument("--quiet", action="store_true")
+    sn.set_defaults(func=cmd_scan)
     d = sub.add_parser("demo", help="run the built-in demo (about a minute)")
     d.add_argument("--output", default="runs", help="output folder (default: runs)")
     d.add_argument("--quiet", action="store_true")

@@ -189,3 +189,30 @@ def test_vacua_command(tmp_path, capsys):
     assert "first-order" in out and "research toy" in out
     assert (tmp_path / "v.png").exists() and (tmp_path / "v.pdf").exists()
     assert main(["vacua", "--nf", "9"]) == 2
+
+
+def test_scan_runs_resumes_and_refuses_damaged_files(tmp_path, capsys):
+    cfg = _write(tmp_path, GOOD)
+    out = tmp_path / "scan"
+    args = ["scan", str(cfg), "--param", "model.theta", "--values", "2.9,3.3", "--output", str(out), "--quiet"]
+    assert main(args) == 0
+    files = sorted(out.rglob("*.h5"))
+    assert [f.name for f in files] == ["cli-theta-2.9.h5", "cli-theta-3.3.h5"]
+    with h5py.File(files[1], "r") as f:
+        assert json_theta(f) == 3.3
+    capsys.readouterr()
+    assert main(args) == 2  # exists: needs --resume or --overwrite
+    assert "--resume" in capsys.readouterr().err
+    assert main(args + ["--resume"]) == 0
+    files[0].write_bytes(files[0].read_bytes()[:2000])  # truncated
+    assert main(args + ["--resume"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "cli-theta-2.9" in err
+    assert main(["scan", str(cfg), "--param", "model.betta", "--values", "1", "--output", str(out)]) == 2
+    assert main(["scan", str(cfg), "--param", "model.beta", "--values", "x", "--output", str(out)]) == 2
+
+
+def json_theta(f):
+    import json
+
+    return json.loads(f.attrs["config"])["model"]["theta"]
