@@ -8,8 +8,8 @@ nothing, and write no file under the output folder.  About 1100 examples in
 all (derandomized, so every run tries the same ones); a handful more go
 through a real subprocess to prove no traceback reaches the terminal.
 
-Not covered: unstable couplings of the linear sigma model (the linear model
-does not exist in this checkout's engine yet; add a strategy when it lands).
+Unstable couplings of the linear sigma model (actions unbounded below) are one
+of the categories: each must be refused naming the unbounded action.
 """
 
 import contextlib
@@ -302,6 +302,39 @@ def absurd_memory(draw):
 def test_absurd_memory_requests(case):
     raw, where = case
     assert_refused(raw, where)
+
+
+@st.composite
+def unstable_linear(draw):
+    """Linear-model couplings whose action is unbounded below (conditions in config.linear_stability)."""
+    nf = draw(st.integers(1, 6))
+    mass = draw(st.floats(-1, 1, allow_nan=False))
+    model = {"kind": "linear", "nf": nf, "mass": mass, "mu2": draw(st.floats(-5, 5, allow_nan=False))}
+    case = draw(st.integers(0, 3))
+    if case == 0:  # negative quartic, no stabiliser
+        l2 = draw(st.floats(-2, 2, allow_nan=False))
+        q_min_target = -draw(st.floats(1e-3, 2, allow_nan=False))
+        l1 = q_min_target - min(l2, l2 / nf)
+        model.update(lambda1=l1, lambda2=l2)
+    elif case == 1 and nf >= 5:  # determinant dominates the quartic terms without a stabiliser
+        model.update(lambda1=draw(st.floats(0.01, 2)), lambda2=draw(st.floats(0.0, 2)),
+                     c=draw(st.sampled_from([-1, 1])) * draw(st.floats(1e-3, 2)))
+    elif case == 2 or nf == 4:  # nf = 4: det beats the quartic when |c| / 8 > lambda1 + lambda2 / 4
+        nf = 4
+        l1, l2 = draw(st.floats(0.0, 0.5)), draw(st.floats(0.0, 0.5))
+        model.update(nf=4, lambda1=l1, lambda2=l2, c=8 * (l1 + l2 / 4) + draw(st.floats(1e-3, 2)))
+    else:  # pure Gaussian part with a negative or too small mass term
+        c = draw(st.floats(0.0, 2)) if nf == 2 else 0.0
+        model.update(lambda1=0.0, lambda2=0.0, c=c, mu2=draw(st.floats(-5, 2 * c if nf == 2 else 0.0)))
+    raw = json.loads(json.dumps(BASE))
+    raw["model"] = model
+    return raw
+
+
+@settings(max_examples=150, **SETTINGS)
+@given(unstable_linear())
+def test_unstable_linear_couplings(raw):
+    assert_refused(raw, "unbounded below")
 
 
 # math.prod, not np.prod: np.prod wraps around int64 for huge shapes (V -> 0)
