@@ -106,7 +106,7 @@ MIN_FIT_BINS = 20
 THERM_SERIES = ("action", "omega_h.re", "abs_omega")
 #: series shown in the text table (all are in JSON/CSV)
 # radial observables of the linear model, shown when present
-LINEAR_TABLE_SERIES = ("phi2", "action_kinetic", "action_mu2", "action_lambda1", "action_lambda2",
+LINEAR_TABLE_SERIES = ("phi2", "phi2_susceptibility", "action_kinetic", "action_mu2", "action_lambda1", "action_lambda2",
                        "action_stab")
 TABLE_SERIES = ("action", "action_beta", "action_mass", "action_det", "omega_h.re", "omega_h.im",
                 "abs_omega", "det.re", "det.im")
@@ -361,6 +361,15 @@ def analyze_data(series: dict, slices: dict, config, *, status: str = "complete"
                "cut": cut}
     for k, v in cut_reals.items():
         ra.series[k] = summarise_series(k, v)
+    if "phi2" in cut_reals and cut_reals["phi2"].size >= MIN_SAMPLES:
+        # linear model: chi = V (<phi2^2> - <phi2>^2), a derived quantity of (phi2, phi2^2)
+        p = cut_reals["phi2"]
+        vol = float(np.prod(config.shape))
+        g = gamma_analysis(np.stack([p, p * p], axis=1), func=lambda a: vol * (a[1] - a[0] ** 2))
+        ra.series["phi2_susceptibility"] = SeriesSummary(
+            "phi2_susceptibility", float(g.value), float(g.error), float(g.tau_int),
+            float(g.tau_int_error), float(g.n_independent), int(g.window), int(g.n),
+            "V var(phi2), Gamma method for the derived quantity")
     acc_m = ra.series.get("accept_metropolis")
     acc_p = ra.series.get("accept_phase")
     drift = reals.get("unitarity_drift")
