@@ -139,14 +139,10 @@ PROTOCOL_TABLES = {"sweep": "sweep", "tempering": "temper", "lifetimes": "lifeti
 
 
 def _refuse_protocol_tables(path) -> None:
-    import tomllib
-
+    from sigmasim.config import read_toml
     from sigmasim.errors import ConfigError
 
-    try:
-        raw = tomllib.loads(Path(path).read_text())
-    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError):
-        return  # load_config reports it
+    raw = read_toml(path)
     for table, command in PROTOCOL_TABLES.items():
         if table in raw:
             raise ConfigError(f"{path} has a [{table}] table: run it with 'sigmasim {command} {path}'")
@@ -197,10 +193,8 @@ def _parse_scan_values(text: str) -> list:
 
 def cmd_scan(args) -> int:
     """Run one config at several values of one key: <name>-<key>-<value> per value."""
-    import tomllib
-
     from sigmasim.chain import Interrupted
-    from sigmasim.config import SCHEMA, config_from_dict, load_config
+    from sigmasim.config import SCHEMA, config_from_dict, load_config, read_toml
     from sigmasim.errors import ConfigError
 
     _refuse_protocol_tables(args.config)
@@ -208,7 +202,7 @@ def cmd_scan(args) -> int:
     section, _, key = args.param.rpartition(".")
     if section not in SCHEMA or key not in SCHEMA[section] or args.param in ("name", "lattice.shape"):
         raise ConfigError(f"--param {args.param!r} is not a scannable config key (e.g. model.theta)")
-    raw = tomllib.loads(Path(args.config).read_text())
+    raw = read_toml(args.config)
     _set_threads(base.threads if args.threads is None else args.threads)
     paths = []
     for value in _parse_scan_values(args.values):

@@ -21,7 +21,7 @@ import numpy as np
 
 from sigmasim.errors import ConfigError
 
-__all__ = ["SCHEMA", "RunConfig", "load_config", "config_from_dict", "UPDATES", "reference_markdown"]
+__all__ = ["SCHEMA", "RunConfig", "load_config", "read_toml", "config_from_dict", "UPDATES", "reference_markdown"]
 
 UPDATES = ("metropolis", "heatbath", "overrelax")
 
@@ -459,8 +459,8 @@ def _check_memory(shape, nf):
         )
 
 
-def load_config(path, overrides: dict | None = None) -> RunConfig:
-    """Read and validate a TOML config file."""
+def read_toml(path) -> dict:
+    """The parsed TOML of a config file, with one-line errors for a missing or malformed file."""
     path = Path(path)
     try:
         text = path.read_text()
@@ -469,10 +469,14 @@ def load_config(path, overrides: dict | None = None) -> RunConfig:
     except (OSError, UnicodeDecodeError) as exc:
         raise ConfigError(f"cannot read config file {path}: {exc}") from None
     try:
-        raw = tomllib.loads(text)
+        return tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{path} is not valid TOML: {exc}") from None
-    return config_from_dict(raw, overrides)
+
+
+def load_config(path, overrides: dict | None = None) -> RunConfig:
+    """Read and validate a TOML config file."""
+    return config_from_dict(read_toml(path), overrides)
 
 
 def reference_markdown() -> str:

@@ -58,14 +58,13 @@ import dataclasses
 import json
 import math
 import time
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-from sigmasim.config import RunConfig, _check, _suggest, config_from_dict
-from sigmasim.errors import ConfigError, RunFileError, SigmasimError
+from sigmasim.config import RunConfig, _check, _suggest, config_from_dict, read_toml
+from sigmasim.errors import ConfigError, RunFileError
 
 __all__ = ["LIFETIME_SCHEMA", "LifetimeResult", "run_lifetimes", "lifetime_estimate",
            "fit_log_lifetimes", "load_lifetimes", "SWEEP_SCHEMA", "TEMPER_SCHEMA", "TemperParams", "TemperResult", "run_tempering",
@@ -110,18 +109,7 @@ def split_protocol(raw: dict, table: str, schema: dict) -> tuple[dict, dict]:
 
 def load_protocol(path, table: str, schema: dict) -> tuple[RunConfig, dict]:
     """Read a protocol TOML: the validated run config and the validated ``[table]`` params."""
-    path = Path(path)
-    try:
-        text = path.read_text()
-    except FileNotFoundError:
-        raise ConfigError(f"config file {path} does not exist") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise ConfigError(f"cannot read config file {path}: {exc}") from None
-    try:
-        raw = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(f"{path} is not valid TOML: {exc}") from None
-    params, rest = split_protocol(raw, table, schema)
+    params, rest = split_protocol(read_toml(path), table, schema)
     return config_from_dict(rest), params
 
 
@@ -907,14 +895,7 @@ def temper_command(config_path: str, out: str | None = None) -> int:
     theta) and prints swap acceptances, round trips and branch populations.
     """
     path = Path(config_path)
-    try:
-        raw = tomllib.loads(path.read_text())
-    except FileNotFoundError:
-        raise ConfigError(f"config file {path} does not exist") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise ConfigError(f"cannot read config file {path}: {exc}") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(f"{path} is not valid TOML: {exc}") from None
+    raw = read_toml(path)
     if not isinstance(raw.get("tempering"), dict):
         raise ConfigError(f"{path} has no [tempering] table")
     rest = dict(raw)
@@ -936,21 +917,9 @@ def temper_command(config_path: str, out: str | None = None) -> int:
     return 0
 
 
-def _read_toml(path) -> dict:
-    path = Path(path)
-    try:
-        return tomllib.loads(path.read_text())
-    except FileNotFoundError:
-        raise ConfigError(f"config file {path} does not exist") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise ConfigError(f"cannot read config file {path}: {exc}") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(f"{path} is not valid TOML: {exc}") from None
-
-
 def load_lifetimes(config_path) -> tuple[RunConfig, dict]:
     """Read a ``[lifetimes]`` protocol TOML: (run config, validated params)."""
-    raw = _read_toml(config_path)
+    raw = read_toml(config_path)
     if not isinstance(raw.get("lifetimes"), dict):
         raise ConfigError(f"{config_path} has no [lifetimes] table")
     rest = dict(raw)

@@ -281,7 +281,7 @@ class RunWriter:
 
     def _build(self, sim, target: Path) -> None:
         cfg = self.config
-        nf, t = cfg.nf, cfg.shape[0]
+        nf = cfg.nf
         with h5py.File(target, "w") as f:
             f.attrs["format"] = FORMAT
             f.attrs["format_version"] = FORMAT_VERSION

@@ -14,7 +14,7 @@ import numpy as np
 from sigmasim.kernels.general import heatbath, metropolis, overrelax
 from sigmasim.kernels.simd import philox_uniform
 from sigmasim.kernels.u1 import heatbath_u1, metropolis_u1, overrelax_u1, rows_per_chunk
-from sigmasim.kernels.u3 import metropolis_u3, pack_table3, rows_per_chunk3
+from sigmasim.kernels.u3 import metropolis_u3, rows_per_chunk3
 from sigmasim.rng import step_key
 
 __all__ = ["apply", "proposal_table", "TABLE_SIZE"]

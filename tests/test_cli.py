@@ -1,6 +1,5 @@
 """The command line: one-line errors with exit 2, no overwrites, clean stops and resumes."""
 
-import os
 import signal
 import subprocess
 import sys

@@ -14,7 +14,7 @@ from sigmasim.cli import main
 from sigmasim.config import config_from_dict
 from sigmasim.errors import NumericalError
 from sigmasim.kernels.group import det as kernel_det
-from sigmasim.storage import open_run, read_state
+from sigmasim.storage import open_run
 
 
 def _cfg(nf=3, group="U", shape=(4, 4, 4), schedule="heatbath", output="runs", **run):

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy import integrate
 
-from sigmasim import exact, validation
+from sigmasim import validation
 from sigmasim.analysis.gamma import gamma_analysis
 from sigmasim.chain import Interrupted, make_simulation, run_chain, simulate
 from sigmasim.config import _quartic_det_min, config_from_dict

@@ -76,7 +76,7 @@ import numpy as np
 from sigmasim.errors import RunFileError, SigmasimError
 
 from .channels import CHANNELS, meson_correlators, tree_level
-from .correlators import effective_mass_errors, fit_correlator, scan_fit_windows
+from .correlators import effective_mass_errors, scan_fit_windows
 from .gamma import MIN_SAMPLES, gamma_analysis
 from .thermalisation import thermalisation_cut
 
