@@ -842,9 +842,9 @@ def plot_sweep(result: SweepResult, path) -> Path:
     ax.set_ylabel(r"Im $\omega_h$ = Im $e^{i\theta_m}\Omega$")
     ax.legend(loc="best", fontsize=8)
     ax.set_title(f"hysteresis sweep, loop area {s['area']:.3g} +- {s['area_error']:.2g}", fontsize=10)
-    cap = (f"U({cfg.nf})" if cfg.group == "U" else f"SU({cfg.nf})") + \
-        f" {'x'.join(map(str, cfg.shape))}, beta={cfg.beta:g}, h={','.join(f'{m:g}' for m in set(cfg.mass))}, " \
-        f"kappa={cfg.kappa:g}, dtheta={p.step:g}, {p.sweeps_per_step}+{p.thermalize_per_step} sweeps/step, " \
+    from sigmasim.analysis.report import run_label
+
+    cap = f"{run_label(cfg)}; dtheta={p.step:g}, {p.sweeps_per_step}+{p.thermalize_per_step} sweeps/step, " \
         f"{p.cycles} cycle(s); jumps up {s['jump_up']:.3f}, down {s['jump_down']:.3f}. research toy"
     fig.text(0.01, 0.01, cap, fontsize=7, wrap=True)
     fig.tight_layout(rect=(0, 0.05, 1, 1))
@@ -873,7 +873,9 @@ def sweep_command(config_path: str, plot: bool = False, out: str | None = None) 
     result = run_sweep(config, params)
     grid = params.grid()
     try:
-        result.tree = tree_level(config, float(grid[0]), float(grid[-1]))
+        # the tree-level branches of sigmasim.vacua are those of the chiral potential only
+        result.tree = (tree_level(config, float(grid[0]), float(grid[-1]))
+                       if getattr(config, "kind", "chiral") == "chiral" else {})
     except Exception:  # tree-level scan is decoration only
         result.tree = {}
     write_sweep(path, result)
