@@ -14,7 +14,8 @@ import numpy as np
 from sigmasim.kernels.general import heatbath, metropolis, overrelax
 from sigmasim.kernels.simd import philox_uniform
 from sigmasim.kernels.u1 import heatbath_u1, metropolis_u1, overrelax_u1, rows_per_chunk
-from sigmasim.kernels.u3 import metropolis_u3, rows_per_chunk3
+from sigmasim.kernels.tables import rotation_table
+from sigmasim.kernels.u3 import metropolis_u3, pack_table3, rows_per_chunk3
 from sigmasim.rng import step_key
 
 __all__ = ["apply", "proposal_table", "TABLE_SIZE"]
@@ -24,10 +25,10 @@ _SALT_TABLE = 0x5EED
 
 
 def proposal_table(nf: int, special: bool, eps: float, key) -> tuple[np.ndarray, np.ndarray]:
-    """A symmetric table of Metropolis rotations: R = exp(i eps X) and R^-1, X Hermitian.
+    """A symmetric table of Metropolis rotations near 1 and their inverses.
 
-    X has independent Gaussian entries (Gaussian unitary ensemble), traceless
-    for SU(nf), so the rotations are isotropic.  Returns ``(table, det)``,
+    nf = 1: phases e^{i eps u}, u uniform in (-1, 1); nf >= 2: Cayley transforms of
+    Gaussian Hermitian matrices (traceless for SU(nf)), see :mod:`sigmasim.kernels.tables`.  Returns ``(table, det)``,
     complex128 arrays (TABLE_SIZE, nf, nf) and (TABLE_SIZE,).
     """
     half = TABLE_SIZE // 2
@@ -37,26 +38,10 @@ def proposal_table(nf: int, special: bool, eps: float, key) -> tuple[np.ndarray,
         r = np.exp(1j * ang)
         table = np.concatenate([r, r.conj()]).reshape(TABLE_SIZE, 1, 1)
         return table, table[:, 0, 0].copy()
-    r, w = _rotations(nf, special, eps, key)
-    table = np.concatenate([r, np.conj(np.swapaxes(r, 1, 2))])
-    dets = np.exp(1j * eps * w.sum(axis=1))
-    if special:
-        dets = np.ones(half, dtype=np.complex128)
-    return np.ascontiguousarray(table), np.concatenate([dets, dets.conj()])
-
-
-def _rotations(nf: int, special: bool, eps: float, key):
-    """The rotations R = exp(i eps X) (TABLE_SIZE // 2, nf, nf) of :func:`proposal_table` and the eigenvalues of X."""
-    rng = np.random.Generator(np.random.Philox(int(key)))
-    half = TABLE_SIZE // 2
-    g = rng.normal(size=(half, nf, nf)) + 1j * rng.normal(size=(half, nf, nf))
-    x = 0.5 * (g + np.conj(np.swapaxes(g, 1, 2))) / np.sqrt(2 * nf)
-    if special:
-        tr = np.trace(x, axis1=1, axis2=2).real / nf
-        x -= tr[:, None, None] * np.eye(nf)
-    w, v = np.linalg.eigh(x)
-    r = np.einsum("kab,kb,kcb->kac", v, np.exp(1j * eps * w), v.conj())
-    return r, w
+    table = np.empty((TABLE_SIZE, nf, nf), dtype=np.complex128)
+    dets = np.empty(TABLE_SIZE, dtype=np.complex128)
+    rotation_table(nf, special, float(eps), np.uint64(key), table, dets)
+    return table, dets
 
 
 def table_u1(eps: float, key) -> tuple[np.ndarray, np.ndarray]:
@@ -68,27 +53,8 @@ def table_u1(eps: float, key) -> tuple[np.ndarray, np.ndarray]:
 
 
 def table_u3_packed(special: bool, eps: float, key) -> np.ndarray:
-    """``pack_table3(*proposal_table(3, special, eps, key))`` built directly (the same numbers)."""
-    r, w = _rotations(3, special, eps, key)
-    half = TABLE_SIZE // 2
-    out = np.empty((20, TABLE_SIZE))
-    rt = np.swapaxes(r, 1, 2).reshape(half, 9)
-    rf = r.reshape(half, 9)
-    out[:9, :half] = rf.real.T
-    out[9:18, :half] = rf.imag.T
-    out[:9, half:] = rt.real.T
-    out[9:18, half:] = -rt.imag.T
-    if special:
-        out[18] = 1.0
-        out[19, :half] = 0.0
-        out[19, half:] = -0.0
-    else:
-        d = np.exp(1j * eps * w.sum(axis=1))
-        out[18, :half] = d.real
-        out[18, half:] = d.real
-        out[19, :half] = d.imag
-        out[19, half:] = -d.imag
-    return out
+    """``pack_table3(*proposal_table(3, special, eps, key))``: the layout the nf = 3 kernel reads."""
+    return pack_table3(*proposal_table(3, special, eps, key))
 
 
 def apply(sim, name: str) -> tuple[int, int]:

@@ -1,0 +1,104 @@
+"""Metropolis proposal tables built in numba from counter-based random numbers.
+
+Each colour update draws ``TABLE_SIZE / 2`` rotations R near 1 and stores them
+with their inverses R^dagger, so the proposal is symmetric whatever the rotations
+are.  R is the Cayley transform of a Gaussian Hermitian matrix X (Gaussian
+unitary ensemble, traceless for SU(nf)):
+
+    R = (1 - i (eps/2) X)^{-1} (1 + i (eps/2) X),
+
+which is exactly unitary (eigenvalue phases 2 atan(eps lambda / 2)) and needs
+only a small linear solve instead of an eigendecomposition; rounding is removed
+by the Gram-Schmidt projection of :func:`group.reunitarize_site`.  For SU(nf)
+the determinant phase is divided out.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+from sigmasim.kernels.group import det, reunitarize_site
+from sigmasim.rng import uniform
+
+__all__ = ["rotation_table"]
+
+
+@njit(cache=True)
+def _gauss_pair(key, n):
+    # Box-Muller from two counter uniforms
+    r = np.sqrt(-2.0 * np.log(uniform(key, n)))
+    a = 2.0 * np.pi * uniform(key, n + np.uint64(1))
+    return r * np.cos(a), r * np.sin(a)
+
+
+@njit(cache=True)
+def rotation_table(nf, special, eps, key, table, dets):
+    """Fill ``table`` (complex128 (16, nf, nf)) and ``dets`` ((16,)) with 8 rotations and inverses."""
+    half = table.shape[0] // 2
+    x = np.empty((nf, nf), dtype=np.complex128)
+    a = np.empty((nf, nf), dtype=np.complex128)
+    r = np.empty((nf, nf), dtype=np.complex128)
+    work = np.empty((nf, nf), dtype=np.complex128)
+    n = np.uint64(0)
+    sd = 1.0 / np.sqrt(2.0 * nf)  # diagonal N(0, 1/(2 nf)); off-diagonal re, im N(0, 1/(4 nf))
+    for k in range(half):
+        for i in range(nf):
+            g0, g1 = _gauss_pair(key, n)
+            n += np.uint64(2)
+            x[i, i] = g0 * sd
+            for j in range(i + 1, nf):
+                g0, g1 = _gauss_pair(key, n)
+                n += np.uint64(2)
+                z = complex(g0, g1) * (sd / np.sqrt(2.0))
+                x[i, j] = z
+                x[j, i] = z.conjugate()
+        if special:
+            tr = 0.0
+            for i in range(nf):
+                tr += x[i, i].real
+            for i in range(nf):
+                x[i, i] -= tr / nf
+        # solve (1 - i e X) R = (1 + i e X), e = eps / 2, by Gauss-Jordan with partial pivoting
+        e = 0.5 * eps
+        for i in range(nf):
+            for j in range(nf):
+                d = 1.0 if i == j else 0.0
+                a[i, j] = d - 1j * e * x[i, j]
+                r[i, j] = d + 1j * e * x[i, j]
+        for col in range(nf):
+            p = col
+            big = abs(a[col, col])
+            for i in range(col + 1, nf):
+                if abs(a[i, col]) > big:
+                    big = abs(a[i, col])
+                    p = i
+            if p != col:
+                for j in range(nf):
+                    t = a[col, j]
+                    a[col, j] = a[p, j]
+                    a[p, j] = t
+                    t = r[col, j]
+                    r[col, j] = r[p, j]
+                    r[p, j] = t
+            piv = a[col, col]
+            for j in range(nf):
+                a[col, j] /= piv
+                r[col, j] /= piv
+            for i in range(nf):
+                if i != col:
+                    f = a[i, col]
+                    if f != 0:
+                        for j in range(nf):
+                            a[i, j] -= f * a[col, j]
+                            r[i, j] -= f * r[col, j]
+        reunitarize_site(r, nf, special, work)
+        dr = det(r, nf, work)
+        if special:
+            dr = complex(1.0, 0.0)
+        for i in range(nf):
+            for j in range(nf):
+                table[k, i, j] = r[i, j]
+                table[k + half, i, j] = r[j, i].conjugate()
+        dets[k] = dr
+        dets[k + half] = dr.conjugate()
