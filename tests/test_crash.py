@@ -32,6 +32,8 @@ import pytest
 
 from sigmasim.storage import open_run
 
+from runfiles import contents
+
 ROOT = Path(__file__).resolve().parents[1]
 CHECKPOINT_EVERY = 4
 THERMALIZE = 5
@@ -73,19 +75,6 @@ def _run(cfg, out, *extra, timeout=300):
                           cwd=ROOT)
 
 
-def _contents(path):
-    out = {}
-    with h5py.File(path, "r") as f:
-        for group in ("series", "slices", "state"):
-            for k, d in f[group].items():
-                out[f"{group}/{k}"] = d[...]
-        for k, v in f["state"].attrs.items():
-            out[f"state@{k}"] = v
-        for k in ("n_meas", "sweep", "status"):
-            out[k] = f.attrs[k]
-    return out
-
-
 @pytest.fixture(scope="module")
 def reference(tmp_path_factory):
     base = tmp_path_factory.mktemp("crash")
@@ -108,7 +97,7 @@ def reference(tmp_path_factory):
     assert p.returncode == 0, err
     assert t_file is not None
     rate = TOTAL / max(t_end - t_file, 1e-3)  # sweeps per second, checkpoints included
-    return {"cfg": cfg, "base": base, "file": _contents(target), "startup": t_file - t0,
+    return {"cfg": cfg, "base": base, "file": contents(target), "startup": t_file - t0,
             "run_time": t_end - t_file, "rate": rate}
 
 
@@ -223,7 +212,7 @@ def test_sigkill_anywhere_then_resume_is_bit_identical(reference, tmp_path):
         else:
             r = _run(cfg, out, "--resume")
         assert r.returncode == 0, r.stderr
-        got = _contents(target)
+        got = contents(target)
         want = reference["file"]
         assert got.keys() == want.keys()
         for key in want:
@@ -253,7 +242,7 @@ def test_leftover_tmp_from_a_killed_checkpoint_is_harmless(reference, tmp_path):
     assert r.returncode == 2 and "--resume" in r.stderr and "Traceback" not in r.stderr
     r = _run(cfg, out, "--resume")
     assert r.returncode == 0, r.stderr
-    got, want = _contents(target), reference["file"]
+    got, want = contents(target), reference["file"]
     for key in want:
         np.testing.assert_array_equal(got[key], want[key], err_msg=key)
     assert not w.tmp.exists()

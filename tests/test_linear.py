@@ -4,7 +4,6 @@ Statistical checks use fixed seeds and 4-sigma Gamma-method bounds (U. Wolff,
 Comput. Phys. Commun. 156 (2004) 143, via sigmasim.analysis.gamma).
 """
 
-import h5py
 import numba
 import numpy as np
 import pytest
@@ -12,11 +11,13 @@ from scipy import integrate
 
 from sigmasim import validation
 from sigmasim.analysis.gamma import gamma_analysis
-from sigmasim.chain import Interrupted, make_simulation, run_chain, simulate
+from sigmasim.chain import make_simulation, simulate
 from sigmasim.config import _quartic_det_min, config_from_dict
 from sigmasim.errors import ConfigError
 from sigmasim.linear import LinearSimulation
-from sigmasim.storage import RunWriter, open_run, read_state
+from sigmasim.storage import open_run
+
+from runfiles import assert_same_contents, contents, resume, run_file
 
 MIXED = [{"update": "metropolis"}, {"update": "heatbath"}, {"update": "overrelax", "repeat": 2}]
 
@@ -146,43 +147,17 @@ def test_thread_count_does_not_change_the_chain(tmp_path, nf, extra):
         np.testing.assert_array_equal(one[k], two[k], err_msg=k)
 
 
-def _run_file(cfg, stop_at=None):
-    sim = make_simulation(cfg)
-    assert isinstance(sim, LinearSimulation)
-    writer = RunWriter(cfg, cfg.run_file)
-    cfg.run_dir.mkdir(parents=True, exist_ok=True)
-    try:
-        run_chain(sim, (writer,), should_stop=lambda: stop_at is not None and sim.state.sweep == stop_at)
-    except Interrupted:
-        writer.interrupted(sim)
-        return False
-    return True
-
-
-def _contents(path):
-    out = {}
-    with h5py.File(path, "r") as f:
-        for group in ("series", "slices", "state"):
-            for k, d in f[group].items():
-                out[f"{group}/{k}"] = d[...]
-        for k, v in f["state"].attrs.items():
-            out[f"state@{k}"] = v
-        out["status"] = f.attrs["status"]
-    return out
-
-
 @pytest.mark.parametrize("stop_at", [5, 21, 57])
 def test_resumed_run_equals_uninterrupted_run(tmp_path, stop_at):
     full = _repro_cfg(tmp_path / "a")
-    assert _run_file(full)
+    assert isinstance(make_simulation(full), LinearSimulation)
+    assert run_file(full)
     part = _repro_cfg(tmp_path / "b")
-    assert not _run_file(part, stop_at=stop_at)
+    assert not run_file(part, stop_at=stop_at)
     assert open_run(part.run_file).status == "interrupted"
-    run_chain(make_simulation(part, read_state(part.run_file, part)), (RunWriter(part, part.run_file, resume=True),))
-    a, b = _contents(full.run_file), _contents(part.run_file)
-    assert a.keys() == b.keys()
-    for k in a:
-        np.testing.assert_array_equal(a[k], b[k], err_msg=k)
+    resume(part)
+    a, b = contents(full.run_file), contents(part.run_file)
+    assert_same_contents(a, b)
     assert b["status"] == "complete"
     assert open_run(part.run_file).config.kind == "linear"
 

@@ -1,13 +1,14 @@
 """Same config and seed give the same numbers: any thread count, and across a resume."""
 
-import h5py
 import numba
 import numpy as np
 import pytest
 
-from sigmasim.chain import Interrupted, Simulation, run_chain, simulate
+from sigmasim.chain import simulate
 from sigmasim.config import config_from_dict
-from sigmasim.storage import RunWriter, open_run, read_state
+from sigmasim.storage import open_run
+
+from runfiles import assert_same_contents, contents, resume, run_file
 
 SCHEDULES = {
     "mixed": [{"update": "metropolis"}, {"update": "heatbath"}, {"update": "overrelax", "repeat": 2}],
@@ -45,47 +46,16 @@ def test_thread_count_does_not_change_the_chain(tmp_path, nf, group):
         np.testing.assert_array_equal(one[k], two[k], err_msg=k)
 
 
-def _run_file(cfg, stop_at=None):
-    sim = Simulation(cfg)
-    writer = RunWriter(cfg, cfg.run_file)
-    cfg.run_dir.mkdir(parents=True, exist_ok=True)
-    try:
-        run_chain(sim, (writer,), should_stop=lambda: stop_at is not None and sim.state.sweep == stop_at)
-    except Interrupted:
-        writer.interrupted(sim)
-        return False
-    return True
-
-
-def _resume(cfg):
-    sim = Simulation(cfg, read_state(cfg.run_file, cfg))
-    run_chain(sim, (RunWriter(cfg, cfg.run_file, resume=True),))
-
-
-def _contents(path):
-    out = {}
-    with h5py.File(path, "r") as f:
-        for group in ("series", "slices", "state"):
-            for k, d in f[group].items():
-                out[f"{group}/{k}"] = d[...]
-        for k, v in f["state"].attrs.items():
-            out[f"state@{k}"] = v
-        out["status"] = f.attrs["status"]
-    return out
-
-
 @pytest.mark.parametrize("stop_at", [5, 20, 21, 33, 57])
 def test_resumed_run_equals_uninterrupted_run(tmp_path, stop_at):
     full = _cfg(tmp_path / "a")
-    assert _run_file(full)
+    assert run_file(full)
     part = _cfg(tmp_path / "b")
-    assert not _run_file(part, stop_at=stop_at)
+    assert not run_file(part, stop_at=stop_at)
     assert open_run(part.run_file).status == "interrupted"
-    _resume(part)
-    a, b = _contents(full.run_file), _contents(part.run_file)
-    assert a.keys() == b.keys()
-    for k in a:
-        np.testing.assert_array_equal(a[k], b[k], err_msg=k)
+    resume(part)
+    a, b = contents(full.run_file), contents(part.run_file)
+    assert_same_contents(a, b)
     assert b["status"] == "complete"
 
 

@@ -1,0 +1,49 @@
+"""Shared helpers of the tests that write, interrupt, resume and compare run files."""
+
+import h5py
+import numpy as np
+
+from sigmasim.chain import Interrupted, make_simulation, run_chain
+from sigmasim.storage import RunWriter, read_state
+
+
+def run_file(cfg, stop_at=None) -> bool:
+    """Run ``cfg`` into its run file; stop (as on SIGTERM) after sweep ``stop_at``.
+
+    Returns True when the run completed, False when it was stopped.
+    """
+    sim = make_simulation(cfg)
+    writer = RunWriter(cfg, cfg.run_file)
+    cfg.run_dir.mkdir(parents=True, exist_ok=True)
+    try:
+        run_chain(sim, (writer,), should_stop=lambda: stop_at is not None and sim.state.sweep == stop_at)
+    except Interrupted:
+        writer.interrupted(sim)
+        return False
+    return True
+
+
+def resume(cfg) -> None:
+    """Continue the run file of ``cfg`` from its checkpoint to the end."""
+    sim = make_simulation(cfg, read_state(cfg.run_file, cfg))
+    run_chain(sim, (RunWriter(cfg, cfg.run_file, resume=True),))
+
+
+def contents(path) -> dict:
+    """Every recorded dataset, the state attributes and the root counters of a run file."""
+    out = {}
+    with h5py.File(path, "r") as f:
+        for group in ("series", "slices", "state"):
+            for k, d in f[group].items():
+                out[f"{group}/{k}"] = d[...]
+        for k, v in f["state"].attrs.items():
+            out[f"state@{k}"] = v
+        for k in ("n_meas", "sweep", "status"):
+            out[k] = f.attrs[k]
+    return out
+
+
+def assert_same_contents(a: dict, b: dict) -> None:
+    assert a.keys() == b.keys()
+    for k in a:
+        np.testing.assert_array_equal(a[k], b[k], err_msg=k)
