@@ -305,3 +305,43 @@ def test_hopping_form_is_the_same_action():
                - 2 * c * (np.exp(1j * ta) * np.linalg.det(u)).real.sum()
                - (h * np.exp(1j * tm) * np.einsum("xaa->x", u)).real.sum())
     assert np.isclose(standard, hopping, rtol=1e-10)
+
+
+def test_protocol_commands_run_the_linear_model(tmp_path):
+    # the hysteresis sweep and analyze work on linear runs like on chiral ones
+    from sigmasim.analysis.report import analyze_data
+    from sigmasim.protocols import read_sweep, sweep_command
+
+    cfg = tmp_path / "lin.toml"
+    cfg.write_text(f"""
+name = "lin"
+[lattice]
+shape = [4, 4]
+[model]
+kind = "linear"
+nf = 2
+mu2 = -1.0
+lambda1 = 0.1
+lambda2 = 0.1
+c = 0.2
+mass = 0.1
+[run]
+thermalize = 10
+threads = 1
+output = "{tmp_path}"
+[sweep]
+start = 2.5
+stop = 3.7
+step = 0.6
+sweeps_per_step = 10
+cycles = 1
+""")
+    out = tmp_path / "s.h5"
+    assert sweep_command(str(cfg), plot=False, out=str(out)) == 0
+    assert read_sweep(out)["config"]["model"]["kind"] == "linear"
+    run = _cfg(shape=(8, 4), nf=2, mu2=-1.0, lambda1=0.1, lambda2=0.1, c=0.2, mass=0.1,
+               run={"thermalize": 20, "measurements": 200})
+    r = simulate(run)
+    ra = analyze_data({k: v for k, v in r.items() if not k.startswith("slices/")},
+                      {k[7:]: v for k, v in r.items() if k.startswith("slices/")}, run)
+    assert "phi2_susceptibility" in ra.series and ra.series["phi2_susceptibility"].error > 0
