@@ -108,50 +108,58 @@ def blocked_mean(x, nblocks: int = 20):
     return float(x.mean()), float(b.std(ddof=1) / np.sqrt(nb))
 
 
-def run_numba(model: str, algo: str, threads: int, seconds: float, thermalize: int) -> dict:
+def time_sweeps(cfg, model: str, algo: str, algo_name: str, threads: int, seconds: float,
+                thermalize: int, min_sweeps: int = 20) -> dict:
+    """Sweeps of ``cfg`` (any model) through the public Simulation path; one result line.
+
+    Thermalises (tuning the Metropolis step), then times only ``sim.sweep()``; the measurement
+    for the physics sanity numbers happens outside the timed part, as the yardstick does.
+    """
     import numba
 
-    from sigmasim.chain import Simulation
+    from sigmasim.chain import make_simulation
 
     numba.set_num_threads(threads)
-    cfg = config(model, algo, thermalize)
-    sim = Simulation(cfg)
+    sim = make_simulation(cfg)
     for _ in range(thermalize):
         sim.sweep()
     st = sim.state
-    st.win_acc[:] = 0
-    st.win_tried[:] = 0
+    k = 0 if algo == "metropolis" else 1  # acceptance window: Metropolis hits, or phase/proposal moves
     load = foreign_load()
     action, retr = [], []
     t_upd = 0.0
     n = 0
+    acc_sum = [0, 0]
     t_start = time.perf_counter()
-    while n < 20 or time.perf_counter() - t_start < seconds:
+    while n < min_sweeps or time.perf_counter() - t_start < seconds:
         t0 = time.perf_counter()
         sim.sweep()
         t_upd += time.perf_counter() - t0
         n += 1
-        # measured outside the timed part, as the yardstick does (win_* are reset by measure)
-        acc, tried = int(st.win_acc[0]), int(st.win_tried[0])
-        rec = sim.measure()
-        st.win_acc[0] += acc
-        st.win_tried[0] += tried
+        acc_sum[0] += int(st.win_acc[k])
+        acc_sum[1] += int(st.win_tried[k])
+        rec = sim.measure()  # resets the acceptance window
         action.append(rec["action"])
         retr.append(rec["omega"].real)
     hits = cfg.metropolis_hits if algo == "metropolis" else 1
     a, ae = blocked_mean(action)
     r, re_ = blocked_mean(retr)
-    acc = st.win_acc[0] / st.win_tried[0] if algo == "metropolis" and st.win_tried[0] else 1.0
     impl = "numba" if threads == 1 else f"numba_{threads}threads"
     return {
-        "model": model, "algorithm": ALGO_NAMES.get((model, algo), algo), "implementation": impl,
+        "model": model, "algorithm": algo_name, "implementation": impl,
         "lattice": "x".join(map(str, cfg.shape)), "threads": threads, "sweeps": n,
         "therm": thermalize, "hits_per_site": hits, "seconds": t_upd,
-        "site_hits_per_second": n * cfg.volume * hits / t_upd, "acceptance": float(acc),
+        "site_hits_per_second": n * cfg.volume * hits / t_upd,
+        "acceptance": acc_sum[0] / acc_sum[1] if acc_sum[1] else 1.0,
         "step": st.step_size, "action_per_site": a, "action_per_site_err": ae,
         "retr_over_nf": r, "retr_over_nf_err": re_, "foreign_load_before": load,
         "contended": contended(load, threads),
     }
+
+
+def run_numba(model: str, algo: str, threads: int, seconds: float, thermalize: int) -> dict:
+    return time_sweeps(config(model, algo, thermalize), model, algo, ALGO_NAMES.get((model, algo), algo),
+                       threads, seconds, thermalize)
 
 
 # ----------------------------------------------------------------------------- C yardstick

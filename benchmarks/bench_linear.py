@@ -30,7 +30,7 @@ ROOT = Path(__file__).resolve().parent.parent
 RESULTS = ROOT / "benchmarks" / "results"
 sys.path.insert(0, str(ROOT))
 
-from benchmarks.bench import blocked_mean, contended, foreign_load  # noqa: E402
+from benchmarks.bench import foreign_load, time_sweeps  # noqa: E402
 
 MODEL = dict(kind="linear", nf=3, kinetic=1.0, mu2=-5.0, lambda1=0.05, lambda2=0.25, c=0.3, mass=0.1,
              theta=3.0, theta_placement="mass")
@@ -51,48 +51,8 @@ def config(algo: str, thermalize: int, seed: int = 11):
 
 
 def run_linear(algo: str, threads: int, seconds: float, thermalize: int) -> dict:
-    import numba
-
-    from sigmasim.linear import LinearSimulation
-
-    numba.set_num_threads(threads)
-    cfg = config(algo, thermalize)
-    sim = LinearSimulation(cfg)
-    for _ in range(thermalize):
-        sim.sweep()
-    st = sim.state
-    st.win_acc[:] = 0
-    st.win_tried[:] = 0
-    load = foreign_load()
-    action, retr = [], []
-    t_upd = 0.0
-    n = 0
-    acc_sum = [0, 0]
-    t_start = time.perf_counter()
-    while n < 10 or time.perf_counter() - t_start < seconds:
-        t0 = time.perf_counter()
-        sim.sweep()
-        t_upd += time.perf_counter() - t0
-        n += 1
-        k = 0 if algo == "metropolis" else 1
-        acc_sum[0] += int(st.win_acc[k])
-        acc_sum[1] += int(st.win_tried[k])
-        rec = sim.measure()  # outside the timed part (resets the acceptance window)
-        action.append(rec["action"])
-        retr.append(rec["omega"].real)
-    hits = HITS if algo == "metropolis" else 1
-    a, ae = blocked_mean(action)
-    r, re_ = blocked_mean(retr)
-    impl = "numba" if threads == 1 else f"numba_{threads}threads"
-    return {
-        "model": NAME, "algorithm": algo, "implementation": impl, "lattice": "x".join(map(str, SHAPE)),
-        "threads": threads, "sweeps": n, "therm": thermalize, "hits_per_site": hits, "seconds": t_upd,
-        "site_hits_per_second": n * cfg.volume * hits / t_upd,
-        "acceptance": acc_sum[0] / acc_sum[1] if acc_sum[1] else float("nan"),
-        "step": st.step_size, "action_per_site": a, "action_per_site_err": ae,
-        "retr_over_nf": r, "retr_over_nf_err": re_, "foreign_load_before": load,
-        "contended": contended(load, threads),
-    }
+    return time_sweeps(config(algo, thermalize), NAME, algo, algo, threads, seconds, thermalize,
+                       min_sweeps=10)
 
 
 def main(argv=None) -> int:
