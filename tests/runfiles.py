@@ -47,3 +47,23 @@ def assert_same_contents(a: dict, b: dict) -> None:
     assert a.keys() == b.keys()
     for k in a:
         np.testing.assert_array_equal(a[k], b[k], err_msg=k)
+
+
+def assert_thread_independent(cfg) -> None:
+    """``simulate(cfg)`` on 1 and on 2 numba threads gives identical arrays (skips on 1 core)."""
+    import numba
+    import pytest
+
+    from sigmasim.chain import simulate
+
+    if numba.config.NUMBA_NUM_THREADS < 2:
+        pytest.skip("needs at least 2 threads")
+    old = numba.get_num_threads()
+    try:
+        numba.set_num_threads(1)
+        one = simulate(cfg)
+        numba.set_num_threads(2)
+        two = simulate(cfg)
+    finally:
+        numba.set_num_threads(old)
+    assert_same_contents(one, two)

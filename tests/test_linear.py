@@ -4,7 +4,6 @@ Statistical checks use fixed seeds and 4-sigma Gamma-method bounds (U. Wolff,
 Comput. Phys. Commun. 156 (2004) 143, via sigmasim.analysis.gamma).
 """
 
-import numba
 import numpy as np
 import pytest
 from scipy import integrate
@@ -17,7 +16,8 @@ from sigmasim.errors import ConfigError
 from sigmasim.linear import LinearSimulation
 from sigmasim.storage import open_run
 
-from runfiles import assert_same_contents, contents, resume, run_file
+from runfiles import (assert_same_contents, assert_thread_independent, contents, resume,
+                      run_file)
 
 MIXED = [{"update": "metropolis"}, {"update": "heatbath"}, {"update": "overrelax", "repeat": 2}]
 
@@ -131,20 +131,7 @@ def _repro_cfg(tmp_path, nf=3, **extra):
 
 @pytest.mark.parametrize("nf, extra", [(1, {}), (3, {}), (5, {"lambda_s": 0.01, "stab_power": 3})])
 def test_thread_count_does_not_change_the_chain(tmp_path, nf, extra):
-    if numba.config.NUMBA_NUM_THREADS < 2:
-        pytest.skip("needs at least 2 threads")
-    cfg = _repro_cfg(tmp_path, nf=nf, **extra)
-    old = numba.get_num_threads()
-    try:
-        numba.set_num_threads(1)
-        one = simulate(cfg)
-        numba.set_num_threads(2)
-        two = simulate(cfg)
-    finally:
-        numba.set_num_threads(old)
-    assert one.keys() == two.keys()
-    for k in one:
-        np.testing.assert_array_equal(one[k], two[k], err_msg=k)
+    assert_thread_independent(_repro_cfg(tmp_path, nf=nf, **extra))
 
 
 @pytest.mark.parametrize("stop_at", [5, 21, 57])

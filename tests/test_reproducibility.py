@@ -1,6 +1,5 @@
 """Same config and seed give the same numbers: any thread count, and across a resume."""
 
-import numba
 import numpy as np
 import pytest
 
@@ -8,7 +7,8 @@ from sigmasim.chain import simulate
 from sigmasim.config import config_from_dict
 from sigmasim.storage import open_run
 
-from runfiles import assert_same_contents, contents, resume, run_file
+from runfiles import (assert_same_contents, assert_thread_independent, contents, resume,
+                      run_file)
 
 SCHEDULES = {
     "mixed": [{"update": "metropolis"}, {"update": "heatbath"}, {"update": "overrelax", "repeat": 2}],
@@ -30,20 +30,7 @@ def _cfg(tmp_path, nf=3, group="U", shape=(8, 4, 4), **run):
 
 @pytest.mark.parametrize("nf, group", [(1, "U"), (3, "U"), (2, "SU"), (5, "U")])
 def test_thread_count_does_not_change_the_chain(tmp_path, nf, group):
-    if numba.config.NUMBA_NUM_THREADS < 2:
-        pytest.skip("needs at least 2 threads")
-    cfg = _cfg(tmp_path, nf=nf, group=group)
-    old = numba.get_num_threads()
-    try:
-        numba.set_num_threads(1)
-        one = simulate(cfg)
-        numba.set_num_threads(2)
-        two = simulate(cfg)
-    finally:
-        numba.set_num_threads(old)
-    assert one.keys() == two.keys()
-    for k in one:
-        np.testing.assert_array_equal(one[k], two[k], err_msg=k)
+    assert_thread_independent(_cfg(tmp_path, nf=nf, group=group))
 
 
 @pytest.mark.parametrize("stop_at", [5, 20, 21, 33, 57])
