@@ -11,6 +11,7 @@ from __future__ import annotations
 import argparse
 import signal
 import sys
+import threading
 from pathlib import Path
 
 from sigmasim.errors import RunFileError, SigmasimError
@@ -46,7 +47,9 @@ class _StopFlag:
         def handler(signum, frame):
             self.signal = signum
 
-        self.old = {s: signal.signal(s, handler) for s in (signal.SIGINT, signal.SIGTERM)}
+        self.old = {}
+        if threading.current_thread() is threading.main_thread():  # not in a worker's task thread
+            self.old = {s: signal.signal(s, handler) for s in (signal.SIGINT, signal.SIGTERM)}
         return self
 
     def restore(self):
@@ -55,8 +58,12 @@ class _StopFlag:
 
 
 def execute_run(config, resume: bool = False, overwrite: bool = False, quiet: bool = False,
-                label: str | None = None) -> Path:
+                label: str | None = None, should_stop=None, sinks=()) -> Path:
     """Run (or resume) one config to completion; returns the run file path.
+
+    ``should_stop`` (a callable polled once per sweep) adds a stop request to
+    SIGINT/SIGTERM; ``sinks`` are fed like the progress bar (see
+    :func:`sigmasim.chain.run_chain`).
 
     Raises :class:`SigmasimError` subclasses for bad input and
     :class:`sigmasim.chain.Interrupted` after a checkpoint when stopped.
@@ -87,7 +94,8 @@ def execute_run(config, resume: bool = False, overwrite: bool = False, quiet: bo
     bar = ProgressBar(label or config.name, disable=True if quiet else None)
     flag = _StopFlag().install()
     try:
-        run_chain(sim, (bar, writer), should_stop=flag)
+        stop = flag if should_stop is None else (lambda: flag() or should_stop())
+        run_chain(sim, (bar, writer, *sinks), should_stop=stop)
     except Interrupted:
         bar.close()
         writer.interrupted(sim)
@@ -135,7 +143,7 @@ def _summary_table(paths) -> str:
     return "\n".join(lines)
 
 
-PROTOCOL_TABLES = {"sweep": "sweep", "tempering": "temper", "lifetimes": "lifetimes"}
+PROTOCOL_TABLES = {"sweep": "sweep", "tempering": "temper", "lifetimes": "lifetimes", "scan": "scan"}
 
 
 def _refuse_protocol_tables(path) -> None:
@@ -192,11 +200,29 @@ def _parse_scan_values(text: str) -> list:
 
 
 def cmd_scan(args) -> int:
-    """Run one config at several values of one key: <name>-<key>-<value> per value."""
+    """A scan file runs on Dask (:mod:`sigmasim.scan`); a run config with --param/--values runs
+    one config at several values of one key in turn: <name>-<key>-<value> per value."""
     from sigmasim.chain import Interrupted
     from sigmasim.config import SCHEMA, config_from_dict, load_config, read_toml
     from sigmasim.errors import ConfigError
 
+    if "scan" in read_toml(args.config):
+        from sigmasim.scan import scan_command
+
+        for flag in ("param", "values", "output"):
+            if getattr(args, flag) is not None:
+                raise ConfigError(f"--{flag} is for a run config; a scan file sets its axes and output itself")
+        if args.resume or args.overwrite:
+            raise ConfigError("a scan file resumes by itself; --resume/--overwrite are for a run config")
+        return scan_command(args.config, scheduler=args.scheduler, workers=args.workers, threads=args.threads,
+                            collect_only=args.collect, plot=args.plot, x=args.x, quiet=args.quiet)
+    for flag in ("scheduler", "workers", "plot", "x"):
+        if getattr(args, flag) is not None:
+            raise ConfigError(f"--{flag} needs a scan file (a TOML with a [scan] table)")
+    if args.collect:
+        raise ConfigError("--collect needs a scan file (a TOML with a [scan] table)")
+    if args.param is None or args.values is None:
+        raise ConfigError(f"{args.config} has no [scan] table: give --param and --values, or write a scan file")
     _refuse_protocol_tables(args.config)
     base = load_config(args.config)  # validates the file itself first
     section, _, key = args.param.rpartition(".")
@@ -398,15 +424,25 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--smoke", action="store_true",
                    help="10 + 20 sweeps under the name <config>-smoke, to check a config in seconds")
     r.set_defaults(func=cmd_run)
-    sn = sub.add_parser("scan", help="run one config at several values of one key (e.g. model.theta)")
-    sn.add_argument("config", help="TOML config")
-    sn.add_argument("--param", required=True, help="the key to vary, e.g. model.theta or model.mass")
-    sn.add_argument("--values", required=True, help="comma-separated values, e.g. 2.8,3.0,3.14,3.3")
-    sn.add_argument("--resume", action="store_true", help="continue the runs that exist, start the others")
+    sn = sub.add_parser("scan", help="a grid of runs on Dask from a scan file (or one key of a config, in turn)",
+                        description="SCAN.toml with a [scan] table: every point an ordinary run, executed on "
+                                    "Dask (embedded local cluster, or --scheduler), resumable, with an index. "
+                                    "A plain run config with --param/--values: one run per value, one after "
+                                    "another in this process.")
+    sn.add_argument("config", help="scan file (TOML with [scan]) or run config (with --param/--values)")
+    sn.add_argument("--scheduler", default=None, help="scan file: address of a running Dask scheduler")
+    sn.add_argument("--workers", type=int, default=None, help="scan file: embedded cluster's workers")
+    sn.add_argument("--collect", action="store_true", help="scan file: only (re)write the index, run nothing")
+    sn.add_argument("--plot", default=None, metavar="OBSERVABLE",
+                    help="scan file: draw an index column (e.g. im_omega_h) against --x")
+    sn.add_argument("--x", default=None, help="scan file: the axis for --plot (default: the first axis)")
+    sn.add_argument("--param", default=None, help="run config: the key to vary, e.g. model.theta")
+    sn.add_argument("--values", default=None, help="run config: comma-separated values, e.g. 2.8,3.0,3.14")
+    sn.add_argument("--resume", action="store_true", help="run config: continue the runs that exist")
     sn.add_argument("--overwrite", action="store_true",
-                    help="start again over existing files written by the same configs")
-    sn.add_argument("--threads", type=int, default=None)
-    sn.add_argument("--output", default=None)
+                    help="run config: start again over existing files written by the same configs")
+    sn.add_argument("--threads", type=int, default=None, help="numba threads per run")
+    sn.add_argument("--output", default=None, help="run config: output folder")
     sn.add_argument("--quiet", action="store_true")
     sn.set_defaults(func=cmd_scan)
     d = sub.add_parser("demo", help="run the built-in demo (about a minute)")
