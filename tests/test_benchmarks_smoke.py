@@ -1,0 +1,43 @@
+"""Smoke test of benchmarks/independent_cost.py on tiny lattices (a few seconds)."""
+
+import json
+import math
+import subprocess
+import sys
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+SCRIPT = ROOT / "benchmarks" / "independent_cost.py"
+
+
+def _run(*args, cwd):
+    return subprocess.run([sys.executable, str(SCRIPT), *args], cwd=cwd, capture_output=True,
+                          text=True, timeout=120)
+
+
+def test_independent_cost_quick_tiny(tmp_path):
+    p = _run("--quick", "--size", "4", "--budget", "2", "--results", str(tmp_path), cwd=tmp_path)
+    assert p.returncode == 0, p.stderr
+    files = list(tmp_path.glob("independent-cost-*.jsonl"))
+    assert len(files) == 1
+    rows = [json.loads(line) for line in files[0].read_text().splitlines()]
+    assert [(d["model"], d["schedule"]) for d in rows] == [
+        (m, s) for m in ("U1_d3", "U3_d3") for s in ("metropolis", "hb1+or3", "hb1+or1")]
+    for d in rows:
+        assert d["lattice"] == "4x4x4" and d["threads"] == 1
+        assert d["sweeps"] >= 100
+        assert d["cpu_seconds_per_sweep"] > 0 and d["tau_int"] > 0 and d["tau_int_err"] > 0
+        # the documented convention: one independent sample costs 2 tau_int sweeps
+        assert math.isclose(d["cpu_seconds_per_independent"],
+                            2 * d["tau_int"] * d["cpu_seconds_per_sweep"], rel_tol=1e-12)
+        assert 0 < d["abs_omega"] <= 1
+    # the printed table has one row per chain
+    table = [ln for ln in p.stdout.splitlines() if ln.startswith("| U")]
+    assert len(table) == len(rows)
+
+
+def test_independent_cost_bad_argument(tmp_path):
+    p = _run("--models", "U9_d3", "--results", str(tmp_path), cwd=tmp_path)
+    assert p.returncode == 2
+    assert len(p.stderr.strip().splitlines()) == 1 and "U9_d3" in p.stderr
+    assert not list(tmp_path.iterdir())
