@@ -135,7 +135,7 @@ def _ref_metropolis_u3(re, im, nbr, start, stop, beta, hdiag, k2r, k2i, tab, nhi
     return na
 
 
-KERNEL_SHAPES = [(2,), (16,), (2, 2), (6, 4), (4, 2, 6), (8, 8, 8), (6, 4, 16), (2, 2, 2, 2),
+KERNEL_SHAPES = [(2,), (16,), (2, 2), (6, 4), (4, 2, 6), (8, 8, 8), (6, 4, 16), (2, 2, 2, 2), (2, 2, 300),
                  (4, 6, 2, 4), (2, 4, 4, 40)]
 
 
@@ -293,3 +293,27 @@ def test_fast_tables_equal_proposal_table():
             q = table_u3_packed(special, eps, key)
             np.testing.assert_array_equal(q, p)
             np.testing.assert_array_equal(np.signbit(q), np.signbit(p))
+
+
+from sigmasim.kernels.simd import lookup16, lookup16_generic  # noqa: E402
+
+
+@njit(cache=True)
+def _lookup_all(tab, idx, out, generic):
+    for j in range(0, idx.shape[0], 8):
+        if generic:
+            lookup16_generic(tab, idx, out, tab.shape[0], j)
+        else:
+            lookup16(tab, idx, out, tab.shape[0], j)
+
+
+def test_lookup16_is_a_table_lookup():
+    # both forms (AVX-512 permute where compiled for it, scalar loads otherwise) move the table's values
+    rng = np.random.default_rng(23)
+    tab = rng.normal(size=(20, 16))
+    idx = rng.integers(-2**62, 2**62, 64).astype(np.int64)  # only the low 4 bits count
+    for generic in (False, True):
+        out = np.full((20, 72), np.nan)
+        _lookup_all(tab, idx, out, generic)
+        np.testing.assert_array_equal(out[:, :64], tab[:, idx & 15])
+        assert np.isnan(out[:, 64:]).all()

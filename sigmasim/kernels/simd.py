@@ -18,9 +18,11 @@ from __future__ import annotations
 import numpy as np
 from llvmlite import ir
 from numba import njit, types
+from numba.core import cgutils
 from numba.extending import intrinsic
 
-__all__ = ["bits_to_f64", "exp_le0", "u01_from_bits", "is_shift", "LN2_HI", "LN2_LO"]
+__all__ = ["bits_to_f64", "exp_le0", "u01_from_bits", "is_shift", "lookup16", "lookup16_generic",
+           "LN2_HI", "LN2_LO"]
 
 LN2_HI = 0.6931471803691238  # 0x1.62e42fee00000p-1: n * LN2_HI is exact for |n| < 2^11
 LN2_LO = 1.9082149292705877e-10  # 0x1.a39ef35793c76p-33
@@ -38,6 +40,76 @@ def bits_to_f64(typingctx, x):
         return builder.bitcast(args[0], ir.DoubleType())
 
     return types.float64(x), codegen
+
+
+def _has_avx512(context) -> bool:
+    # the features the code is compiled for (numba's cache is keyed by them too)
+    feats = getattr(context.codegen(), "_tm_features", "") or ""
+    return "+avx512f" in feats.split(",")
+
+
+def _make_lookup16(allow_avx512: bool):
+    @intrinsic
+    def lookup(typingctx, tab, idx, out, ncomp, j):
+        """``out[c, j + l] = tab[c, idx[j + l] & 15]`` for ``c < ncomp``, ``l < 8``.
+
+        tab: C-contiguous float64 (>= ncomp, 16); idx: int64 (>= j + 8); out: C-contiguous
+        float64 (>= ncomp, >= j + 8).  One permute of a two-register table per component
+        and 8 sites (vpermi2pd) where the target has AVX-512, else 8 scalar loads: a
+        per-site table lookup that costs about what a vector load does.  The values
+        moved are the table's, so both forms give the same bits.
+        """
+        for a, nd in ((tab, 2), (out, 2), (idx, 1)):
+            if not (isinstance(a, types.Array) and a.ndim == nd and a.layout == "C"):
+                return None
+        if tab.dtype != types.float64 or out.dtype != types.float64 or idx.dtype != types.int64:
+            return None
+
+        def codegen(context, builder, sig, args):
+            tab_v, idx_v, out_v, nc_v, j_v = args
+            ta = context.make_array(sig.args[0])(context, builder, tab_v)
+            ia = context.make_array(sig.args[1])(context, builder, idx_v)
+            oa = context.make_array(sig.args[2])(context, builder, out_v)
+            f64 = ir.DoubleType()
+            i64 = ir.IntType(64)
+            v8d = ir.VectorType(f64, 8)
+            v8i = ir.VectorType(i64, 8)
+            j = context.cast(builder, j_v, sig.args[4], types.intp)
+            nc = context.cast(builder, nc_v, sig.args[3], types.intp)
+            iv = builder.load(builder.bitcast(builder.gep(ia.data, [j]), v8i.as_pointer()), align=8)
+            iv = builder.and_(iv, ir.Constant(v8i, [15] * 8))
+            tw = builder.extract_value(ta.shape, 1)
+            ow = builder.extract_value(oa.shape, 1)
+            avx = allow_avx512 and _has_avx512(context)
+            if avx:
+                fnty = ir.FunctionType(v8d, [v8d, v8i, v8d])
+                perm = cgutils.get_or_insert_function(builder.module, fnty,
+                                                      "llvm.x86.avx512.vpermi2var.pd.512")
+            with cgutils.for_range(builder, nc) as loop:
+                c = loop.index
+                tp = builder.gep(ta.data, [builder.mul(c, tw)])
+                op = builder.gep(oa.data, [builder.add(builder.mul(c, ow), j)])
+                if avx:
+                    lo = builder.load(builder.bitcast(tp, v8d.as_pointer()), align=8)
+                    hi = builder.load(builder.bitcast(builder.gep(tp, [ir.Constant(i64, 8)]),
+                                                      v8d.as_pointer()), align=8)
+                    r = builder.call(perm, [lo, iv, hi])
+                else:
+                    r = ir.Constant(v8d, None)
+                    for lane in range(8):
+                        li = ir.Constant(ir.IntType(32), lane)
+                        v = builder.load(builder.gep(tp, [builder.extract_element(iv, li)]))
+                        r = builder.insert_element(r, v, li)
+                builder.store(r, builder.bitcast(op, v8d.as_pointer()), align=8)
+            return context.get_dummy_value()
+
+        return types.void(tab, idx, out, ncomp, j), codegen
+
+    return lookup
+
+
+lookup16 = _make_lookup16(True)
+lookup16_generic = _make_lookup16(False)  # the portable form, for tests on any machine
 
 
 @njit(cache=True, inline="always", error_model="numpy")

@@ -13,16 +13,27 @@ Layout of the work: the rows of one colour (sites with equal coordinates
 but the fastest, see :class:`sigmasim.lattice.Lattice`) are cut into chunks
 of whole rows, or of row segments for rows longer than ``CHUNK_SITES`` (the
 parallel unit; fixed by the geometry, not the thread count).  U, M and det U
-of a chunk live in chunk scratch (structure of arrays, sites innermost, in
-L1, of the compile-time width ``CHUNK_SITES``).  The neighbour sums are
-contiguous loads (no gather through the neighbour table), in the order of
-``lattice.neighbours``.  Every loop over a chunk is
-branch free and call free, the 3x3 complex arithmetic fully unrolled in
-scalar locals, so LLVM vectorises it across sites; the table lookups (a
-gather) go to scratch first, which lets LLVM prove that no store of the
-update loop aliases an argument.  Hit ``h`` of site ``x`` uses the single
-draw ``bits(key, x * SITE_STRIDE + h)``: low bits pick the table entry, the
-top 53 bits are the accept uniform.
+of a chunk live in chunk scratch (structure of arrays, sites innermost, of
+the compile-time width ``CHUNK_SITES``).  Every loop over a chunk is branch
+free and call free, the 3x3 complex arithmetic fully unrolled in scalar
+locals, so LLVM vectorises it across sites:
+
+- neighbour sums in the slow directions are contiguous runs of rows, read a
+  few components at a time (the components of one site lie V doubles apart,
+  a multiple of 4 KiB for the usual extents: reading all 18 at once would
+  overflow the L1 ways of one cache set);
+- the fastest direction is one pass over the chunk that selects, per site,
+  the neighbour at j, j - 1 or j + 1 (or the wrapped end of the row) from a
+  scratch copy of the chunk's rows of the other colour;
+- the neighbours are added in the order of ``lattice.neighbours``, so every
+  sum has the bits of the site-by-site one;
+- field arrays are indexed with unsigned integers, whose addresses numba
+  computes without the negative-index fix-up, so they stay affine;
+- the table lookups of a hit are 8-site permutes (:func:`simd.lookup16`)
+  into scratch, which the update loop then reads like any other array.
+
+Hit ``h`` of site ``x`` uses the single draw ``bits(key, x * SITE_STRIDE + h)``:
+the low 4 bits pick the table entry, the top 53 bits are the accept uniform.
 """
 
 from __future__ import annotations
@@ -30,12 +41,13 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
-from sigmasim.kernels.simd import exp_le0, u01_from_bits
+from sigmasim.kernels.simd import exp_le0, lookup16, u01_from_bits
 from sigmasim.rng import SITE_STRIDE, bits
 
 __all__ = ["metropolis_u3", "pack_table3", "rows_per_chunk3"]
 
-CHUNK_SITES = 64  # target sites per chunk: U, M, det and the looked-up table (59 x 64 doubles) stay in L1; the scratch width
+CHUNK_SITES = 128  # target sites per chunk and the scratch width (a multiple of 8)
+TABLE_ENTRIES = 16  # the kernel looks up 16-entry tables (4 bits of the draw)
 
 
 def pack_table3(table: np.ndarray, tdet: np.ndarray) -> np.ndarray:
@@ -56,48 +68,85 @@ def rows_per_chunk3(h: int, target: int = CHUNK_SITES) -> int:
 
 
 @njit(cache=True, inline="always")
-def _add_run(a, b, x, y):
-    for j in range(a.shape[0]):
-        a[j] += x[j]
-        b[j] += y[j]
+def _add_run6(M, dst, re, im, src, n, c):
+    """M[(c..c+2, 9+c..11+c), dst + i] += (re, im)[c..c+2, src + i] for i < n (unsigned
+    indices: affine addresses, so LLVM vectorises across sites; six field streams at a time)."""
+    s = np.uint64(src)
+    d = np.uint64(dst)
+    for i in range(n):
+        q = s + np.uint64(i)
+        p = d + np.uint64(i)
+        M[c, p] += re[c, q]
+        M[c + 1, p] += re[c + 1, q]
+        M[c + 2, p] += re[c + 2, q]
+        M[9 + c, p] += im[c, q]
+        M[10 + c, p] += im[c + 1, q]
+        M[11 + c, p] += im[c + 2, q]
 
 
 @njit(cache=True, inline="always")
-def _fast_seg(a, b, x, y, h, o, j0):
-    """Add the fastest-direction neighbours (+ before -, as ``lattice.neighbours``) to the
-    sites j0 .. j0 + len(a) - 1 of one row; ``x``, ``y`` are the whole row of the other colour."""
-    n = a.shape[0]
+def _fast_rows(Mc, Tc, X, x, src, m, h, fo, ff, fl):
+    """Tc = (Mc + plus) + minus for the m sites of a chunk of whole rows (one component).
+
+    x is the component's field row, src the first other-colour site of the chunk; X is scratch
+    of m + 2h.  Per site: fo = row offset (plus at j + 1, minus at j), else plus at j, minus
+    at j - 1; ff / fl mark j = 0 / j = h - 1, where the row wraps.
+    """
+    us = np.uint64(src)
+    uh = np.uint64(h)
+    for i in range(m):
+        X[uh + np.uint64(i)] = x[us + np.uint64(i)]
+    for i in range(m):
+        k = uh + np.uint64(i)
+        xc = X[k]
+        xp = X[k + np.uint64(1)]
+        xpw = X[k + np.uint64(1) - uh]
+        xm = X[k - np.uint64(1)]
+        xmw = X[k - np.uint64(1) + uh]
+        a = xpw if fl[i] else xp
+        b = xmw if ff[i] else xm
+        o = fo[i]
+        Tc[i] = (Mc[i] + (a if o else xc)) + (xc if o else b)
+
+
+@njit(cache=True, inline="always")
+def _fast_row18(M, b, re, im, rs, h, o, j0, w):
+    """Add the fastest-direction neighbours (+ before -) to the sites j0 .. j0 + w - 1 of one row
+    (chunk offset b); the row of the other colour starts at rs."""
+    ub = np.uint64(b)
+    urs = np.uint64(rs)
+    uh = np.uint64(h)
     if o == 0:
         # + neighbour at j, - neighbour at j - 1 (j = 0 wraps to h - 1)
         i0 = 0
         if j0 == 0:
-            a[0] = (a[0] + x[0]) + x[h - 1]
-            b[0] = (b[0] + y[0]) + y[h - 1]
+            for comp in range(9):
+                M[comp, ub] = (M[comp, ub] + re[comp, urs]) + re[comp, urs + uh - np.uint64(1)]
+                M[9 + comp, ub] = (M[9 + comp, ub] + im[comp, urs]) + im[comp, urs + uh - np.uint64(1)]
             i0 = 1
-        xs = x[j0 - 1 + i0:]
-        ys = y[j0 - 1 + i0:]
-        xc = x[j0 + i0:]
-        yc = y[j0 + i0:]
-        a1 = a[i0:]
-        b1 = b[i0:]
-        for i in range(n - i0):
-            a1[i] = (a1[i] + xc[i]) + xs[i]
-            b1[i] = (b1[i] + yc[i]) + ys[i]
+        q0 = urs + np.uint64(j0)
+        for i in range(i0, w):
+            p = ub + np.uint64(i)
+            q = q0 + np.uint64(i)
+            for comp in range(9):
+                M[comp, p] = (M[comp, p] + re[comp, q]) + re[comp, q - np.uint64(1)]
+                M[9 + comp, p] = (M[9 + comp, p] + im[comp, q]) + im[comp, q - np.uint64(1)]
     else:
         # + neighbour at j + 1 (j = h - 1 wraps to 0), - neighbour at j
-        n1 = n
-        if j0 + n == h:
-            e = n - 1
-            a[e] = (a[e] + x[0]) + x[h - 1]
-            b[e] = (b[e] + y[0]) + y[h - 1]
-            n1 = n - 1
-        xs = x[j0 + 1:]
-        ys = y[j0 + 1:]
-        xc = x[j0:]
-        yc = y[j0:]
+        n1 = w
+        if j0 + w == h:
+            p = ub + np.uint64(w - 1)
+            for comp in range(9):
+                M[comp, p] = (M[comp, p] + re[comp, urs]) + re[comp, urs + uh - np.uint64(1)]
+                M[9 + comp, p] = (M[9 + comp, p] + im[comp, urs]) + im[comp, urs + uh - np.uint64(1)]
+            n1 = w - 1
+        q0 = urs + np.uint64(j0)
         for i in range(n1):
-            a[i] = (a[i] + xs[i]) + xc[i]
-            b[i] = (b[i] + ys[i]) + yc[i]
+            p = ub + np.uint64(i)
+            q = q0 + np.uint64(i)
+            for comp in range(9):
+                M[comp, p] = (M[comp, p] + re[comp, q + np.uint64(1)]) + re[comp, q]
+                M[9 + comp, p] = (M[9 + comp, p] + im[comp, q + np.uint64(1)]) + im[comp, q]
 
 
 @njit(cache=True, parallel=True, error_model="numpy")
@@ -106,21 +155,18 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
 
     ``rnbr``, ``rpar``, ``h`` are the lattice's row tables (``row_neighbours``,
     ``row_parity``, ``row_len_half``); ``hdiag`` complex (3,), ``k2r + i k2i =
-    2 kappa eta``, ``tab`` from :func:`pack_table3` (size a power of two).  The
-    parallel unit is a chunk of ``rows`` consecutive rows (``rows * h <=
-    CHUNK_SITES``), or for ``rows == 0`` a segment of at most ``CHUNK_SITES``
-    sites of one row.  The neighbour sums of a chunk are built from contiguous
-    runs (no gather): a run of consecutive rows in a slow direction, the same
-    row shifted by 0 and -1 or +1 (one wrapped element) in the fastest one,
-    added in the order of ``lattice.neighbours`` so that every sum has the
-    bits of the site-by-site one.  The chunk scratch has the compile-time
-    width CHUNK_SITES, which lets LLVM vectorise the hit loop.
+    2 kappa eta``, ``tab`` from :func:`pack_table3` with ``TABLE_ENTRIES``
+    entries.  The parallel unit is a chunk of ``rows`` consecutive rows
+    (``rows * h <= CHUNK_SITES``), or for ``rows == 0`` a segment of at most
+    ``CHUNK_SITES`` sites of one row.
     """
     half = re.shape[1] // 2
     nrows = rpar.shape[0]
     start = colour * half
     other = (1 - colour) * half
-    mask = np.uint64(tab.shape[1] - 1)
+    mask = np.uint64(TABLE_ENTRIES - 1)
+    if tab.shape[1] != TABLE_ENTRIES:
+        raise ValueError("metropolis_u3 needs a 16-entry table")
     rows = min(rows, CHUNK_SITES // h)  # a chunk must fit the scratch
     if rows > 0:
         nseg = 1
@@ -128,6 +174,12 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
     else:
         nseg = (h + CHUNK_SITES - 1) // CHUNK_SITES
         nch = nrows * nseg
+    h0r = hdiag[0].real
+    h0i = -hdiag[0].imag
+    h1r = hdiag[1].real
+    h1i = -hdiag[1].imag
+    h2r = hdiag[2].real
+    h2i = -hdiag[2].imag
     acc = np.zeros(nch, dtype=np.int64)
     for ch in prange(nch):
         if rows > 0:
@@ -143,47 +195,63 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
         m = (r1 - r0) * w
         c0 = start + r0 * h + j0
         M = np.empty((18, CHUNK_SITES))
-        W = np.empty((18, CHUNK_SITES))  # U of the chunk
+        W = np.empty((18, CHUNK_SITES))
         D = np.empty((2, CHUNK_SITES))
-        R = np.empty((20, CHUNK_SITES))
+        R = np.zeros((20, CHUNK_SITES))  # first the slow-direction sums, then the looked-up R
         uu = np.empty(CHUNK_SITES)
+        ix = np.empty(CHUNK_SITES, dtype=np.int64)
         na = 0
-        # M = beta N + diag(conj h), component 3a+b (re) and 9+3a+b (im)
-        for comp in range(9):
-            mr = M[comp]
-            mi = M[9 + comp]
-            xr = re[comp]
-            xi = im[comp]
-            for j in range(m):
-                mr[j] = 0.0
-                mi[j] = 0.0
-            for k in range(rnbr.shape[0]):
-                g = r0
-                while g < r1:
-                    g2 = g + 1
-                    while g2 < r1 and rnbr[k, g2] == rnbr[k, g2 - 1] + 1:
-                        g2 += 1
-                    src = other + rnbr[k, g] * h + j0
-                    dst = (g - r0) * w
-                    n = (g2 - g) * w
-                    _add_run(mr[dst:dst + n], mi[dst:dst + n], xr[src:src + n], xi[src:src + n])
-                    g = g2
+        for k in range(rnbr.shape[0]):
+            g = r0
+            while g < r1:
+                g2 = g + 1
+                while g2 < r1 and rnbr[k, g2] == rnbr[k, g2 - 1] + 1:
+                    g2 += 1
+                for c in range(0, 9, 3):
+                    _add_run6(R, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, (g2 - g) * w, c)
+                g = g2
+        if rows > 0:
+            X = np.empty(CHUNK_SITES + 2 * h)
+            fo = np.empty(CHUNK_SITES, dtype=np.bool_)
+            ff = np.empty(CHUNK_SITES, dtype=np.bool_)
+            fl = np.empty(CHUNK_SITES, dtype=np.bool_)
             for g in range(r0, r1):
-                src = other + g * h
-                b = (g - r0) * w
-                _fast_seg(mr[b:b + w], mi[b:b + w], xr[src:src + h], xi[src:src + h], h,
-                          (colour + rpar[g]) % 2, j0)
+                o = (colour + rpar[g]) % 2 == 1
+                b = (g - r0) * h
+                for j in range(h):
+                    fo[b + j] = o
+                    ff[b + j] = j == 0
+                    fl[b + j] = j == h - 1
+            src = other + r0 * h
+            for comp in range(9):
+                _fast_rows(R[comp], M[comp], X, re[comp], src, m, h, fo, ff, fl)
+                _fast_rows(R[9 + comp], M[9 + comp], X, im[comp], src, m, h, fo, ff, fl)
+        else:
+            for g in range(r0, r1):
+                _fast_row18(R, (g - r0) * w, re, im, other + g * h, h, (colour + rpar[g]) % 2, j0, w)
+            for comp in range(18):
+                for j in range(m):
+                    M[comp, j] = R[comp, j]
+        # M = beta N + diag(conj h), component 3a+b (re) and 9+3a+b (im)
+        for j in range(m):
+            for comp in range(18):
+                M[comp, j] *= beta
+            M[0, j] += h0r
+            M[4, j] += h1r
+            M[8, j] += h2r
+            M[9, j] += h0i
+            M[13, j] += h1i
+            M[17, j] += h2i
+        uc0 = np.uint64(c0)
+        for c in range(0, 9, 3):
             for j in range(m):
-                mr[j] *= beta
-                mi[j] *= beta
-        for a in range(3):
-            hr = hdiag[a].real
-            hi_ = -hdiag[a].imag
-            for j in range(m):
-                M[4 * a, j] += hr
-                M[9 + 4 * a, j] += hi_
-        for comp in range(9):
-            _copy(W[comp, :m], W[9 + comp, :m], re[comp, c0:c0 + m], im[comp, c0:c0 + m])
+                q = uc0 + np.uint64(j)
+                W[c, j] = re[c, q]
+                W[c + 1, j] = re[c + 1, q]
+                W[c + 2, j] = re[c + 2, q]
+                W[9 + c, j] = im[c, q]
+                W[10 + c, j] = im[c + 1, q]
+                W[11 + c, j] = im[c + 2, q]
         for j in range(m):
             dr, di = _det3(W[0, j], W[9, j], W[1, j], W[10, j], W[2, j], W[11, j],
                            W[3, j], W[12, j], W[4, j], W[13, j], W[5, j], W[14, j],
@@ -193,24 +261,24 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
         for hit in range(nhits):
             hh = np.uint64(hit)
             for j in range(m):
-                bb = bits(key, np.uint64(c0 + j) * SITE_STRIDE + hh)
-                idx = np.int64(bb & mask)
+                bb = bits(key, (uc0 + np.uint64(j)) * SITE_STRIDE + hh)
+                ix[j] = np.int64(bb & mask)
                 uu[j] = u01_from_bits(bb)
-                for comp in range(20):
-                    R[comp, j] = tab[comp, idx]
+            for j8 in range(0, m, 8):
+                lookup16(tab, ix, R, 20, j8)
             for j in range(m):
                 na += _hit(W, M, D, R, uu, j, k2r, k2i)
-        for comp in range(9):
-            _copy(re[comp, c0:c0 + m], im[comp, c0:c0 + m], W[comp, :m], W[9 + comp, :m])
+        for c in range(0, 9, 3):
+            for j in range(m):
+                q = uc0 + np.uint64(j)
+                re[c, q] = W[c, j]
+                re[c + 1, q] = W[c + 1, j]
+                re[c + 2, q] = W[c + 2, j]
+                im[c, q] = W[9 + c, j]
+                im[c + 1, q] = W[10 + c, j]
+                im[c + 2, q] = W[11 + c, j]
         acc[ch] = na
     return acc.sum()
-
-
-@njit(cache=True, inline="always")
-def _copy(a, b, x, y):
-    for j in range(a.shape[0]):
-        a[j] = x[j]
-        b[j] = y[j]
 
 
 @njit(cache=True, inline="always")
