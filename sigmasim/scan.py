@@ -473,9 +473,11 @@ class _Display:
         self.line = tqdm(total=0, bar_format="{desc}", position=1, disable=disable or None, leave=False)
         self.counts = {"done": initial, "failed": 0, "running": 0}
         self.sweeps: dict = {}
+        self.quiet = disable
 
-    def write(self, text: str) -> None:
-        self.bar.write(text)
+    def write(self, text: str, always: bool = False) -> None:
+        if always or not self.quiet:
+            self.bar.write(text)
 
     def refresh(self, running: dict) -> None:
         self.counts["running"] = len(running)
@@ -539,7 +541,7 @@ def run_scan(spec: ScanSpec, scheduler: str | None = None, workers: int | None =
     for p in points:
         if p.raw is None:
             disp.counts["failed"] += 1
-            disp.write(f"FAILED {p.label}: {p.error}")
+            disp.write(f"FAILED {p.label}: {p.error}", always=True)
     if not todo:
         disp.refresh({})
         disp.close()
@@ -577,7 +579,7 @@ def run_scan(spec: ScanSpec, scheduler: str | None = None, workers: int | None =
                 if not batch:
                     time.sleep(0.3)
         except KeyboardInterrupt:
-            disp.write("sigmasim: interrupted; asking the running points to checkpoint ...")
+            disp.write("sigmasim: interrupted; asking the running points to checkpoint ...", always=True)
             try:
                 stop.touch()
                 deadline = time.monotonic() + 60
@@ -613,8 +615,8 @@ def _finish(p: Point, fut, disp: _Display, spec: ScanSpec) -> None:
         disp.write(f"done   {p.label} ({p.seconds:.1f} s)")
     elif p.status == "failed":
         disp.counts["failed"] += 1
-        disp.write(f"FAILED {p.label}: {p.error}")
-    else:
+        disp.write(f"FAILED {p.label}: {p.error}", always=True)
+    elif p.status == "partial":
         disp.write(f"partial {p.label}: {p.error}")
 
 
