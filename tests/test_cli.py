@@ -151,7 +151,7 @@ def test_sigterm_stops_cleanly_and_resume_matches(tmp_path):
 
 
 EXAMPLES = sorted((ROOT / "runs").glob("*.toml"))
-PLAIN = [p for p in EXAMPLES if not any(f"[{t}]" in p.read_text() for t in ("sweep", "tempering", "lifetimes"))]
+PLAIN = [p for p in EXAMPLES if not any(f"[{t}]" in p.read_text() for t in ("sweep", "tempering", "lifetimes", "scan"))]
 PROTOCOL = [p for p in EXAMPLES if p not in PLAIN]
 
 

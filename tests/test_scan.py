@@ -275,3 +275,10 @@ def test_interrupted_scan_stops_resumably_and_the_rerun_is_bit_identical(tmp_pat
     assert any(r["status"] != "done" for r in rows.values())
     assert main(["scan", str(spec.path), "--workers", "2", "--quiet"]) == 0
     _assert_equal_to_reference(spec, long_reference)
+
+
+def test_example_scan_file_expands_to_valid_points():
+    spec = load_scan(Path(__file__).resolve().parents[1] / "runs" / "scan-theta-volume.toml")
+    pts = expand_points(spec)
+    assert len(pts) == 16 and all(p.raw is not None for p in pts)
+    assert spec.output == Path("runs") / "scan-theta-volume"
