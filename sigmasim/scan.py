@@ -12,7 +12,7 @@ A scan file is TOML with a ``[scan]`` table::
     threads = 0                      # numba threads per run (0: cores // workers; 1 on a remote scheduler)
     scheduler = ""                   # address of a running Dask scheduler ("" = embedded LocalCluster)
     host = "127.0.0.1"               # where the embedded scheduler (and dashboard) listen
-    dashboard = false                # start the embedded dashboard (on host, a free port)
+    dashboard = false                # the embedded dashboard (needs bokeh; on host, a free port)
 
     [scan.product]                   # every combination of these
     "model.theta" = [2.8, 3.0, 3.14159]
@@ -431,8 +431,10 @@ def make_client(spec: ScanSpec, scheduler: str | None = None, workers: int | Non
         threads = max(1, cores // n)
     one = {k: "1" for k in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")}
     try:
+        # the scheduler's HTTP server (health and metrics; the dashboard too when asked for and
+        # bokeh is installed) always starts: keep it on scan.host, on a free port
         cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host=spec.host,
-                               dashboard_address=f"{spec.host}:0" if spec.dashboard else None,
+                               dashboard_address=f"{spec.host}:0", scheduler_kwargs={"dashboard": spec.dashboard},
                                silence_logs=50, env=one)
     except OSError as exc:
         raise ConfigError(f"cannot start the local Dask cluster on {spec.host}: {exc}") from None

@@ -282,3 +282,24 @@ def test_example_scan_file_expands_to_valid_points():
     pts = expand_points(spec)
     assert len(pts) == 16 and all(p.raw is not None for p in pts)
     assert spec.output == Path("runs") / "scan-theta-volume"
+
+
+def test_embedded_cluster_listens_on_loopback_only(tmp_path):
+    import psutil
+
+    from sigmasim.scan import _cores, make_client
+
+    spec = load_scan(_scan_file(tmp_path, GRID, tmp_path / "o"))
+    client, cluster, threads = make_client(spec, workers=1)
+    try:
+        info = client.scheduler_info()
+        assert all(a.startswith("tcp://127.0.0.1:") for a in [cluster.scheduler_address, *info["workers"]])
+        me = psutil.Process()
+        listening = [c.laddr for p in [me, *me.children(recursive=True)]
+                     for c in p.net_connections(kind="inet") if c.status == psutil.CONN_LISTEN]
+        assert len(listening) >= 3  # scheduler, its HTTP server, the worker (and its nanny)
+        assert all(a.ip == "127.0.0.1" for a in listening), listening
+        assert threads == _cores()  # one worker: every core to its run's numba threads
+    finally:
+        client.close()
+        cluster.close()
