@@ -16,7 +16,7 @@ import numpy as np
 
 from sigmasim.config import RunConfig
 from sigmasim.errors import NumericalError
-from sigmasim.kernels.measure import field_is_finite, reunitarize, reunitarize_u1, slice_sums
+from sigmasim.kernels.measure import field_is_finite, reunitarize, reunitarize3, reunitarize_u1, slice_sums
 from sigmasim.lattice import Lattice, make_lattice
 from sigmasim.updates import apply
 
@@ -164,6 +164,8 @@ class Simulation:
         if st.sweep % cfg.reunitarize_every == 0:
             if cfg.nf == 1:
                 drift = reunitarize_u1(st.re[0], st.im[0], self.blocks)
+            elif cfg.nf == 3 and not cfg.special:
+                drift = reunitarize3(st.re, st.im, self.blocks)
             else:
                 drift = reunitarize(st.re, st.im, cfg.nf, cfg.special, self.blocks)
             st.win_drift = max(st.win_drift, drift)

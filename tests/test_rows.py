@@ -317,3 +317,22 @@ def test_lookup16_is_a_table_lookup():
         _lookup_all(tab, idx, out, generic)
         np.testing.assert_array_equal(out[:, :64], tab[:, idx & 15])
         assert np.isnan(out[:, 64:]).all()
+
+
+# ---------------------------------------------------------------------------- re-unitarisation
+def test_reunitarize3_is_the_generic_projection():
+    from sigmasim.kernels.measure import reunitarize, reunitarize3
+
+    rng = np.random.default_rng(29)
+    for v, nblocks in ((2, 1), (10, 3), (300, 7), (4096, 64)):
+        u = _random_unitary(rng, 3, v)
+        u = u * (1 + 1e-7 * rng.normal(size=(v, 1, 1))) + 1e-6 * rng.normal(size=u.shape)
+        flat = u.reshape(v, 9).T
+        a = (np.ascontiguousarray(flat.real), np.ascontiguousarray(flat.imag))
+        b = (a[0].copy(), a[1].copy())
+        da = reunitarize(*a, 3, False, nblocks)
+        db = reunitarize3(*b, nblocks)
+        np.testing.assert_array_equal(b[0], a[0])
+        np.testing.assert_array_equal(b[1], a[1])
+        # the drift is the same entry, taken as sqrt of its squared modulus instead of hypot
+        assert abs(db - da) <= 4e-16 * da

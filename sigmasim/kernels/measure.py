@@ -12,7 +12,7 @@ from numba import njit, prange
 
 from sigmasim.kernels.group import det, load, reunitarize_site, store
 
-__all__ = ["slice_sums", "reunitarize", "field_is_finite"]
+__all__ = ["slice_sums", "reunitarize", "reunitarize3", "reunitarize_u1", "field_is_finite"]
 
 
 @njit(cache=True, parallel=True)
@@ -97,24 +97,153 @@ def field_is_finite(re, im):
     return -1
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=True, error_model="numpy")
 def reunitarize_u1(c, s, nblocks):
     """U(1) fast path of :func:`reunitarize`: rescale (cos, sin) to unit length.
 
     Returns the largest | |U|^2 - 1 | found, which is |U^dagger U - 1| for nf = 1.
+    The per-site drifts go to scratch first and their maximum is taken in a second
+    loop, so the update loop has no float reduction and vectorises.
     """
     nsite = c.shape[0]
     drift = np.zeros(nblocks)
     for blk in prange(nblocks):
         lo = blk * nsite // nblocks
         hi = (blk + 1) * nsite // nblocks
-        dmax = 0.0
-        for x in range(lo, hi):
-            r2 = c[x] * c[x] + s[x] * s[x]
-            dv = abs(r2 - 1.0)
-            dmax = dv if dv > dmax else dmax
+        dv = np.empty(hi - lo)
+        cb = c[lo:hi]
+        sb = s[lo:hi]
+        for j in range(hi - lo):
+            r2 = cb[j] * cb[j] + sb[j] * sb[j]
+            dv[j] = abs(r2 - 1.0)
             inv = 1.0 / np.sqrt(r2)
-            c[x] *= inv
-            s[x] *= inv
+            cb[j] *= inv
+            sb[j] *= inv
+        dmax = 0.0
+        for j in range(hi - lo):
+            dmax = dv[j] if dv[j] > dmax else dmax
         drift[blk] = dmax
     return drift.max()
+
+
+_W3 = 128  # sites per scratch chunk of reunitarize3
+
+
+@njit(cache=True, parallel=True, error_model="numpy")
+def reunitarize3(re, im, nblocks):
+    """U(3) fast path of :func:`reunitarize` (Gram-Schmidt on the rows, the same arithmetic).
+
+    The 3x3 complex algebra is unrolled into real locals and the sites of a block are
+    copied to scratch a few components at a time (the components of a site lie V
+    doubles apart), so the loop vectorises across sites.  Returns the largest
+    ``|U^dagger U - 1|`` entry found, as sqrt of the largest squared modulus.
+    """
+    nsite = re.shape[1]
+    drift = np.zeros(nblocks)
+    for blk in prange(nblocks):
+        lo = blk * nsite // nblocks
+        hi = (blk + 1) * nsite // nblocks
+        # scratch of compile-time width: LLVM then sees that its rows do not overlap
+        W = np.empty((18, _W3))
+        dv = np.empty(_W3)
+        dmax = 0.0
+        for c0 in range(lo, hi, _W3):
+            n = min(_W3, hi - c0)
+            ul = np.uint64(c0)
+            for c in range(0, 9, 3):
+                for j in range(n):
+                    q = ul + np.uint64(j)
+                    W[c, j] = re[c, q]
+                    W[c + 1, j] = re[c + 1, q]
+                    W[c + 2, j] = re[c + 2, q]
+                    W[9 + c, j] = im[c, q]
+                    W[10 + c, j] = im[c + 1, q]
+                    W[11 + c, j] = im[c + 2, q]
+            for j in range(n):
+                dv[j] = _gram_schmidt3(W, j)
+            for j in range(n):
+                dmax = dv[j] if dv[j] > dmax else dmax
+            for c in range(0, 9, 3):
+                for j in range(n):
+                    q = ul + np.uint64(j)
+                    re[c, q] = W[c, j]
+                    re[c + 1, q] = W[c + 1, j]
+                    re[c + 2, q] = W[c + 2, j]
+                    im[c, q] = W[9 + c, j]
+                    im[c + 1, q] = W[10 + c, j]
+                    im[c + 2, q] = W[11 + c, j]
+        drift[blk] = np.sqrt(dmax)
+    return drift.max()
+
+
+@njit(cache=True, inline="always")
+def _dev2(x0r, x0i, x1r, x1i, x2r, x2i, y0r, y0i, y1r, y1i, y2r, y2i, one):
+    """|sum_r conj(x_r) y_r - one|^2."""
+    sr = ((x0r * y0r + x0i * y0i) + (x1r * y1r + x1i * y1i)) + (x2r * y2r + x2i * y2i)
+    si = ((x0r * y0i - x0i * y0r) + (x1r * y1i - x1i * y1r)) + (x2r * y2i - x2i * y2r)
+    sr -= one
+    return sr * sr + si * si
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _gram_schmidt3(W, j):
+    """Site j of W (re at 3a+b, im at 9+3a+b): returns max |(U^dagger U - 1)_ab|^2, then projects.
+
+    Term by term the operations of ``group.reunitarize_site`` for nf = 3 (complex
+    products written out as numba evaluates them), so the projected field has its bits.
+    """
+    u0r = W[0, j]; u1r = W[1, j]; u2r = W[2, j]; u3r = W[3, j]; u4r = W[4, j]
+    u5r = W[5, j]; u6r = W[6, j]; u7r = W[7, j]; u8r = W[8, j]
+    u0i = W[9, j]; u1i = W[10, j]; u2i = W[11, j]; u3i = W[12, j]; u4i = W[13, j]
+    u5i = W[14, j]; u6i = W[15, j]; u7i = W[16, j]; u8i = W[17, j]
+    # drift: (U^dagger U)_{pq} = sum_r conj(U_rp) U_rq, columns p = (u_p, u_{3+p}, u_{6+p})
+    d2 = _dev2(u0r, u0i, u3r, u3i, u6r, u6i, u0r, u0i, u3r, u3i, u6r, u6i, 1.0)
+    d2 = max(d2, _dev2(u0r, u0i, u3r, u3i, u6r, u6i, u1r, u1i, u4r, u4i, u7r, u7i, 0.0))
+    d2 = max(d2, _dev2(u0r, u0i, u3r, u3i, u6r, u6i, u2r, u2i, u5r, u5i, u8r, u8i, 0.0))
+    d2 = max(d2, _dev2(u1r, u1i, u4r, u4i, u7r, u7i, u0r, u0i, u3r, u3i, u6r, u6i, 0.0))
+    d2 = max(d2, _dev2(u1r, u1i, u4r, u4i, u7r, u7i, u1r, u1i, u4r, u4i, u7r, u7i, 1.0))
+    d2 = max(d2, _dev2(u1r, u1i, u4r, u4i, u7r, u7i, u2r, u2i, u5r, u5i, u8r, u8i, 0.0))
+    d2 = max(d2, _dev2(u2r, u2i, u5r, u5i, u8r, u8i, u0r, u0i, u3r, u3i, u6r, u6i, 0.0))
+    d2 = max(d2, _dev2(u2r, u2i, u5r, u5i, u8r, u8i, u1r, u1i, u4r, u4i, u7r, u7i, 0.0))
+    d2 = max(d2, _dev2(u2r, u2i, u5r, u5i, u8r, u8i, u2r, u2i, u5r, u5i, u8r, u8i, 1.0))
+    ar = (u0r, u1r, u2r)
+    ai = (u0i, u1i, u2i)
+    br = (u3r, u4r, u5r)
+    bi = (u3i, u4i, u5i)
+    cr = (u6r, u7r, u8r)
+    ci = (u6i, u7i, u8i)
+    # row 0
+    nn = ((ar[0] * ar[0] + ai[0] * ai[0]) + (ar[1] * ar[1] + ai[1] * ai[1])) + (ar[2] * ar[2] + ai[2] * ai[2])
+    nn = 1.0 / np.sqrt(nn)
+    a0r = ar[0] * nn; a1r = ar[1] * nn; a2r = ar[2] * nn
+    a0i = ai[0] * nn; a1i = ai[1] * nn; a2i = ai[2] * nn
+    # row 1 -= <row 0, row 1> row 0
+    sr = (a0r * br[0] + a0i * bi[0]) + (a1r * br[1] + a1i * bi[1]) + (a2r * br[2] + a2i * bi[2])
+    si = (a0r * bi[0] - a0i * br[0]) + (a1r * bi[1] - a1i * br[1]) + (a2r * bi[2] - a2i * br[2])
+    b0r = br[0] - (sr * a0r - si * a0i); b0i = bi[0] - (sr * a0i + si * a0r)
+    b1r = br[1] - (sr * a1r - si * a1i); b1i = bi[1] - (sr * a1i + si * a1r)
+    b2r = br[2] - (sr * a2r - si * a2i); b2i = bi[2] - (sr * a2i + si * a2r)
+    nn = ((b0r * b0r + b0i * b0i) + (b1r * b1r + b1i * b1i)) + (b2r * b2r + b2i * b2i)
+    nn = 1.0 / np.sqrt(nn)
+    b0r *= nn; b1r *= nn; b2r *= nn
+    b0i *= nn; b1i *= nn; b2i *= nn
+    # row 2 -= <row 0, row 2> row 0, then -= <row 1, row 2> row 1
+    sr = (a0r * cr[0] + a0i * ci[0]) + (a1r * cr[1] + a1i * ci[1]) + (a2r * cr[2] + a2i * ci[2])
+    si = (a0r * ci[0] - a0i * cr[0]) + (a1r * ci[1] - a1i * cr[1]) + (a2r * ci[2] - a2i * cr[2])
+    c0r = cr[0] - (sr * a0r - si * a0i); c0i = ci[0] - (sr * a0i + si * a0r)
+    c1r = cr[1] - (sr * a1r - si * a1i); c1i = ci[1] - (sr * a1i + si * a1r)
+    c2r = cr[2] - (sr * a2r - si * a2i); c2i = ci[2] - (sr * a2i + si * a2r)
+    sr = (b0r * c0r + b0i * c0i) + (b1r * c1r + b1i * c1i) + (b2r * c2r + b2i * c2i)
+    si = (b0r * c0i - b0i * c0r) + (b1r * c1i - b1i * c1r) + (b2r * c2i - b2i * c2r)
+    c0r = c0r - (sr * b0r - si * b0i); c0i = c0i - (sr * b0i + si * b0r)
+    c1r = c1r - (sr * b1r - si * b1i); c1i = c1i - (sr * b1i + si * b1r)
+    c2r = c2r - (sr * b2r - si * b2i); c2i = c2i - (sr * b2i + si * b2r)
+    nn = ((c0r * c0r + c0i * c0i) + (c1r * c1r + c1i * c1i)) + (c2r * c2r + c2i * c2i)
+    nn = 1.0 / np.sqrt(nn)
+    W[0, j] = a0r; W[1, j] = a1r; W[2, j] = a2r
+    W[9, j] = a0i; W[10, j] = a1i; W[11, j] = a2i
+    W[3, j] = b0r; W[4, j] = b1r; W[5, j] = b2r
+    W[12, j] = b0i; W[13, j] = b1i; W[14, j] = b2i
+    W[6, j] = c0r * nn; W[7, j] = c1r * nn; W[8, j] = c2r * nn
+    W[15, j] = c0i * nn; W[16, j] = c1i * nn; W[17, j] = c2i * nn
+    return d2
