@@ -18,12 +18,13 @@ import numpy as np
 from numba import njit, prange
 
 from sigmasim.kernels.group import von_mises_angle
-from sigmasim.kernels.simd import exp_le0, u01_from_bits
+from sigmasim.kernels.simd import exp_le0, lookup16, u01_from_bits
 from sigmasim.rng import SITE_STRIDE, bits
 
 __all__ = ["metropolis_u1", "heatbath_u1", "overrelax_u1", "rows_per_chunk"]
 
 CHUNK_SITES = 512  # target sites per chunk: the scratch of a chunk stays in L1
+TABLE_ENTRIES = 16  # the Metropolis kernel looks up 16-entry tables (4 bits of the draw)
 
 
 def rows_per_chunk(h: int, target: int = CHUNK_SITES) -> int:
@@ -99,19 +100,26 @@ def metropolis_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, tc, ts, nhits, key,
 
     ``rnbr``, ``rpar``, ``h`` are the lattice's row tables (``row_neighbours``,
     ``row_parity``, ``row_len_half``); ``cr + i ci`` is the constant part of
-    ``a``; the table size must be a power of two.  Hit ``hit`` of site ``x``
-    uses the single draw ``bits(key, x * SITE_STRIDE + hit)``: its low bits
+    ``a``; the table has ``TABLE_ENTRIES`` entries.  Hit ``hit`` of site ``x``
+    uses the single draw ``bits(key, x * SITE_STRIDE + hit)``: its low 4 bits
     pick the rotation, its top 53 bits are the accept uniform, so the chain
     does not depend on the chunking or the thread count.  The rows of the
     colour are cut into chunks of ``rows`` consecutive rows (the parallel
     unit); every loop over a chunk is branch free and call free, so LLVM
-    vectorises it.  Returns the accepted hits.
+    vectorises it; the table lookups are 8-site permutes
+    (:func:`sigmasim.kernels.simd.lookup16`) into chunk scratch.  Returns the
+    accepted hits.
     """
     half = c.shape[0] // 2
     nrows = rpar.shape[0]
     start = colour * half
     other = (1 - colour) * half
-    mask = np.uint64(tc.shape[0] - 1)
+    mask = np.uint64(TABLE_ENTRIES - 1)
+    if tc.shape[0] != TABLE_ENTRIES or ts.shape[0] != TABLE_ENTRIES:
+        raise ValueError("metropolis_u1 needs a 16-entry table")
+    tab = np.empty((2, TABLE_ENTRIES))
+    tab[0] = tc
+    tab[1] = ts
     nch = (nrows + rows - 1) // rows
     acc = np.zeros(nch, dtype=np.int64)
     for ch in prange(nch):
@@ -119,24 +127,23 @@ def metropolis_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, tc, ts, nhits, key,
         r1 = min(nrows, r0 + rows)
         m = (r1 - r0) * h
         c0 = start + r0 * h
+        mp = (m + 7) // 8 * 8  # the lookups write 8 sites at a time
         ar = np.empty(m)
         ai = np.empty(m)
         uu = np.empty(m)
-        rc = np.empty(m)
-        rs = np.empty(m)
+        ix = np.empty(mp, dtype=np.int64)
+        rcs = np.empty((2, mp))
         _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, ar, ai)
         na = 0
         for hit in range(nhits):
             hh = np.uint64(hit)
-            # table look-ups only into chunk scratch: LLVM can prove that these
-            # stores alias no argument array, so the loop vectorises
             for j in range(m):
                 b = bits(key, np.uint64(c0 + j) * SITE_STRIDE + hh)
-                idx = np.int64(b & mask)
+                ix[j] = np.int64(b & mask)
                 uu[j] = u01_from_bits(b)
-                rc[j] = tc[idx]
-                rs[j] = ts[idx]
-            na += _hits(c[c0:c0 + m], s[c0:c0 + m], ar, ai, uu, rc, rs)
+            for j8 in range(0, m, 8):
+                lookup16(tab, ix, rcs, 2, j8)
+            na += _hits(c[c0:c0 + m], s[c0:c0 + m], ar, ai, uu, rcs[0], rcs[1])
         acc[ch] = na
     return acc.sum()
 
