@@ -44,9 +44,10 @@ seed = {seeds}
 shape = [{L}, {L}, {L}]
 [model]
 nf = 3
-beta = 1.0
-mass = 0.2
-kappa = 1.0
+beta = 1.2
+mass = 0.3
+kappa = 0.8
+theta_placement = "anomaly"
 [updates]
 schedule = [{{update = "heatbath", repeat = 1}}, {{update = "overrelax", repeat = 2}}]
 [run]
