@@ -1,4 +1,4 @@
-r"""Multi-theta protocols on top of one chain: hysteresis sweeps (and the command entry points).
+r"""Multi-theta protocols on top of one chain: hysteresis sweeps, tempering (and the commands).
 
 A protocol config is an ordinary run TOML plus one extra table that this module pops and
 validates itself; the rest goes to :func:`sigmasim.config.config_from_dict`.
@@ -49,6 +49,35 @@ Sweep file layout (HDF5, format ``sigmasim-sweep``, version 1; default
     /cycles/area       (cycles,) loop area per cycle
     /cycles/jump_up, /cycles/jump_down  (cycles,) jump points per cycle (NaN if none)
 
+Tempering (``[tempering]``)
+---------------------------
+::
+
+    [tempering]
+    thetas = [2.9, 3.0, 3.14159, 3.3]   # theta of each slot, strictly increasing; or, with
+    # mass_scales = [1.0, 0.6, 0.3, 0.0] # (optional) slot k at mass_scales[k] * model.mass,
+    #                                    # one theta per slot (repeats allowed) or one for all slots
+    swap_every = 1                       # sweeps between swap attempts
+    band = 0.5                           # hysteresis band of the branch classification
+    write = "yes"                        # one ordinary run file per slot
+
+Why a ladder in theta alone does not mix the vacua at a first-order point: a swap exchanges whole
+fields, so the multiset of the replicas' branch indices (the *census*) changes only when a replica
+tunnels inside a slot.  In the stationary state a slot's field is distributed as the plain chain's at
+that slot's couplings and is updated by that chain's sweep, so the expected number of in-slot
+tunnellings per sweep is the plain chain's equilibrium tunnelling rate at (theta_k, h_k).  At fixed
+masses this rate is largest at the first-order point (seen from the stable branch the barrier grows
+with |theta - pi|; past a spinodal the metastable branch is exponentially rare), so a theta ladder
+tunnels at most about as often as one plain chain per slot near pi.  The slot at pi then keeps the
+population fixed by the starting census (a cold start: every replica in branch 0), with a small
+Gamma error that only sees the swaps.  Round trips do not reveal this: on a short ladder replicas
+cross pi in their own branch (on a long one, reaching past the spinodals, they cannot).  A ladder
+that leaves the theta axis through small masses (``mass_scales`` down to 0) has a slot where the
+branches are not separated by a barrier: replicas lose their branch there and come back in either
+vacuum, with equal weight at theta = pi by CP.  :func:`branch_census` follows the replicas and
+counts census changes and in-slot branch changes per slot; ``sigmasim temper`` warns when the
+census changed fewer than :data:`CENSUS_MIN_CHANGES` times.
+
 This is a research toy, not a physical prediction.
 """
 
@@ -68,7 +97,8 @@ from sigmasim.errors import ConfigError, RunFileError
 
 __all__ = ["LIFETIME_SCHEMA", "LifetimeResult", "run_lifetimes", "lifetime_estimate",
            "fit_log_lifetimes", "load_lifetimes", "SWEEP_SCHEMA", "TEMPER_SCHEMA", "TemperParams", "TemperResult", "run_tempering",
-           "replica_configs", "branch_populations", "SweepParams", "SweepResult", "load_protocol", "split_protocol",
+           "replica_configs", "branch_populations", "branch_census", "BranchCensus",
+           "CENSUS_MIN_CHANGES", "SweepParams", "SweepResult", "load_protocol", "split_protocol",
            "run_sweep", "write_sweep", "read_sweep", "plot_sweep", "tree_level", "sweep_command",
            "temper_command", "lifetimes_command", "SWEEP_FORMAT"]
 
@@ -310,11 +340,17 @@ def tree_level(config: RunConfig, lo: float, hi: float, n: int = 241) -> dict:
 
 # ---------------------------------------------------------------- tempering in theta
 TEMPER_SCHEMA = {
-    "thetas": ("thetas", None, "the theta ladder: an increasing list of >= 2 numbers"),
+    "thetas": ("thetas", None, "theta of each slot: an increasing list of >= 2 numbers; with mass_scales "
+               "one theta per slot (repeats allowed) or a single theta for every slot"),
+    "mass_scales": ("scales", None, "optional: one factor >= 0 per slot on model.mass (slot k simulates "
+                    "mass_scales[k] * mass); the ladder is then the path of (theta, scale) pairs"),
     "swap_every": ("int:1:1000000", 1, "sweeps between swap attempts"),
     "band": ("real", 0.5, "hysteresis band of the branch classification, 0 <= band < 1"),
     "write": ("choice:yes,no", "yes", "write one run file per theta (no: in memory only)"),
 }
+
+#: ``temper_command`` warns when the replicas' branch census changed fewer times than this.
+CENSUS_MIN_CHANGES = 20
 
 
 def _check_thetas(v, where="tempering.thetas"):
@@ -331,19 +367,49 @@ def _check_thetas(v, where="tempering.thetas"):
     return t
 
 
+def _check_numbers(v, where, lo, hi, at_least=1):
+    if not isinstance(v, list) or len(v) < at_least or not all(
+            isinstance(x, (int, float)) and not isinstance(x, bool) for x in v):
+        raise ConfigError(f"{where} must be a list of at least {at_least} number(s), got {v!r}")
+    t = [float(x) for x in v]
+    if not all(math.isfinite(x) and lo <= x <= hi for x in t):
+        raise ConfigError(f"{where} must be finite numbers in [{lo:g}, {hi:g}], got {v!r}")
+    if len(t) > 1000:
+        raise ConfigError(f"{where} has {len(t)} entries; at most 1000 allowed")
+    return t
+
+
+def _check_ladder(thetas, scales):
+    """Validated ``(thetas, scales)`` tuples; ``scales`` stays None for a pure theta ladder."""
+    if scales is None:
+        return tuple(_check_thetas(thetas)), None
+    s = _check_numbers(scales, "tempering.mass_scales", 0.0, 1e6, at_least=2)
+    t = _check_numbers(thetas, "tempering.thetas", -1e6, 1e6)
+    if len(t) == 1:
+        t = t * len(s)
+    if len(t) != len(s):
+        raise ConfigError(f"tempering.thetas has {len(t)} entries but tempering.mass_scales has {len(s)}; "
+                          "give one theta per slot or a single theta")
+    if len(set(zip(t, s))) != len(s):
+        raise ConfigError("tempering: two slots have the same (theta, mass scale); every slot must differ")
+    return tuple(t), tuple(s)
+
+
 @dataclass(frozen=True)
 class TemperParams:
     """Validated ``[tempering]`` table.
 
-    ``thetas`` the ladder; ``swap_every`` sweeps between swap attempts (each attempt proposes the even
-    pairs (0,1), (2,3), ... and the next attempt the odd pairs (1,2), (3,4), ...); ``band`` the
-    hysteresis band of the branch classification; ``write`` 'yes' or 'no'.
+    ``thetas`` the theta of each slot; ``mass_scales`` (optional) the factor on ``model.mass`` of each
+    slot; ``swap_every`` sweeps between swap attempts (each attempt proposes the even pairs (0,1),
+    (2,3), ... and the next attempt the odd pairs (1,2), (3,4), ...); ``band`` the hysteresis band of
+    the branch classification; ``write`` 'yes' or 'no'.
     """
 
     thetas: tuple
     swap_every: int = 1
     band: float = 0.5
     write: str = "yes"
+    mass_scales: tuple | None = None
 
     @classmethod
     def from_dict(cls, d: dict) -> "TemperParams":
@@ -353,29 +419,44 @@ class TemperParams:
         if not 0.0 <= self.band < 1.0:
             raise ConfigError(f"tempering.band must be in [0, 1), got {self.band}")
 
+        def as_list(v):
+            return list(v) if isinstance(v, (list, tuple, np.ndarray)) else v
+
+        scales = None if self.mass_scales is None else as_list(self.mass_scales)
+        thetas, scales = _check_ladder(as_list(self.thetas), scales)
+        object.__setattr__(self, "thetas", thetas)
+        object.__setattr__(self, "mass_scales", scales)
+
 
 def _temper_params(sub: dict) -> dict:
-    schema = {k: v for k, v in TEMPER_SCHEMA.items() if k != "thetas"}
+    schema = {k: v for k, v in TEMPER_SCHEMA.items() if k not in ("thetas", "mass_scales")}
     rest = dict(sub)
     if "thetas" not in rest:
         raise ConfigError("[tempering] needs thetas = [ ... ] (the theta ladder)")
-    thetas = _check_thetas(rest.pop("thetas"))
+    thetas = rest.pop("thetas")
+    scales = rest.pop("mass_scales", None)
+    if scales is None:
+        thetas = _check_thetas(thetas)
     params, _ = split_protocol({"tempering": rest}, "tempering", schema)
-    params["thetas"] = tuple(thetas)
+    params["thetas"] = tuple(thetas) if isinstance(thetas, list) else thetas
+    params["mass_scales"] = tuple(scales) if isinstance(scales, list) else scales
     return params
 
 
-def _theta_dependent_action(sim, theta) -> float:
-    """Theta-dependent part of the whole-lattice action of sim's field at ``theta`` (mass + det terms)."""
-    cfg = sim.config
+def _slot_action(sim, cfg) -> float:
+    """The slot-dependent part of the whole-lattice action of ``sim``'s field under slot config ``cfg``.
+
+    ``-sum_x Re Tr(H U_x) - 2 c sum_x Re(e^{i theta_a} det U_x)`` with ``H = e^{i theta_m} diag(h)`` and
+    ``c`` = ``kappa`` (chiral model) or ``c`` (linear model): slots differ only in theta and the
+    masses, so every other term of the action is the same in all slots and cancels in a swap.
+    """
     nf, v = cfg.nf, sim.lattice.volume
     st = sim.state
     u = (st.re + 1j * st.im).reshape(nf, nf, v)
     cond = np.einsum("aax->a", u)                      # sum_x U_ff
     det = np.linalg.det(np.moveaxis(u, -1, 0)).sum() if nf > 1 else u[0, 0].sum()
-    tm, ta = dataclasses.replace(cfg, theta=float(theta)).theta_angles
-    h = np.asarray(cfg.mass, float)
-    return float(-(cond @ (h * np.exp(1j * tm))).real - 2.0 * cfg.kappa * (np.exp(1j * ta) * det).real)
+    c = cfg.c if getattr(cfg, "kind", "chiral") == "linear" else cfg.kappa
+    return float(-(cond @ cfg.hdiag).real - 2.0 * c * (cfg.eta * det).real)
 
 
 @dataclass
@@ -386,15 +467,21 @@ class TemperResult:
     ----------
     thetas : float array (R,)
     series : list of dict
-        Per theta slot, the measured series (as :class:`sigmasim.chain.MemorySink` arrays).
+        Per slot, the measured series (as :class:`sigmasim.chain.MemorySink` arrays).
     swap_tried, swap_accepted : int array (R-1,)
         Per neighbouring pair (i, i+1).
     acceptance : float array (R-1,)
     replica_at : int array (n_attempts + 1, R)
         Which replica sits at each slot after each swap attempt (row 0: the start).
+    attempt_sweeps : int array (n_attempts + 1,)
+        Sweep of each row of ``replica_at``.
     round_trips : list of float
         Sweeps of completed round trips (slot 0 -> slot R-1 -> slot 0, or the reverse) of all replicas.
     files : list of Path
+    measured_replica : int array (n_meas, R)
+        Which replica sat at each slot at each measurement (row t belongs to measurement t).
+    mass_scales : float array (R,)
+        Factor on ``model.mass`` of each slot (all 1 for a theta ladder).
     """
 
     thetas: np.ndarray
@@ -406,6 +493,8 @@ class TemperResult:
     round_trips: list
     files: list
     wall_seconds: float = 0.0
+    measured_replica: np.ndarray | None = None
+    mass_scales: np.ndarray | None = None
 
     @property
     def acceptance(self) -> np.ndarray:
@@ -434,36 +523,41 @@ def _round_trips(replica_at, sweeps):
     return trips
 
 
-def replica_configs(config: RunConfig, thetas) -> list:
-    """One config per theta: name suffixed ``-t<i>``, seed ``seed * 1000 + i`` (distinct random
-    streams), output folder ``<output>/<name>`` (so each file is ``<output>/<name>/<name>-t<i>/...``)."""
+def replica_configs(config: RunConfig, thetas, mass_scales=None) -> list:
+    """One config per slot: name suffixed ``-t<i>``, seed ``seed * 1000 + i`` (distinct random
+    streams), output folder ``<output>/<name>`` (so each file is ``<output>/<name>/<name>-t<i>/...``),
+    theta ``thetas[i]`` and, with ``mass_scales``, masses ``mass_scales[i] * config.mass``."""
     out = []
     for i, t in enumerate(thetas):
+        extra = {}
+        if mass_scales is not None:
+            extra["mass"] = tuple(float(mass_scales[i]) * m for m in config.mass)
         out.append(dataclasses.replace(config, name=f"{config.name}-t{i}", theta=float(t),
                                        seed=config.seed * 1000 + i,
-                                       output=str(Path(config.output) / config.name)))
+                                       output=str(Path(config.output) / config.name), **extra))
     return out
 
 
 def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = None) -> TemperResult:
-    """Replica exchange over a theta ladder in one process.
+    """Replica exchange over a ladder of slots (theta, and optionally a mass scale) in one process.
 
-    Every slot keeps its theta; an accepted swap exchanges the *fields* of neighbouring slots, so each
-    slot's measurements form an ordinary chain at fixed theta (written via
-    :class:`sigmasim.storage.RunWriter`, one file per theta).  Swap (i, j) is accepted with
+    Every slot keeps its theta and masses; an accepted swap exchanges the *fields* of neighbouring
+    slots, so each slot's measurements form an ordinary chain at fixed couplings (written via
+    :class:`sigmasim.storage.RunWriter`, one file per slot).  Swap (i, j) is accepted with
     ``min(1, exp(-Delta))``, ``Delta = S_i(B) + S_j(A) - S_i(A) - S_j(B)`` with A, B the fields at
-    slots i, j and ``S_k`` the theta-dependent action (mass + det terms) at ``theta_k``.  Swap random
+    slots i, j and ``S_k`` the slot-dependent action (mass + det terms) of slot k.  Swap random
     numbers come from ``numpy.random.default_rng([seed, 0x7E39, attempt])``: reproducible.
     ``config.thermalize + config.measurements * config.measure_every`` sweeps per slot; swaps also
-    during thermalisation.  The run files record the slot's seed and theta; the chain in them is a
-    tempering chain (fields were exchanged), so ``sigmasim run --resume`` of one of them would not
-    continue it.
+    during thermalisation.  The run files record the slot's seed, theta and masses; the chain in them
+    is a tempering chain (fields were exchanged), so ``sigmasim run --resume`` of one of them would not
+    continue it.  See the module notes on why a ladder in theta alone cannot mix the branches at a
+    first-order point, and :func:`branch_census` for the check.
     """
     from sigmasim.chain import MemorySink, make_simulation
 
     t0 = time.monotonic()
     write = (params.write == "yes") if write is None else write
-    configs = replica_configs(config, params.thetas)
+    configs = replica_configs(config, params.thetas, params.mass_scales)
     sims = [make_simulation(c) for c in configs]
     sinks = []
     files = []
@@ -487,6 +581,7 @@ def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = 
     acc = np.zeros(n_rep - 1, dtype=np.int64)
     labels = np.arange(n_rep)
     history = [labels.copy()]
+    measured = []
     attempt_sweeps = [0]
     total = sims[0].total_sweeps
     attempt = 0
@@ -501,13 +596,16 @@ def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = 
             if sim.state.sweep % sim.config.checkpoint_every == 0:
                 for s in sk[1:]:
                     s.checkpoint(sim)
+        past = sweep - config.thermalize
+        if past > 0 and past % config.measure_every == 0:
+            measured.append(labels.copy())
         if sweep % params.swap_every == 0:
             rng = np.random.default_rng([config.seed, 0x7E39, attempt])
             for i in range(attempt % 2, n_rep - 1, 2):
                 a, b = sims[i], sims[i + 1]
-                ti, tj = params.thetas[i], params.thetas[i + 1]
-                delta = (_theta_dependent_action(b, ti) + _theta_dependent_action(a, tj)
-                         - _theta_dependent_action(a, ti) - _theta_dependent_action(b, tj))
+                ci, cj = configs[i], configs[i + 1]
+                delta = (_slot_action(b, ci) + _slot_action(a, cj)
+                         - _slot_action(a, ci) - _slot_action(b, cj))
                 tried[i] += 1
                 if delta <= 0 or rng.random() < math.exp(-delta):
                     acc[i] += 1
@@ -522,25 +620,113 @@ def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = 
             s.finish(sim)
     replica_at = np.array(history)
     sweeps = np.array(attempt_sweeps)
+    scales = np.ones(n_rep) if params.mass_scales is None else np.array(params.mass_scales)
     return TemperResult(np.array(params.thetas), [sk[0].arrays() for sk in sinks], tried, acc,
                         replica_at, sweeps, _round_trips(replica_at, sweeps), files,
-                        time.monotonic() - t0)
+                        time.monotonic() - t0, np.array(measured, dtype=np.int64).reshape(-1, n_rep),
+                        scales)
+
+
+def _population_error(x, min_window: int) -> tuple[float, float, float]:
+    """Mean, error and tau_int of an indicator series (Gamma method, window at least ``min_window``).
+
+    The automatic window (Wolff 2004, S = 1.5) can stop on the fast decay of a slot's indicator (the
+    swaps) before the slow tail (the replicas carrying their branch through the ladder); the sum of
+    rho is then also taken up to ``min_window`` (the mean round-trip time) and the larger tau_int kept.
+    """
+    from sigmasim.analysis.gamma import autocorrelation
+
+    m, e, tau = _mean_err(x)
+    n = len(x)
+    w = min(int(min_window), n // 2)
+    if n >= 8 and np.ptp(x) > 0 and w > 1:
+        tau_w = max(0.5, 0.5 + float(autocorrelation(x, w)[1:].sum()))
+        if tau_w > tau:
+            e = float(np.sqrt(2.0 * tau_w * np.var(x) / n))
+            tau = tau_w
+    return m, e, tau
 
 
 def branch_populations(result: TemperResult, nf: int, band: float = 0.5):
-    """Per slot: branch occupation fractions (nf,) with a Gamma-method error (list of (occ, err))."""
+    """Per slot: branch occupation fractions (nf,) with their errors (list of (occ, err)).
+
+    Errors: Gamma method on the slot's indicator series, with a window of at least the mean
+    round-trip time (in measurements) when there are round trips.  They are trustworthy only when
+    the replicas' branch census changed many times during the run (:func:`branch_census`): with a
+    frozen census the slot's population is conditioned on the starting branches whatever its error
+    says.
+    """
     from sigmasim.analysis.tunnelling import branch_coordinate, branch_index
 
+    every = 1
+    if len(result.series) and len(result.series[0].get("sweep", ())) > 1:
+        every = max(1, int(np.median(np.diff(result.series[0]["sweep"]))))
+    window = int(np.mean(result.round_trips) / every) if result.round_trips else 0
     out = []
     for t, s in zip(result.thetas, result.series):
         idx = branch_index(branch_coordinate(s["omega_h"], t, nf), nf, band)
         occ, err = [], []
         for k in range(nf):
-            m, e, _ = _mean_err((idx == k).astype(float))
+            m, e, _ = _population_error((idx == k).astype(float), window)
             occ.append(m)
             err.append(e)
         out.append((np.array(occ), np.array(err)))
     return out
+
+
+@dataclass
+class BranchCensus:
+    """Branches of the *replicas* (not the slots) over a tempering run (:func:`branch_census`).
+
+    Attributes
+    ----------
+    replica_branch : int array (R, n)
+        Branch index of replica r at measurement t: the hysteresis classification of
+        :mod:`sigmasim.analysis.tunnelling` along the replica's own history, each measurement at the
+        theta of the slot the replica sat in.
+    counts : int array (n, nf)
+        Number of replicas in each branch at each measurement (the census).
+    changes : int
+        Measurements at which the census differs from the one before.
+    slot_changes : int array (R,)
+        Branch changes of replicas, by the slot they happened in (tunnelling inside a slot).
+    """
+
+    replica_branch: np.ndarray
+    counts: np.ndarray
+    changes: int
+    slot_changes: np.ndarray
+
+
+def branch_census(result: TemperResult, nf: int, band: float = 0.5) -> BranchCensus:
+    """Follow the replicas through the ladder and count how often their branch census changed.
+
+    Swaps never change the census; only tunnelling inside a slot does.  A census that (almost) never
+    changes means the slot populations are those fixed by the start, whatever their errors say.
+    """
+    from sigmasim.analysis.tunnelling import branch_coordinate, branch_index
+
+    if result.measured_replica is None:
+        raise ValueError("this TemperResult has no measured_replica record")
+    om = np.array([s["omega_h"] for s in result.series])          # (R, n)
+    n_rep, n = om.shape
+    at = result.measured_replica                                  # (n, R): replica at slot
+    pos = np.argsort(at, axis=1)                                  # (n, R): slot of replica
+    cols = np.arange(n)
+    thetas = np.asarray(result.thetas, float)
+    rb = np.empty((n_rep, n), dtype=np.int64)
+    slot_changes = np.zeros(n_rep, dtype=np.int64)
+    for r in range(n_rep):
+        p = pos[:, r]
+        b = branch_index(branch_coordinate(om[p, cols], thetas[p], nf), nf, band)
+        rb[r] = b
+        # measurement t follows the swap after t-1, so a change seen at t happened in slot p[t]
+        np.add.at(slot_changes, p[np.flatnonzero(b[1:] != b[:-1]) + 1], 1)
+    counts = np.zeros((n, nf), dtype=np.int64)
+    for k in range(nf):
+        counts[:, k] = (rb == k).sum(axis=0)
+    changes = int(np.count_nonzero(np.any(counts[1:] != counts[:-1], axis=1))) if n > 1 else 0
+    return BranchCensus(rb, counts, changes, slot_changes)
 
 
 # ---------------------------------------------------------------- finite-volume lifetimes
@@ -891,10 +1077,11 @@ def sweep_command(config_path: str, plot: bool = False, out: str | None = None) 
 
 
 def temper_command(config_path: str, out: str | None = None) -> int:
-    """``sigmasim temper CONFIG [--out FOLDER]``: replica exchange over [tempering].thetas.
+    """``sigmasim temper CONFIG [--out FOLDER]``: replica exchange over the [tempering] ladder.
 
     Writes ``<out or run.output>/<name>/<name>-t<i>/<name>-t<i>.h5`` (ordinary run files, one per
-    theta) and prints swap acceptances, round trips and branch populations.
+    slot) and prints swap acceptances, round trips, the replicas' branch census (how often it
+    changed, where replicas tunnelled) and the branch populations of every slot.
     """
     path = Path(config_path)
     raw = read_toml(path)
@@ -909,13 +1096,23 @@ def temper_command(config_path: str, out: str | None = None) -> int:
     res = run_tempering(config, params)
     for f in res.files:
         print(f"wrote {f}")
-    print("pair  theta_i  theta_j  acceptance")
+    scales = res.mass_scales
+    print("pair  theta_i  theta_j  scale_i  scale_j  acceptance")
     for i, a in enumerate(res.acceptance):
-        print(f"{i:4d}  {res.thetas[i]:7.4f}  {res.thetas[i + 1]:7.4f}  {a:.3f}")
+        print(f"{i:4d}  {res.thetas[i]:7.4f}  {res.thetas[i + 1]:7.4f}  {scales[i]:7.4f}  "
+              f"{scales[i + 1]:7.4f}  {a:.3f}")
     rt = res.round_trips
     print(f"round trips: {len(rt)}" + (f", mean {np.mean(rt):.1f} sweeps" if rt else ""))
-    for t, (occ, err) in zip(res.thetas, branch_populations(res, config.nf, params.band)):
-        print(f"theta {t:7.4f}  branch occupation " + "  ".join(f"{o:.3f}+-{e:.3f}" for o, e in zip(occ, err)))
+    census = branch_census(res, config.nf, params.band)
+    print(f"branch census of the replicas changed {census.changes} times; in-slot branch changes per slot: "
+          + " ".join(str(int(c)) for c in census.slot_changes))
+    for i, (t, (occ, err)) in enumerate(zip(res.thetas, branch_populations(res, config.nf, params.band))):
+        print(f"slot {i:2d} theta {t:7.4f} scale {scales[i]:.4f}  branch occupation "
+              + "  ".join(f"{o:.3f}+-{e:.3f}" for o, e in zip(occ, err)))
+    if config.nf > 1 and census.changes < CENSUS_MIN_CHANGES:
+        print(f"warning: the branch census changed only {census.changes} times (< {CENSUS_MIN_CHANGES}): the "
+              "populations are fixed by the starting branches and their errors are not trustworthy; "
+              "a ladder in theta alone cannot fix this at a first-order point (add mass_scales down to 0)")
     return 0
 
 
