@@ -12,9 +12,8 @@ from __future__ import annotations
 import numpy as np
 
 from sigmasim.kernels.general import heatbath, metropolis, overrelax
-from sigmasim.kernels.simd import philox_uniform
 from sigmasim.kernels.u1 import heatbath_u1, metropolis_u1, overrelax_u1, rows_per_chunk
-from sigmasim.kernels.tables import rotation_table
+from sigmasim.kernels.tables import phase_table, rotation_table
 from sigmasim.kernels.u3 import metropolis_u3, pack_table3, rows_per_chunk3
 from sigmasim.rng import step_key
 
@@ -46,10 +45,8 @@ def proposal_table(nf: int, special: bool, eps: float, key) -> tuple[np.ndarray,
 
 def table_u1(eps: float, key) -> tuple[np.ndarray, np.ndarray]:
     """cos and sin of the U(1) table of :func:`proposal_table` (the same numbers, less overhead)."""
-    # philox_uniform: numpy's Generator(Philox(key)).uniform draws, without the generator's set-up
-    r = np.exp(1j * (eps * philox_uniform(np.uint64(key), -1.0, 1.0, TABLE_SIZE // 2)))
-    re, im = r.real, r.imag
-    return np.concatenate((re, re)), np.concatenate((im, -im))
+    # philox_uniform inside: numpy's Generator(Philox(key)).uniform draws, without its set-up
+    return phase_table(float(eps), np.uint64(key), TABLE_SIZE)
 
 
 def table_u3_packed(special: bool, eps: float, key) -> np.ndarray:

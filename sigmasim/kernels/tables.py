@@ -19,9 +19,10 @@ import numpy as np
 from numba import njit
 
 from sigmasim.kernels.group import det, reunitarize_site
+from sigmasim.kernels.simd import philox_uniform
 from sigmasim.rng import uniform
 
-__all__ = ["rotation_table"]
+__all__ = ["rotation_table", "phase_table"]
 
 
 @njit(cache=True)
@@ -102,3 +103,24 @@ def rotation_table(nf, special, eps, key, table, dets):
                 table[k + half, i, j] = r[j, i].conjugate()
         dets[k] = dr
         dets[k + half] = dr.conjugate()
+
+
+@njit(cache=True)
+def phase_table(eps, key, size):
+    """cos and sin of the U(1) table: ``size / 2`` phases ``eps u`` (u from numpy's Philox
+    uniforms in (-1, 1), as ``updates.proposal_table``) followed by their inverses.
+
+    The same numbers as numpy's ``exp(1j * eps * u)`` (cos and sin of the angle, times
+    exp(0) = 1), without the Python-level array work; checked bit for bit in the tests.
+    """
+    half = size // 2
+    u = philox_uniform(key, -1.0, 1.0, half)
+    tc = np.empty(size)
+    ts = np.empty(size)
+    for k in range(half):
+        a = eps * u[k]
+        tc[k] = np.cos(a)
+        ts[k] = np.sin(a)
+        tc[k + half] = tc[k]
+        ts[k + half] = -ts[k]
+    return tc, ts
