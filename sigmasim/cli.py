@@ -301,7 +301,7 @@ def cmd_info(args) -> int:
 def cmd_analyze(args) -> int:
     from sigmasim.analysis.report import analyze_command
 
-    return analyze_command(args.files, plot=args.plot, out_dir=args.out, quiet=args.quiet)
+    return analyze_command(args.files, plot=args.plot, out_dir=args.out, quiet=args.quiet, band=args.band)
 
 
 def cmd_sweep(args) -> int:
@@ -456,6 +456,8 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("files", nargs="+", help="run files (.h5)")
     a.add_argument("--plot", action="store_true", help="also write figures (PNG and PDF)")
     a.add_argument("--out", default=None, help="folder for figures (default: next to each run)")
+    a.add_argument("--band", type=float, default=0.5,
+                   help="hysteresis band of the vacuum index, in [0, 1) (default 0.5)")
     a.add_argument("--quiet", action="store_true")
     a.set_defaults(func=cmd_analyze)
     sw = sub.add_parser("sweep", help="hysteresis: move theta up and down without re-thermalising")

@@ -86,7 +86,7 @@ def test_analyze_table_json_csv_plots(run_file, tmp_path, capsys):
     doc = json.loads(jpath.read_text())
     for key in ("format", "format_version", "note", "run", "name", "status", "label", "config",
                 "n_measurements", "n_used", "thermalisation", "series", "acceptance", "masses",
-                "vacuum_alignment_phases", "warnings"):
+                "vacuum_alignment_phases", "tunnelling", "warnings"):
         assert key in doc, key
     assert doc["format"] == "sigmasim-analysis" and doc["n_measurements"] == 400
     assert set(doc["thermalisation"]) >= {"cut", "reason", "thermalised", "series"}
@@ -108,10 +108,10 @@ def test_analyze_table_json_csv_plots(run_file, tmp_path, capsys):
         rows = list(csv.DictReader(fh))
     assert tuple(rows[0].keys()) == CSV_COLUMNS
     sections = {r["section"] for r in rows}
-    assert sections == {"thermalisation", "series", "acceptance", "mass"}
+    assert sections == {"thermalisation", "series", "acceptance", "mass", "tunnelling"}
     assert any(r["section"] == "mass" and r["name"] == "pion" and float(r["value"]) > 0 for r in rows)
     # figures: PNG and PDF of each
-    for fig in ("phase_history", "omega_plane", "autocorrelation", "effective_mass"):
+    for fig in ("phase_history", "omega_plane", "dwell_times", "autocorrelation", "effective_mass"):
         for ext in ("png", "pdf"):
             p = figs / f"small.{fig}.{ext}"
             assert p.exists() and p.stat().st_size > 1000, p
@@ -270,3 +270,50 @@ def test_channel_correlator_matches_library():
     c = channel_correlator(y, bin_size=4, symmetrise_result=False)
     per = [correlator_jackknife(y[:, k], bin_size=4).mean for k in range(3)]
     np.testing.assert_allclose(c.mean, np.mean(per, axis=0), rtol=1e-12, atol=1e-14)
+
+
+def test_tunnelling_section_counts_the_events_of_a_known_index_series():
+    """A telegraph omega_h whose branch is known at every measurement (U(3), theta = 3)."""
+    from sigmasim.analysis.tunnelling import tunnelling_analysis
+
+    nf, theta, n = 3, 3.0, 2000
+    rng = np.random.default_rng(5)
+    k = np.zeros(n, dtype=int)
+    for i in range(1, n):  # switch 0 <-> 2 with probability 0.01 per measurement
+        k[i] = k[i - 1] if rng.random() > 0.01 else 2 - k[i - 1]
+    noise = 0.1 * rng.standard_normal(n)  # well inside the hysteresis band (pi/3 * 0.5 ~ 0.52)
+    om = 0.8 * np.exp(1j * ((2 * np.pi * k + theta) / nf + noise))
+    cfg = config_from_dict({"lattice": {"shape": [4, 4, 4]}, "model": {"nf": nf, "kappa": 1.0, "theta": theta}})
+    series = {"sweep": np.arange(1, n + 1), "omega_h": om, "action": rng.standard_normal(n)}
+    ra = analyze_data(series, {}, cfg, masses=False)
+    t = ra.tunnelling
+    true_events = int(np.count_nonzero(np.diff(k)))
+    assert true_events > 10
+    assert t.n_events == true_events
+    np.testing.assert_array_equal(t.index, k)
+    assert t.occupation[0] == pytest.approx(np.mean(k == 0))
+    assert t.rate_per_volume == pytest.approx(t.rate / 64)
+    ref = tunnelling_analysis(om, theta, nf, band=0.5, sweeps=series["sweep"], volume=64, seed=0)
+    assert t.rate == ref.rate and t.fit.tau_mle == ref.fit.tau_mle
+    # geometric dwells with p = 0.01: mean 100 sweeps, within 4 of the fit's errors
+    assert abs(t.fit.tau_mle - 100.0) < 4 * t.fit.tau_mle_error
+    # the band is the user's: band 0 on noise of 0.1 adds no events here either, band 0.9 none lost
+    assert analyze_data(series, {}, cfg, masses=False, band=0.9).tunnelling.n_events == true_events
+
+
+def test_analyze_reports_tunnelling_of_a_real_run(tmp_path, capsys):
+    """U(3) 4^3 at theta = 3 (beta 1, h 0.2, kappa 1) tunnels between k = 0 and k = 2 every ~30 sweeps."""
+    path = write_run(tmp_path, name="tun", n_meas=1000, nf=3, theta=3.0, kappa=1.0, shape=(4, 4, 4),
+                     beta=1.0, h=0.2)
+    figs = tmp_path / "figs"
+    assert analyze_command([str(path)], plot=True, out_dir=str(figs), band=0.5) == 0
+    out = capsys.readouterr().out
+    doc = json.loads(output_paths(path)[0].read_text())
+    t = doc["tunnelling"]
+    assert t["n_events"] >= 10, t["n_events"]
+    assert f"tunnelling events {t['n_events']} over" in out
+    assert sum(t["occupation"]) == pytest.approx(1.0)
+    assert t["rate_per_site"] == pytest.approx(t["rate_per_sweep"] / 64)
+    assert (figs / "tun.dwell_times.png").stat().st_size > 1000
+    with pytest.raises(SigmasimError, match="--band"):
+        analyze_command([str(path)], band=1.0)

@@ -30,9 +30,9 @@ from pathlib import Path
 import numpy as np
 
 __all__ = ["branch_phases", "plot_phase_history", "plot_omega_plane", "plot_autocorrelation",
-           "plot_effective_mass", "plot_all", "FIGURES"]
+           "plot_effective_mass", "plot_dwell_times", "plot_all", "FIGURES"]
 
-FIGURES = ("phase_history", "omega_plane", "autocorrelation", "effective_mass")
+FIGURES = ("phase_history", "omega_plane", "dwell_times", "autocorrelation", "effective_mass")
 _TOY = "research toy"
 
 
@@ -72,10 +72,16 @@ def _save(fig, out: Path, stem: str, name: str) -> list[Path]:
 
 
 def plot_phase_history(ra, ax=None):
-    """Time history of ``arg Omega_h`` with the nf tree-level branch directions."""
+    """Time history of ``arg Omega_h`` with the nf tree-level branch directions, and below it the
+    vacuum index series with its events (when the run has one: nf >= 2)."""
     plt = _plt()
     fig = None
-    if ax is None:
+    t = getattr(ra, "tunnelling", None)
+    if ax is None and t is not None:
+        fig, (ax, ai) = plt.subplots(2, 1, figsize=(9, 5.6), layout="constrained", sharex=True,
+                                     height_ratios=(3, 1.3))
+        _plot_index(ra, ai)
+    elif ax is None:
         fig, ax = plt.subplots(figsize=(9, 4.2), layout="constrained")
     c = ra.config
     om = ra.data["omega_h"]
@@ -89,10 +95,59 @@ def plot_phase_history(ra, ax=None):
     ax.set_ylim(-np.pi * 1.05, np.pi * 1.05)
     ax.set_yticks(np.linspace(-np.pi, np.pi, 5), [r"$-\pi$", r"$-\pi/2$", "0", r"$\pi/2$", r"$\pi$"])
     ax.set_xlabel("sweep")
+    if t is not None and fig is not None:
+        ax.set_xlabel("")
     ax.set_ylabel(r"arg $\Omega_h$,  $\Omega_h = e^{i\theta_m}\sum_x \mathrm{Tr}\,U_x/(N_f V)$")
     ax.legend(fontsize=7, loc="upper right", ncol=2, framealpha=0.85)
     if fig is not None:
         _title(fig, ra, "phase of the condensate")
+    return fig
+
+
+def _plot_index(ra, ax):
+    """The vacuum index k per measurement (all measurements) with the tunnelling events."""
+    t = ra.tunnelling
+    sw = np.asarray(ra.data["sweep"])[:len(t.index)]
+    ax.step(sw, t.index, where="post", color="k", lw=0.9, label="vacuum index k")
+    ev = np.asarray(t.events, dtype=int)
+    if ev.size:
+        ax.plot(sw[ev], t.index[ev], "v", color="C3", ms=4, label=f"tunnelling events ({t.n_events})")
+    ax.set_yticks(range(ra.config.nf))
+    ax.set_ylim(-0.5, ra.config.nf - 0.5)
+    ax.set_xlabel("sweep")
+    ax.set_ylabel("branch k")
+    ax.legend(fontsize=7, loc="upper right", framealpha=0.85)
+    ax.set_title(f"vacuum index, hysteresis band {t.band:g} (no thermalisation cut)", fontsize=8)
+
+
+def plot_dwell_times(ra, ax=None):
+    """Histogram of completed dwell times with the fitted exponential (maximum likelihood)."""
+    plt = _plt()
+    t = ra.tunnelling
+    fig = None
+    if ax is None:
+        fig, ax = plt.subplots(figsize=(7, 4.2), layout="constrained")
+    d = np.array([w for _, w in t.completed], dtype=float)
+    if d.size:
+        nb = int(max(3, min(30, np.sqrt(d.size))))
+        counts, edges, _ = ax.hist(d, bins=nb, range=(0.0, float(d.max()) + 1e-9), color="C0", alpha=0.7,
+                                   label=f"completed dwells ({d.size})")
+        tau = t.fit.tau_mle
+        if np.isfinite(tau) and tau > 0:
+            x = np.linspace(0, edges[-1], 200)
+            width = edges[1] - edges[0]
+            ax.plot(x, d.size * width / tau * np.exp(-x / tau), color="C3",
+                    label=fr"$N\,\Delta/\tau\; e^{{-t/\tau}}$, $\tau$ = {tau:.3g} $\pm$ {t.fit.tau_mle_error:.2g}")
+        ax.set_yscale("log")
+    else:
+        ax.text(0.5, 0.5, "no completed dwell (fewer than two tunnelling events)", ha="center",
+                transform=ax.transAxes)
+    ax.set_xlabel("dwell time in one branch (sweeps)")
+    ax.set_ylabel("dwells per bin")
+    if d.size:
+        ax.legend(fontsize=7, loc="upper right", framealpha=0.85)
+    if fig is not None:
+        _title(fig, ra, f"dwell times between tunnelling events (rate {t.rate:.3g} per sweep)")
     return fig
 
 
@@ -223,6 +278,8 @@ def plot_all(ra, out_dir) -> list[Path]:
     if ra.data.get("omega_h") is not None and ra.n_used > 0:
         written += _save(plot_phase_history(ra), out, stem, "phase_history")
         written += _save(plot_omega_plane(ra), out, stem, "omega_plane")
+    if getattr(ra, "tunnelling", None) is not None:
+        written += _save(plot_dwell_times(ra), out, stem, "dwell_times")
     if ra.series:
         written += _save(plot_autocorrelation(ra), out, stem, "autocorrelation")
     if ra.masses:

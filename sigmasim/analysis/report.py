@@ -49,17 +49,25 @@ Output files (next to the run file ``<dir>/<name>.h5``)
   ``n_bins``, ``bin_size``, ``m_eff``, ``m_eff_error``, ``correlator``,
   ``correlator_error`` (lists over t), ``warning``;
 * ``vacuum_alignment_phases``: ``alpha_f`` of the channel frame;
+* ``tunnelling`` (nf >= 2, else null): the vacuum index of every measurement (no thermalisation
+  cut: an escape from the start branch counts) by :mod:`sigmasim.analysis.tunnelling` --
+  ``band``, ``n_events``, ``total_sweeps``, ``rate_per_sweep`` (1 / mean completed dwell) and
+  its bootstrap ``_error``, ``rate_mle`` (events / sweeps), ``rate_per_site`` (/ V),
+  ``occupation`` (per branch), ``event_measurements``, ``dwells`` (completed, per branch),
+  ``censored_first``/``censored_last`` ([branch, sweeps]), ``exponential_fit`` (``tau_mle``,
+  ``tau_hist`` with errors, ``ks_pvalue``, ``n``);
 * ``warnings``: list of strings (also printed in the table).
 
 NaN and infinities are written as ``null``.
 
 ``<dir>/<name>.analysis.csv`` -- one row per quantity, columns
-:data:`CSV_COLUMNS`: ``section`` is ``series``, ``acceptance``, ``mass`` or
-``thermalisation``.
+:data:`CSV_COLUMNS`: ``section`` is ``series``, ``acceptance``, ``mass``,
+``tunnelling`` or ``thermalisation``.
 
 Figures (``plot=True``): ``<name>.<figure>.png`` and ``.pdf`` for the figures
-of :mod:`sigmasim.analysis.plots` (``phase_history``, ``omega_plane``,
-``autocorrelation``, ``effective_mass``), in ``out_dir`` or next to the run.
+of :mod:`sigmasim.analysis.plots` (``phase_history`` with the vacuum index below it,
+``omega_plane``, ``dwell_times`` (nf >= 2), ``autocorrelation``, ``effective_mass``), in
+``out_dir`` or next to the run.
 """
 
 from __future__ import annotations
@@ -178,6 +186,7 @@ class RunAnalysis:
     acceptance: dict = field(default_factory=dict)
     masses: dict = field(default_factory=dict)
     alpha: np.ndarray | None = None
+    tunnelling: object | None = None  # TunnellingResult over all measurements (nf >= 2)
     warnings: list = field(default_factory=list)
     data: dict = field(default_factory=dict)  # the cut series used (for plots), not serialised
 
@@ -323,8 +332,28 @@ def _fit_channel(channel: str, est, tree: float | None) -> MassSummary:
     return ms
 
 
+def _tunnelling(ra: RunAnalysis, series: dict, config, band: float) -> None:
+    """Vacuum index over *all* measurements (an escape from the start branch is an event, so no
+    thermalisation cut), events, dwell times, rates per sweep and per site, exponential fit."""
+    from sigmasim.analysis.tunnelling import tunnelling_analysis
+
+    om = series.get("omega_h")
+    if om is None or config.nf < 2 or len(om) < 2:
+        return
+    om = np.asarray(om)
+    ok = np.isfinite(om)
+    sweeps = np.asarray(series.get("sweep", np.arange(1, len(om) + 1)))[ok]
+    ra.tunnelling = tunnelling_analysis(om[ok], config.theta, config.nf, band=band, sweeps=sweeps,
+                                        volume=int(np.prod(config.shape)), seed=0)
+    t = ra.tunnelling
+    if t.n_events < 5:
+        ra.warnings.append(f"tunnelling: only {t.n_events} events; rates and dwell times are not "
+                           f"measured reliably (a longer run or a smaller volume helps)")
+
+
 def analyze_data(series: dict, slices: dict, config, *, status: str = "complete",
-                 path=None, name: str | None = None, masses: bool = True) -> RunAnalysis:
+                 path=None, name: str | None = None, masses: bool = True,
+                 band: float = 0.5) -> RunAnalysis:
     """Analyse in-memory data (``RunData.series``/``.slices`` or :func:`sigmasim.chain.simulate`).
 
     ``slices`` holds ``"U"`` and ``"det"`` (for ``simulate`` output pass
@@ -370,6 +399,7 @@ def analyze_data(series: dict, slices: dict, config, *, status: str = "complete"
             "phi2_susceptibility", float(g.value), float(g.error), float(g.tau_int),
             float(g.tau_int_error), float(g.n_independent), int(g.window), int(g.n),
             "V var(phi2), Gamma method for the derived quantity")
+    _tunnelling(ra, series, config, band)
     acc_m = ra.series.get("accept_metropolis")
     acc_p = ra.series.get("accept_phase")
     drift = reals.get("unitarity_drift")
@@ -413,12 +443,13 @@ def analyze_data(series: dict, slices: dict, config, *, status: str = "complete"
     return ra
 
 
-def analyze_run(path, masses: bool = True) -> RunAnalysis:
+def analyze_run(path, masses: bool = True, band: float = 0.5) -> RunAnalysis:
     """Open and analyse one run file (raises :class:`RunFileError` for a bad file)."""
     from sigmasim.storage import open_run
 
     d = open_run(path)
-    return analyze_data(d.series, d.slices, d.config, status=d.status, path=path, masses=masses)
+    return analyze_data(d.series, d.slices, d.config, status=d.status, path=path, masses=masses,
+                        band=band)
 
 
 # ----------------------------------------------------------------------------
@@ -483,6 +514,8 @@ def format_table(analyses) -> str:
             if ra.alpha is not None and np.any(np.abs(ra.alpha) > 1e-3):
                 lines.append(f"  (operators in the vacuum-aligned frame, alpha_f = "
                              f"{', '.join(f'{a:.3f}' for a in ra.alpha)})")
+        if ra.tunnelling is not None:
+            lines += [""] + _tunnelling_lines(ra)
         for w in ra.warnings:
             lines.append(f"  !! WARNING: {w}")
         lines.append("")
@@ -490,6 +523,47 @@ def format_table(analyses) -> str:
                  "LO 1/beta = tree level, theta = 0 only.")
     lines.append(TOY_NOTE)
     return "\n".join(lines)
+
+
+def _tunnelling_lines(ra: RunAnalysis) -> list[str]:
+    t = ra.tunnelling
+    nf = ra.config.nf
+    lines = [f"vacuum index (branch k of arg Omega_h = (2 pi k + theta)/nf, hysteresis band {t.band:g}, "
+             f"all {len(t.index)} measurements):",
+             f"  tunnelling events {t.n_events} over {t.total_time:.0f} sweeps; rate "
+             f"{fmt_err(t.rate, t.rate_error)} per sweep (1/mean completed dwell, bootstrap), "
+             f"{fmt_err(t.rate_mle, t.rate_mle_error)} (events / sweeps); per site "
+             f"{fmt_err(t.rate_per_volume, t.rate_per_volume_error)}"]
+    head = f"  {'branch':<8}{'occupation':>12}{'dwells':>8}{'mean dwell':>14}"
+    lines += [head]
+    for k in range(nf):
+        d = t.dwells_by_branch.get(k, np.array([]))
+        md = fmt_err(d.mean(), d.std(ddof=1) / np.sqrt(len(d))) if len(d) > 1 else (
+            f"{d[0]:.0f}" if len(d) == 1 else "-")
+        lines.append(f"  {k:<8}{t.occupation[k]:>12.3f}{len(d):>8}{md:>14}")
+    f = t.fit
+    if f.n:
+        lines.append(f"  dwell times: exponential fit tau = {fmt_err(f.tau_mle, f.tau_mle_error)} sweeps "
+                     f"(maximum likelihood), histogram fit {fmt_err(f.tau_hist, f.tau_hist_error)}, "
+                     f"KS p = {_f(f.ks_pvalue, '.2f')} ({f.n} completed dwells)")
+    cens = [c for c in (t.censored_first, t.censored_last) if c is not None]
+    if cens:
+        lines.append("  censored (first/last, not in the rates' mean): "
+                     + ", ".join(f"branch {b} for {w:.0f} sweeps" for b, w in cens))
+    return lines
+
+
+def _tunnelling_dict(t) -> dict:
+    return {"band": t.band, "source": t.source, "n_events": t.n_events, "total_sweeps": t.total_time,
+            "rate_per_sweep": t.rate, "rate_per_sweep_error": t.rate_error,
+            "rate_mle": t.rate_mle, "rate_mle_error": t.rate_mle_error,
+            "rate_per_site": t.rate_per_volume, "rate_per_site_error": t.rate_per_volume_error,
+            "occupation": t.occupation, "event_measurements": t.events,
+            "dwells": {str(k): v for k, v in t.dwells_by_branch.items()},
+            "censored_first": t.censored_first, "censored_last": t.censored_last,
+            "exponential_fit": {"tau_mle": t.fit.tau_mle, "tau_mle_error": t.fit.tau_mle_error,
+                                "tau_hist": t.fit.tau_hist, "tau_hist_error": t.fit.tau_hist_error,
+                                "ks_pvalue": t.fit.ks_pvalue, "n": t.fit.n}}
 
 
 def _clean(x):
@@ -530,7 +604,9 @@ def analysis_dict(ra: RunAnalysis) -> dict:
         "thermalisation": {"cut": ra.cut, "reason": ra.cut_reason, "thermalised": ra.thermalised,
                            "series": ra.cut_series, "checked": ra.cut_checked},
         "series": series, "acceptance": ra.acceptance, "masses": masses,
-        "vacuum_alignment_phases": ra.alpha, "warnings": ra.warnings,
+        "vacuum_alignment_phases": ra.alpha,
+        "tunnelling": _tunnelling_dict(ra.tunnelling) if ra.tunnelling is not None else None,
+        "warnings": ra.warnings,
     })
 
 
@@ -546,6 +622,18 @@ def _csv_rows(ra: RunAnalysis):
         yield dict(run=run, section="mass", name=ch, value=m.mass, error=m.error, t_min=m.t_min,
                    t_max=m.t_max, chi2_dof=m.chi2_dof, p_value=m.p_value,
                    note=m.warning or m.window_reason)
+    t = ra.tunnelling
+    if t is not None:
+        yield dict(run=run, section="tunnelling", name="events", value=t.n_events,
+                   note=f"band {t.band:g}, {t.total_time:.0f} sweeps")
+        yield dict(run=run, section="tunnelling", name="rate_per_sweep", value=t.rate, error=t.rate_error)
+        yield dict(run=run, section="tunnelling", name="rate_mle", value=t.rate_mle, error=t.rate_mle_error)
+        yield dict(run=run, section="tunnelling", name="rate_per_site", value=t.rate_per_volume,
+                   error=t.rate_per_volume_error)
+        yield dict(run=run, section="tunnelling", name="dwell_tau_mle", value=t.fit.tau_mle,
+                   error=t.fit.tau_mle_error)
+        for k, o in enumerate(t.occupation):
+            yield dict(run=run, section="tunnelling", name=f"occupation[{k}]", value=float(o))
 
 
 def output_paths(run_path) -> tuple[Path, Path]:
@@ -578,8 +666,8 @@ def write_outputs(ra: RunAnalysis, json_path=None, csv_path=None) -> tuple[Path,
 
 
 def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = None,
-                    quiet: bool = False) -> int:
-    """``sigmasim analyze PATH... [--plot] [--out-dir DIR] [--quiet]``.
+                    quiet: bool = False, band: float = 0.5) -> int:
+    """``sigmasim analyze PATH... [--plot] [--out DIR] [--band B] [--quiet]``.
 
     Opens every run first (a bad file raises :class:`RunFileError` with a
     one-line message before any work), analyses each, prints the table
@@ -591,6 +679,8 @@ def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = 
 
     if not paths:
         raise SigmasimError("analyze: give at least one run file")
+    if not (isinstance(band, (int, float)) and 0.0 <= band < 1.0):
+        raise SigmasimError(f"--band must be in [0, 1), got {band}")
     resolved = []
     for p in paths:
         p = Path(p)
@@ -603,7 +693,7 @@ def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = 
     data = [(p, open_run(p)) for p in resolved]
     analyses, written = [], []
     for p, d in data:
-        ra = analyze_data(d.series, d.slices, d.config, status=d.status, path=p)
+        ra = analyze_data(d.series, d.slices, d.config, status=d.status, path=p, band=band)
         analyses.append(ra)
         written += list(write_outputs(ra))
         if plot:
