@@ -15,7 +15,8 @@ three times from scratch, in this order, in one benchmark run:
 It prints runs per minute for each, the wall time of the scan's fixed start (cluster start, worker
 imports, cached kernels loaded) and the overhead per run: (scan time - start - serial time at the
 same numba threads / w) x w / points, the time each run loses on its worker to the scheduler, the
-task round trip and the per-point file and index I/O. Machines are noisy: compare the lines of one run only. One JSON line goes to
+task round trip and the per-point file I/O; and the time the index takes (the Gamma-method analysis of
+every point, in the client, after the runs). Machines are noisy: compare the lines of one run only. One JSON line goes to
 benchmarks/results/scan.jsonl.
 """
 
@@ -105,10 +106,11 @@ def scanned(path: Path, workers: int) -> float:
     spec = load_scan(path)
     t0 = time.perf_counter()
     pts = run_scan(spec, workers=workers, quiet=True)
+    t1 = time.perf_counter()
     collect(spec, pts)
-    dt = time.perf_counter() - t0
+    t2 = time.perf_counter()
     assert all(p.status == "done" for p in pts), [(p.label, p.error) for p in pts if p.status != "done"]
-    return dt
+    return t1 - t0, t2 - t1
 
 
 def main(argv=None) -> int:
@@ -128,31 +130,33 @@ def main(argv=None) -> int:
         n = 2 * max(1, args.points // 2)
         t_s1 = serial(scan_file(work, "serial1", n, args.measurements, args.lattice), 1)
         t_sc = serial(scan_file(work, "serialc", n, args.measurements, args.lattice), cores)
-        rows["serial, 1 thread"] = (t_s1, 0.0)
-        rows[f"serial, {cores} threads"] = (t_sc, 0.0)
+        rows["serial, 1 thread"] = (t_s1, 0.0, 0.0)
+        rows[f"serial, {cores} threads"] = (t_sc, 0.0, 0.0)
         for w in (1, 2):
             start = start_only(scan_file(work, f"start{w}", 2, 20, 4), w)
-            t = scanned(scan_file(work, f"scan{w}", n, args.measurements, args.lattice), w)
-            rows[f"scan, {w} worker{'s' if w > 1 else ''}"] = (t, start)
+            t, t_index = scanned(scan_file(work, f"scan{w}", n, args.measurements, args.lattice), w)
+            rows[f"scan, {w} worker{'s' if w > 1 else ''}"] = (t, start, t_index)
     finally:
         shutil.rmtree(work, ignore_errors=True)
     print(f"grid: {n} U(3) runs, {args.lattice}^3, 50 + {args.measurements} sweeps each; {cores} cores")
-    print(f"{'how':<20}{'wall s':>9}{'runs/min':>10}{'start s':>9}{'overhead/run s':>16}")
+    print(f"{'how':<20}{'wall s':>9}{'runs/min':>10}{'start s':>9}{'overhead/run s':>16}{'index s':>9}")
     ref = {1: t_sc if cores >= 2 else t_s1, 2: t_s1}  # numba threads per run: cores // workers
     out = {"points": n, "measurements": args.measurements, "lattice": args.lattice, "cores": cores}
-    for name, (t, start) in rows.items():
+    for name, (t, start, t_index) in rows.items():
         over = ""
         if name.startswith("scan"):
             w = int(name.split()[1])
             per_point_serial = ref[w] / w  # w runs at a time, each at cores // w threads
             per_run = (t - start - per_point_serial) * w / n  # each worker ran n / w of the points
             over = f"{per_run:.3f}"
-            out[name] = {"seconds": t, "start": start, "overhead_per_run": per_run}
+            out[name] = {"seconds": t, "start": start, "overhead_per_run": per_run, "index": t_index}
         else:
             out[name] = {"seconds": t}
-        print(f"{name:<20}{t:>9.2f}{60 * n / t:>10.1f}{(f'{start:.2f}' if start else ''):>9}{over:>16}")
-    print("(overhead/run: (scan wall - start - serial time at the same numba threads / w) x w / points,\n"
-          " the time each run loses on its worker; noisy machines: compare within one run)")
+        print(f"{name:<20}{t:>9.2f}{60 * n / t:>10.1f}{(f'{start:.2f}' if start else ''):>9}{over:>16}"
+              f"{(f'{t_index:.2f}' if t_index else ''):>9}")
+    print("(wall: running the points; overhead/run: (wall - start - serial time at the same numba\n"
+          " threads / w) x w / points, the time each run loses on its worker; index: writing the index\n"
+          " with the Gamma-method analysis of every point, after the runs; compare within one run only)")
     RESULTS.mkdir(parents=True, exist_ok=True)
     with open(RESULTS / "scan.jsonl", "a") as fh:
         fh.write(json.dumps({"time": time.strftime("%Y-%m-%dT%H:%M:%S"), **out}) + "\n")
