@@ -248,11 +248,11 @@ def _set(raw: dict, key: str, value) -> None:
 
 
 def config_key(cfg) -> str:
-    """Stable hash of everything that fixes a run's numbers (not its name, folder or thread count)."""
-    d = cfg.to_dict()
+    """Stable hash of everything that fixes a run's chain: the run's physics hash without its name
+    (so not its folder, thread count, checkpointing, nor ``run.measurements``: raising that and
+    rerunning the scan extends every point, as ``--resume`` extends a single run)."""
+    d = cfg.physics_dict()
     d.pop("name")
-    for k in ("output", "threads", "checkpoint_every", "checkpoint_seconds"):
-        d["run"].pop(k)
     return hashlib.sha256(json.dumps(d, sort_keys=True).encode()).hexdigest()[:10]
 
 
@@ -291,8 +291,9 @@ def _file_of(p: Point, spec: ScanSpec) -> Path:
     return spec.output / "points" / p.name / f"{p.name}.h5"
 
 
-def file_status(path: Path) -> tuple[str, int]:
-    """('done' | 'partial' | 'pending' | 'failed', measurements) of a point's run file."""
+def file_status(path: Path, measurements: int | None = None) -> tuple[str, int]:
+    """('done' | 'partial' | 'pending' | 'failed', measurements) of a point's run file; done means
+    complete with at least ``measurements`` records (default: what the file itself asked for)."""
     from sigmasim.storage import open_run
 
     if not path.exists():
@@ -302,9 +303,14 @@ def file_status(path: Path) -> tuple[str, int]:
     except SigmasimError:
         return "failed", 0
     n = len(d)
-    if d.status == "complete" and n >= d.config.measurements:
+    if d.status == "complete" and n >= (d.config.measurements if measurements is None else measurements):
         return "done", n
     return "partial", n
+
+
+def _status(p: Point, spec: ScanSpec) -> tuple[str, int]:
+    """A point's status from its run file, against the measurements the scan asks for now."""
+    return file_status(_file_of(p, spec), config_from_dict(p.raw).measurements)
 
 
 # ----------------------------------------------------------------------------
@@ -536,7 +542,7 @@ def run_scan(spec: ScanSpec, scheduler: str | None = None, workers: int | None =
     for p in points:
         if p.raw is None:
             continue
-        p.status, p.n_measurements = file_status(_file_of(p, spec))
+        p.status, p.n_measurements = _status(p, spec)
         if p.status != "done":
             todo.append(p)
     disp = _Display(len(points), sum(p.status == "done" for p in points), quiet)
@@ -637,7 +643,7 @@ def collect(spec: ScanSpec, points: list[Point] | None = None) -> tuple[list[Poi
         fails = _read_failures(spec)
         for p in points:
             if p.raw is not None:
-                p.status, p.n_measurements = file_status(_file_of(p, spec))
+                p.status, p.n_measurements = _status(p, spec)
                 if p.status != "done" and p.key in fails:
                     p.status, p.error = "failed", fails[p.key].get("error", "")
     for p in points:
@@ -645,7 +651,7 @@ def collect(spec: ScanSpec, points: list[Point] | None = None) -> tuple[list[Poi
         if p.raw is None:
             continue
         path = _file_of(p, spec)
-        st, p.n_measurements = file_status(path)
+        st, p.n_measurements = _status(p, spec)
         if p.status != "failed":
             p.status = st
         if st in ("done", "partial") and p.n_measurements > 0:

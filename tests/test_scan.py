@@ -9,6 +9,7 @@ import sys
 import time
 from pathlib import Path
 
+import h5py
 import numpy as np
 import pytest
 
@@ -100,7 +101,9 @@ def test_points_product_zip_labels_and_stable_keys(tmp_path):
     moved = dict(good[0].raw, run={**good[0].raw["run"], "output": "elsewhere", "threads": 2})
     assert config_key(config_from_dict(moved)) == config_key(cfg) == good[0].key
     longer = dict(good[0].raw, run={**good[0].raw["run"], "measurements": 201})
-    assert config_key(config_from_dict(longer)) != good[0].key
+    assert config_key(config_from_dict(longer)) == good[0].key  # more measurements extend the point
+    other = dict(good[0].raw, run={**good[0].raw["run"], "thermalize": 21})
+    assert config_key(config_from_dict(other)) != good[0].key
     # stable across processes and sessions: a fixed config has a fixed key
     assert expand_points(load_scan(_scan_file(tmp_path, GRID, tmp_path / "o")))[0].key == good[0].key
 
@@ -182,11 +185,22 @@ def test_grid_with_failures_on_two_workers_equals_one_worker(tmp_path, capsys):
     rows = _rows(out2 / "index.csv")
     assert sum(r["status"] == "done" for r in rows.values()) == 8
     assert os.stat(first["file"]).st_mtime_ns == mtime
+    # raising run.measurements extends every point from its file (the others' numbers unchanged)
+    p3 = tmp_path / "more.toml"
+    p3.write_text(p2.read_text().replace("measurements = 200", "measurements = 260"))
+    assert main(["scan", str(p3), "--workers", "2", "--quiet"]) == 1
+    more = _rows(out2 / "index.csv")
+    assert all(more[k]["n_measurements"] == "260" for k in more if more[k]["status"] == "done")
+    assert sum(r["status"] == "done" for r in more.values()) == 8
+    with h5py.File(first["file"], "r") as f:
+        extended = f["series/action"][:200]
     # the same scan on one worker gives the same table, bit for bit
     p1 = _scan_file(tmp_path, GRID, out1, name="one.toml")
     assert main(["scan", str(p1), "--workers", "1", "--quiet"]) == 1
     _same_table(_rows(out1 / "index.csv"), rows)
-    h5 = read_index(out2 / "index.h5")
+    with h5py.File(out1 / "points" / Path(first["file"]).parent.name / Path(first["file"]).name, "r") as f:
+        np.testing.assert_array_equal(f["series/action"][...], extended)  # extension continued the chain
+    h5 = read_index(out1 / "index.h5")
     assert list(h5["key"]) == list(rows)
     np.testing.assert_array_equal(h5["abs_omega"], [float(r["abs_omega"]) for r in rows.values()])
     # --collect writes the same index without running anything; --plot draws a column
