@@ -479,7 +479,7 @@ class _Display:
         self.bar = tqdm(total=total, initial=initial, desc="scan", unit="point", disable=disable or None,
                         dynamic_ncols=True)
         self.line = tqdm(total=0, bar_format="{desc}", position=1, disable=disable or None, leave=False)
-        self.counts = {"done": initial, "failed": 0, "running": 0}
+        self.counts = {"done": initial, "failed": 0, "running": 0, "queued": 0}
         self.sweeps: dict = {}
         self.quiet = disable
 
@@ -487,13 +487,14 @@ class _Display:
         if always or not self.quiet:
             self.bar.write(text)
 
-    def refresh(self, running: dict) -> None:
+    def refresh(self, submitted: dict) -> None:
+        """``submitted``: key -> label of the points not finished yet; those that have reported a
+        sweep are running, the others queued."""
+        running = {k: v for k, v in submitted.items() if k in self.sweeps}
         self.counts["running"] = len(running)
+        self.counts["queued"] = len(submitted) - len(running)
         self.bar.set_postfix(self.counts, refresh=False)
-        parts = []
-        for key, label in list(running.items())[:4]:
-            s = self.sweeps.get(key)
-            parts.append(f"{label} {s[0]}/{s[1]}" if s else f"{label} starting")
+        parts = [f"{label} {self.sweeps[key][0]}/{self.sweeps[key][1]}" for key, label in list(running.items())[:4]]
         more = f" (+{len(running) - 4})" if len(running) > 4 else ""
         self.line.set_description_str("running: " + ", ".join(parts) + more if parts else "")
         self.bar.refresh()
