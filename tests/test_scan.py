@@ -317,3 +317,22 @@ def test_embedded_cluster_listens_on_loopback_only(tmp_path):
     finally:
         client.close()
         cluster.close()
+
+
+def test_a_second_scan_on_the_same_output_is_refused_and_a_stale_lock_taken_over(tmp_path, capsys):
+    import socket
+
+    from sigmasim.scan import LOCK_FILE, _take_lock
+
+    spec = load_scan(_scan_file(tmp_path, GRID, tmp_path / "o"))
+    (spec.output / "points").mkdir(parents=True)
+    lock = spec.output / LOCK_FILE
+    lock.write_text(f"{socket.gethostname()} {os.getpid()}")  # a live scan: this process
+    assert main(["scan", str(spec.path), "--workers", "1"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "another scan" in err and str(lock) in err
+    assert not list((spec.output / "points").iterdir())  # nothing was run
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True,
+                          text=True).stdout.strip()
+    lock.write_text(f"{socket.gethostname()} {dead}")  # left by a scan that was killed
+    assert _take_lock(spec) == lock and lock.read_text() == f"{socket.gethostname()} {os.getpid()}"
