@@ -224,38 +224,46 @@ print(json.dumps(out))
 """
 
 _MEMORY_SNIPPET = r"""
-import json, resource, sys
+import gc, json, sys, tracemalloc
 sys.path.insert(0, sys.argv[1])
-model, threads = sys.argv[2], int(sys.argv[3])
+model, algo, threads, sweeps = sys.argv[2], sys.argv[3], int(sys.argv[4]), int(sys.argv[5])
 import numba
 numba.set_num_threads(threads)
-from benchmarks.bench import config, MODELS
+from benchmarks.bench import config
 from sigmasim.chain import Simulation
 from sigmasim.config import config_from_dict
 def rss():
     for line in open("/proc/self/status"):
         if line.startswith("VmRSS"):
             return int(line.split()[1]) * 1024
-# JIT code in memory first (small lattice of the same model), then the real one
-m = MODELS[model]
-for algo in ("metropolis", "heatbath", "overrelax"):
-    c = config(model, algo, 0).to_dict(); c["lattice"]["shape"] = [4, 4, 4]
-    s = Simulation(config_from_dict(c)); s.sweep(); s.measure()
+# every kernel of the update loaded first (sweeps, tuning, re-unitarisation, measurement, thread
+# pool) on a 4^3 lattice of the same model: compiled code and libraries are not memory of the run
+c = config(model, algo, 0).to_dict(); c["lattice"]["shape"] = [4, 4, 4]
+s = Simulation(config_from_dict(c))
+for _ in range(25):
+    s.sweep()
+s.measure()
+del s, c
+gc.collect()
 before = rss()
-peak_before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
-sims = []
-for algo in ("metropolis", "heatbath", "overrelax"):
-    sim = Simulation(config(model, algo, 0))
-    for _ in range(12):
-        sim.sweep()
-    sim.measure()
-    field = sim.state.re.nbytes + sim.state.im.nbytes
-    nbr = sim.lattice.neighbours.nbytes + sim.lattice.slice_sites.nbytes + sim.lattice.natural.nbytes + sim.lattice.time.nbytes
-    after = rss()
-    del sim
-print(json.dumps({"rss_before": before, "rss_after": after, "added": after - before,
-                  "maxrss": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024,
-                  "maxrss_before": peak_before, "field_bytes": field, "lattice_bytes": nbr}))
+peak = before
+tracemalloc.start()
+sim = Simulation(config(model, algo, 0))
+peak = max(peak, rss())
+for i in range(sweeps):
+    sim.sweep()
+    if i % 5 == 4:
+        sim.measure()
+    peak = max(peak, rss())
+after = rss()
+traced_now, traced_peak = tracemalloc.get_traced_memory()
+tracemalloc.stop()
+print(json.dumps({"model": model, "algo": algo, "threads": threads, "sweeps": sweeps,
+                  "rss_before": before, "rss_after": after, "added": after - before,
+                  "peak_added": peak - before, "traced_end": traced_now, "traced_peak": traced_peak,
+                  "field_bytes": sim.state.re.nbytes + sim.state.im.nbytes,
+                  "table_bytes": sim.lattice.table_bytes,
+                  "site_tables": sorted(sim.lattice._site_tables)}))
 """
 
 
@@ -294,8 +302,10 @@ def startup_time() -> dict:
     return {"first": walls[0], "warm": min(walls[1:]), "python_numba_h5py_import": base}
 
 
-def memory(model: str, threads: int) -> dict:
-    out = subprocess.run([sys.executable, "-c", _MEMORY_SNIPPET, str(ROOT), model, str(threads)],
+def memory(model: str, algo: str, threads: int, sweeps: int = 60) -> dict:
+    """Memory of one run of ``algo`` on ``model`` in a fresh subprocess (see the snippet)."""
+    out = subprocess.run([sys.executable, "-c", _MEMORY_SNIPPET, str(ROOT), model, algo, str(threads),
+                          str(sweeps)],
                          capture_output=True, text=True, check=True).stdout
     return json.loads(out.strip().splitlines()[-1])
 
@@ -451,15 +461,20 @@ def main(argv=None) -> int:
             print(f"  warm {su['warm']:.2f}s (goal < 3 s; first run {su['first']:.2f}s; "
                   f"bare `import numba, h5py` {su['python_numba_h5py_import']:.2f}s)")
         emit({"measurement": "startup", **su})
-        print("== memory (subprocess: RSS added by the three simulations of a model, JIT code loaded first)")
+        print("== memory (one subprocess per run, every kernel loaded first on a 4^3 lattice; counted: the "
+              "growth of the process from just before the Simulation is built to after 60 sweeps and 12 "
+              "measurements, with the Simulation alive)")
         for model in MODELS:
-            mem = memory(model, nall)
-            f = mem["field_bytes"]
-            print(f"  {model}: field arrays {f / 2**20:.2f} MiB (+ lattice tables {mem['lattice_bytes'] / 2**20:.2f} MiB); "
-                  f"RSS added {mem['added'] / 2**20:.2f} MiB = {mem['added'] / f:.2f}x the field, "
-                  f"{mem['added'] / (f + mem['lattice_bytes']):.2f}x field + tables; "
-                  f"peak RSS of the process {mem['maxrss'] / 2**20:.0f} MiB (interpreter, numba, LLVM)")
-            emit({"measurement": "memory", "model": model, **mem})
+            for algo in ("metropolis", "heatbath", "overrelax"):
+                mem = memory(model, algo, nall)
+                f = mem["field_bytes"]
+                mib = 2.0 ** 20
+                print(f"  {model} {algo:10s} field {f / mib:.2f} MiB, lattice tables {mem['table_bytes'] / mib:.2f} MiB"
+                      f" ({', '.join(mem['site_tables']) or 'row tables only'}); numpy (tracemalloc) peak "
+                      f"{mem['traced_peak'] / mib:.2f} MiB, held at the end {mem['traced_end'] / mib:.2f} MiB; "
+                      f"RSS growth {mem['added'] / mib:.2f} MiB = {mem['added'] / f:.2f}x the field "
+                      f"(largest after a sweep {mem['peak_added'] / mib:.2f} MiB = {mem['peak_added'] / f:.2f}x)")
+                emit({"measurement": "memory", **mem})
     print(f"results: {out_path}")
     if work is not None:
         shutil.rmtree(work, ignore_errors=True)

@@ -16,7 +16,8 @@ import numpy as np
 
 from sigmasim.config import RunConfig
 from sigmasim.errors import NumericalError
-from sigmasim.kernels.measure import field_is_finite, reunitarize, reunitarize3, reunitarize_u1, slice_sums
+from sigmasim.kernels.measure import (field_is_finite, lattice_slice_sums, reunitarize, reunitarize3,
+                                      reunitarize_u1)
 from sigmasim.lattice import Lattice, make_lattice
 from sigmasim.updates import apply
 
@@ -186,8 +187,7 @@ class Simulation:
         """Measure the current configuration; returns one record (see :data:`SERIES`)."""
         st, cfg, lat = self.state, self.config, self.lattice
         link, mass, umat, dets = self._buf
-        slice_sums(st.re, st.im, lat.neighbours, lat.slice_sites, cfg.nf, self.hdiag, link, mass,
-                   umat, dets)
+        lattice_slice_sums(lat, st.re, st.im, cfg.nf, self.hdiag, link, mass, umat, dets)
         v = lat.volume
         nf = cfg.nf
         utot = umat.sum(axis=0).reshape(nf, nf)

@@ -67,7 +67,7 @@ def apply(sim, name: str) -> tuple[int, int]:
     seed = cfg.seed
     acc = 0
     tried = 0
-    re, im, nbr = st.re, st.im, lat.neighbours
+    re, im = st.re, st.im
     if name == "metropolis":
         # loop invariants of the colour loop (the same expressions as before, so the same bits)
         if nf == 1:
@@ -93,7 +93,7 @@ def apply(sim, name: str) -> tuple[int, int]:
                                      cfg.metropolis_hits, key, rows_per_chunk3(lat.row_len_half))
             else:
                 table, tdet = proposal_table(nf, cfg.special, st.step_size, tkey)
-                acc += metropolis(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, table, tdet,
+                acc += metropolis(re, im, lat.neighbours, start, stop, nf, beta, hdiag, kappa, eta, table, tdet,
                                   cfg.metropolis_hits, key, sim.blocks)
             tried += lat.half * cfg.metropolis_hits
         elif name == "heatbath":
@@ -102,7 +102,7 @@ def apply(sim, name: str) -> tuple[int, int]:
                 heatbath_u1(re[0], im[0], lat.row_neighbours, lat.row_parity, lat.row_len_half, colour,
                             beta, const.real, const.imag, key, rows_per_chunk(lat.row_len_half))
             else:
-                a = heatbath(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, cfg.special, key,
+                a = heatbath(re, im, lat.neighbours, start, stop, nf, beta, hdiag, kappa, eta, cfg.special, key,
                              sim.blocks)
                 if not cfg.special:
                     acc += a
@@ -113,7 +113,7 @@ def apply(sim, name: str) -> tuple[int, int]:
                 overrelax_u1(re[0], im[0], lat.row_neighbours, lat.row_parity, lat.row_len_half, colour,
                              beta, const.real, const.imag, rows_per_chunk(lat.row_len_half))
             else:
-                a = overrelax(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, cfg.special, key,
+                a = overrelax(re, im, lat.neighbours, start, stop, nf, beta, hdiag, kappa, eta, cfg.special, key,
                               sim.blocks)
                 if not cfg.special:
                     acc += a
