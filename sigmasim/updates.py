@@ -12,10 +12,10 @@ from __future__ import annotations
 import numpy as np
 
 from sigmasim.kernels.general import heatbath, metropolis, overrelax
-from sigmasim.kernels.u1 import heatbath_u1, metropolis_u1, overrelax_u1, rows_per_chunk
+from sigmasim.kernels.u1 import heatbath_u1, metropolis_u1_update, overrelax_u1, rows_per_chunk
 from sigmasim.kernels.tables import phase_table, rotation_table
-from sigmasim.kernels.u3 import metropolis_u3, pack_table3, rows_per_chunk3
-from sigmasim.rng import step_key
+from sigmasim.kernels.u3 import metropolis_u3_update, pack_table3, rows_per_chunk3
+from sigmasim.rng import mix64_int, step_key
 
 __all__ = ["apply", "proposal_table", "TABLE_SIZE"]
 
@@ -68,33 +68,32 @@ def apply(sim, name: str) -> tuple[int, int]:
     acc = 0
     tried = 0
     re, im = st.re, st.im
-    if name == "metropolis":
-        # loop invariants of the colour loop (the same expressions as before, so the same bits)
+    if name == "metropolis" and nf in (1, 3):
+        # both colours, their keys and proposal tables in one numba call: no serial Python work
+        # between the parallel regions (the same numbers as the per-colour path below)
+        h = lat.row_len_half
+        seed_hash = np.uint64(mix64_int(seed))
         if nf == 1:
             const = hdiag[0] + 2.0 * kappa * eta
-            c1r, c1i = float(const.real), float(const.imag)
-        elif nf == 3:
+            acc = metropolis_u1_update(re[0], im[0], lat.row_neighbours, lat.row_parity, h, beta,
+                                       float(const.real), float(const.imag), float(st.step_size), seed_hash,
+                                       st.step, _SALT_TABLE, cfg.metropolis_hits, rows_per_chunk(h))
+        else:
             k2 = 2.0 * kappa * eta
-            k2r, k2i = float(k2.real), float(k2.imag)
+            acc = metropolis_u3_update(re, im, lat.row_neighbours, lat.row_parity, h, beta, hdiag,
+                                       float(k2.real), float(k2.imag), bool(cfg.special), float(st.step_size),
+                                       seed_hash, st.step, _SALT_TABLE, cfg.metropolis_hits, rows_per_chunk3(h))
+        st.step += 2
+        return int(acc), 2 * lat.half * cfg.metropolis_hits
     for colour in (0, 1):
         start = colour * lat.half
         stop = start + lat.half
         key = step_key(seed, st.step)
         if name == "metropolis":
             tkey = step_key(seed, st.step, _SALT_TABLE)
-            if nf == 1:
-                tc, ts = table_u1(st.step_size, tkey)
-                acc += metropolis_u1(re[0], im[0], lat.row_neighbours, lat.row_parity, lat.row_len_half,
-                                     colour, beta, c1r, c1i, tc, ts, cfg.metropolis_hits, key,
-                                     rows_per_chunk(lat.row_len_half))
-            elif nf == 3:
-                acc += metropolis_u3(re, im, lat.row_neighbours, lat.row_parity, lat.row_len_half, colour,
-                                     beta, hdiag, k2r, k2i, table_u3_packed(cfg.special, st.step_size, tkey),
-                                     cfg.metropolis_hits, key, rows_per_chunk3(lat.row_len_half))
-            else:
-                table, tdet = proposal_table(nf, cfg.special, st.step_size, tkey)
-                acc += metropolis(re, im, lat.neighbours, start, stop, nf, beta, hdiag, kappa, eta, table, tdet,
-                                  cfg.metropolis_hits, key, sim.blocks)
+            table, tdet = proposal_table(nf, cfg.special, st.step_size, tkey)
+            acc += metropolis(re, im, lat.neighbours, start, stop, nf, beta, hdiag, kappa, eta, table, tdet,
+                              cfg.metropolis_hits, key, sim.blocks)
             tried += lat.half * cfg.metropolis_hits
         elif name == "heatbath":
             if nf == 1:

@@ -357,3 +357,52 @@ def test_slice_sums_from_rows_have_the_bits_of_the_gather(shape, nf):
         out.append(bufs)
     for a, b in zip(*out):
         assert a.tobytes() == b.tobytes()
+
+
+def test_numba_step_keys_are_the_python_ones():
+    from numba import njit
+
+    from sigmasim.kernels.tables import step_key_nb
+    from sigmasim.rng import mix64_int, step_key
+
+    key_nb = njit(lambda sh, step, salt: step_key_nb(sh, step, salt))
+    for seed in (0, 1, 11, 2**40 + 5, 2**63 + 17, 2**64 - 1):
+        for step in (0, 1, 2, 999, 2**31 + 3, 2**62):
+            for salt in (0, 0x5EED):
+                assert int(key_nb(np.uint64(mix64_int(seed)), step, salt)) == int(step_key(seed, step, salt))
+
+
+@pytest.mark.parametrize("nf, special", [(1, False), (3, False), (3, True)])
+def test_one_call_metropolis_update_is_the_per_colour_path(nf, special):
+    """Keys and tables built inside numba: the fields of the per-colour Python path, bit for bit."""
+    from sigmasim.kernels.u1 import metropolis_u1_update
+    from sigmasim.kernels.u3 import metropolis_u3_update
+    from sigmasim.rng import mix64_int, step_key
+    from sigmasim.updates import table_u1, table_u3_packed
+
+    lat = make_lattice((4, 6, 8))
+    rng = np.random.default_rng(5)
+    re = rng.normal(size=(nf * nf, lat.volume))
+    im = rng.normal(size=(nf * nf, lat.volume))
+    re2, im2 = re.copy(), im.copy()
+    seed, step, salt, eps, hits, h = 2**63 + 9, 12345, 0x5EED, 0.4, 3, lat.row_len_half
+    hdiag = np.array([0.3 + 0.1j, 0.2 - 0.05j, 0.1 + 0.2j])[:nf]
+    acc_ref = 0
+    for colour in (0, 1):
+        key, tkey = step_key(seed, step + colour), step_key(seed, step + colour, salt)
+        if nf == 1:
+            tc, ts = table_u1(eps, tkey)
+            acc_ref += metropolis_u1(re[0], im[0], lat.row_neighbours, lat.row_parity, h, colour, 0.7, 0.3, 0.1,
+                                     tc, ts, hits, key, rows_per_chunk(h))
+        else:
+            acc_ref += metropolis_u3(re, im, lat.row_neighbours, lat.row_parity, h, colour, 0.7, hdiag, 0.2, -0.1,
+                                     table_u3_packed(special, eps, tkey), hits, key, rows_per_chunk3(h))
+    sh = np.uint64(mix64_int(seed))
+    if nf == 1:
+        acc = metropolis_u1_update(re2[0], im2[0], lat.row_neighbours, lat.row_parity, h, 0.7, 0.3, 0.1, eps, sh,
+                                   step, salt, hits, rows_per_chunk(h))
+    else:
+        acc = metropolis_u3_update(re2, im2, lat.row_neighbours, lat.row_parity, h, 0.7, hdiag, 0.2, -0.1, special,
+                                   eps, sh, step, salt, hits, rows_per_chunk3(h))
+    assert acc == acc_ref > 0
+    assert re.tobytes() == re2.tobytes() and im.tobytes() == im2.tobytes()

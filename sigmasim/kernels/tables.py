@@ -20,9 +20,11 @@ from numba import njit
 
 from sigmasim.kernels.group import det, reunitarize_site
 from sigmasim.kernels.simd import philox_uniform
-from sigmasim.rng import uniform
+from sigmasim.rng import mix64, uniform
 
-__all__ = ["rotation_table", "phase_table"]
+__all__ = ["rotation_table", "phase_table", "pack_table3_into", "step_key_nb"]
+
+_STEP_MUL = np.uint64(0x632BE59BD9B4E019)  # the multiplier of rng.step_key
 
 
 @njit(cache=True)
@@ -124,3 +126,26 @@ def phase_table(eps, key, size):
         tc[k + half] = tc[k]
         ts[k + half] = -ts[k]
     return tc, ts
+
+
+@njit(cache=True, inline="always")
+def step_key_nb(seed_hash, step, salt):
+    """:func:`sigmasim.rng.step_key` inside numba: ``seed_hash = mix64_int(seed & (2^64 - 1))``.
+
+    uint64 arithmetic wraps modulo 2^64 exactly as the Python version masks, so the keys are
+    the same numbers (checked in the tests).
+    """
+    z = np.uint64(step) * _STEP_MUL + np.uint64(salt)
+    return mix64(np.uint64(seed_hash) ^ mix64(z))
+
+
+@njit(cache=True)
+def pack_table3_into(table, dets, out):
+    """(16, 3, 3) table and dets -> ``out`` float64 (20, 16): the layout of ``u3.pack_table3``."""
+    for k in range(table.shape[0]):
+        for a in range(3):
+            for b in range(3):
+                out[3 * a + b, k] = table[k, a, b].real
+                out[9 + 3 * a + b, k] = table[k, a, b].imag
+        out[18, k] = dets[k].real
+        out[19, k] = dets[k].imag

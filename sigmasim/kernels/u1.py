@@ -19,9 +19,10 @@ from numba import njit, prange
 
 from sigmasim.kernels.group import von_mises_angle
 from sigmasim.kernels.simd import exp_le0, lookup16, u01_from_bits
+from sigmasim.kernels.tables import phase_table, step_key_nb
 from sigmasim.rng import SITE_STRIDE, bits
 
-__all__ = ["metropolis_u1", "heatbath_u1", "overrelax_u1", "rows_per_chunk"]
+__all__ = ["metropolis_u1", "metropolis_u1_update", "heatbath_u1", "overrelax_u1", "rows_per_chunk"]
 
 CHUNK_SITES = 512  # target sites per chunk: the scratch of a chunk stays in L1
 TABLE_ENTRIES = 16  # the Metropolis kernel looks up 16-entry tables (4 bits of the draw)
@@ -146,6 +147,20 @@ def metropolis_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, tc, ts, nhits, key,
             na += _hits(c[c0:c0 + m], s[c0:c0 + m], ar, ai, uu, rcs[0], rcs[1])
         acc[ch] = na
     return acc.sum()
+
+
+@njit(cache=True)
+def metropolis_u1_update(c, s, rnbr, rpar, h, beta, cr, ci, eps, seed_hash, step, salt, nhits, rows):
+    """One Metropolis update of both colours in one call (keys and tables as
+    :func:`sigmasim.kernels.u3.metropolis_u3_update`, the table from :func:`phase_table`);
+    the same numbers as :func:`metropolis_u1` per colour.  Returns the accepted hits."""
+    acc = 0
+    for colour in range(2):
+        key = step_key_nb(seed_hash, step + colour, 0)
+        tkey = step_key_nb(seed_hash, step + colour, salt)
+        tc, ts = phase_table(eps, tkey, TABLE_ENTRIES)
+        acc += metropolis_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, tc, ts, nhits, key, rows)
+    return acc
 
 
 @njit(cache=True, inline="always", error_model="numpy")

@@ -41,10 +41,11 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
+from sigmasim.kernels import tables
 from sigmasim.kernels.simd import exp_le0, lookup16, u01_from_bits
 from sigmasim.rng import SITE_STRIDE, bits
 
-__all__ = ["metropolis_u3", "pack_table3", "rows_per_chunk3"]
+__all__ = ["metropolis_u3", "metropolis_u3_update", "pack_table3", "rows_per_chunk3"]
 
 CHUNK_SITES = 128  # target sites per chunk and the scratch width (a multiple of 8)
 TABLE_ENTRIES = 16  # the kernel looks up 16-entry tables (4 bits of the draw)
@@ -279,6 +280,31 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
                 im[c + 2, q] = W[11 + c, j]
         acc[ch] = na
     return acc.sum()
+
+
+@njit(cache=True)
+def metropolis_u3_update(re, im, rnbr, rpar, h, beta, hdiag, k2r, k2i, special, eps, seed_hash, step,
+                         salt, nhits, rows):
+    """One Metropolis update of both colours in one call: colour ``c`` is colour update number
+    ``step + c`` of the run, with the site key ``step_key(seed, step + c)`` and the proposal
+    table of ``step_key(seed, step + c, salt)`` (``seed_hash`` as :func:`tables.step_key_nb`).
+
+    The same numbers as building the tables and keys in Python and calling
+    :func:`metropolis_u3` per colour, without the serial Python work between the two
+    parallel regions.  Returns the accepted hits.
+    """
+    nt = TABLE_ENTRIES
+    table = np.empty((nt, 3, 3), dtype=np.complex128)
+    dets = np.empty(nt, dtype=np.complex128)
+    tab = np.empty((20, nt))
+    acc = 0
+    for colour in range(2):
+        key = tables.step_key_nb(seed_hash, step + colour, 0)
+        tkey = tables.step_key_nb(seed_hash, step + colour, salt)
+        tables.rotation_table(3, special, eps, tkey, table, dets)
+        tables.pack_table3_into(table, dets, tab)
+        acc += metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhits, key, rows)
+    return acc
 
 
 @njit(cache=True, inline="always")
