@@ -10,6 +10,7 @@ determinant term is accept/rejected).  Adding an update means a kernel in
 from __future__ import annotations
 
 import numpy as np
+from numba import get_num_threads
 
 from sigmasim.kernels.general import heatbath, metropolis, overrelax
 from sigmasim.kernels.u1 import heatbath_u1, metropolis_u1_update, overrelax_u1, rows_per_chunk
@@ -77,12 +78,14 @@ def apply(sim, name: str) -> tuple[int, int]:
             const = hdiag[0] + 2.0 * kappa * eta
             acc = metropolis_u1_update(re[0], im[0], lat.row_neighbours, lat.row_parity, h, beta,
                                        float(const.real), float(const.imag), float(st.step_size), seed_hash,
-                                       st.step, _SALT_TABLE, cfg.metropolis_hits, rows_per_chunk(h))
+                                       st.step, _SALT_TABLE, cfg.metropolis_hits, rows_per_chunk(h),
+                                       get_num_threads())
         else:
             k2 = 2.0 * kappa * eta
             acc = metropolis_u3_update(re, im, lat.row_neighbours, lat.row_parity, h, beta, hdiag,
                                        float(k2.real), float(k2.imag), bool(cfg.special), float(st.step_size),
-                                       seed_hash, st.step, _SALT_TABLE, cfg.metropolis_hits, rows_per_chunk3(h))
+                                       seed_hash, st.step, _SALT_TABLE, cfg.metropolis_hits, rows_per_chunk3(h),
+                                       get_num_threads())
         st.step += 2
         return int(acc), 2 * lat.half * cfg.metropolis_hits
     for colour in (0, 1):
@@ -99,7 +102,8 @@ def apply(sim, name: str) -> tuple[int, int]:
             if nf == 1:
                 const = hdiag[0] + 2.0 * kappa * eta
                 heatbath_u1(re[0], im[0], lat.row_neighbours, lat.row_parity, lat.row_len_half, colour,
-                            beta, const.real, const.imag, key, rows_per_chunk(lat.row_len_half))
+                            beta, const.real, const.imag, key, rows_per_chunk(lat.row_len_half),
+                            get_num_threads())
             else:
                 a = heatbath(re, im, lat.neighbours, start, stop, nf, beta, hdiag, kappa, eta, cfg.special, key,
                              sim.blocks)
@@ -110,7 +114,8 @@ def apply(sim, name: str) -> tuple[int, int]:
             if nf == 1:
                 const = hdiag[0] + 2.0 * kappa * eta
                 overrelax_u1(re[0], im[0], lat.row_neighbours, lat.row_parity, lat.row_len_half, colour,
-                             beta, const.real, const.imag, rows_per_chunk(lat.row_len_half))
+                             beta, const.real, const.imag, rows_per_chunk(lat.row_len_half),
+                             get_num_threads())
             else:
                 a = overrelax(re, im, lat.neighbours, start, stop, nf, beta, hdiag, kappa, eta, cfg.special, key,
                               sim.blocks)

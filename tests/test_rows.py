@@ -372,9 +372,11 @@ def test_numba_step_keys_are_the_python_ones():
                 assert int(key_nb(np.uint64(mix64_int(seed)), step, salt)) == int(step_key(seed, step, salt))
 
 
+@pytest.mark.parametrize("nblk", [1, 3])
 @pytest.mark.parametrize("nf, special", [(1, False), (3, False), (3, True)])
-def test_one_call_metropolis_update_is_the_per_colour_path(nf, special):
-    """Keys and tables built inside numba: the fields of the per-colour Python path, bit for bit."""
+def test_one_call_metropolis_update_is_the_per_colour_path(nf, special, nblk):
+    """Keys and tables built inside numba: the fields of the per-colour Python path (scratch per
+    chunk), bit for bit, with the chunks dealt out in blocks."""
     from sigmasim.kernels.u1 import metropolis_u1_update
     from sigmasim.kernels.u3 import metropolis_u3_update
     from sigmasim.rng import mix64_int, step_key
@@ -400,9 +402,9 @@ def test_one_call_metropolis_update_is_the_per_colour_path(nf, special):
     sh = np.uint64(mix64_int(seed))
     if nf == 1:
         acc = metropolis_u1_update(re2[0], im2[0], lat.row_neighbours, lat.row_parity, h, 0.7, 0.3, 0.1, eps, sh,
-                                   step, salt, hits, rows_per_chunk(h))
+                                   step, salt, hits, rows_per_chunk(h), nblk)
     else:
         acc = metropolis_u3_update(re2, im2, lat.row_neighbours, lat.row_parity, h, 0.7, hdiag, 0.2, -0.1, special,
-                                   eps, sh, step, salt, hits, rows_per_chunk3(h))
+                                   eps, sh, step, salt, hits, rows_per_chunk3(h), nblk)
     assert acc == acc_ref > 0
     assert re.tobytes() == re2.tobytes() and im.tobytes() == im2.tobytes()

@@ -34,15 +34,18 @@ def rows_per_chunk(h: int, target: int = CHUNK_SITES) -> int:
 
 
 @njit(cache=True, inline="always")
-def _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, ar, ai):
+def _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, ar, ai, X, Y, fo, ff, fl):
     """a = beta conj(N) + const for the rows [r0, r1) of ``colour`` into ar, ai (chunk scratch).
 
     All reads are contiguous runs (no gather): in a slow direction the
     neighbours of a run of consecutive rows are a run of consecutive rows of
     the other colour; in the fastest direction they are the same row shifted
-    by 0 and -1 or +1 with one wrapped element.  The neighbours are added in
-    the order of ``lattice.neighbours`` (directions 0 .. d-1, + before -), so
-    every sum has the bits of the site-by-site one.
+    by 0 and -1 or +1 with one wrapped element, taken in one select pass over
+    the whole chunk (:func:`_fast_chunk`; X, Y: scratch of m + 2h, fo: bool
+    scratch of m; ff, fl: the row-start and row-end flags of a chunk, the same
+    for every chunk, from :func:`_row_flags`).  The neighbours are added in the order of
+    ``lattice.neighbours`` (directions 0 .. d-1, + before -), so every sum has
+    the bits of the site-by-site one.
     """
     m = (r1 - r0) * h
     for j in range(m):
@@ -62,10 +65,52 @@ def _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, ar, ai):
             _add_run(ar[dst:dst + n], ai[dst:dst + n], c[src:src + n], s[src:src + n])
             g = g2
     for g in range(r0, r1):
-        src = other + g * h
+        o = (colour + rpar[g]) % 2 == 1
         b = (g - r0) * h
-        _fast_row(ar[b:b + h], ai[b:b + h], c[src:src + h], s[src:src + h], h,
-                  (colour + rpar[g]) % 2, beta, cr, ci)
+        for j in range(h):  # a constant store: a memset
+            fo[b + j] = o
+    src = other + r0 * h
+    _fast_chunk(ar, c, X, src, m, h, fo, ff, fl, beta, cr)
+    _fast_chunk(ai, s, Y, src, m, h, fo, ff, fl, -beta, ci)
+
+
+@njit(cache=True, inline="always")
+def _row_flags(h, rows):
+    """Flags of the first (ff) and last (fl) site of each row of a chunk of ``rows`` rows."""
+    ff = np.zeros(rows * h, dtype=np.bool_)
+    fl = np.zeros(rows * h, dtype=np.bool_)
+    for g in range(rows):
+        ff[g * h] = True
+        fl[g * h + h - 1] = True
+    return ff, fl
+
+
+@njit(cache=True, inline="always")
+def _fast_chunk(ar, c, X, src, m, h, fo, ff, fl, beta, cr):
+    """ar = beta ((ar + plus) + minus) + cr over the m sites of a chunk of whole rows.
+
+    The fastest-direction neighbours (+ before -, as the site-by-site sum) of
+    site j of a row: offset 0 (fo false): plus at j, minus at j - 1 (j = 0
+    wraps to h - 1, ff); offset 1: plus at j + 1 (j = h - 1 wraps to 0, fl),
+    minus at j.  X gets a copy of the chunk's other-colour rows with h
+    elements of margin on each side, so every candidate read is in bounds and
+    the select is branch free (vectorised across the chunk, not per row).
+    """
+    us = np.uint64(src)
+    uh = np.uint64(h)
+    for i in range(m):
+        X[uh + np.uint64(i)] = c[us + np.uint64(i)]
+    for i in range(m):
+        k = uh + np.uint64(i)
+        xc = X[k]
+        xp = X[k + np.uint64(1)]
+        xpw = X[k + np.uint64(1) - uh]
+        xm = X[k - np.uint64(1)]
+        xmw = X[k - np.uint64(1) + uh]
+        a = xpw if fl[i] else xp
+        b = xmw if ff[i] else xm
+        o = fo[i]
+        ar[i] = beta * ((ar[i] + (a if o else xc)) + (xc if o else b)) + cr
 
 
 @njit(cache=True, inline="always")
@@ -75,28 +120,8 @@ def _add_run(ar, ai, c, s):
         ai[j] += s[j]
 
 
-@njit(cache=True, inline="always")
-def _fast_row(ar, ai, c, s, h, o, beta, cr, ci):
-    """Add the two fastest-direction neighbours (+ then -) of one row, then a = beta conj(N) + const."""
-    if o == 0:
-        # + neighbour at j, - neighbour at j - 1 (j = 0 wraps to h - 1)
-        ar[0] = beta * ((ar[0] + c[0]) + c[h - 1]) + cr
-        ai[0] = -beta * ((ai[0] + s[0]) + s[h - 1]) + ci
-        for j in range(1, h):
-            ar[j] = beta * ((ar[j] + c[j]) + c[j - 1]) + cr
-            ai[j] = -beta * ((ai[j] + s[j]) + s[j - 1]) + ci
-    else:
-        # + neighbour at j + 1 (j = h - 1 wraps to 0), - neighbour at j
-        for j in range(h - 1):
-            ar[j] = beta * ((ar[j] + c[j + 1]) + c[j]) + cr
-            ai[j] = -beta * ((ai[j] + s[j + 1]) + s[j]) + ci
-        e = h - 1
-        ar[e] = beta * ((ar[e] + c[0]) + c[e]) + cr
-        ai[e] = -beta * ((ai[e] + s[0]) + s[e]) + ci
-
-
 @njit(cache=True, parallel=True, error_model="numpy")
-def metropolis_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, tc, ts, nhits, key, rows):
+def metropolis_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, tc, ts, nhits, key, rows, nblk=0):
     """``nhits`` Metropolis hits on every site of ``colour`` with rotations (tc, ts) from a table.
 
     ``rnbr``, ``rpar``, ``h`` are the lattice's row tables (``row_neighbours``,
@@ -106,7 +131,10 @@ def metropolis_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, tc, ts, nhits, key,
     pick the rotation, its top 53 bits are the accept uniform, so the chain
     does not depend on the chunking or the thread count.  The rows of the
     colour are cut into chunks of ``rows`` consecutive rows (the parallel
-    unit); every loop over a chunk is branch free and call free, so LLVM
+    unit, dealt out in ``nblk`` blocks of consecutive chunks, each block with
+    its scratch allocated once: pass the thread count; 0, the default, is one
+    block per chunk; the numbers do not depend on it); every loop over a chunk is branch free
+    and call free, so LLVM
     vectorises it; the table lookups are 8-site permutes
     (:func:`sigmasim.kernels.simd.lookup16`) into chunk scratch.  Returns the
     accepted hits.
@@ -122,35 +150,43 @@ def metropolis_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, tc, ts, nhits, key,
     tab[0] = tc
     tab[1] = ts
     nch = (nrows + rows - 1) // rows
+    ff, fl = _row_flags(h, rows)
     acc = np.zeros(nch, dtype=np.int64)
-    for ch in prange(nch):
-        r0 = ch * rows
-        r1 = min(nrows, r0 + rows)
-        m = (r1 - r0) * h
-        c0 = start + r0 * h
-        mp = (m + 7) // 8 * 8  # the lookups write 8 sites at a time
-        ar = np.empty(m)
-        ai = np.empty(m)
-        uu = np.empty(m)
+    nblk = nch if nblk <= 0 else min(nch, nblk)
+    mx = rows * h
+    mp = (mx + 7) // 8 * 8  # the lookups write 8 sites at a time
+    for blk in prange(nblk):
+        # scratch once per block of chunks (the blocks only share out the work)
+        ar = np.empty(mx)
+        ai = np.empty(mx)
+        uu = np.empty(mx)
         ix = np.empty(mp, dtype=np.int64)
         rcs = np.empty((2, mp))
-        _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, ar, ai)
-        na = 0
-        for hit in range(nhits):
-            hh = np.uint64(hit)
-            for j in range(m):
-                b = bits(key, np.uint64(c0 + j) * SITE_STRIDE + hh)
-                ix[j] = np.int64(b & mask)
-                uu[j] = u01_from_bits(b)
-            for j8 in range(0, m, 8):
-                lookup16(tab, ix, rcs, 2, j8)
-            na += _hits(c[c0:c0 + m], s[c0:c0 + m], ar, ai, uu, rcs[0], rcs[1])
-        acc[ch] = na
+        X = np.empty(mx + 2 * h)
+        Y = np.empty(mx + 2 * h)
+        fo = np.empty(mx, dtype=np.bool_)
+        for ch in range(blk * nch // nblk, (blk + 1) * nch // nblk):
+            r0 = ch * rows
+            r1 = min(nrows, r0 + rows)
+            m = (r1 - r0) * h
+            c0 = start + r0 * h
+            _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, ar, ai, X, Y, fo, ff, fl)
+            na = 0
+            for hit in range(nhits):
+                hh = np.uint64(hit)
+                for j in range(m):
+                    b = bits(key, np.uint64(c0 + j) * SITE_STRIDE + hh)
+                    ix[j] = np.int64(b & mask)
+                    uu[j] = u01_from_bits(b)
+                for j8 in range(0, m, 8):
+                    lookup16(tab, ix, rcs, 2, j8)
+                na += _hits(c[c0:c0 + m], s[c0:c0 + m], ar, ai, uu, rcs[0], rcs[1])
+            acc[ch] = na
     return acc.sum()
 
 
 @njit(cache=True)
-def metropolis_u1_update(c, s, rnbr, rpar, h, beta, cr, ci, eps, seed_hash, step, salt, nhits, rows):
+def metropolis_u1_update(c, s, rnbr, rpar, h, beta, cr, ci, eps, seed_hash, step, salt, nhits, rows, nblk):
     """One Metropolis update of both colours in one call (keys and tables as
     :func:`sigmasim.kernels.u3.metropolis_u3_update`, the table from :func:`phase_table`);
     the same numbers as :func:`metropolis_u1` per colour.  Returns the accepted hits."""
@@ -159,7 +195,7 @@ def metropolis_u1_update(c, s, rnbr, rpar, h, beta, cr, ci, eps, seed_hash, step
         key = step_key_nb(seed_hash, step + colour, 0)
         tkey = step_key_nb(seed_hash, step + colour, salt)
         tc, ts = phase_table(eps, tkey, TABLE_ENTRIES)
-        acc += metropolis_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, tc, ts, nhits, key, rows)
+        acc += metropolis_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, tc, ts, nhits, key, rows, nblk)
     return acc
 
 
@@ -182,7 +218,7 @@ def _hits(c, s, ar, ai, uu, rc, rs):
 
 
 @njit(cache=True, parallel=True)
-def heatbath_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, key, rows):
+def heatbath_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, key, rows, nblk=0):
     """Exact von Mises heatbath on every site of ``colour``; returns the site count.
 
     Row tables and chunking as :func:`metropolis_u1`: the local fields of a
@@ -193,34 +229,41 @@ def heatbath_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, key, rows):
     start = colour * half
     other = (1 - colour) * half
     nch = (nrows + rows - 1) // rows
-    for ch in prange(nch):
-        r0 = ch * rows
-        r1 = min(nrows, r0 + rows)
-        m = (r1 - r0) * h
-        c0 = start + r0 * h
-        far = np.empty(m)
-        fai = np.empty(m)
-        _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, far, fai)
-        for j in range(m):
-            x = c0 + j
-            ar = far[j]
-            ai = fai[j]
-            k = np.sqrt(ar * ar + ai * ai)
-            f, g, _ = von_mises_angle(k, key, np.uint64(x) * SITE_STRIDE)
-            if k > 1e-300:
-                # U = e^{i psi} conj(a) / |a|
-                er = ar / k
-                ei = -ai / k
-                c[x] = er * f - ei * g
-                s[x] = ei * f + er * g
-            else:
-                c[x] = f
-                s[x] = g
+    ff, fl = _row_flags(h, rows)
+    nblk = nch if nblk <= 0 else min(nch, nblk)
+    mx = rows * h
+    for blk in prange(nblk):
+        far = np.empty(mx)
+        fai = np.empty(mx)
+        X = np.empty(mx + 2 * h)
+        Y = np.empty(mx + 2 * h)
+        fo = np.empty(mx, dtype=np.bool_)
+        for ch in range(blk * nch // nblk, (blk + 1) * nch // nblk):
+            r0 = ch * rows
+            r1 = min(nrows, r0 + rows)
+            m = (r1 - r0) * h
+            c0 = start + r0 * h
+            _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, far, fai, X, Y, fo, ff, fl)
+            for j in range(m):
+                x = c0 + j
+                ar = far[j]
+                ai = fai[j]
+                k = np.sqrt(ar * ar + ai * ai)
+                f, g, _ = von_mises_angle(k, key, np.uint64(x) * SITE_STRIDE)
+                if k > 1e-300:
+                    # U = e^{i psi} conj(a) / |a|
+                    er = ar / k
+                    ei = -ai / k
+                    c[x] = er * f - ei * g
+                    s[x] = ei * f + er * g
+                else:
+                    c[x] = f
+                    s[x] = g
     return half
 
 
 @njit(cache=True, parallel=True, error_model="numpy")
-def overrelax_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, rows):
+def overrelax_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, rows, nblk=0):
     """Microcanonical reflection U -> conj(a)^2 conj(U) / |a|^2 on every site of ``colour``.
 
     Row tables and chunking as :func:`metropolis_u1`.  Returns the site count.
@@ -230,15 +273,22 @@ def overrelax_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, rows):
     start = colour * half
     other = (1 - colour) * half
     nch = (nrows + rows - 1) // rows
-    for ch in prange(nch):
-        r0 = ch * rows
-        r1 = min(nrows, r0 + rows)
-        m = (r1 - r0) * h
-        c0 = start + r0 * h
-        ar = np.empty(m)
-        ai = np.empty(m)
-        _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, ar, ai)
-        _reflect(c[c0:c0 + m], s[c0:c0 + m], ar, ai)
+    ff, fl = _row_flags(h, rows)
+    nblk = nch if nblk <= 0 else min(nch, nblk)
+    mx = rows * h
+    for blk in prange(nblk):
+        ar = np.empty(mx)
+        ai = np.empty(mx)
+        X = np.empty(mx + 2 * h)
+        Y = np.empty(mx + 2 * h)
+        fo = np.empty(mx, dtype=np.bool_)
+        for ch in range(blk * nch // nblk, (blk + 1) * nch // nblk):
+            r0 = ch * rows
+            r1 = min(nrows, r0 + rows)
+            m = (r1 - r0) * h
+            c0 = start + r0 * h
+            _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, ar, ai, X, Y, fo, ff, fl)
+            _reflect(c[c0:c0 + m], s[c0:c0 + m], ar, ai)
     return half
 
 

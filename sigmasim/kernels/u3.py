@@ -151,7 +151,7 @@ def _fast_row18(M, b, re, im, rs, h, o, j0, w):
 
 
 @njit(cache=True, parallel=True, error_model="numpy")
-def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhits, key, rows):
+def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhits, key, rows, nblk=0):
     """Metropolis for nf = 3 on every site of ``colour``; returns the accepted hits.
 
     ``rnbr``, ``rpar``, ``h`` are the lattice's row tables (``row_neighbours``,
@@ -159,7 +159,9 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
     2 kappa eta``, ``tab`` from :func:`pack_table3` with ``TABLE_ENTRIES``
     entries.  The parallel unit is a chunk of ``rows`` consecutive rows
     (``rows * h <= CHUNK_SITES``), or for ``rows == 0`` a segment of at most
-    ``CHUNK_SITES`` sites of one row.
+    ``CHUNK_SITES`` sites of one row.  The chunks are dealt out in ``nblk`` blocks of
+    consecutive chunks, each with its scratch allocated once (pass the thread count; 0, the
+    default, is one block per chunk); the numbers do not depend on it.
     """
     half = re.shape[1] // 2
     nrows = rpar.shape[0]
@@ -182,109 +184,118 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
     h2r = hdiag[2].real
     h2i = -hdiag[2].imag
     acc = np.zeros(nch, dtype=np.int64)
-    for ch in prange(nch):
-        if rows > 0:
-            r0 = ch * rows
-            r1 = min(nrows, r0 + rows)
-            j0 = 0
-            w = h
-        else:
-            r0 = ch // nseg
-            r1 = r0 + 1
-            j0 = (ch % nseg) * CHUNK_SITES
-            w = min(CHUNK_SITES, h - j0)
-        m = (r1 - r0) * w
-        c0 = start + r0 * h + j0
+    nblk = nch if nblk <= 0 else min(nch, nblk)
+    # row-start / row-end flags of a chunk of whole rows: the same for every chunk
+    ff = np.zeros(CHUNK_SITES, dtype=np.bool_)
+    fl = np.zeros(CHUNK_SITES, dtype=np.bool_)
+    if rows > 0:
+        for g in range(rows):
+            ff[g * h] = True
+            fl[g * h + h - 1] = True
+    for blk in prange(nblk):
+        # scratch once per block of chunks (the blocks only share out the work)
         M = np.empty((18, CHUNK_SITES))
         W = np.empty((18, CHUNK_SITES))
         D = np.empty((2, CHUNK_SITES))
-        R = np.zeros((20, CHUNK_SITES))  # first the slow-direction sums, then the looked-up R
+        R = np.empty((20, CHUNK_SITES))  # first the slow-direction sums, then the looked-up R
         uu = np.empty(CHUNK_SITES)
         ix = np.empty(CHUNK_SITES, dtype=np.int64)
-        na = 0
-        for k in range(rnbr.shape[0]):
-            g = r0
-            while g < r1:
-                g2 = g + 1
-                while g2 < r1 and rnbr[k, g2] == rnbr[k, g2 - 1] + 1:
-                    g2 += 1
-                for c in range(0, 9, 3):
-                    _add_run6(R, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, (g2 - g) * w, c)
-                g = g2
-        if rows > 0:
-            X = np.empty(CHUNK_SITES + 2 * h)
-            fo = np.empty(CHUNK_SITES, dtype=np.bool_)
-            ff = np.empty(CHUNK_SITES, dtype=np.bool_)
-            fl = np.empty(CHUNK_SITES, dtype=np.bool_)
-            for g in range(r0, r1):
-                o = (colour + rpar[g]) % 2 == 1
-                b = (g - r0) * h
-                for j in range(h):
-                    fo[b + j] = o
-                    ff[b + j] = j == 0
-                    fl[b + j] = j == h - 1
-            src = other + r0 * h
-            for comp in range(9):
-                _fast_rows(R[comp], M[comp], X, re[comp], src, m, h, fo, ff, fl)
-                _fast_rows(R[9 + comp], M[9 + comp], X, im[comp], src, m, h, fo, ff, fl)
-        else:
-            for g in range(r0, r1):
-                _fast_row18(R, (g - r0) * w, re, im, other + g * h, h, (colour + rpar[g]) % 2, j0, w)
+        X = np.empty(CHUNK_SITES + 2 * h if rows > 0 else 1)
+        fo = np.empty(CHUNK_SITES, dtype=np.bool_)
+        for ch in range(blk * nch // nblk, (blk + 1) * nch // nblk):
+            if rows > 0:
+                r0 = ch * rows
+                r1 = min(nrows, r0 + rows)
+                j0 = 0
+                w = h
+            else:
+                r0 = ch // nseg
+                r1 = r0 + 1
+                j0 = (ch % nseg) * CHUNK_SITES
+                w = min(CHUNK_SITES, h - j0)
+            m = (r1 - r0) * w
+            c0 = start + r0 * h + j0
+            na = 0
             for comp in range(18):
                 for j in range(m):
-                    M[comp, j] = R[comp, j]
-        # M = beta N + diag(conj h), component 3a+b (re) and 9+3a+b (im)
-        for j in range(m):
-            for comp in range(18):
-                M[comp, j] *= beta
-            M[0, j] += h0r
-            M[4, j] += h1r
-            M[8, j] += h2r
-            M[9, j] += h0i
-            M[13, j] += h1i
-            M[17, j] += h2i
-        uc0 = np.uint64(c0)
-        for c in range(0, 9, 3):
+                    R[comp, j] = 0.0
+            for k in range(rnbr.shape[0]):
+                g = r0
+                while g < r1:
+                    g2 = g + 1
+                    while g2 < r1 and rnbr[k, g2] == rnbr[k, g2 - 1] + 1:
+                        g2 += 1
+                    for c in range(0, 9, 3):
+                        _add_run6(R, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, (g2 - g) * w, c)
+                    g = g2
+            if rows > 0:
+                for g in range(r0, r1):
+                    o = (colour + rpar[g]) % 2 == 1
+                    b = (g - r0) * h
+                    for j in range(h):  # a constant store: a memset
+                        fo[b + j] = o
+                src = other + r0 * h
+                for comp in range(9):
+                    _fast_rows(R[comp], M[comp], X, re[comp], src, m, h, fo, ff, fl)
+                    _fast_rows(R[9 + comp], M[9 + comp], X, im[comp], src, m, h, fo, ff, fl)
+            else:
+                for g in range(r0, r1):
+                    _fast_row18(R, (g - r0) * w, re, im, other + g * h, h, (colour + rpar[g]) % 2, j0, w)
+                for comp in range(18):
+                    for j in range(m):
+                        M[comp, j] = R[comp, j]
+            # M = beta N + diag(conj h), component 3a+b (re) and 9+3a+b (im)
             for j in range(m):
-                q = uc0 + np.uint64(j)
-                W[c, j] = re[c, q]
-                W[c + 1, j] = re[c + 1, q]
-                W[c + 2, j] = re[c + 2, q]
-                W[9 + c, j] = im[c, q]
-                W[10 + c, j] = im[c + 1, q]
-                W[11 + c, j] = im[c + 2, q]
-        for j in range(m):
-            dr, di = _det3(W[0, j], W[9, j], W[1, j], W[10, j], W[2, j], W[11, j],
-                           W[3, j], W[12, j], W[4, j], W[13, j], W[5, j], W[14, j],
-                           W[6, j], W[15, j], W[7, j], W[16, j], W[8, j], W[17, j])
-            D[0, j] = dr
-            D[1, j] = di
-        for hit in range(nhits):
-            hh = np.uint64(hit)
+                for comp in range(18):
+                    M[comp, j] *= beta
+                M[0, j] += h0r
+                M[4, j] += h1r
+                M[8, j] += h2r
+                M[9, j] += h0i
+                M[13, j] += h1i
+                M[17, j] += h2i
+            uc0 = np.uint64(c0)
+            for c in range(0, 9, 3):
+                for j in range(m):
+                    q = uc0 + np.uint64(j)
+                    W[c, j] = re[c, q]
+                    W[c + 1, j] = re[c + 1, q]
+                    W[c + 2, j] = re[c + 2, q]
+                    W[9 + c, j] = im[c, q]
+                    W[10 + c, j] = im[c + 1, q]
+                    W[11 + c, j] = im[c + 2, q]
             for j in range(m):
-                bb = bits(key, (uc0 + np.uint64(j)) * SITE_STRIDE + hh)
-                ix[j] = np.int64(bb & mask)
-                uu[j] = u01_from_bits(bb)
-            for j8 in range(0, m, 8):
-                lookup16(tab, ix, R, 20, j8)
-            for j in range(m):
-                na += _hit(W, M, D, R, uu, j, k2r, k2i)
-        for c in range(0, 9, 3):
-            for j in range(m):
-                q = uc0 + np.uint64(j)
-                re[c, q] = W[c, j]
-                re[c + 1, q] = W[c + 1, j]
-                re[c + 2, q] = W[c + 2, j]
-                im[c, q] = W[9 + c, j]
-                im[c + 1, q] = W[10 + c, j]
-                im[c + 2, q] = W[11 + c, j]
-        acc[ch] = na
+                dr, di = _det3(W[0, j], W[9, j], W[1, j], W[10, j], W[2, j], W[11, j],
+                               W[3, j], W[12, j], W[4, j], W[13, j], W[5, j], W[14, j],
+                               W[6, j], W[15, j], W[7, j], W[16, j], W[8, j], W[17, j])
+                D[0, j] = dr
+                D[1, j] = di
+            for hit in range(nhits):
+                hh = np.uint64(hit)
+                for j in range(m):
+                    bb = bits(key, (uc0 + np.uint64(j)) * SITE_STRIDE + hh)
+                    ix[j] = np.int64(bb & mask)
+                    uu[j] = u01_from_bits(bb)
+                for j8 in range(0, m, 8):
+                    lookup16(tab, ix, R, 20, j8)
+                for j in range(m):
+                    na += _hit(W, M, D, R, uu, j, k2r, k2i)
+            for c in range(0, 9, 3):
+                for j in range(m):
+                    q = uc0 + np.uint64(j)
+                    re[c, q] = W[c, j]
+                    re[c + 1, q] = W[c + 1, j]
+                    re[c + 2, q] = W[c + 2, j]
+                    im[c, q] = W[9 + c, j]
+                    im[c + 1, q] = W[10 + c, j]
+                    im[c + 2, q] = W[11 + c, j]
+            acc[ch] = na
     return acc.sum()
 
 
 @njit(cache=True)
 def metropolis_u3_update(re, im, rnbr, rpar, h, beta, hdiag, k2r, k2i, special, eps, seed_hash, step,
-                         salt, nhits, rows):
+                         salt, nhits, rows, nblk):
     """One Metropolis update of both colours in one call: colour ``c`` is colour update number
     ``step + c`` of the run, with the site key ``step_key(seed, step + c)`` and the proposal
     table of ``step_key(seed, step + c, salt)`` (``seed_hash`` as :func:`tables.step_key_nb`).
@@ -303,7 +314,7 @@ def metropolis_u3_update(re, im, rnbr, rpar, h, beta, hdiag, k2r, k2i, special, 
         tkey = tables.step_key_nb(seed_hash, step + colour, salt)
         tables.rotation_table(3, special, eps, tkey, table, dets)
         tables.pack_table3_into(table, dets, tab)
-        acc += metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhits, key, rows)
+        acc += metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhits, key, rows, nblk)
     return acc
 
 
