@@ -157,9 +157,101 @@ def time_sweeps(cfg, model: str, algo: str, algo_name: str, threads: int, second
     }
 
 
+def interleaved_speedup(model: str, algo: str, threads: int, seconds: float, thermalize: int,
+                        block_seconds: float = 0.05) -> dict:
+    """``threads`` vs 1 thread on one chain, in alternating blocks of sweeps (ABBA order).
+
+    The thread count only changes the speed (the chain is the same for any count), so both
+    see the same configurations and, block by block, the same machine: the ratio of the
+    medians is far less sensitive to a neighbour's load than two separate runs.
+    """
+    import numba
+
+    from sigmasim.chain import make_simulation
+
+    cfg = config(model, algo, thermalize)
+    numba.set_num_threads(threads)
+    sim = make_simulation(cfg)
+    for _ in range(thermalize):
+        sim.sweep()
+    t0 = time.perf_counter()
+    for _ in range(5):
+        sim.sweep()
+    per_block = max(3, int(block_seconds / ((time.perf_counter() - t0) / 5)))
+    load = foreign_load()
+    res = {1: [], threads: []}
+    t_start = time.perf_counter()
+    k = 0
+    while k < 8 or time.perf_counter() - t_start < seconds:
+        for th in ((1, threads) if k % 2 == 0 else (threads, 1)):
+            numba.set_num_threads(th)
+            sim.sweep()  # the first sweep after a switch is not timed
+            t0 = time.perf_counter()
+            for _ in range(per_block):
+                sim.sweep()
+            res[th].append((time.perf_counter() - t0) / per_block)
+        k += 1
+    numba.set_num_threads(threads)
+    one, many = float(np.median(res[1])), float(np.median(res[threads]))
+    hits = cfg.metropolis_hits if algo == "metropolis" else 1
+    return {"measurement": "interleaved_speedup", "model": model, "algorithm": algo, "threads": threads,
+            "blocks": len(res[1]), "sweeps_per_block": per_block,
+            "seconds_per_sweep_1": one, f"seconds_per_sweep_{threads}": many,
+            "site_hits_per_second_1": cfg.volume * hits / one,
+            f"site_hits_per_second_{threads}": cfg.volume * hits / many,
+            "speedup": one / many, "foreign_load_before": load, "contended": contended(load, threads)}
+
+
 def run_numba(model: str, algo: str, threads: int, seconds: float, thermalize: int) -> dict:
     return time_sweeps(config(model, algo, thermalize), model, algo, ALGO_NAMES.get((model, algo), algo),
                        threads, seconds, thermalize)
+
+
+def machine_scaling(threads: int) -> dict:
+    """How this machine's cores share work: 1 vs ``threads`` threads on two toy loops.
+
+    Each of ``threads`` work items is either an L1-resident vector loop bound by the
+    throughput of the vector units, or a dependent chain of scalar multiply-adds bound by
+    latency.  On independent idle cores both scale by ``threads``.  Where the virtual CPUs
+    share a physical core's vector units (SMT siblings on the host, whatever the guest
+    reports) or the host is busy, the first scales less, and so does any kernel that keeps
+    the vector units busy on one thread (seen on the 2-CPU development machine: from 0.8x
+    to 1.9x within minutes, while the latency-bound loop stayed at 2.0x).
+    """
+    import numba
+    from numba import njit, prange
+
+    @njit(parallel=True)
+    def vector_bound(a, reps):
+        for t in prange(a.shape[0]):
+            x = a[t]
+            for _ in range(reps):
+                for i in range(x.shape[0]):
+                    x[i] = x[i] * 0.999999 + 1e-7
+        return 0
+
+    @njit(parallel=True)
+    def latency_bound(a, reps):
+        for t in prange(a.shape[0]):
+            v = a[t, 0]
+            for _ in range(reps):
+                v = v * 0.999999 + 1e-7
+            a[t, 0] = v
+        return 0
+
+    a = np.ones((threads, 512))
+    out = {}
+    for name, f, reps in (("vector_bound", vector_bound, 400_000), ("latency_bound", latency_bound, 20_000_000)):
+        f(a, 1)
+        best = {}
+        for th in (1, threads, 1, threads):
+            numba.set_num_threads(th)
+            t0 = time.perf_counter()
+            f(a, reps)
+            best[th] = min(best.get(th, np.inf), time.perf_counter() - t0)
+        out[name] = best[1] / best[threads]
+    numba.set_num_threads(threads)
+    return out
 
 
 # ----------------------------------------------------------------------------- C yardstick
@@ -333,6 +425,13 @@ def main(argv=None) -> int:
         with open(out_path, "a") as f:
             f.write(json.dumps(d) + "\n")
 
+    def show_machine(ms, when):
+        print(f"machine ({when}): {nall} threads / 1 thread on toy loops, the same work per thread: "
+              f"vector-throughput bound {ms['vector_bound']:.2f}x, latency bound {ms['latency_bound']:.2f}x "
+              f"(well below {nall}x for the first: the vector units are shared, with the other CPU or with "
+              f"other guests of the host, which caps the thread speed-up of vectorised kernels)", flush=True)
+        emit({"measurement": "machine_scaling", "when": when, "threads": nall, **ms})
+
     def show(d):
         flag = "  [contended]" if d.get("contended") else ""
         print(f"  {d['model']:6s} {d['algorithm']:26s} {d['implementation']:16s} th={d['threads']} "
@@ -344,6 +443,9 @@ def main(argv=None) -> int:
     print(f"sigmasim benchmark  (numba {numba.__version__}, {os.cpu_count()} cpus, "
           f"threading layer {numba.config.THREADING_LAYER}, all threads = {nall})")
     print(f"foreign load now: {foreign_load(1.0):.2f} (busy fraction of all cores)")
+    if nall > 1:
+        ms = machine_scaling(nall)
+        show_machine(ms, "start")
 
     # warm the JIT cache so that no compile lands in a timed run
     for model in MODELS:
@@ -404,13 +506,31 @@ def main(argv=None) -> int:
                     show(d)
                     res[(model, "c:" + impl)] = d
 
+    inter = {}
+    if nall > 1:
+        print(f"== Metropolis, {nall} threads vs 1 thread interleaved on one chain (alternating blocks of sweeps)")
+        for model in MODELS:
+            d = interleaved_speedup(model, "metropolis", nall, 2 * secs, therm[model])
+            emit(d)
+            inter[model] = d
+            flag = "  [contended]" if d["contended"] else ""
+            print(f"  {model:6s} metropolis 1 thread {d['seconds_per_sweep_1'] * 1e6:7.0f} us/sweep "
+                  f"({d['site_hits_per_second_1']:.3e} hits/s), {nall} threads "
+                  f"{d[f'seconds_per_sweep_{nall}'] * 1e6:7.0f} us/sweep "
+                  f"({d[f'site_hits_per_second_{nall}']:.3e} hits/s): {d['speedup']:.2f}x "
+                  f"({d['blocks']} blocks of {d['sweeps_per_block']} sweeps each)  "
+                  f"load {d['foreign_load_before']:.2f}{flag}", flush=True)
+        show_machine(machine_scaling(nall), "after the timings")
     print("== ratios (same run)")
     for model in MODELS:
         for algo in ("metropolis", "heatbath", "overrelax"):
             one = res[(model, algo, 1)]["site_hits_per_second"]
             if nall > 1:
                 many = res[(model, algo, nall)]["site_hits_per_second"]
-                print(f"  {model} {algo:11s} numba {nall} threads / 1 thread: {many / one:5.2f}x")
+                extra = ""
+                if algo == "metropolis" and model in inter:
+                    extra = f"  (interleaved on one chain: {inter[model]['speedup']:.2f}x)"
+                print(f"  {model} {algo:11s} numba {nall} threads / 1 thread: {many / one:5.2f}x{extra}")
         m1 = res[(model, "metropolis", 1)]
         for impl in ("c", "c_scalar", "c_omp2"):
             c = res.get((model, "c:" + impl))
