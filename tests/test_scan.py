@@ -48,7 +48,7 @@ seed = [1, 2, 3]
 "updates.target_acceptance" = [0.5, 0.5, 1.5]
 """
 
-# 4 longer points for the interruption tests
+# 4 longer points (about 2 s each) for the interruption tests
 LONG = """
 [scan]
 name = "long"
@@ -213,7 +213,7 @@ def test_grid_with_failures_on_two_workers_equals_one_worker(tmp_path, capsys):
 def long_reference(tmp_path_factory):
     """The LONG grid run one point after another in this process, uninterrupted."""
     tmp = tmp_path_factory.mktemp("ref")
-    spec = load_scan(_scan_file(tmp, LONG, tmp / "out", meas=3000, every=250))
+    spec = load_scan(_scan_file(tmp, LONG, tmp / "out", meas=5000, every=250))
     for p in expand_points(spec):
         execute_run(config_from_dict(p.raw), quiet=True)
     assert main(["scan", str(spec.path), "--collect", "--quiet"]) == 0
@@ -256,12 +256,16 @@ def _assert_equal_to_reference(spec, ref):
 def test_killed_worker_is_replaced_and_the_scan_finishes_bit_identical(tmp_path, long_reference):
     import psutil
 
-    spec = load_scan(_scan_file(tmp_path, LONG, tmp_path / "out", meas=3000, every=250))
+    spec = load_scan(_scan_file(tmp_path, LONG, tmp_path / "out", meas=5000, every=250))
     proc = _start(spec.path)
     try:
         _wait_for_progress(spec.output, proc)
-        workers = [c for c in psutil.Process(proc.pid).children(recursive=True)
-                   if "spawn_main" in " ".join(c.cmdline()) and c.cpu_percent(interval=0.2) > 5]
+        workers = []
+        for _ in range(50):  # a worker busy with a point (not one between two points)
+            workers = [c for c in psutil.Process(proc.pid).children(recursive=True)
+                       if "spawn_main" in " ".join(c.cmdline()) and c.cpu_percent(interval=0.1) > 5]
+            if workers:
+                break
         assert workers, "no busy worker process found"
         workers[0].send_signal(signal.SIGKILL)  # a worker dies mid-run
         proc.wait(timeout=300)
@@ -274,7 +278,7 @@ def test_killed_worker_is_replaced_and_the_scan_finishes_bit_identical(tmp_path,
 
 
 def test_interrupted_scan_stops_resumably_and_the_rerun_is_bit_identical(tmp_path, long_reference):
-    spec = load_scan(_scan_file(tmp_path, LONG, tmp_path / "out", meas=3000, every=250))
+    spec = load_scan(_scan_file(tmp_path, LONG, tmp_path / "out", meas=5000, every=250))
     proc = _start(spec.path)
     try:
         _wait_for_progress(spec.output, proc)
