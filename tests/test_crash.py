@@ -107,11 +107,17 @@ class _Watched:
     def __init__(self, cfg, out, *extra):
         self.target = out / "crash" / "crash.h5"
         self.tmp = self.target.with_name("crash.h5.tmp")
+        # a resumed run starts from a file it did not write: only a switch by this process counts
+        # (t_switch is the time of this process's last checkpoint, None before its first)
+        try:
+            st = os.stat(self.target)
+            self.inode = (st.st_ino, st.st_mtime_ns)
+        except FileNotFoundError:
+            self.inode = None
+        self.t_switch = None
         self.t0 = time.monotonic()
         self.proc = subprocess.Popen(_cmd(cfg, out, *extra), stdout=subprocess.PIPE,
                                      stderr=subprocess.PIPE, text=True, cwd=ROOT)
-        self.inode = None
-        self.t_switch = None
         self.tmp_seen = 0
         self._tmp_now = False
 
