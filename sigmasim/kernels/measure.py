@@ -15,6 +15,27 @@ from sigmasim.kernels.group import det, load, reunitarize_site, store
 __all__ = ["slice_sums", "slice_sums_rows", "lattice_slice_sums", "reunitarize", "reunitarize3", "reunitarize_u1", "field_is_finite"]
 
 
+@njit(cache=True, inline="always")
+def _add_link(lk, re, im, x, y, nc):
+    """``lk`` plus Re Tr(U_x^dagger U_y), added component by component (the order fixes the bits)."""
+    for c in range(nc):
+        lk += re[c, x] * re[c, y] + im[c, x] * im[c, y]
+    return lk
+
+
+@njit(cache=True, inline="always")
+def _add_site(ms, dsum, re, im, x, nf, hdiag, urow, U, work):
+    """One site's share of the slice sums: U_x into ``urow``, Re Tr(H U_x) flavour by flavour into
+    ``ms`` and det U_x into ``dsum`` (returned), in the order that fixes the bits."""
+    for c in range(nf * nf):
+        urow[c] += complex(re[c, x], im[c, x])
+    for a in range(nf):
+        cc = a * nf + a
+        ms += (hdiag[a] * complex(re[cc, x], im[cc, x])).real
+    load(re, im, x, nf, U)
+    return ms, dsum + det(U, nf, work)
+
+
 @njit(cache=True, parallel=True)
 def slice_sums(re, im, nbr, slice_sites, nf, hdiag, link, mass, umat, dets):
     """Per-time-slice sums of one configuration.
@@ -50,16 +71,8 @@ def slice_sums(re, im, nbr, slice_sites, nf, hdiag, link, mass, umat, dets):
         for i in range(ns):
             x = slice_sites[t, i]
             for mu in range(nd):
-                y = nbr[2 * mu, x]
-                for c in range(nc):
-                    lk += re[c, x] * re[c, y] + im[c, x] * im[c, y]
-            for c in range(nc):
-                umat[t, c] += complex(re[c, x], im[c, x])
-            for a in range(nf):
-                cc = a * nf + a
-                ms += (hdiag[a] * complex(re[cc, x], im[cc, x])).real
-            load(re, im, x, nf, U)
-            dsum += det(U, nf, work)
+                lk = _add_link(lk, re, im, x, nbr[2 * mu, x], nc)
+            ms, dsum = _add_site(ms, dsum, re, im, x, nf, hdiag, umat[t], U, work)
         link[t] = lk
         mass[t] = ms
         dets[t] = dsum
@@ -95,20 +108,10 @@ def slice_sums_rows(re, im, rnbr, rpar, h, nt, nf, hdiag, link, mass, umat, dets
                 for j in range(h):
                     x = colour * half + r * h + j
                     for mu in range(nslow):
-                        y = base + rnbr[2 * mu, r] * h + j
-                        for c in range(nc):
-                            lk += re[c, x] * re[c, y] + im[c, x] * im[c, y]
+                        lk = _add_link(lk, re, im, x, base + rnbr[2 * mu, r] * h + j, nc)
                     jp = (j + 1) % h if odd else j
-                    y = base + r * h + jp
-                    for c in range(nc):
-                        lk += re[c, x] * re[c, y] + im[c, x] * im[c, y]
-                    for c in range(nc):
-                        umat[t, c] += complex(re[c, x], im[c, x])
-                    for a in range(nf):
-                        cc = a * nf + a
-                        ms += (hdiag[a] * complex(re[cc, x], im[cc, x])).real
-                    load(re, im, x, nf, U)
-                    dsum += det(U, nf, work)
+                    lk = _add_link(lk, re, im, x, base + r * h + jp, nc)
+                    ms, dsum = _add_site(ms, dsum, re, im, x, nf, hdiag, umat[t], U, work)
         link[t] = lk
         mass[t] = ms
         dets[t] = dsum
