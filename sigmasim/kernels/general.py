@@ -39,6 +39,7 @@ import numpy as np
 from numba import njit, prange
 
 from sigmasim.kernels.group import det, load, sample_su2_x0, store, von_mises_angle
+from sigmasim.kernels.serial import total, zeros_int
 from sigmasim.rng import SITE_STRIDE, bits, uniform
 
 __all__ = ["metropolis", "heatbath", "overrelax", "local_field", "rotation_action_change",
@@ -125,7 +126,7 @@ def metropolis(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, table, tde
     """Metropolis on sites [start, stop); returns the number of accepted hits."""
     nsite = stop - start
     nt = table.shape[0]
-    acc = np.zeros(nblocks, dtype=np.int64)
+    acc = zeros_int(nblocks)
     for blk in prange(nblocks):
         lo = start + blk * nsite // nblocks
         hi = start + (blk + 1) * nsite // nblocks
@@ -158,7 +159,7 @@ def metropolis(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, table, tde
                     na += 1
             store(re, im, s, nf, U)
         acc[blk] = na
-    return acc.sum()
+    return total(acc)
 
 
 @njit(cache=True, inline="always")
@@ -193,7 +194,7 @@ def _phase_step(U, W, nf, kappa, eta, d, e, key, n):
 def heatbath(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, special, key, nblocks):
     """Cabibbo-Marinari heatbath (+ phase step for U(nf)); returns accepted phase steps."""
     nsite = stop - start
-    acc = np.zeros(nblocks, dtype=np.int64)
+    acc = zeros_int(nblocks)
     for blk in prange(nblocks):
         lo = start + blk * nsite // nblocks
         hi = start + (blk + 1) * nsite // nblocks
@@ -249,14 +250,14 @@ def heatbath(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, special, key
                     na += 1
             store(re, im, s, nf, U)
         acc[blk] = na
-    return acc.sum()
+    return total(acc)
 
 
 @njit(cache=True, parallel=True)
 def overrelax(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, special, key, nblocks):
     """SU(2)-subgroup and phase reflections; returns accepted phase reflections."""
     nsite = stop - start
-    acc = np.zeros(nblocks, dtype=np.int64)
+    acc = zeros_int(nblocks)
     for blk in prange(nblocks):
         lo = start + blk * nsite // nblocks
         hi = start + (blk + 1) * nsite // nblocks
@@ -299,4 +300,4 @@ def overrelax(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, special, ke
                         na += 1
             store(re, im, s, nf, U)
         acc[blk] = na
-    return acc.sum()
+    return total(acc)

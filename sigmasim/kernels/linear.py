@@ -45,6 +45,7 @@ import numpy as np
 from numba import njit, prange
 
 from sigmasim.kernels.group import det
+from sigmasim.kernels.serial import total, zeros_int
 from sigmasim.rng import SITE_STRIDE, uniform
 
 __all__ = ["metropolis_linear", "heatbath_linear", "overrelax_linear", "slice_sums_linear",
@@ -124,7 +125,7 @@ def metropolis_linear(re, im, nbr, start, stop, nf, kin, prec, hdiag, lam1, lam2
     """Box Metropolis on sites [start, stop) (prec = 2 d kinetic + mu2); returns accepted hits."""
     nsite = stop - start
     nc = nf * nf
-    acc = np.zeros(nblocks, dtype=np.int64)
+    acc = zeros_int(nblocks)
     for blk in prange(nblocks):
         lo = start + blk * nsite // nblocks
         hi = start + (blk + 1) * nsite // nblocks
@@ -178,7 +179,7 @@ def metropolis_linear(re, im, nbr, start, stop, nf, kin, prec, hdiag, lam1, lam2
                 re[c, s] = pr[c]
                 im[c, s] = pim[c]
         acc[blk] = na
-    return acc.sum()
+    return total(acc)
 
 
 @njit(cache=True)
@@ -256,7 +257,7 @@ def heatbath_linear(re, im, nbr, start, stop, nf, kin, prec, m2x, hdiag, lam1, l
     nsite = stop - start
     nc = nf * nf
     sd = 1.0 / np.sqrt(prec)
-    acc = np.zeros(nblocks, dtype=np.int64)
+    acc = zeros_int(nblocks)
     for blk in prange(nblocks):
         lo = start + blk * nsite // nblocks
         hi = start + (blk + 1) * nsite // nblocks
@@ -290,7 +291,7 @@ def heatbath_linear(re, im, nbr, start, stop, nf, kin, prec, m2x, hdiag, lam1, l
                     im[c, s] = qi[c]
                 na += 1
         acc[blk] = na
-    return acc.sum()
+    return total(acc)
 
 
 @njit(cache=True, parallel=True)
@@ -299,7 +300,7 @@ def overrelax_linear(re, im, nbr, start, stop, nf, kin, prec, m2x, hdiag, lam1, 
     """Reflection Phi -> 2 B/P - Phi + accept/reject of V; returns accepted reflections."""
     nsite = stop - start
     nc = nf * nf
-    acc = np.zeros(nblocks, dtype=np.int64)
+    acc = zeros_int(nblocks)
     for blk in prange(nblocks):
         lo = start + blk * nsite // nblocks
         hi = start + (blk + 1) * nsite // nblocks
@@ -328,7 +329,7 @@ def overrelax_linear(re, im, nbr, start, stop, nf, kin, prec, m2x, hdiag, lam1, 
                     im[c, s] = qi[c]
                 na += 1
         acc[blk] = na
-    return acc.sum()
+    return total(acc)
 
 
 @njit(cache=True, parallel=True)

@@ -11,6 +11,7 @@ import numpy as np
 from numba import njit, prange
 
 from sigmasim.kernels.group import det, load, reunitarize_site, store
+from sigmasim.kernels.serial import largest, zeros_float
 
 __all__ = ["slice_sums", "slice_sums_rows", "lattice_slice_sums", "reunitarize", "reunitarize3", "reunitarize_u1", "field_is_finite"]
 
@@ -131,7 +132,7 @@ def lattice_slice_sums(lat, re, im, nf, hdiag, link, mass, umat, dets):
 def reunitarize(re, im, nf, special, nblocks):
     """Project every site back onto the group; returns the largest drift |U^dagger U - 1| seen."""
     nsite = re.shape[1]
-    drift = np.zeros(nblocks)
+    drift = zeros_float(nblocks)
     for blk in prange(nblocks):
         lo = blk * nsite // nblocks
         hi = (blk + 1) * nsite // nblocks
@@ -145,7 +146,7 @@ def reunitarize(re, im, nf, special, nblocks):
                 dmax = dv
             store(re, im, s, nf, U)
         drift[blk] = dmax
-    return drift.max()
+    return largest(drift)
 
 
 @njit(cache=True)
@@ -168,7 +169,7 @@ def reunitarize_u1(c, s, nblocks):
     loop, so the update loop has no float reduction and vectorises.
     """
     nsite = c.shape[0]
-    drift = np.zeros(nblocks)
+    drift = zeros_float(nblocks)
     for blk in prange(nblocks):
         lo = blk * nsite // nblocks
         hi = (blk + 1) * nsite // nblocks
@@ -185,7 +186,7 @@ def reunitarize_u1(c, s, nblocks):
         for j in range(hi - lo):
             dmax = dv[j] if dv[j] > dmax else dmax
         drift[blk] = dmax
-    return drift.max()
+    return largest(drift)
 
 
 _W3 = 128  # sites per scratch chunk of reunitarize3
@@ -201,7 +202,7 @@ def reunitarize3(re, im, nblocks):
     ``|U^dagger U - 1|`` entry found, as sqrt of the largest squared modulus.
     """
     nsite = re.shape[1]
-    drift = np.zeros(nblocks)
+    drift = zeros_float(nblocks)
     for blk in prange(nblocks):
         lo = blk * nsite // nblocks
         hi = (blk + 1) * nsite // nblocks
@@ -235,7 +236,7 @@ def reunitarize3(re, im, nblocks):
                     im[c + 1, q] = W[10 + c, j]
                     im[c + 2, q] = W[11 + c, j]
         drift[blk] = np.sqrt(dmax)
-    return drift.max()
+    return largest(drift)
 
 
 @njit(cache=True, inline="always")

@@ -18,6 +18,7 @@ import numpy as np
 from numba import njit, prange
 
 from sigmasim.kernels.group import von_mises_angle
+from sigmasim.kernels.serial import total, zeros_bool, zeros_int
 from sigmasim.kernels.simd import exp_le0, lookup16, u01_from_bits
 from sigmasim.kernels.tables import phase_table, step_key_nb
 from sigmasim.rng import SITE_STRIDE, bits
@@ -77,8 +78,8 @@ def _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, ar, ai, 
 @njit(cache=True, inline="always")
 def _row_flags(h, rows):
     """Flags of the first (ff) and last (fl) site of each row of a chunk of ``rows`` rows."""
-    ff = np.zeros(rows * h, dtype=np.bool_)
-    fl = np.zeros(rows * h, dtype=np.bool_)
+    ff = zeros_bool(rows * h)
+    fl = zeros_bool(rows * h)
     for g in range(rows):
         ff[g * h] = True
         fl[g * h + h - 1] = True
@@ -151,7 +152,7 @@ def metropolis_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, tc, ts, nhits, key,
     tab[1] = ts
     nch = (nrows + rows - 1) // rows
     ff, fl = _row_flags(h, rows)
-    acc = np.zeros(nch, dtype=np.int64)
+    acc = zeros_int(nch)
     nblk = nch if nblk <= 0 else min(nch, nblk)
     mx = rows * h
     mp = (mx + 7) // 8 * 8  # the lookups write 8 sites at a time
@@ -182,7 +183,7 @@ def metropolis_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, tc, ts, nhits, key,
                     lookup16(tab, ix, rcs, 2, j8)
                 na += _hits(c[c0:c0 + m], s[c0:c0 + m], ar, ai, uu, rcs[0], rcs[1])
             acc[ch] = na
-    return acc.sum()
+    return total(acc)
 
 
 @njit(cache=True)

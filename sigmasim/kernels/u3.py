@@ -42,6 +42,7 @@ import numpy as np
 from numba import njit, prange
 
 from sigmasim.kernels import tables
+from sigmasim.kernels.serial import total, zeros_bool, zeros_int
 from sigmasim.kernels.simd import exp_le0, lookup16, u01_from_bits
 from sigmasim.rng import SITE_STRIDE, bits
 
@@ -183,11 +184,11 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
     h1i = -hdiag[1].imag
     h2r = hdiag[2].real
     h2i = -hdiag[2].imag
-    acc = np.zeros(nch, dtype=np.int64)
+    acc = zeros_int(nch)
     nblk = nch if nblk <= 0 else min(nch, nblk)
     # row-start / row-end flags of a chunk of whole rows: the same for every chunk
-    ff = np.zeros(CHUNK_SITES, dtype=np.bool_)
-    fl = np.zeros(CHUNK_SITES, dtype=np.bool_)
+    ff = zeros_bool(CHUNK_SITES)
+    fl = zeros_bool(CHUNK_SITES)
     if rows > 0:
         for g in range(rows):
             ff[g * h] = True
@@ -290,7 +291,7 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
                     im[c + 1, q] = W[10 + c, j]
                     im[c + 2, q] = W[11 + c, j]
             acc[ch] = na
-    return acc.sum()
+    return total(acc)
 
 
 @njit(cache=True)
