@@ -13,8 +13,8 @@ import numpy as np
 from numba import get_num_threads
 
 from sigmasim.kernels.general import heatbath, metropolis, overrelax
-from sigmasim.kernels.u1 import heatbath_u1, metropolis_u1_update, overrelax_u1, rows_per_chunk
 from sigmasim.kernels.tables import phase_table, rotation_table
+from sigmasim.kernels.u1 import heatbath_u1, metropolis_u1_update, overrelax_u1, rows_per_chunk
 from sigmasim.kernels.u3 import metropolis_u3_update, pack_table3, rows_per_chunk3
 from sigmasim.rng import mix64_int, step_key
 
@@ -55,12 +55,54 @@ def table_u3_packed(special: bool, eps: float, key) -> np.ndarray:
     return pack_table3(*proposal_table(3, special, eps, key))
 
 
+def _fast_metropolis_args(sim):
+    """(kernel, arguments before the step size, arguments after it but the step counter and the
+    thread count) of the one-call nf = 1, 3 Metropolis update.
+
+    They depend on the config, the lattice and the field arrays only, so they are built again only
+    when one of those objects changes (:meth:`Simulation.set_theta` makes a new config object,
+    replica exchange swaps the field arrays) instead of once per sweep: on a sweep of 100
+    microseconds the Python work of assembling them, done serially between the parallel
+    regions, cost as much as a tenth of the sweep.  The thread count (the block count of the
+    kernel) is read at each call, it may change between sweeps.
+    """
+    cfg, lat, st = sim.config, sim.lattice, sim.state
+    re, im = st.re, st.im
+    key = (cfg, sim.hdiag, lat, re, im)
+    cached = getattr(sim, "_fast_args", None)
+    if cached is not None and all(a is b for a, b in zip(cached[0], key)):
+        return cached[1]
+    h = lat.row_len_half
+    seed_hash = np.uint64(mix64_int(cfg.seed))
+    k2 = 2.0 * cfg.kappa * cfg.eta
+    if cfg.nf == 1:
+        const = sim.hdiag[0] + k2
+        args = (metropolis_u1_update,
+                (re[0], im[0], lat.row_neighbours, lat.row_parity, h, float(cfg.beta), float(const.real),
+                 float(const.imag)),
+                (seed_hash, _SALT_TABLE, cfg.metropolis_hits, rows_per_chunk(h)))
+    else:
+        args = (metropolis_u3_update,
+                (re, im, lat.row_neighbours, lat.row_parity, h, float(cfg.beta), sim.hdiag, float(k2.real),
+                 float(k2.imag), bool(cfg.special)),
+                (seed_hash, _SALT_TABLE, cfg.metropolis_hits, rows_per_chunk3(h)))
+    sim._fast_args = (key, args)
+    return args
+
+
 def apply(sim, name: str) -> tuple[int, int]:
     """Run update ``name`` over both colours of ``sim``; returns (accepted, tried)."""
     st = sim.state
     cfg = sim.config
     lat = sim.lattice
     nf = cfg.nf
+    if name == "metropolis" and nf in (1, 3):
+        # both colours, their keys and proposal tables in one numba call: no serial Python work
+        # between the parallel regions (the same numbers as the per-colour path below)
+        kernel, head, tail = _fast_metropolis_args(sim)
+        acc = kernel(*head, float(st.step_size), tail[0], st.step, *tail[1:], get_num_threads())
+        st.step += 2
+        return int(acc), 2 * lat.half * cfg.metropolis_hits
     beta = cfg.beta
     hdiag = sim.hdiag
     kappa = cfg.kappa
@@ -69,25 +111,6 @@ def apply(sim, name: str) -> tuple[int, int]:
     acc = 0
     tried = 0
     re, im = st.re, st.im
-    if name == "metropolis" and nf in (1, 3):
-        # both colours, their keys and proposal tables in one numba call: no serial Python work
-        # between the parallel regions (the same numbers as the per-colour path below)
-        h = lat.row_len_half
-        seed_hash = np.uint64(mix64_int(seed))
-        if nf == 1:
-            const = hdiag[0] + 2.0 * kappa * eta
-            acc = metropolis_u1_update(re[0], im[0], lat.row_neighbours, lat.row_parity, h, beta,
-                                       float(const.real), float(const.imag), float(st.step_size), seed_hash,
-                                       st.step, _SALT_TABLE, cfg.metropolis_hits, rows_per_chunk(h),
-                                       get_num_threads())
-        else:
-            k2 = 2.0 * kappa * eta
-            acc = metropolis_u3_update(re, im, lat.row_neighbours, lat.row_parity, h, beta, hdiag,
-                                       float(k2.real), float(k2.imag), bool(cfg.special), float(st.step_size),
-                                       seed_hash, st.step, _SALT_TABLE, cfg.metropolis_hits, rows_per_chunk3(h),
-                                       get_num_threads())
-        st.step += 2
-        return int(acc), 2 * lat.half * cfg.metropolis_hits
     for colour in (0, 1):
         start = colour * lat.half
         stop = start + lat.half
