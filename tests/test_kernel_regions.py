@@ -89,7 +89,7 @@ def _exercise_all_kernels():
     # does not record their signatures on the dispatcher: call each once directly
     from sigmasim.kernels.tables import phase_table
     from sigmasim.kernels.u1 import metropolis_u1, rows_per_chunk
-    from sigmasim.kernels.u3 import metropolis_u3, rows_per_chunk3
+    from sigmasim.kernels.u3 import metropolis_u3, rotation_tables3, rows_per_chunk3
     from sigmasim.updates import table_u3_packed
 
     for nf, k in ((1, metropolis_u1), (3, metropolis_u3)):
@@ -104,6 +104,9 @@ def _exercise_all_kernels():
         else:
             k(st.re, st.im, lat.row_neighbours, lat.row_parity, h, 0, 0.5, sim.hdiag, 0.0, 0.0,
               table_u3_packed(False, 0.3, 5), 2, np.uint64(3), rows_per_chunk3(h), 2)
+            tabs = np.empty((2, 20, 16))
+            rotation_tables3(False, 0.3, np.array([5, 6], dtype=np.uint64), tabs, 2)
+            assert np.array_equal(tabs[0], table_u3_packed(False, 0.3, 5))
 
 
 _exercised = False
