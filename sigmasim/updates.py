@@ -14,7 +14,12 @@ from numba import get_num_threads
 
 from sigmasim.kernels.general import heatbath, metropolis, overrelax
 from sigmasim.kernels.tables import phase_table, rotation_table
-from sigmasim.kernels.u1 import heatbath_u1, metropolis_u1_update, overrelax_u1, rows_per_chunk
+from sigmasim.kernels.u1 import (
+    heatbath_u1_update,
+    metropolis_u1_update,
+    overrelax_u1_update,
+    rows_per_chunk,
+)
 from sigmasim.kernels.u3 import metropolis_u3_update, pack_table3, rows_per_chunk3
 from sigmasim.rng import mix64_int, step_key
 
@@ -55,54 +60,78 @@ def table_u3_packed(special: bool, eps: float, key) -> np.ndarray:
     return pack_table3(*proposal_table(3, special, eps, key))
 
 
-def _fast_metropolis_args(sim):
-    """(kernel, arguments before the step size, arguments after it but the step counter and the
-    thread count) of the one-call nf = 1, 3 Metropolis update.
+def _one_call_update(sim, name):
+    """A function ``state -> (accepted, tried)`` that runs update ``name`` on both colours in one
+    numba call (keys and proposal tables built inside), or None where there is no such kernel
+    (only nf = 1, and Metropolis for nf = 3, have one).
 
-    They depend on the config, the lattice and the field arrays only, so they are built again only
-    when one of those objects changes (:meth:`Simulation.set_theta` makes a new config object,
-    replica exchange swaps the field arrays) instead of once per sweep: on a sweep of 100
-    microseconds the Python work of assembling them, done serially between the parallel
-    regions, cost as much as a tenth of the sweep.  The thread count (the block count of the
-    kernel) is read at each call, it may change between sweeps.
+    Its fixed arguments depend on the config, the lattice and the field arrays only, so it is
+    built again only when one of those objects changes (:meth:`Simulation.set_theta` makes a new
+    config object, replica exchange swaps the field arrays) instead of once per sweep: on a
+    sweep of 100 microseconds the Python work of assembling them, done serially between the
+    parallel regions, cost as much as a tenth of the sweep.  The step size, the step counter
+    and the thread count (the kernel's block count; it may change between sweeps) are read at
+    each call.  The numbers are those of the per-colour path of :func:`apply`.
     """
     cfg, lat, st = sim.config, sim.lattice, sim.state
     re, im = st.re, st.im
     key = (cfg, sim.hdiag, lat, re, im)
     cached = getattr(sim, "_fast_args", None)
-    if cached is not None and all(a is b for a, b in zip(cached[0], key)):
-        return cached[1]
+    if cached is None or not all(a is b for a, b in zip(cached[0], key)):
+        cached = sim._fast_args = (key, {})
+    made = cached[1]
+    if name in made:
+        return made[name]
+    nf = cfg.nf
     h = lat.row_len_half
     seed_hash = np.uint64(mix64_int(cfg.seed))
     k2 = 2.0 * cfg.kappa * cfg.eta
-    if cfg.nf == 1:
+    nbr = (lat.row_neighbours, lat.row_parity, h)
+    fn = None
+    if nf == 1:
         const = sim.hdiag[0] + k2
-        args = (metropolis_u1_update,
-                (re[0], im[0], lat.row_neighbours, lat.row_parity, h, float(cfg.beta), float(const.real),
-                 float(const.imag)),
-                (seed_hash, _SALT_TABLE, cfg.metropolis_hits, rows_per_chunk(h)))
-    else:
-        args = (metropolis_u3_update,
-                (re, im, lat.row_neighbours, lat.row_parity, h, float(cfg.beta), sim.hdiag, float(k2.real),
-                 float(k2.imag), bool(cfg.special)),
-                (seed_hash, _SALT_TABLE, cfg.metropolis_hits, rows_per_chunk3(h)))
-    sim._fast_args = (key, args)
-    return args
+        head = (re[0], im[0], *nbr, float(cfg.beta), float(const.real), float(const.imag))
+        rows = rows_per_chunk(h)
+        if name == "metropolis":
+            hits = cfg.metropolis_hits
+            tried = 2 * lat.half * hits
+
+            def fn(st):
+                acc = metropolis_u1_update(*head, float(st.step_size), seed_hash, st.step, _SALT_TABLE, hits,
+                                           rows, get_num_threads())
+                st.step += 2
+                return int(acc), tried
+        elif name in ("heatbath", "overrelax"):
+            kernel = heatbath_u1_update if name == "heatbath" else overrelax_u1_update
+
+            def fn(st):
+                kernel(*head, seed_hash, st.step, rows, get_num_threads())
+                st.step += 2
+                return 0, 0
+    elif nf == 3 and name == "metropolis":
+        head = (re, im, *nbr, float(cfg.beta), sim.hdiag, float(k2.real), float(k2.imag), bool(cfg.special))
+        hits = cfg.metropolis_hits
+        rows = rows_per_chunk3(h)
+        tried = 2 * lat.half * hits
+
+        def fn(st):
+            acc = metropolis_u3_update(*head, float(st.step_size), seed_hash, st.step, _SALT_TABLE, hits, rows,
+                                       get_num_threads())
+            st.step += 2
+            return int(acc), tried
+    made[name] = fn
+    return fn
 
 
 def apply(sim, name: str) -> tuple[int, int]:
     """Run update ``name`` over both colours of ``sim``; returns (accepted, tried)."""
+    fast = _one_call_update(sim, name)
+    if fast is not None:
+        return fast(sim.state)
     st = sim.state
     cfg = sim.config
     lat = sim.lattice
     nf = cfg.nf
-    if name == "metropolis" and nf in (1, 3):
-        # both colours, their keys and proposal tables in one numba call: no serial Python work
-        # between the parallel regions (the same numbers as the per-colour path below)
-        kernel, head, tail = _fast_metropolis_args(sim)
-        acc = kernel(*head, float(st.step_size), tail[0], st.step, *tail[1:], get_num_threads())
-        st.step += 2
-        return int(acc), 2 * lat.half * cfg.metropolis_hits
     beta = cfg.beta
     hdiag = sim.hdiag
     kappa = cfg.kappa
@@ -121,30 +150,13 @@ def apply(sim, name: str) -> tuple[int, int]:
             acc += metropolis(re, im, lat.neighbours, start, stop, nf, beta, hdiag, kappa, eta, table, tdet,
                               cfg.metropolis_hits, key, sim.blocks)
             tried += lat.half * cfg.metropolis_hits
-        elif name == "heatbath":
-            if nf == 1:
-                const = hdiag[0] + 2.0 * kappa * eta
-                heatbath_u1(re[0], im[0], lat.row_neighbours, lat.row_parity, lat.row_len_half, colour,
-                            beta, const.real, const.imag, key, rows_per_chunk(lat.row_len_half),
-                            get_num_threads())
-            else:
-                a = heatbath(re, im, lat.neighbours, start, stop, nf, beta, hdiag, kappa, eta, cfg.special, key,
-                             sim.blocks)
-                if not cfg.special:
-                    acc += a
-                    tried += lat.half
-        elif name == "overrelax":
-            if nf == 1:
-                const = hdiag[0] + 2.0 * kappa * eta
-                overrelax_u1(re[0], im[0], lat.row_neighbours, lat.row_parity, lat.row_len_half, colour,
-                             beta, const.real, const.imag, rows_per_chunk(lat.row_len_half),
-                             get_num_threads())
-            else:
-                a = overrelax(re, im, lat.neighbours, start, stop, nf, beta, hdiag, kappa, eta, cfg.special, key,
-                              sim.blocks)
-                if not cfg.special:
-                    acc += a
-                    tried += lat.half
+        elif name in ("heatbath", "overrelax"):  # nf >= 2 (nf = 1 takes the one-call kernels above)
+            kernel = heatbath if name == "heatbath" else overrelax
+            a = kernel(re, im, lat.neighbours, start, stop, nf, beta, hdiag, kappa, eta, cfg.special, key,
+                       sim.blocks)
+            if not cfg.special:
+                acc += a
+                tried += lat.half
         else:  # pragma: no cover - config validation rejects it
             raise ValueError(name)
         st.step += 1

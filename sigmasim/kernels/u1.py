@@ -23,7 +23,8 @@ from sigmasim.kernels.simd import exp_le0, lookup16, u01_from_bits
 from sigmasim.kernels.tables import phase_table, step_key_nb
 from sigmasim.rng import SITE_STRIDE, bits
 
-__all__ = ["metropolis_u1", "metropolis_u1_update", "heatbath_u1", "overrelax_u1", "rows_per_chunk"]
+__all__ = ["heatbath_u1", "heatbath_u1_update", "metropolis_u1", "metropolis_u1_update", "overrelax_u1",
+           "overrelax_u1_update", "rows_per_chunk"]
 
 CHUNK_SITES = 512  # target sites per chunk: the scratch of a chunk stays in L1
 TABLE_ENTRIES = 16  # the Metropolis kernel looks up 16-entry tables (4 bits of the draw)
@@ -198,6 +199,23 @@ def metropolis_u1_update(c, s, rnbr, rpar, h, beta, cr, ci, eps, seed_hash, step
         tc, ts = phase_table(eps, tkey, TABLE_ENTRIES)
         acc += metropolis_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, tc, ts, nhits, key, rows, nblk)
     return acc
+
+
+@njit(cache=True)
+def heatbath_u1_update(c, s, rnbr, rpar, h, beta, cr, ci, seed_hash, step, rows, nblk):
+    """:func:`heatbath_u1` on both colours in one call, colour ``k`` with the key
+    ``step_key(seed, step + k)`` (``seed_hash`` as :func:`step_key_nb`); the same numbers."""
+    for colour in range(2):
+        heatbath_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, step_key_nb(seed_hash, step + colour, 0), rows,
+                    nblk)
+
+
+@njit(cache=True)
+def overrelax_u1_update(c, s, rnbr, rpar, h, beta, cr, ci, seed_hash, step, rows, nblk):
+    """:func:`overrelax_u1` on both colours in one call (``seed_hash`` and ``step`` unused: the
+    reflection draws no random numbers; they keep the call the same as the heatbath's)."""
+    for colour in range(2):
+        overrelax_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, rows, nblk)
 
 
 @njit(cache=True, inline="always", error_model="numpy")
