@@ -1,7 +1,7 @@
 #!/usr/bin/env python3
 """Speed benchmark of sigmasim's kernels against the hand-written C yardstick.
 
-    python benchmarks/bench.py [--quick] [--threads N] [--no-c] [--no-compile]
+    python benchmarks/bench.py [--quick] [--threads N] [--no-c] [--no-compile] [--repeat N]
 
 Measures, through the public path (config_from_dict + Simulation.sweep, after
 thermalisation and Metropolis step tuning), site-hits per second of
@@ -409,6 +409,8 @@ def main(argv=None) -> int:
     ap.add_argument("--threads", type=int, default=0, help="the 'all threads' count (default: all cores)")
     ap.add_argument("--no-c", action="store_true", help="skip the C yardstick")
     ap.add_argument("--no-compile", action="store_true", help="skip compile, start-up and memory timings")
+    ap.add_argument("--repeat", type=int, default=3,
+                    help="repetitions of the interleaved 1 vs all threads timing (default 3)")
     args = ap.parse_args(argv)
 
     import numba
@@ -508,18 +510,26 @@ def main(argv=None) -> int:
 
     inter = {}
     if nall > 1:
-        print(f"== Metropolis, {nall} threads vs 1 thread interleaved on one chain (alternating blocks of sweeps)")
-        for model in MODELS:
-            d = interleaved_speedup(model, "metropolis", nall, 2 * secs, therm[model])
-            emit(d)
-            inter[model] = d
-            flag = "  [contended]" if d["contended"] else ""
-            print(f"  {model:6s} metropolis 1 thread {d['seconds_per_sweep_1'] * 1e6:7.0f} us/sweep "
-                  f"({d['site_hits_per_second_1']:.3e} hits/s), {nall} threads "
-                  f"{d[f'seconds_per_sweep_{nall}'] * 1e6:7.0f} us/sweep "
-                  f"({d[f'site_hits_per_second_{nall}']:.3e} hits/s): {d['speedup']:.2f}x "
-                  f"({d['blocks']} blocks of {d['sweeps_per_block']} sweeps each)  "
-                  f"load {d['foreign_load_before']:.2f}{flag}", flush=True)
+        print(f"== {nall} threads vs 1 thread interleaved on one chain (alternating blocks of sweeps), "
+              f"{args.repeat} repetitions, each after the toy-loop check of the machine")
+        for rep in range(args.repeat):
+            ms = machine_scaling(nall)
+            print(f"  repetition {rep + 1}: toy loops vector-bound {ms['vector_bound']:.2f}x, "
+                  f"latency-bound {ms['latency_bound']:.2f}x", flush=True)
+            emit({"measurement": "machine_scaling", "when": f"interleaved repetition {rep + 1}", "threads": nall,
+                  **ms})
+            for model in MODELS:
+                for algo in ("metropolis", "heatbath", "overrelax"):
+                    d = interleaved_speedup(model, algo, nall, secs, therm[model])
+                    d["repetition"] = rep + 1
+                    emit(d)
+                    inter.setdefault((model, algo), []).append(d)
+                    flag = "  [contended]" if d["contended"] else ""
+                    print(f"    {model:6s} {algo:10s} 1 thread {d['seconds_per_sweep_1'] * 1e6:7.0f} us/sweep "
+                          f"({d['site_hits_per_second_1']:.3e} hits/s), {nall} threads "
+                          f"{d[f'seconds_per_sweep_{nall}'] * 1e6:7.0f} us/sweep: {d['speedup']:.2f}x "
+                          f"({d['blocks']} blocks of {d['sweeps_per_block']})  load {d['foreign_load_before']:.2f}"
+                          f"{flag}", flush=True)
         show_machine(machine_scaling(nall), "after the timings")
     print("== ratios (same run)")
     for model in MODELS:
@@ -528,8 +538,10 @@ def main(argv=None) -> int:
             if nall > 1:
                 many = res[(model, algo, nall)]["site_hits_per_second"]
                 extra = ""
-                if algo == "metropolis" and model in inter:
-                    extra = f"  (interleaved on one chain: {inter[model]['speedup']:.2f}x)"
+                if (model, algo) in inter:
+                    sp = sorted(d["speedup"] for d in inter[(model, algo)])
+                    extra = (f"  (interleaved on one chain: median {float(np.median(sp)):.2f}x, "
+                             f"range {sp[0]:.2f}-{sp[-1]:.2f}x over {len(sp)})")
                 print(f"  {model} {algo:11s} numba {nall} threads / 1 thread: {many / one:5.2f}x{extra}")
         m1 = res[(model, "metropolis", 1)]
         for impl in ("c", "c_scalar", "c_omp2"):

@@ -127,7 +127,7 @@ class Simulation:
             re, im = initial_field(config, self.lattice)
             state = ChainState(re, im, step_size=config.initial_step)
         self.state = state
-        self._fast_args = None  # updates._fast_metropolis_args keeps its arguments here
+        self._fast_args = None  # updates._one_call_update keeps its prepared calls here
         t = config.shape[0]
         self._buf = (np.empty(t), np.empty(t), np.empty((t, config.nf**2), np.complex128),
                      np.empty(t, np.complex128))

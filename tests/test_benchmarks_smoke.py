@@ -1,4 +1,4 @@
-"""Smoke test of benchmarks/independent_cost.py on tiny lattices (a few seconds)."""
+"""Smoke tests of benchmarks/independent_cost.py (tiny lattices) and benchmarks/scaling.py (a few seconds each)."""
 
 import json
 import math
@@ -41,3 +41,18 @@ def test_independent_cost_bad_argument(tmp_path):
     assert p.returncode == 2
     assert len(p.stderr.strip().splitlines()) == 1 and "U9_d3" in p.stderr
     assert not list(tmp_path.iterdir())
+
+
+def test_scaling_one_short_repetition(tmp_path):
+    """benchmarks/scaling.py runs end to end (no C, one short repetition) and writes its rows."""
+    script = ROOT / "benchmarks" / "scaling.py"
+    p = subprocess.run([sys.executable, str(script), "--repeat", "1", "--seconds", "0.2", "--no-c",
+                        "--results", str(tmp_path)], cwd=tmp_path, capture_output=True, text=True, timeout=300)
+    if "needs at least 2 CPUs" in p.stdout:
+        return  # a 1-CPU machine: nothing to scale
+    assert p.returncode == 0, p.stderr
+    rows = [json.loads(line) for f in tmp_path.glob("scaling-*.jsonl") for line in f.read_text().splitlines()]
+    assert [r["model"] for r in rows] == ["U1_d3", "U3_d3"]
+    for r in rows:
+        assert r["sigmasim_speedup"] > 0 and r["toy_vector_bound"] > 0 and "c_speedup" not in r
+    assert "sigmasim median" in p.stdout
