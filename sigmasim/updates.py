@@ -71,7 +71,8 @@ def _one_call_update(sim, name):
     sweep of 100 microseconds the Python work of assembling them, done serially between the
     parallel regions, cost as much as a tenth of the sweep.  The step size, the step counter
     and the thread count (the kernel's block count; it may change between sweeps) are read at
-    each call.  The numbers are those of the per-colour path of :func:`apply`.
+    each call.  The numbers are those of the per-colour kernels with keys and tables built in
+    Python (``tests/test_rows.py``).
     """
     cfg, lat, st = sim.config, sim.lattice, sim.state
     re, im = st.re, st.im

@@ -408,3 +408,29 @@ def test_one_call_metropolis_update_is_the_per_colour_path(nf, special, nblk):
                                    eps, sh, step, salt, hits, rows_per_chunk3(h), nblk)
     assert acc == acc_ref > 0
     assert re.tobytes() == re2.tobytes() and im.tobytes() == im2.tobytes()
+
+
+@pytest.mark.parametrize("nblk", [1, 3])
+@pytest.mark.parametrize("update", ["heatbath", "overrelax"])
+def test_one_call_u1_heatbath_overrelax_are_the_per_colour_kernels(update, nblk):
+    """heatbath_u1_update / overrelax_u1_update: the fields of the per-colour kernels with the
+    Python step keys, bit for bit."""
+    from sigmasim.kernels.u1 import heatbath_u1, heatbath_u1_update, overrelax_u1, overrelax_u1_update
+    from sigmasim.rng import mix64_int, step_key
+
+    lat = make_lattice((6, 4, 8))
+    rng = np.random.default_rng(8)
+    phi = rng.uniform(-np.pi, np.pi, lat.volume)
+    c, s = np.cos(phi), np.sin(phi)
+    c2, s2 = c.copy(), s.copy()
+    seed, step, h = 77, 4242, lat.row_len_half
+    rt = (lat.row_neighbours, lat.row_parity, h)
+    for colour in (0, 1):
+        if update == "heatbath":
+            heatbath_u1(c, s, *rt, colour, 0.8, 0.2, -0.1, step_key(seed, step + colour), rows_per_chunk(h))
+        else:
+            overrelax_u1(c, s, *rt, colour, 0.8, 0.2, -0.1, rows_per_chunk(h))
+    kernel = heatbath_u1_update if update == "heatbath" else overrelax_u1_update
+    kernel(c2, s2, *rt, 0.8, 0.2, -0.1, np.uint64(mix64_int(seed)), step, rows_per_chunk(h), nblk)
+    assert not np.array_equal(c, np.cos(phi))
+    assert c.tobytes() == c2.tobytes() and s.tobytes() == s2.tobytes()
