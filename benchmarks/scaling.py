@@ -36,8 +36,14 @@ import numpy as np
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from benchmarks.bench import (RESULTS, build_c, foreign_load, interleaved_speedup,  # noqa: E402
-                              machine_scaling, perf_dir)
+from benchmarks.bench import (  # noqa: E402
+    RESULTS,
+    build_c,
+    foreign_load,
+    interleaved_speedup,
+    machine_scaling,
+    perf_dir,
+)
 
 C_ARGS = {"U1_d3": ("u1", ["--algo", "metro", "--sweeps", "1500", "--therm", "100"]),
           "U3_d3": ("u3", ["--sweeps", "500", "--therm", "50"])}

@@ -52,3 +52,54 @@ def test_same_seed_same_file_different_seed_differs(tmp_path):
     np.testing.assert_array_equal(a["action"], b["action"])
     c = simulate(config_from_dict({**_cfg(tmp_path).to_dict(), "seed": 100}))
     assert not np.array_equal(a["action"], c["action"])
+
+
+# ----------------------------------------------------------------------------- prepared one-call updates
+def _sim(nf, algo, theta, kappa=0.3):
+    from sigmasim.chain import make_simulation
+
+    return make_simulation(config_from_dict({
+        "name": "prep", "seed": 21, "lattice": {"shape": [4, 6, 4]},
+        "model": {"nf": nf, "beta": 0.6, "mass": 0.4, "kappa": kappa, "theta": theta,
+                  "theta_placement": "split"},
+        "updates": {"schedule": [{"update": algo}]},
+        "run": {"thermalize": 0, "measurements": 1, "start": "hot"}}))
+
+
+@pytest.mark.parametrize("nf, algo", [(1, "metropolis"), (1, "heatbath"), (1, "overrelax"), (3, "metropolis")])
+def test_prepared_update_follows_set_theta(nf, algo):
+    """updates._one_call_update keeps its arguments between sweeps: after set_theta the chain must
+    continue exactly as a simulation built at the new theta from the same state."""
+    from dataclasses import replace
+
+    a = _sim(nf, algo, 1.0)
+    for _ in range(5):
+        a.sweep()
+    b = _sim(nf, algo, 2.5)
+    b.state = replace(a.state, re=a.state.re.copy(), im=a.state.im.copy())
+    a.set_theta(2.5)
+    for _ in range(5):
+        a.sweep()
+        b.sweep()
+    assert a.state.re.tobytes() == b.state.re.tobytes() and a.state.im.tobytes() == b.state.im.tobytes()
+    # and the theta did act: the same 5 sweeps at the old theta give another field
+    c = _sim(nf, algo, 1.0)
+    for _ in range(10):
+        c.sweep()
+    assert c.state.re.tobytes() != a.state.re.tobytes()
+
+
+@pytest.mark.parametrize("nf", [1, 3])
+def test_prepared_update_follows_swapped_field_arrays(nf):
+    """Replica exchange swaps the field arrays of two simulations: each sweep must then update the
+    arrays its simulation holds now, and leave the other simulation's alone."""
+    a, b = _sim(nf, "metropolis", 1.0), _sim(nf, "metropolis", 2.0)
+    a.sweep()
+    b.sweep()
+    a.state.re, b.state.re = b.state.re, a.state.re
+    a.state.im, b.state.im = b.state.im, a.state.im
+    held_by_b = b.state.re.copy()
+    before = a.state.re.copy()
+    a.sweep()
+    assert not np.array_equal(a.state.re, before)
+    assert np.array_equal(b.state.re, held_by_b)
