@@ -236,57 +236,30 @@ def _hits(c, s, ar, ai, uu, rc, rs):
     return na
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True)
 def heatbath_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, key, rows, nblk=0):
     """Exact von Mises heatbath on every site of ``colour``; returns the site count.
 
     Row tables and chunking as :func:`metropolis_u1`: the local fields of a
     chunk come from contiguous runs, then each site draws from its own counters.
     """
-    half = c.shape[0] // 2
-    nrows = rpar.shape[0]
-    start = colour * half
-    other = (1 - colour) * half
-    nch = (nrows + rows - 1) // rows
-    ff, fl = _row_flags(h, rows)
-    nblk = nch if nblk <= 0 else min(nch, nblk)
-    mx = rows * h
-    for blk in prange(nblk):
-        far = np.empty(mx)
-        fai = np.empty(mx)
-        X = np.empty(mx + 2 * h)
-        Y = np.empty(mx + 2 * h)
-        fo = np.empty(mx, dtype=np.bool_)
-        for ch in range(blk * nch // nblk, (blk + 1) * nch // nblk):
-            r0 = ch * rows
-            r1 = min(nrows, r0 + rows)
-            m = (r1 - r0) * h
-            c0 = start + r0 * h
-            _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, far, fai, X, Y, fo, ff, fl)
-            for j in range(m):
-                x = c0 + j
-                ar = far[j]
-                ai = fai[j]
-                k = np.sqrt(ar * ar + ai * ai)
-                f, g, _ = von_mises_angle(k, key, np.uint64(x) * SITE_STRIDE)
-                if k > 1e-300:
-                    # U = e^{i psi} conj(a) / |a|
-                    er = ar / k
-                    ei = -ai / k
-                    c[x] = er * f - ei * g
-                    s[x] = ei * f + er * g
-                else:
-                    c[x] = f
-                    s[x] = g
-    return half
+    return _local_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, key, rows, nblk, False)
 
 
-@njit(cache=True, parallel=True, error_model="numpy")
+@njit(cache=True)
 def overrelax_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, rows, nblk=0):
     """Microcanonical reflection U -> conj(a)^2 conj(U) / |a|^2 on every site of ``colour``.
 
     Row tables and chunking as :func:`metropolis_u1`.  Returns the site count.
     """
+    return _local_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, np.uint64(0), rows, nblk, True)
+
+
+@njit(cache=True, parallel=True, error_model="numpy")
+def _local_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, key, rows, nblk, reflect):
+    """The chunk loop of :func:`heatbath_u1` (``reflect`` False) and :func:`overrelax_u1` (True):
+    the local fields a of a chunk, then the chunk's sites drawn from the von Mises density or
+    reflected (the choice is made per chunk, so the site loops stay branch free)."""
     half = c.shape[0] // 2
     nrows = rpar.shape[0]
     start = colour * half
@@ -307,8 +280,30 @@ def overrelax_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, rows, nblk=0):
             m = (r1 - r0) * h
             c0 = start + r0 * h
             _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, ar, ai, X, Y, fo, ff, fl)
-            _reflect(c[c0:c0 + m], s[c0:c0 + m], ar, ai)
+            if reflect:
+                _reflect(c[c0:c0 + m], s[c0:c0 + m], ar, ai)
+            else:
+                _von_mises_sites(c, s, c0, m, ar, ai, key)
     return half
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _von_mises_sites(c, s, c0, m, far, fai, key):
+    """U = e^{i psi} conj(a) / |a| with psi von Mises of concentration |a|, sites c0 .. c0 + m - 1."""
+    for j in range(m):
+        x = c0 + j
+        ar = far[j]
+        ai = fai[j]
+        k = np.sqrt(ar * ar + ai * ai)
+        f, g, _ = von_mises_angle(k, key, np.uint64(x) * SITE_STRIDE)
+        if k > 1e-300:
+            er = ar / k
+            ei = -ai / k
+            c[x] = er * f - ei * g
+            s[x] = ei * f + er * g
+        else:
+            c[x] = f
+            s[x] = g
 
 
 @njit(cache=True, inline="always", error_model="numpy")
