@@ -77,6 +77,22 @@ def _row_sums(c, s, rnbr, rpar, h, colour, other, r0, r1, beta, cr, ci, ar, ai, 
 
 
 @njit(cache=True, inline="always")
+def _chunk_plan(c, rpar, h, colour, rows, nblk):
+    """The chunking shared by the row kernels: (half, nrows, start, other, nch, nblk, mx, ff, fl).
+
+    ``start``/``other``: first site of ``colour`` and of the other colour; ``nch`` chunks of
+    ``rows`` rows dealt out in ``nblk`` blocks (<= 0: one block per chunk); ``mx`` sites per
+    full chunk; ``ff``/``fl`` the row-start and row-end flags of a chunk (:func:`_row_flags`).
+    """
+    half = c.shape[0] // 2
+    nrows = rpar.shape[0]
+    nch = (nrows + rows - 1) // rows
+    ff, fl = _row_flags(h, rows)
+    nblk = nch if nblk <= 0 else min(nch, nblk)
+    return half, nrows, colour * half, (1 - colour) * half, nch, nblk, rows * h, ff, fl
+
+
+@njit(cache=True, inline="always")
 def _row_flags(h, rows):
     """Flags of the first (ff) and last (fl) site of each row of a chunk of ``rows`` rows."""
     ff = zeros_bool(rows * h)
@@ -141,21 +157,14 @@ def metropolis_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, tc, ts, nhits, key,
     (:func:`sigmasim.kernels.simd.lookup16`) into chunk scratch.  Returns the
     accepted hits.
     """
-    half = c.shape[0] // 2
-    nrows = rpar.shape[0]
-    start = colour * half
-    other = (1 - colour) * half
+    half, nrows, start, other, nch, nblk, mx, ff, fl = _chunk_plan(c, rpar, h, colour, rows, nblk)
     mask = np.uint64(TABLE_ENTRIES - 1)
     if tc.shape[0] != TABLE_ENTRIES or ts.shape[0] != TABLE_ENTRIES:
         raise ValueError("metropolis_u1 needs a 16-entry table")
     tab = np.empty((2, TABLE_ENTRIES))
     tab[0] = tc
     tab[1] = ts
-    nch = (nrows + rows - 1) // rows
-    ff, fl = _row_flags(h, rows)
     acc = zeros_int(nch)
-    nblk = nch if nblk <= 0 else min(nch, nblk)
-    mx = rows * h
     mp = (mx + 7) // 8 * 8  # the lookups write 8 sites at a time
     for blk in prange(nblk):
         # scratch once per block of chunks (the blocks only share out the work)
@@ -260,14 +269,7 @@ def _local_u1(c, s, rnbr, rpar, h, colour, beta, cr, ci, key, rows, nblk, reflec
     """The chunk loop of :func:`heatbath_u1` (``reflect`` False) and :func:`overrelax_u1` (True):
     the local fields a of a chunk, then the chunk's sites drawn from the von Mises density or
     reflected (the choice is made per chunk, so the site loops stay branch free)."""
-    half = c.shape[0] // 2
-    nrows = rpar.shape[0]
-    start = colour * half
-    other = (1 - colour) * half
-    nch = (nrows + rows - 1) // rows
-    ff, fl = _row_flags(h, rows)
-    nblk = nch if nblk <= 0 else min(nch, nblk)
-    mx = rows * h
+    half, nrows, start, other, nch, nblk, mx, ff, fl = _chunk_plan(c, rpar, h, colour, rows, nblk)
     for blk in prange(nblk):
         ar = np.empty(mx)
         ai = np.empty(mx)
