@@ -43,6 +43,7 @@ from benchmarks.bench import (  # noqa: E402
     interleaved_speedup,
     machine_scaling,
     perf_dir,
+    run_c,
 )
 
 C_ARGS = {"U1_d3": ("u1", ["--algo", "metro", "--sweeps", "1500", "--therm", "100"]),
@@ -52,17 +53,10 @@ THERM = {"U1_d3": 200, "U3_d3": 100}
 
 def c_speedup(exes: dict, model: str, seed: int) -> dict:
     """The yardstick's 1-thread SIMD build vs its 2-thread OpenMP build, ABBA order."""
-    import os
-    import subprocess
-
     prog, args = C_ARGS[model]
     rates = {1: [], 2: []}
     for th in (1, 2, 2, 1):
-        exe = exes[prog] if th == 1 else exes[prog + "_omp"]
-        env = dict(os.environ, OMP_NUM_THREADS=str(th))
-        out = subprocess.run([exe, *args, "--seed", str(seed)], env=env, capture_output=True, text=True,
-                             timeout=300, check=True).stdout
-        d = json.loads(out.strip().splitlines()[-1])
+        d = run_c(exes[prog] if th == 1 else exes[prog + "_omp"], [*args, "--seed", str(seed)], th, None)
         rates[th].append(d["seconds"])
     t1, t2 = sum(rates[1]), sum(rates[2])
     return {"seconds_1": t1, "seconds_2": t2, "speedup": t1 / t2}
