@@ -12,6 +12,7 @@ from numba import njit, prange
 
 from sigmasim.kernels.group import det, load, reunitarize_site, store
 from sigmasim.kernels.serial import largest, zeros_float
+from sigmasim.kernels.simd import load18, store18
 
 __all__ = ["slice_sums", "slice_sums_rows", "lattice_slice_sums", "reunitarize", "reunitarize3", "reunitarize_u1", "field_is_finite"]
 
@@ -212,29 +213,12 @@ def reunitarize3(re, im, nblocks):
         dmax = 0.0
         for c0 in range(lo, hi, _W3):
             n = min(_W3, hi - c0)
-            ul = np.uint64(c0)
-            for c in range(0, 9, 3):
-                for j in range(n):
-                    q = ul + np.uint64(j)
-                    W[c, j] = re[c, q]
-                    W[c + 1, j] = re[c + 1, q]
-                    W[c + 2, j] = re[c + 2, q]
-                    W[9 + c, j] = im[c, q]
-                    W[10 + c, j] = im[c + 1, q]
-                    W[11 + c, j] = im[c + 2, q]
+            load18(W, re, im, c0, n)
             for j in range(n):
                 dv[j] = _gram_schmidt3(W, j)
             for j in range(n):
                 dmax = dv[j] if dv[j] > dmax else dmax
-            for c in range(0, 9, 3):
-                for j in range(n):
-                    q = ul + np.uint64(j)
-                    re[c, q] = W[c, j]
-                    re[c + 1, q] = W[c + 1, j]
-                    re[c + 2, q] = W[c + 2, j]
-                    im[c, q] = W[9 + c, j]
-                    im[c + 1, q] = W[10 + c, j]
-                    im[c + 2, q] = W[11 + c, j]
+            store18(W, re, im, c0, n)
         drift[blk] = np.sqrt(dmax)
     return largest(drift)
 

@@ -21,8 +21,8 @@ from numba import njit, types
 from numba.core import cgutils
 from numba.extending import intrinsic
 
-__all__ = ["bits_to_f64", "exp_le0", "u01_from_bits", "is_shift", "lookup16", "lookup16_generic",
-           "LN2_HI", "LN2_LO"]
+__all__ = ["bits_to_f64", "exp_le0", "u01_from_bits", "is_shift", "load18", "lookup16", "lookup16_generic",
+           "store18", "LN2_HI", "LN2_LO"]
 
 LN2_HI = 0.6931471803691238  # 0x1.62e42fee00000p-1: n * LN2_HI is exact for |n| < 2^11
 LN2_LO = 1.9082149292705877e-10  # 0x1.a39ef35793c76p-33
@@ -161,6 +161,37 @@ def is_shift(nbr, k, c0, m, off):
     for j in range(m):
         bad += np.int64(nbr[k, c0 + j] != c0 + off + j)
     return bad == 0
+
+
+@njit(cache=True, inline="always")
+def load18(W, re, im, first, n):
+    """W[0..8, j] = re[0..8, first + j], W[9..17, j] = im[0..8, first + j] for j < n (a 3x3 field
+    into chunk scratch, six component streams per pass: see ``u3``'s notes on L1 sets)."""
+    uf = np.uint64(first)
+    for c in range(0, 9, 3):
+        for j in range(n):
+            q = uf + np.uint64(j)
+            W[c, j] = re[c, q]
+            W[c + 1, j] = re[c + 1, q]
+            W[c + 2, j] = re[c + 2, q]
+            W[9 + c, j] = im[c, q]
+            W[10 + c, j] = im[c + 1, q]
+            W[11 + c, j] = im[c + 2, q]
+
+
+@njit(cache=True, inline="always")
+def store18(W, re, im, first, n):
+    """The inverse of :func:`load18`: chunk scratch back into the field."""
+    uf = np.uint64(first)
+    for c in range(0, 9, 3):
+        for j in range(n):
+            q = uf + np.uint64(j)
+            re[c, q] = W[c, j]
+            re[c + 1, q] = W[c + 1, j]
+            re[c + 2, q] = W[c + 2, j]
+            im[c, q] = W[9 + c, j]
+            im[c + 1, q] = W[10 + c, j]
+            im[c + 2, q] = W[11 + c, j]
 
 
 # ----------------------------------------------------------------------------- Philox uniforms

@@ -43,7 +43,7 @@ from numba import njit, prange
 
 from sigmasim.kernels import tables
 from sigmasim.kernels.serial import total, zeros_bool, zeros_int
-from sigmasim.kernels.simd import exp_le0, lookup16, u01_from_bits
+from sigmasim.kernels.simd import exp_le0, load18, lookup16, store18, u01_from_bits
 from sigmasim.rng import SITE_STRIDE, bits
 
 __all__ = ["metropolis_u3", "metropolis_u3_update", "pack_table3", "rotation_tables3", "rows_per_chunk3"]
@@ -256,15 +256,7 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
                 M[13, j] += h1i
                 M[17, j] += h2i
             uc0 = np.uint64(c0)
-            for c in range(0, 9, 3):
-                for j in range(m):
-                    q = uc0 + np.uint64(j)
-                    W[c, j] = re[c, q]
-                    W[c + 1, j] = re[c + 1, q]
-                    W[c + 2, j] = re[c + 2, q]
-                    W[9 + c, j] = im[c, q]
-                    W[10 + c, j] = im[c + 1, q]
-                    W[11 + c, j] = im[c + 2, q]
+            load18(W, re, im, c0, m)
             for j in range(m):
                 dr, di = _det3(W[0, j], W[9, j], W[1, j], W[10, j], W[2, j], W[11, j],
                                W[3, j], W[12, j], W[4, j], W[13, j], W[5, j], W[14, j],
@@ -281,15 +273,7 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
                     lookup16(tab, ix, R, 20, j8)
                 for j in range(m):
                     na += _hit(W, M, D, R, uu, j, k2r, k2i)
-            for c in range(0, 9, 3):
-                for j in range(m):
-                    q = uc0 + np.uint64(j)
-                    re[c, q] = W[c, j]
-                    re[c + 1, q] = W[c + 1, j]
-                    re[c + 2, q] = W[c + 2, j]
-                    im[c, q] = W[9 + c, j]
-                    im[c + 1, q] = W[10 + c, j]
-                    im[c + 2, q] = W[11 + c, j]
+            store18(W, re, im, c0, m)
             acc[ch] = na
     return total(acc)
 
