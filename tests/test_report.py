@@ -301,6 +301,32 @@ def test_tunnelling_section_counts_the_events_of_a_known_index_series():
     assert analyze_data(series, {}, cfg, masses=False, band=0.9).tunnelling.n_events == true_events
 
 
+def test_tunnelling_section_gives_no_rate_without_two_vacua():
+    """One peak of omega_h at the midpoint between the two theta = pi branches (a crossover): the
+    band is crossed often, but the table, JSON and CSV give the verdict and no rate."""
+    from sigmasim.analysis.report import analysis_dict, format_table
+
+    nf, n = 3, 5000
+    rng = np.random.default_rng(3)
+    phi = np.empty(n)
+    phi[0] = 0.0
+    for i in range(1, n):  # AR(1), tau ~ 5 measurements, stationary sd 0.55 rad about arg 0
+        phi[i] = 0.82 * phi[i - 1] + 0.55 * np.sqrt(1 - 0.82 ** 2) * rng.normal()
+    om = 0.3 * np.exp(1j * phi)
+    cfg = config_from_dict({"lattice": {"shape": [4, 4, 4]}, "model": {"nf": nf, "kappa": 2.0, "theta": np.pi}})
+    series = {"sweep": np.arange(1, n + 1), "omega_h": om, "action": rng.standard_normal(n)}
+    ra = analyze_data(series, {}, cfg, masses=False)
+    t = ra.tunnelling
+    assert t.n_events > 20 and not t.counted
+    text = format_table([ra])
+    assert "two-peak test: no separated vacua" in text
+    assert f"no rate: no separated vacua in the histogram of omega_h ({t.n_events} band crossings" in text
+    assert any("band crossings, not tunnelling; no rate" in w for w in ra.warnings)
+    doc = analysis_dict(ra)["tunnelling"]
+    assert doc["rate_per_sweep"] is None and doc["counted"] is False
+    assert doc["bimodality"]["verdict"] == "no separated vacua" and doc["bimodality"]["binder"] > 2
+
+
 def test_analyze_reports_tunnelling_of_a_real_run(tmp_path, capsys):
     """U(3) 4^3 at theta = 3 (beta 1, h 0.2, kappa 1) tunnels between k = 0 and k = 2 every ~30 sweeps."""
     path = write_run(tmp_path, name="tun", n_meas=1000, nf=3, theta=3.0, kappa=1.0, shape=(4, 4, 4),
@@ -311,7 +337,7 @@ def test_analyze_reports_tunnelling_of_a_real_run(tmp_path, capsys):
     doc = json.loads(output_paths(path)[0].read_text())
     t = doc["tunnelling"]
     assert t["n_events"] >= 10, t["n_events"]
-    assert f"tunnelling events {t['n_events']} over" in out
+    assert f"{t['n_events']} events / " in out and t["counted"]
     assert sum(t["occupation"]) == pytest.approx(1.0)
     assert t["rate_per_site"] == pytest.approx(t["rate_per_sweep"] / 64)
     assert (figs / "tun.dwell_times.png").stat().st_size > 1000

@@ -51,11 +51,17 @@ Output files (next to the run file ``<dir>/<name>.h5``)
 * ``vacuum_alignment_phases``: ``alpha_f`` of the channel frame;
 * ``tunnelling`` (nf >= 2, else null): the vacuum index of every measurement (no thermalisation
   cut: an escape from the start branch counts) by :mod:`sigmasim.analysis.tunnelling` --
-  ``band``, ``n_events``, ``total_sweeps``, ``rate_per_sweep`` (1 / mean completed dwell) and
-  its bootstrap ``_error``, ``rate_mle`` (events / sweeps), ``rate_per_site`` (/ V),
-  ``occupation`` (per branch), ``event_measurements``, ``dwells`` (completed, per branch),
-  ``censored_first``/``censored_last`` ([branch, sweeps]), ``exponential_fit`` (``tau_mle``,
-  ``tau_hist`` with errors, ``ks_pvalue``, ``n``);
+  ``band``, ``bimodality`` (``verdict``: "two vacua", "one vacuum" or "no separated vacua";
+  ``dip_depth``, ``binder`` = <q^4>/<q^2>^2 of q = Im(omega_h e^{-i phi_m}) with ``binder_error``,
+  ``branches``, ``fractions``), ``counted`` (the verdict allows a rate; else every rate is null),
+  ``n_events``, ``total_sweeps``, ``rate_per_sweep`` (events / sweeps, the censored maximum
+  likelihood) with ``rate_per_sweep_error`` (sqrt(events) / sweeps), ``rate_per_sweep_interval``
+  (exact Poisson 68.27 % interval), ``rate_per_sweep_upper_95`` (95 % upper limit; the statement
+  when there is no event), ``rate_per_site`` (/ V) and its ``_error``, ``escape`` (per branch:
+  events out, sweeps in, rate), ``occupation`` (per branch), ``event_measurements``, ``dwells``
+  (completed, per branch), ``censored_first``/``censored_last`` ([branch, sweeps]),
+  ``exponential_fit`` (``tau_mle`` = sweeps / events with ``tau_mle_error`` and ``tau_interval``,
+  ``tau_hist`` with error (completed dwells only), ``ks_pvalue``, ``n``);
 * ``warnings``: list of strings (also printed in the table).
 
 NaN and infinities are written as ``null``.
@@ -346,9 +352,13 @@ def _tunnelling(ra: RunAnalysis, series: dict, config, band: float) -> None:
     ra.tunnelling = tunnelling_analysis(om[ok], config.theta, config.nf, band=band, sweeps=sweeps,
                                         volume=int(np.prod(config.shape)), seed=0)
     t = ra.tunnelling
-    if t.n_events < 5:
-        ra.warnings.append(f"tunnelling: only {t.n_events} events; rates and dwell times are not "
-                           f"measured reliably (a longer run or a smaller volume helps)")
+    if not t.counted:
+        ra.warnings.append(f"tunnelling: {t.bimodality.verdict} in the histogram of omega_h (dip depth "
+                           f"{_f(t.bimodality.dip_depth, '.2f')}, <q^4>/<q^2>^2 = {_f(t.bimodality.binder)}): "
+                           f"the {t.n_events} index changes are band crossings, not tunnelling; no rate")
+    elif 0 < t.n_events < 5:
+        ra.warnings.append(f"tunnelling: only {t.n_events} events; the rate is known to a factor "
+                           f"(see its exact interval), dwell-time fits are not meaningful")
 
 
 def analyze_data(series: dict, slices: dict, config, *, status: str = "complete",
@@ -530,38 +540,52 @@ def _tunnelling_lines(ra: RunAnalysis) -> list[str]:
     nf = ra.config.nf
     lines = [f"vacuum index (branch k of arg Omega_h = (2 pi k + theta)/nf, hysteresis band {t.band:g}, "
              f"all {len(t.index)} measurements):",
-             f"  tunnelling events {t.n_events} over {t.total_time:.0f} sweeps; rate "
-             f"{fmt_err(t.rate, t.rate_error)} per sweep (1/mean completed dwell, bootstrap), "
-             f"{fmt_err(t.rate_mle, t.rate_mle_error)} (events / sweeps); per site "
-             f"{fmt_err(t.rate_per_volume, t.rate_per_volume_error)}"]
-    head = f"  {'branch':<8}{'occupation':>12}{'dwells':>8}{'mean dwell':>14}"
+             f"  two-peak test: {t.bimodality.summary()}"]
+    if t.counted:
+        lines.append(f"  tunnelling rate: {t.rate_text()}")
+        if t.n_events:
+            lines.append(f"  per site {fmt_err(t.rate_per_volume, t.rate_per_volume_error)} "
+                         f"(events / sweeps / V; sqrt(events) error, read the interval when events are few)")
+    else:
+        lines.append(f"  tunnelling rate: {t.rate_text()}")
+    head = f"  {'branch':<8}{'occupation':>12}{'dwells':>8}{'mean dwell':>14}{'escapes':>9}{'escape rate':>14}"
     lines += [head]
     for k in range(nf):
         d = t.dwells_by_branch.get(k, np.array([]))
         md = fmt_err(d.mean(), d.std(ddof=1) / np.sqrt(len(d))) if len(d) > 1 else (
             f"{d[0]:.0f}" if len(d) == 1 else "-")
-        lines.append(f"  {k:<8}{t.occupation[k]:>12.3f}{len(d):>8}{md:>14}")
+        ne, _, er = t.escape.get(k, (0, 0.0, float("nan")))
+        lines.append(f"  {k:<8}{t.occupation[k]:>12.3f}{len(d):>8}{md:>14}{ne:>9}{_f(er):>14}")
     f = t.fit
-    if f.n:
-        lines.append(f"  dwell times: exponential fit tau = {fmt_err(f.tau_mle, f.tau_mle_error)} sweeps "
-                     f"(maximum likelihood), histogram fit {fmt_err(f.tau_hist, f.tau_hist_error)}, "
-                     f"KS p = {_f(f.ks_pvalue, '.2f')} ({f.n} completed dwells)")
+    if f.n and t.counted:
+        lines.append(f"  dwell times: censored maximum likelihood tau = sweeps / events = {f.tau_mle:.4g} "
+                     f"(68 % interval [{f.tau_low:.3g}, {f.tau_high:.3g}], {f.n} events); histogram fit "
+                     f"of completed dwells {fmt_err(f.tau_hist, f.tau_hist_error)}, KS p = "
+                     f"{_f(f.ks_pvalue, '.2f')}")
     cens = [c for c in (t.censored_first, t.censored_last) if c is not None]
     if cens:
-        lines.append("  censored (first/last, not in the rates' mean): "
+        lines.append("  first/last dwell (open at the series ends; in the exposure, not in the mean dwell column): "
                      + ", ".join(f"branch {b} for {w:.0f} sweeps" for b, w in cens))
     return lines
 
 
 def _tunnelling_dict(t) -> dict:
-    return {"band": t.band, "source": t.source, "n_events": t.n_events, "total_sweeps": t.total_time,
+    b = t.bimodality
+    return {"band": t.band, "source": t.source,
+            "bimodality": {"verdict": b.verdict, "dip_depth": b.dip_depth, "binder": b.binder,
+                           "binder_error": b.binder_error, "branches": list(b.branches),
+                           "midpoint": b.midpoint, "fractions": list(b.fractions)},
+            "counted": t.counted, "n_events": t.n_events, "total_sweeps": t.total_time,
             "rate_per_sweep": t.rate, "rate_per_sweep_error": t.rate_error,
-            "rate_mle": t.rate_mle, "rate_mle_error": t.rate_mle_error,
+            "rate_per_sweep_interval": [t.rate_low, t.rate_high],
+            "rate_per_sweep_upper_95": t.rate_upper_95,
             "rate_per_site": t.rate_per_volume, "rate_per_site_error": t.rate_per_volume_error,
+            "escape": {str(k): {"events": v[0], "sweeps": v[1], "rate": v[2]} for k, v in t.escape.items()},
             "occupation": t.occupation, "event_measurements": t.events,
             "dwells": {str(k): v for k, v in t.dwells_by_branch.items()},
             "censored_first": t.censored_first, "censored_last": t.censored_last,
             "exponential_fit": {"tau_mle": t.fit.tau_mle, "tau_mle_error": t.fit.tau_mle_error,
+                                "tau_interval": [t.fit.tau_low, t.fit.tau_high],
                                 "tau_hist": t.fit.tau_hist, "tau_hist_error": t.fit.tau_hist_error,
                                 "ks_pvalue": t.fit.ks_pvalue, "n": t.fit.n}}
 
@@ -625,13 +649,17 @@ def _csv_rows(ra: RunAnalysis):
     t = ra.tunnelling
     if t is not None:
         yield dict(run=run, section="tunnelling", name="events", value=t.n_events,
-                   note=f"band {t.band:g}, {t.total_time:.0f} sweeps")
-        yield dict(run=run, section="tunnelling", name="rate_per_sweep", value=t.rate, error=t.rate_error)
-        yield dict(run=run, section="tunnelling", name="rate_mle", value=t.rate_mle, error=t.rate_mle_error)
+                   note=f"band {t.band:g}, {t.total_time:.0f} sweeps, {t.bimodality.verdict}"
+                        + ("" if t.counted else ": band crossings, no rate"))
+        yield dict(run=run, section="tunnelling", name="binder", value=t.bimodality.binder,
+                   error=t.bimodality.binder_error, note=f"dip depth {_f(t.bimodality.dip_depth, '.2f')}")
+        yield dict(run=run, section="tunnelling", name="rate_per_sweep", value=t.rate, error=t.rate_error,
+                   note=f"{t.n_events} events; 68% interval [{_f(t.rate_low)}, {_f(t.rate_high)}], "
+                        f"95% upper limit {_f(t.rate_upper_95)}")
         yield dict(run=run, section="tunnelling", name="rate_per_site", value=t.rate_per_volume,
                    error=t.rate_per_volume_error)
         yield dict(run=run, section="tunnelling", name="dwell_tau_mle", value=t.fit.tau_mle,
-                   error=t.fit.tau_mle_error)
+                   error=t.fit.tau_mle_error, note="censored: sweeps / events")
         for k, o in enumerate(t.occupation):
             yield dict(run=run, section="tunnelling", name=f"occupation[{k}]", value=float(o))
 
