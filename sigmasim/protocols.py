@@ -24,10 +24,24 @@ order; a step's branch is its majority index.
 
 Jump points: on every path (one up or one down pass) the first step whose branch differs from the
 path's first step; the jump is put midway between that step and the previous one (resolution
-``step / 2``).  Loop area of a cycle: ``int Im omega_h d theta`` over the up path minus the same over
-the down path (trapezoid rule on the grid), positive for the usual hysteresis orientation; its error
-is the spread over cycles (``std / sqrt(cycles)``, needs cycles >= 2) and, separately, the statistical
-error propagated from the per-step Gamma-method errors.
+``step / 2``); a path without a change has no jump (NaN in the file, "no jump" in the output).
+
+Loop area of a cycle = dissipated work per site ``W = oint <dS/dtheta> d theta / V``: the integral of
+``<dS/dtheta>/V`` over the up path minus the same over the down path (trapezoid rule on the grid).
+With ``theta_m = c_m theta`` and ``theta_a = -c_a theta`` (``c_m = 1/nf, c_a = 0`` for the ``mass``
+placement, ``0, 1`` for ``anomaly``, ``1/(2 nf), 1/2`` for ``split``; SU(nf): mass),
+
+.. math:: \frac{1}{V}\frac{\partial S}{\partial\theta} = c_m \sum_f h_f\,\mathrm{Im}(e^{i\theta_m}
+          \bar U_{ff}) - 2 \kappa c_a\,\mathrm{Im}(e^{i\theta_a}\,\overline{\det U})
+
+(``kappa`` -> ``c`` for the linear model; bars are site averages: the ``condensate`` and ``det``
+series), measured at every measurement.  Its expectation does not depend on the placement
+(``<dS/dtheta> = -d ln Z/d theta``).  ``W >= 0`` for a cycle (the work a cyclic protocol dissipates,
+common practice, no source), and holds for non-degenerate masses too.  For degenerate masses ``h`` in
+the ``mass`` placement ``dS/dtheta / V = h Im omega_h``, so the former ``int Im omega_h d theta`` loop
+area (kept as ``area_im_omega_h``) is the special case ``W / h``.  Errors: the spread over cycles
+(``std / sqrt(cycles)``, needs cycles >= 2) and, separately, the statistical error propagated from the
+per-step Gamma-method errors.
 
 Sweep file layout (HDF5, format ``sigmasim-sweep``, version 1; default
 ``<output>/<name>/<name>-sweep.h5``)::
@@ -37,16 +51,18 @@ Sweep file layout (HDF5, format ``sigmasim-sweep``, version 1; default
     /provenance        attrs: sigmasim, python, numpy, numba, h5py versions, created, wall_seconds
     /steps/<name>      one entry per theta step, in protocol order:
                        theta, cycle (int), direction (+1 up, -1 down), re_omega_h, re_omega_h_err,
-                       im_omega_h, im_omega_h_err, action, action_err, branch (int, majority),
+                       im_omega_h, im_omega_h_err, action, action_err, ds_dtheta, ds_dtheta_err
+                       (<dS/dtheta>/V), branch (int, majority),
                        branch_fraction (fraction of measurements in the majority branch), n_meas (int),
                        tau_int_im (Gamma tau_int of Im omega_h)
     /series/<name>     one entry per measurement: sweep (int), step (int, index into /steps),
                        theta, omega_h (complex), det (complex), action, action_mass, action_det,
-                       branch (int, hysteresis index)
+                       ds_dtheta (dS/dtheta / V), branch (int, hysteresis index)
     /tree/theta        (nt,) grid of the tree-level scan (sigmasim.vacua.scan_theta)
     /tree/im_omega_h   (nb, nt) Im e^{i theta_m} Omega of each tree-level branch (NaN where absent)
     /tree/spinodals    (ns, 2) theta and branch of each tree-level spinodal
-    /cycles/area       (cycles,) loop area per cycle
+    /cycles/area       (cycles,) loop area per cycle: dissipated work per site oint <dS/dtheta>/V
+    /cycles/area_im_omega_h  (cycles,) oint Im omega_h d theta (= area / h: degenerate, mass placement)
     /cycles/jump_up, /cycles/jump_down  (cycles,) jump points per cycle (NaN if none)
 
 Tempering (``[tempering]``)
@@ -191,6 +207,7 @@ class SweepResult:
     jump_down: np.ndarray
     wall_seconds: float = 0.0
     tree: dict = field(default_factory=dict)
+    area_im_omega_h: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
     @property
     def summary(self) -> dict:
@@ -203,6 +220,7 @@ class SweepResult:
             return float(ok.mean()), err
 
         a, ae = mean_err(self.area)
+        ai, aie = mean_err(self.area_im_omega_h)
         stat = float(np.sqrt(np.sum(self.area_stat_error ** 2)) / len(self.area))
         ju, jue = mean_err(self.jump_up)
         jd, jde = mean_err(self.jump_down)
@@ -210,6 +228,7 @@ class SweepResult:
             "area": a, "area_error_cycles": ae, "area_error_stat": stat,
             "area_error": ae if math.isfinite(ae) else stat,
             "area_per_cycle": [float(x) for x in self.area],
+            "area_im_omega_h": ai, "area_im_omega_h_error": aie,
             "jump_up": ju, "jump_up_error": jue, "jump_down": jd, "jump_down_error": jde,
             "jump_up_per_cycle": [float(x) for x in self.jump_up],
             "jump_down_per_cycle": [float(x) for x in self.jump_down],
@@ -248,7 +267,7 @@ def run_sweep(config: RunConfig, params: SweepParams, progress=None) -> SweepRes
         plan += [(float(t), c, +1) for t in grid]
         plan += [(float(t), c, -1) for t in grid[::-1]]
     ser = {k: [] for k in ("sweep", "step", "theta", "omega_h", "det", "action", "action_mass",
-                           "action_det")}
+                           "action_det", "ds_dtheta")}
     every = cfg.measure_every
     for i, (th, c, d) in enumerate(plan):
         sim.set_theta(th)
@@ -263,6 +282,7 @@ def run_sweep(config: RunConfig, params: SweepParams, progress=None) -> SweepRes
                 ser["theta"].append(th)
                 for k in ("omega_h", "det", "action", "action_mass", "action_det"):
                     ser[k].append(r[k])
+                ser["ds_dtheta"].append(theta_derivative(sim.config, r))
         if progress is not None:
             progress(i + 1, len(plan))
     series = {k: np.asarray(v) for k, v in ser.items()}
@@ -273,6 +293,7 @@ def run_sweep(config: RunConfig, params: SweepParams, progress=None) -> SweepRes
     n_steps = len(plan)
     steps = {k: np.empty(n_steps) for k in ("theta", "re_omega_h", "re_omega_h_err", "im_omega_h",
                                              "im_omega_h_err", "action", "action_err",
+                                             "ds_dtheta", "ds_dtheta_err",
                                              "branch_fraction", "tau_int_im")}
     for k in ("cycle", "direction", "branch", "n_meas"):
         steps[k] = np.empty(n_steps, dtype=np.int64)
@@ -283,12 +304,34 @@ def run_sweep(config: RunConfig, params: SweepParams, progress=None) -> SweepRes
         steps["re_omega_h"][i], steps["re_omega_h_err"][i], _ = _mean_err(om.real)
         steps["im_omega_h"][i], steps["im_omega_h_err"][i], steps["tau_int_im"][i] = _mean_err(om.imag)
         steps["action"][i], steps["action_err"][i], _ = _mean_err(series["action"][sel])
+        steps["ds_dtheta"][i], steps["ds_dtheta_err"][i], _ = _mean_err(series["ds_dtheta"][sel])
         counts = np.bincount(series["branch"][sel], minlength=cfg.nf)
         steps["branch"][i] = int(np.argmax(counts))
         steps["branch_fraction"][i] = counts.max() / max(1, counts.sum())
         steps["n_meas"][i] = int(sel.sum())
     area, area_err, ju, jd = _loop_observables(steps, params.cycles)
-    return SweepResult(cfg, params, steps, series, area, area_err, ju, jd, time.monotonic() - t0)
+    area_im, _, _, _ = _loop_observables(steps, params.cycles, "im_omega_h")
+    return SweepResult(cfg, params, steps, series, area, area_err, ju, jd, time.monotonic() - t0,
+                       area_im_omega_h=area_im)
+
+
+def theta_derivative(config: RunConfig, rec: dict) -> float:
+    """``dS/dtheta / V`` of one measurement record (``condensate`` and ``det``; see the module notes)."""
+    nf = config.nf
+    if config.special or config.theta_placement == "mass":
+        cm, ca = 1.0 / nf, 0.0
+    elif config.theta_placement == "anomaly":
+        cm, ca = 0.0, 1.0
+    else:
+        cm, ca = 1.0 / (2 * nf), 0.5
+    tm, ta = config.theta_angles
+    h = np.broadcast_to(np.asarray(config.mass, dtype=float), (nf,))
+    cond = np.asarray(rec["condensate"], dtype=np.complex128).ravel()
+    out = cm * float(np.sum(h * (np.exp(1j * tm) * cond).imag))
+    if ca:
+        k = config.c if getattr(config, "kind", "chiral") == "linear" else config.kappa
+        out -= 2.0 * k * ca * float((np.exp(1j * ta) * complex(rec["det"])).imag)
+    return out
 
 
 def _jump(theta, branch):
@@ -307,7 +350,7 @@ def _trapz_weights(t):
     return w
 
 
-def _loop_observables(steps, cycles):
+def _loop_observables(steps, cycles, what="ds_dtheta"):
     area, area_err, ju, jd = (np.full(cycles, np.nan) for _ in range(4))
     for c in range(cycles):
         up = (steps["cycle"] == c) & (steps["direction"] == 1)
@@ -317,9 +360,9 @@ def _loop_observables(steps, cycles):
         jd[c] = _jump(td, steps["branch"][dn])
         ou, od = np.argsort(tu), np.argsort(td)
         wu, wd = _trapz_weights(tu[ou]), _trapz_weights(td[od])
-        area[c] = np.sum(wu * steps["im_omega_h"][up][ou]) - np.sum(wd * steps["im_omega_h"][dn][od])
-        area_err[c] = math.sqrt(np.sum((wu * steps["im_omega_h_err"][up][ou]) ** 2)
-                                + np.sum((wd * steps["im_omega_h_err"][dn][od]) ** 2))
+        area[c] = np.sum(wu * steps[what][up][ou]) - np.sum(wd * steps[what][dn][od])
+        area_err[c] = math.sqrt(np.sum((wu * steps[what + "_err"][up][ou]) ** 2)
+                                + np.sum((wd * steps[what + "_err"][dn][od]) ** 2))
     return area, area_err, ju, jd
 
 
@@ -960,6 +1003,7 @@ def write_sweep(path, result: SweepResult) -> Path:
                 g.create_dataset(k, data=v)
             g = f.create_group("cycles")
             g.create_dataset("area", data=result.area)
+            g.create_dataset("area_im_omega_h", data=result.area_im_omega_h)
             g.create_dataset("area_stat_error", data=result.area_stat_error)
             g.create_dataset("jump_up", data=result.jump_up)
             g.create_dataset("jump_down", data=result.jump_down)
@@ -1027,17 +1071,23 @@ def plot_sweep(result: SweepResult, path) -> Path:
     ax.set_xlabel(r"$\theta$")
     ax.set_ylabel(r"Im $\omega_h$ = Im $e^{i\theta_m}\Omega$")
     ax.legend(loc="best", fontsize=8)
-    ax.set_title(f"hysteresis sweep, loop area {s['area']:.3g} +- {s['area_error']:.2g}", fontsize=10)
+    ax.set_title(f"hysteresis sweep, dissipated work per site {s['area']:.3g} +- {s['area_error']:.2g}",
+                 fontsize=10)
     from sigmasim.analysis.report import run_label
 
     cap = f"{run_label(cfg)}; dtheta={p.step:g}, {p.sweeps_per_step}+{p.thermalize_per_step} sweeps/step, " \
-        f"{p.cycles} cycle(s); jumps up {s['jump_up']:.3f}, down {s['jump_down']:.3f}. research toy"
+        f"{p.cycles} cycle(s); jumps up {_jump_text(s['jump_up'])}, down {_jump_text(s['jump_down'])}. " \
+        "research toy"
     fig.text(0.01, 0.01, cap, fontsize=7, wrap=True)
     fig.tight_layout(rect=(0, 0.05, 1, 1))
     path = Path(path)
     fig.savefig(path, dpi=110)
     plt.close(fig)
     return path
+
+
+def _jump_text(v) -> str:
+    return "no jump" if not math.isfinite(v) else f"{v:.3f}"
 
 
 # ---------------------------------------------------------------- commands
@@ -1067,9 +1117,18 @@ def sweep_command(config_path: str, plot: bool = False, out: str | None = None) 
     write_sweep(path, result)
     s = result.summary
     print(f"wrote {path}")
-    print(f"jump up   {s['jump_up']:.4f} +- {s['jump_up_error']:.2g} (resolution {s['jump_resolution']:.3g})")
-    print(f"jump down {s['jump_down']:.4f} +- {s['jump_down_error']:.2g}")
-    print(f"loop area {s['area']:.4g} +- {s['area_error']:.2g} (cycles) / {s['area_error_stat']:.2g} (stat)")
+    for d in ("up", "down"):
+        v, e = s[f"jump_{d}"], s[f"jump_{d}_error"]
+        n = sum(math.isfinite(x) for x in s[f"jump_{d}_per_cycle"])
+        txt = (_jump_text(v) if not math.isfinite(v) else
+               f"{v:.4f}" + (f" +- {e:.2g}" if math.isfinite(e) else "")
+               + f" ({n} of {s['cycles']} cycles; resolution {s['jump_resolution']:.3g})")
+        print(f"jump {d:<5}{txt}")
+    stat = f" / {s['area_error_stat']:.2g} (stat)" if math.isfinite(s["area_error_stat"]) else ""
+    cyc = f" +- {s['area_error_cycles']:.2g} (cycles)" if math.isfinite(s["area_error_cycles"]) else ""
+    print(f"loop area = dissipated work per site, oint <dS/dtheta>/V dtheta: {s['area']:.4g}{cyc}{stat}")
+    print(f"  (oint Im omega_h dtheta = {s['area_im_omega_h']:.4g}; equals the work / h for degenerate "
+          f"masses h)")
     if plot:
         png = plot_sweep(result, path.with_suffix(".png"))
         print(f"wrote {png}")
