@@ -111,7 +111,8 @@ import numpy as np
 from sigmasim.config import RunConfig, _check, _suggest, config_from_dict, read_toml
 from sigmasim.errors import ConfigError, RunFileError
 
-__all__ = ["LIFETIME_SCHEMA", "LifetimeResult", "run_lifetimes", "lifetime_estimate",
+__all__ = ["LIFETIME_SCHEMA", "LifetimeResult", "run_lifetimes", "lifetime_estimate", "escape_time_fit",
+           "plot_escape_times",
            "fit_log_lifetimes", "load_lifetimes", "SWEEP_SCHEMA", "TEMPER_SCHEMA", "TemperParams", "TemperResult", "run_tempering",
            "replica_configs", "branch_populations", "branch_census", "BranchCensus",
            "CENSUS_MIN_CHANGES", "SweepParams", "SweepResult", "load_protocol", "split_protocol",
@@ -773,6 +774,11 @@ def branch_census(result: TemperResult, nf: int, band: float = 0.5) -> BranchCen
 
 
 # ---------------------------------------------------------------- finite-volume lifetimes
+# Escape from a metastable branch at theta != pi goes by nucleation: a bubble of the stable branch
+# has to form and grow past a critical size, so escape times are a relaxation dead time (the start
+# leaving its initial configuration and the bubble growing across the lattice) plus a waiting time
+# that is close to exponential.  escape_time_fit separates the two (shifted exponential); the
+# dead time does not scale like a barrier and must not enter the ln tau fits.
 LIFETIME_SCHEMA = {
     "sizes": ("sizes", None, "list of >= 1 even extents L; the lattice is L^d with d = len(lattice.shape)"),
     "starts": ("int:1:100000", 16, "independent starts (seeds seed*100000 + i) per size"),
@@ -842,8 +848,78 @@ def _escape_time(config_dict: dict, max_sweeps: int, stay: int, band: float) -> 
     return float(max_sweeps), False
 
 
+def escape_time_fit(times, escaped, n_boot: int = 1000, seed: int = 0) -> dict:
+    """Shifted-exponential law ``P(t) = exp(-(t - t0) / tau) / tau`` (t >= t0) of escape times.
+
+    An escape from a branch start needs the start to relax first: no start escapes before a dead
+    time ``t0``, after which escape is (close to) a Poisson process of mean ``tau``.  With ``N`` starts,
+    ``n`` escaped (the others censored at their time), ``t_min`` the smallest time and
+    ``S = sum_i (t_i - t_min)`` over all starts:
+
+    * ``tau = S / (n - 1)`` (unbiased without censoring; for a shifted exponential ``2 S / tau`` is
+      chi^2 with ``2 (n - 1)`` degrees of freedom, independent of ``t_min``), its exact central 68.27 %
+      interval from that law, and ``ln_tau = ln S - digamma(n - 1)`` (unbiased for ``ln tau``);
+    * ``dead_time = t_min - tau / N`` (the minimum of N starts exceeds t0 by tau / N on average);
+    * errors from the sample itself: bootstrap over starts (``n_boot`` resamples, seeded) of
+      ``ln_tau`` (``ln_tau_error``; ``tau_error = tau * ln_tau_error``), of ``dead_time`` and of the
+      mean escape time ``sum t / n`` (the censored exponential estimate without a dead time: what
+      the lifetime was taken to be before; its ``tau / sqrt(n)`` error assumes std = mean);
+    * ``cv``: std / mean of the escaped times (1 for a pure exponential), and Kolmogorov-Smirnov
+      p-values of the escaped times against the fitted shifted law and against the pure exponential
+      of the same mean (approximate: fitted parameters, censoring ignored).
+
+    NaNs where fewer than two starts escaped.
+    """
+    from scipy import stats
+    from scipy.special import digamma, gammaincinv
+
+    t = np.asarray(times, float).ravel()
+    e = np.asarray(escaped, bool).ravel()
+    big_n, n = len(t), int(e.sum())
+    nan = float("nan")
+    out = dict(starts=big_n, escaped=n, t_min=float(t.min()) if big_n else nan, tau=nan,
+               tau_interval=[nan, nan], tau_error=nan, ln_tau=nan, ln_tau_error=nan, dead_time=nan,
+               dead_time_error=nan, mean_escape=nan, mean_escape_error=nan, cv=nan,
+               ks_shifted=nan, ks_exponential=nan)
+    if n >= 1:
+        out["mean_escape"] = float(t.sum() / n)
+    if n < 2:
+        return out
+    tmin = float(t.min())
+    big_s = float(np.sum(t - tmin))
+    k = n - 1
+    tau = big_s / k
+    a = 0.5 * (1.0 - 0.6826894921370859)
+    out.update(tau=tau, tau_interval=[big_s / float(gammaincinv(k, 1 - a)), big_s / float(gammaincinv(k, a))],
+               ln_tau=float(np.log(big_s) - digamma(k)) if big_s > 0 else nan,
+               dead_time=tmin - tau / big_n)
+    rng = np.random.default_rng(seed)
+    idx = rng.integers(0, big_n, size=(n_boot, big_n))
+    tb, eb = t[idx], e[idx]
+    nb = eb.sum(axis=1)
+    ok = nb >= 2
+    tb, nb = tb[ok], nb[ok]
+    mb = tb.min(axis=1)
+    sb = np.sum(tb - mb[:, None], axis=1)
+    good = sb > 0
+    if good.sum() >= 10:
+        ln_b = np.log(sb[good]) - digamma(nb[good] - 1)
+        out["ln_tau_error"] = float(np.std(ln_b, ddof=1))
+        out["tau_error"] = tau * out["ln_tau_error"]
+        out["dead_time_error"] = float(np.std(mb - sb / (nb - 1) / big_n, ddof=1))
+        out["mean_escape_error"] = float(np.std(tb.sum(axis=1) / nb, ddof=1))
+    te = t[e]
+    out["cv"] = float(te.std(ddof=1) / te.mean()) if te.mean() > 0 else nan
+    if tau > 0:
+        out["ks_shifted"] = float(stats.kstest(te, "expon", args=(out["dead_time"], tau)).pvalue)
+        out["ks_exponential"] = float(stats.kstest(te, "expon", args=(0.0, out["mean_escape"])).pvalue)
+    return out
+
+
 def lifetime_estimate(times, escaped) -> tuple[float, float, int]:
-    """Exponential (censored) maximum-likelihood mean lifetime: total exposure / escapes, error tau/sqrt(n)."""
+    """Pure exponential (censored) maximum-likelihood mean lifetime: total exposure / escapes, error
+    tau/sqrt(n).  Right only without a dead time (see :func:`escape_time_fit`, which the lifetime
+    study uses)."""
     times = np.asarray(times, float)
     escaped = np.asarray(escaped, bool)
     n = int(escaped.sum())
@@ -895,12 +971,22 @@ class LifetimeResult:
     n_escaped: np.ndarray
     fits: dict
     wall_seconds: float = 0.0
+    escape: dict = field(default_factory=dict)
 
     def table(self) -> str:
-        lines = ["   L      V  starts  escaped        tau     error"]
+        lines = ["   L      V  starts  escaped  dead time(err)      tau(err)   68% interval       "
+                 "mean escape(err)  std/mean  KS p shifted/exp"]
         for i, L in enumerate(self.sizes):
+            f = self.escape.get(L, {})
+            iv = f.get("tau_interval", [float("nan")] * 2)
             lines.append(f"{L:4d} {L ** self.d:6d} {len(self.times[L]):7d} {self.n_escaped[i]:8d} "
-                         f"{self.tau[i]:10.4g} {self.tau_error[i]:9.3g}")
+                         f"{f.get('dead_time', float('nan')):8.4g}({f.get('dead_time_error', float('nan')):.2g}) "
+                         f"{self.tau[i]:8.4g}({self.tau_error[i]:.2g}) [{iv[0]:.3g}, {iv[1]:.3g}]  "
+                         f"{f.get('mean_escape', float('nan')):9.4g}({f.get('mean_escape_error', float('nan')):.2g})"
+                         f"  {f.get('cv', float('nan')):8.2f}  {f.get('ks_shifted', float('nan')):.2f}/"
+                         f"{f.get('ks_exponential', float('nan')):.2f}")
+        lines.append("tau: mean escape time after the dead time (shifted exponential); errors: bootstrap over "
+                     "starts; fits use ln tau with its bootstrap error")
         for name, f in self.fits.items():
             lines.append(f"ln tau = a + b L^{f['power']} ({name}): b = {f['slope']:.4g} +- {f['slope_error']:.2g}, "
                          f"a = {f['intercept']:.4g} +- {f['intercept_error']:.2g}, chi2/dof = {f['chi2']:.3g}/{f['dof']}")
@@ -945,14 +1031,58 @@ def run_lifetimes(config: RunConfig, params: dict) -> LifetimeResult:
     for (L, _), (t, e) in zip(jobs, results):
         times[L].append(t)
         escaped[L].append(e)
-    est = [lifetime_estimate(times[L], escaped[L]) for L in params["sizes"]]
-    tau = np.array([e[0] for e in est])
-    err = np.array([e[1] for e in est])
-    n_esc = np.array([e[2] for e in est])
-    fits = fit_log_lifetimes(params["sizes"], tau, err, d)
+    esc = {L: escape_time_fit(times[L], escaped[L], seed=i) for i, L in enumerate(params["sizes"])}
+    tau = np.array([esc[L]["tau"] for L in params["sizes"]])
+    err = np.array([esc[L]["tau_error"] for L in params["sizes"]])
+    n_esc = np.array([esc[L]["escaped"] for L in params["sizes"]])
+    # fit ln tau (digamma-corrected, unbiased) with its bootstrap error: pass tau = e^{ln tau} and
+    # err = tau * error so that fit_log_lifetimes sees exactly (ln_tau, ln_tau_error)
+    ln_tau = np.array([esc[L]["ln_tau"] for L in params["sizes"]])
+    ln_err = np.array([esc[L]["ln_tau_error"] for L in params["sizes"]])
+    fits = fit_log_lifetimes(params["sizes"], np.exp(ln_tau), np.exp(ln_tau) * ln_err, d)
     return LifetimeResult(tuple(params["sizes"]), d, {L: np.array(v) for L, v in times.items()},
                           {L: np.array(v) for L, v in escaped.items()}, tau, err, n_esc, fits,
-                          time.monotonic() - t0)
+                          time.monotonic() - t0, esc)
+
+
+def plot_escape_times(result: LifetimeResult, path) -> Path:
+    """Survival function of the escape times per size (fraction of starts not yet escaped) against
+    the fitted shifted exponential and the pure exponential of the same mean; writes a PNG."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    n = len(result.sizes)
+    fig, axes = plt.subplots(1, n, figsize=(3.4 * n, 3.4), squeeze=False)
+    for ax, L in zip(axes[0], result.sizes):
+        t, e = np.asarray(result.times[L], float), np.asarray(result.escaped[L], bool)
+        f = result.escape.get(L, {})
+        ts = np.sort(t[e])
+        surv = 1.0 - np.arange(1, len(ts) + 1) / len(t)
+        ax.step(np.concatenate([[0.0], ts]), np.concatenate([[1.0], surv]), where="post", color="k",
+                label=f"{len(t)} starts ({len(ts)} escaped)")
+        x = np.linspace(0.0, max(float(t.max()), 1.0), 200)
+        if np.isfinite(f.get("tau", np.nan)):
+            t0, tau = f["dead_time"], f["tau"]
+            ax.plot(x, np.where(x < t0, 1.0, np.exp(-(x - t0) / tau)), color="tab:red",
+                    label=f"t0 {t0:.3g} + exp(tau {tau:.3g}), KS p {f['ks_shifted']:.2f}")
+        if np.isfinite(f.get("mean_escape", np.nan)):
+            m = f["mean_escape"]
+            ax.plot(x, np.exp(-x / m), color="tab:blue", ls="--",
+                    label=f"exp(mean {m:.3g}), KS p {f['ks_exponential']:.2f}")
+        ax.set_yscale("log")
+        ax.set_ylim(max(0.5 / len(t), 1e-3), 1.1)
+        ax.set_xlabel("escape time (sweeps)")
+        ax.set_title(f"L = {L}", fontsize=9)
+        ax.legend(fontsize=6)
+    axes[0][0].set_ylabel("fraction not yet escaped")
+    fig.text(0.01, 0.01, "escape-time distributions against the fitted laws. research toy", fontsize=7)
+    fig.tight_layout(rect=(0, 0.05, 1, 1))
+    path = Path(path)
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return path
 
 
 # ---------------------------------------------------------------- file and plot
@@ -1188,7 +1318,10 @@ def load_lifetimes(config_path) -> tuple[RunConfig, dict]:
 def lifetimes_command(config_path: str, out: str | None = None, workers: int = 0) -> int:
     """``sigmasim lifetimes CONFIG [--out FILE.json] [--workers N]``: escape times per volume and fits.
 
-    Prints the table and both fits; with ``--out`` also writes them as JSON.
+    Prints the table (per size: dead time, tau after it with its bootstrap error and exact interval,
+    the mean escape time, std/mean and KS p-values against the shifted and the pure exponential) and
+    both fits of ln tau; with ``--out`` also writes them as JSON and the escape-time distributions
+    against the fitted laws as a PNG beside it (needs matplotlib).
     """
     config, params = load_lifetimes(config_path)
     if workers:
@@ -1200,6 +1333,7 @@ def lifetimes_command(config_path: str, out: str | None = None, workers: int = 0
     if out:
         blob = {"sizes": list(res.sizes), "d": res.d, "tau": res.tau.tolist(), "tau_error": res.tau_error.tolist(),
                 "n_escaped": res.n_escaped.tolist(), "fits": res.fits,
+                "escape": {str(L): v for L, v in res.escape.items()},
                 "times": {str(L): v.tolist() for L, v in res.times.items()},
                 "escaped": {str(L): v.tolist() for L, v in res.escaped.items()},
                 "config": config.to_dict(), "protocol": params}
@@ -1209,4 +1343,9 @@ def lifetimes_command(config_path: str, out: str | None = None, workers: int = 0
         except OSError as exc:
             raise RunFileError(f"cannot write {out}: {exc.strerror}") from None
         print(f"wrote {out}")
+        try:
+            png = plot_escape_times(res, Path(out).with_suffix(".png"))
+            print(f"wrote {png} (escape-time distributions against the fitted laws)")
+        except ImportError:
+            print("matplotlib is not installed: no escape-time figure (install the plot extra)")
     return 0
