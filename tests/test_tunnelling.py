@@ -122,12 +122,12 @@ def test_rate_unbiased_with_exact_coverage_for_few_events(mu, reps):
     The former headline 1 / mean(completed dwell) came out 1.4x (6 events) to 4x (3 events) too high
     and was undefined without two events."""
     p, res = _replica_results(mu, 800, reps, seed=100 + mu)
-    assert all(r.counted for r in res)
     rate = np.array([r.rate for r in res])
     assert np.all(np.isfinite(rate))                      # defined even with 0 or 1 event
     n_ev = np.array([r.n_events for r in res])
     # unbiased: E[n] = mu exactly; the error of the replica mean is sqrt(mu / reps) / mu relative
     assert abs(rate.mean() / p - 1) < 4 * np.sqrt(n_ev.var(ddof=1) / reps) / mu
+    assert all(r.counted for r in res)
     lo = np.array([r.rate_low for r in res])
     hi = np.array([r.rate_high for r in res])
     cover = np.mean((lo <= p) & (p <= hi))
@@ -160,10 +160,11 @@ def test_censored_dwell_mle_unbiased_where_completed_dwells_are_not():
     tau = 200.0
     res = [tunnelling_analysis(om, np.pi, 2) for om in two_state_replicas(300, 1001, 1 / tau, seed=21)]
     n = np.array([r.fit.n for r in res])
-    exposure = np.array([r.fit.tau_mle * r.fit.n if r.fit.n else r.fit.censored_time for r in res])
+    # the likelihood's exposure of each replica: tau_mle * n (the whole series when there is no event)
+    exposure = np.array([r.fit.tau_mle * r.fit.n if r.fit.n else r.total_time for r in res])
     pooled = exposure.sum() / n.sum()
-    assert exposure.sum() == pytest.approx(sum(r.total_time for r in res))
     assert abs(pooled - tau) < 4 * tau / np.sqrt(n.sum())
+    assert exposure.sum() == pytest.approx(sum(r.total_time for r in res))
     completed = np.concatenate([[w for _, w in r.completed] for r in res])
     assert completed.mean() < 0.85 * tau          # why the censoring matters
 
@@ -200,6 +201,7 @@ def test_gate_refuses_a_rate_without_two_vacua():
     om = crossover_series()
     res = tunnelling_analysis(om, np.pi, 3, band=0.5)
     assert res.n_events > 100                         # the band alone does not stop the crossings
+    assert np.isnan(res.rate) and np.isnan(res.rate_per_volume)
     b = res.bimodality
     assert b.verdict == "no separated vacua" and not res.counted
     assert b.branches in ((0, 2), (2, 0)) and abs(b.midpoint % 3 - 2.5) < 1e-12

@@ -121,7 +121,7 @@ def _plot_index(ra, ax):
 
 
 def plot_dwell_times(ra, ax=None):
-    """Histogram of completed dwell times with the fitted exponential (maximum likelihood)."""
+    """Histogram of completed dwell times with the censored-exponential fit (sweeps / events)."""
     plt = _plt()
     t = ra.tunnelling
     fig = None
@@ -137,7 +137,8 @@ def plot_dwell_times(ra, ax=None):
             x = np.linspace(0, edges[-1], 200)
             width = edges[1] - edges[0]
             ax.plot(x, d.size * width / tau * np.exp(-x / tau), color="C3",
-                    label=fr"$N\,\Delta/\tau\; e^{{-t/\tau}}$, $\tau$ = {tau:.3g} $\pm$ {t.fit.tau_mle_error:.2g}")
+                    label=fr"$N\,\Delta/\tau\; e^{{-t/\tau}}$, $\tau$ = {tau:.3g} $\pm$ {t.fit.tau_mle_error:.2g}"
+                          " (censored: sweeps / events)")
         ax.set_yscale("log")
     else:
         ax.text(0.5, 0.5, "no completed dwell (fewer than two tunnelling events)", ha="center",
@@ -147,7 +148,7 @@ def plot_dwell_times(ra, ax=None):
     if d.size:
         ax.legend(fontsize=7, loc="upper right", framealpha=0.85)
     if fig is not None:
-        _title(fig, ra, f"dwell times between tunnelling events (rate {t.rate:.3g} per sweep)")
+        _title(fig, ra, f"dwell times between index changes; rate: {t.rate_text()}")
     return fig
 
 
