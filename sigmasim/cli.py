@@ -471,7 +471,7 @@ def build_parser() -> argparse.ArgumentParser:
     te.set_defaults(func=cmd_temper)
     lt = sub.add_parser("lifetimes", help="escape times from a metastable branch against the volume")
     lt.add_argument("config", help="run TOML with a [lifetimes] table and run.start = 'branch'")
-    lt.add_argument("--out", default=None, help="JSON file for the table and fits")
+    lt.add_argument("--out", default=None, help="JSON file for the table and fits (and FILE.png: escape-time distributions)")
     lt.add_argument("--workers", type=int, default=0, help="parallel starts (0: all cores)")
     lt.set_defaults(func=cmd_lifetimes)
     ex = sub.add_parser("export", help="a run's arrays as npz/csv/hdf5 plus a JSON sidecar with known answers")
