@@ -15,7 +15,8 @@ computes ``B`` with its binned-jackknife error after discarding a leading fracti
 sign from positive (crossover side, small beta) to negative (first-order side), by linear
 interpolation between the neighbouring ``beta`` of the pair's common grid, and its error by
 resampling the ``B`` values within their errors.  A sign change counts only when the difference is
-more than 2 sigma positive at some ``beta`` below it and 2 sigma negative at some ``beta`` above it.  The headline is the crossing of the largest pair.
+more than 2 sigma positive at some ``beta`` below it and 2 sigma negative at some ``beta`` above
+it.  The headline is the crossing of the largest pair.
 ``python analysis/endpoint.py`` runs a study and prints the table.  Research toy, not a physical
 prediction.
 """
