@@ -156,6 +156,30 @@ def test_theta_derivative_of_the_action_is_exact(placement, group):
     assert abs(deriv) > 1e-3
 
 
+@pytest.mark.parametrize("placement", ["mass", "anomaly", "split"])
+def test_theta_derivative_of_the_linear_action_is_exact(placement):
+    """Same for the linear model (determinant coupling c instead of kappa)."""
+    from sigmasim.chain import make_simulation
+    from sigmasim.protocols import theta_derivative
+
+    cfg = config_from_dict({"seed": 6, "lattice": {"shape": [4, 4]},
+                            "model": {"kind": "linear", "nf": 2, "mu2": -1.0, "lambda1": 0.1,
+                                      "lambda2": 0.1, "c": 0.3, "mass": [0.1, 0.4], "theta": 1.1,
+                                      "theta_placement": placement},
+                            "run": {"threads": 1}})
+    sim = make_simulation(cfg)
+    for _ in range(5):
+        sim.sweep()
+    deriv = theta_derivative(sim.config, sim.measure())
+    eps = 1e-5
+    sim.set_theta(1.1 + eps)
+    up = sim.measure()["action"]
+    sim.set_theta(1.1 - eps)
+    down = sim.measure()["action"]
+    assert deriv == pytest.approx((up - down) / (2 * eps), rel=1e-6, abs=1e-9)
+    assert abs(deriv) > 1e-3
+
+
 def test_loop_area_is_the_dissipated_work(u3_sweeps):
     """The loop area is oint <dS/dtheta>/V dtheta; with degenerate masses h in the mass placement
     dS/dtheta / V = h Im omega_h per measurement, so the former Im omega_h area is the work / h."""
