@@ -115,6 +115,7 @@ def _replica_results(mu, n, reps, seed):
     return p, [tunnelling_analysis(om, np.pi, 2) for om in two_state_replicas(reps, n, p, seed)]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("mu,reps", [(3, 1000), (6, 800)])
 def test_rate_unbiased_with_exact_coverage_for_few_events(mu, reps):
     """events / exposure is unbiased and its Garwood interval covers the true rate in >= 68.27 %.
