@@ -368,7 +368,7 @@ def cmd_vacua(args) -> int:
     except ValueError as exc:
         raise ConfigError(f"cannot analyse this potential: {exc}") from None
     print(f"tree-level local minima at theta = {cfg.theta:.6g} (energies per site):")
-    print(vacua.format_table(minima))
+    print(vacua.format_table(minima, theta=pot.theta))
     print()
     print("branches over theta in [0, 4 pi]:")
     print(vacua.format_table(scan, step=max(1, args.points // 24)))
