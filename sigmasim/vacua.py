@@ -142,6 +142,7 @@ __all__ = [
     "branch_status",
     "BranchStatus",
     "potential_of_config",
+    "measured_branch",
     "ChiralPotential",
     "Vacuum",
     "FirstOrderPoint",
@@ -246,6 +247,22 @@ class BranchStatus:
         """One line, e.g. ``branch -1: metastable at tree level (global: 0)``."""
         g = ", ".join(str(k) for k in self.global_branches) or "none"
         return f"branch {self.branch}: {self.status} at tree level (global: {g})"
+
+
+def measured_branch(omega_h, theta, nf: int) -> tuple:
+    """Majority branch number of a series of ``omega_h`` and the fraction of it in that branch.
+
+    Returns ``(k, fraction)``; ``(0, nan)`` for an empty series.
+    """
+    om = np.asarray(omega_h, dtype=np.complex128).ravel()
+    om = om[np.isfinite(om)]
+    if om.size == 0:
+        return 0, float("nan")
+    lab = branch_label(om, theta, nf)
+    lo = (nf - 1) // 2
+    counts = np.bincount(np.atleast_1d(lab) + lo, minlength=nf)
+    j = int(np.argmax(counts))
+    return j - lo, float(counts[j] / counts.sum())
 
 
 def potential_of_config(config) -> "ChiralPotential | None":

@@ -215,3 +215,17 @@ def json_theta(f):
     import json
 
     return json.loads(f.attrs["config"])["model"]["theta"]
+
+
+def test_run_summary_flags_metastable_branch(tmp_path, capsys):
+    # Tree level (sigmasim.vacua): U(3), h = 0.3, kappa = 3 at theta = 2.8 has the global
+    # minimum in branch 0 and a metastable one in branch -1; a run started in branch -1
+    # stays there (strong anomaly, short run) and the summary must say so.
+    cfg = tmp_path / "meta.toml"
+    cfg.write_text('name = "meta"\nseed = 3\n[lattice]\nshape = [4, 4, 4]\n'
+                   '[model]\nnf = 3\nbeta = 2.0\nmass = 0.3\nkappa = 3.0\ntheta = 2.8\n'
+                   f'[run]\nthermalize = 5\nmeasurements = 20\nstart = "branch"\nstart_branch = -1\n'
+                   f'output = "{tmp_path}"\nthreads = 1\n')
+    assert main(["run", str(cfg), "--quiet"]) == 0
+    out = capsys.readouterr().out
+    assert "k = -1 METASTABLE (global 0)" in out
