@@ -317,3 +317,28 @@ def test_analyze_reports_tunnelling_of_a_real_run(tmp_path, capsys):
     assert (figs / "tun.dwell_times.png").stat().st_size > 1000
     with pytest.raises(SigmasimError, match="--band"):
         analyze_command([str(path)], band=1.0)
+
+
+def test_guide_lines_are_the_solver_minima():
+    """U(1), h = -0.2, kappa = 0.3, theta = 0.5 (mass placement): V(phi) = 0.2 cos(phi + 0.5)
+    - 0.6 cos(phi); its minimum (brute force on a fine grid here, independent of the solver)
+    gives arg Omega_h = phi + 0.5 = 0.722, not the large-kappa 0.5."""
+    from sigmasim.analysis.plots import tree_guides
+    from sigmasim.config import config_from_dict
+
+    c = config_from_dict({"lattice": {"shape": [4]},
+                          "model": {"nf": 1, "mass": -0.2, "kappa": 0.3, "theta": 0.5}})
+    phi = np.linspace(-np.pi, np.pi, 2_000_001)
+    ref = phi[np.argmin(0.2 * np.cos(phi + 0.5) - 0.6 * np.cos(phi))] + 0.5
+    g = tree_guides(c)
+    assert [(k, what) for k, _, what in g] == [(0, "global")]
+    assert g[0][1] == pytest.approx(ref, abs=1e-5)
+    assert g[0][1] == pytest.approx(0.722, abs=1e-3)
+    # U(3), h = 0.3, kappa = 3, theta = 2.8: the legend's k agrees with its phase
+    # (branch -1 near (2.8 - 2 pi)/3 = -1.161, metastable; branch 0 global)
+    c = config_from_dict({"lattice": {"shape": [4]},
+                          "model": {"nf": 3, "mass": 0.3, "kappa": 3.0, "theta": 2.8}})
+    g = {k: (a, what) for k, a, what in tree_guides(c)}
+    assert set(g) == {0, -1}
+    assert g[-1][1] == "metastable" and g[0][1] == "global"
+    assert abs(g[-1][0] - (2.8 - 2 * np.pi) / 3) < 0.1 and abs(g[0][0] - 2.8 / 3) < 0.1
