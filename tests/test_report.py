@@ -342,3 +342,31 @@ def test_guide_lines_are_the_solver_minima():
     assert set(g) == {0, -1}
     assert g[-1][1] == "metastable" and g[0][1] == "global"
     assert abs(g[-1][0] - (2.8 - 2 * np.pi) / 3) < 0.1 and abs(g[0][0] - 2.8 / 3) < 0.1
+
+
+def test_branch_marked_global_or_metastable_tree_and_measured():
+    """U(3), h = 0.3, kappa = 3, theta = 2.8: tree level (sigmasim.vacua) has branch 0 global and
+    branch -1 metastable.  Two runs at these couplings, one in each branch: the tree-level flag and
+    the measured comparison of <S>/V (lower wins) mark the branch -1 run metastable."""
+    from types import SimpleNamespace
+
+    from sigmasim.analysis.report import _branch, _branch_line, compare_branches
+    from sigmasim.config import config_from_dict
+
+    cfg = config_from_dict({"lattice": {"shape": [4, 4]},
+                            "model": {"nf": 3, "mass": 0.3, "kappa": 3.0, "theta": 2.8}})
+    runs = []
+    for name, k, act in (("a", 0, -5.0), ("b", -1, -4.9)):
+        om = np.full(50, np.exp(1j * (2.8 + 2 * np.pi * k) / 3) * 0.7)
+        ra = SimpleNamespace(cut=0, series={"action": SimpleNamespace(mean=act, error=0.01)},
+                             warnings=[], name=name, config=cfg, branch=None)
+        _branch(ra, {"omega_h": om}, cfg)
+        runs.append(ra)
+    compare_branches(runs)
+    a, b = runs
+    assert (a.branch["k"], a.branch["tree_status"]) == (0, "global")
+    assert (b.branch["k"], b.branch["tree_status"], b.branch["tree_global"]) == (-1, "metastable", [0])
+    assert b.branch["measured"].startswith("metastable") and "7.1 sigma" in b.branch["measured"]
+    assert a.branch["measured"].startswith("global")
+    assert "METASTABLE at tree level (global 0)" in _branch_line(b)
+    assert any("branch -1" in w for w in b.warnings) and not a.warnings

@@ -136,14 +136,19 @@ def plot_phase_history(ra, ax=None):
 
 def _plot_index(ra, ax):
     """The vacuum index k per measurement (all measurements) with the tunnelling events."""
+    from sigmasim.vacua import branch_range, canonical_branch
+
     t = ra.tunnelling
+    nf = ra.config.nf
     sw = np.asarray(ra.data["sweep"])[:len(t.index)]
-    ax.step(sw, t.index, where="post", color="k", lw=0.9, label="vacuum index k")
+    idx = canonical_branch(np.asarray(t.index), nf)  # the vacua module's numbering
+    ax.step(sw, idx, where="post", color="k", lw=0.9, label="vacuum index k")
     ev = np.asarray(t.events, dtype=int)
     if ev.size:
-        ax.plot(sw[ev], t.index[ev], "v", color="C3", ms=4, label=f"tunnelling events ({t.n_events})")
-    ax.set_yticks(range(ra.config.nf))
-    ax.set_ylim(-0.5, ra.config.nf - 0.5)
+        ax.plot(sw[ev], idx[ev], "v", color="C3", ms=4, label=f"tunnelling events ({t.n_events})")
+    ks = branch_range(nf)
+    ax.set_yticks(list(ks))
+    ax.set_ylim(ks.start - 0.5, ks.stop - 0.5)
     ax.set_xlabel("sweep")
     ax.set_ylabel("branch k")
     ax.legend(fontsize=7, loc="upper right", framealpha=0.85)

@@ -56,6 +56,13 @@ Output files (next to the run file ``<dir>/<name>.h5``)
   ``occupation`` (per branch), ``event_measurements``, ``dwells`` (completed, per branch),
   ``censored_first``/``censored_last`` ([branch, sweeps]), ``exponential_fit`` (``tau_mle``,
   ``tau_hist`` with errors, ``ks_pvalue``, ``n``);
+* ``branch``: ``k`` (majority branch number after the cut, :mod:`sigmasim.vacua` convention:
+  arg omega_h nearest ``(theta + 2 pi k)/nf``, ``k`` in ``-floor((nf-1)/2) .. floor(nf/2)``),
+  ``fraction``, ``tree_status`` (``global``, ``global (degenerate)``, ``metastable``, ``no
+  minimum``; null for models without a tree-level potential), ``tree_global`` (branches of the
+  tree-level global minimum), ``action_per_site`` with ``_error``, ``measured`` (when several
+  runs with the same couplings sit in different branches: global or metastable by their mean
+  action per site, with the difference in sigma; else null);
 * ``warnings``: list of strings (also printed in the table).
 
 NaN and infinities are written as ``null``.
@@ -187,6 +194,7 @@ class RunAnalysis:
     masses: dict = field(default_factory=dict)
     alpha: np.ndarray | None = None
     tunnelling: object | None = None  # TunnellingResult over all measurements (nf >= 2)
+    branch: dict | None = None  # branch number and global/metastable (see _branch)
     warnings: list = field(default_factory=list)
     data: dict = field(default_factory=dict)  # the cut series used (for plots), not serialised
 
@@ -400,6 +408,7 @@ def analyze_data(series: dict, slices: dict, config, *, status: str = "complete"
             float(g.tau_int_error), float(g.n_independent), int(g.window), int(g.n),
             "V var(phi2), Gamma method for the derived quantity")
     _tunnelling(ra, series, config, band)
+    _branch(ra, series, config)
     acc_m = ra.series.get("accept_metropolis")
     acc_p = ra.series.get("accept_phase")
     drift = reals.get("unitarity_drift")
@@ -441,6 +450,78 @@ def analyze_data(series: dict, slices: dict, config, *, status: str = "complete"
         ra.masses["sigma"].window_reason += (" [sigma = Re Tr W is a two-pion state at tree level;"
                                               " its cosh mass includes wrap-around terms]")
     return ra
+
+
+def _branch(ra: RunAnalysis, series: dict, config) -> None:
+    """Branch number of the run (majority after the cut, :mod:`sigmasim.vacua` convention) and its
+    tree-level standing; ``measured`` is filled by :func:`compare_branches` when several runs at
+    the same couplings are analysed together."""
+    from sigmasim import vacua
+
+    om = np.asarray(series["omega_h"])[ra.cut:]
+    k, frac = vacua.measured_branch(om, config.theta, config.nf)
+    pot = vacua.potential_of_config(config)
+    st = vacua.branch_status(pot, k) if pot is not None else None
+    act = ra.series.get("action")
+    ra.branch = {"k": k, "fraction": frac,
+                 "tree_status": st.status if st else None,
+                 "tree_global": list(st.global_branches) if st else None,
+                 "action_per_site": act.mean if act else None,
+                 "action_per_site_error": act.error if act else None,
+                 "measured": None}
+    if st is not None and st.status in ("metastable", "no minimum"):
+        g = ",".join(str(b) for b in st.global_branches)
+        ra.warnings.append(f"the run sits in branch {k}, which is {st.status} at tree level "
+                           f"(global: {g}); its averages are those of that branch")
+
+
+def _physics_key(config):
+    d = config.physics_dict()
+    d.pop("seed", None)
+    d.get("run", {}).pop("start", None)
+    d.get("run", {}).pop("start_branch", None)
+    d.get("run", {}).pop("thermalize", None)
+    d.get("run", {}).pop("measure_every", None)
+    return json.dumps(d, sort_keys=True)
+
+
+def compare_branches(analyses) -> None:
+    """Runs with the same couplings (theta included) sitting in different branches: the branch with
+    the lowest mean action per site is marked measured-global, the others metastable with the
+    action difference and its error (errors of independent runs added in quadrature)."""
+    groups: dict = {}
+    for ra in analyses:
+        if ra.branch is not None and ra.branch["action_per_site"] is not None:
+            groups.setdefault(_physics_key(ra.config), []).append(ra)
+    for runs in groups.values():
+        if len({ra.branch["k"] for ra in runs}) < 2:
+            continue
+        best = min(runs, key=lambda ra: ra.branch["action_per_site"])
+        b0 = best.branch
+        for ra in runs:
+            b = ra.branch
+            if b["k"] == b0["k"]:
+                b["measured"] = f"global among {len(runs)} runs (lowest action per site)"
+                continue
+            d = b["action_per_site"] - b0["action_per_site"]
+            e = math.hypot(b["action_per_site_error"] or 0.0, b0["action_per_site_error"] or 0.0)
+            nsig = d / e if e > 0 else float("inf")
+            b["measured"] = (f"metastable among {len(runs)} runs: <S>/V higher by {d:.4g} +- {e:.2g} "
+                             f"({nsig:.1f} sigma) than branch {b0['k']} ({best.name})")
+
+
+def _branch_line(ra: RunAnalysis) -> str | None:
+    b = ra.branch
+    if b is None:
+        return None
+    line = f"branch k = {b['k']} ({b['fraction']:.0%} of the measurements after the cut)"
+    if b["tree_status"] is not None:
+        g = ",".join(str(v) for v in b["tree_global"])
+        word = "METASTABLE" if b["tree_status"] == "metastable" else b["tree_status"]
+        line += f": {word} at tree level (global {g})"
+    if b["measured"]:
+        line += f"; measured: {b['measured']}"
+    return line + "  [k: arg Omega_h nearest (theta + 2 pi k)/nf]"
 
 
 def analyze_run(path, masses: bool = True, band: float = 0.5) -> RunAnalysis:
@@ -514,6 +595,8 @@ def format_table(analyses) -> str:
             if ra.alpha is not None and np.any(np.abs(ra.alpha) > 1e-3):
                 lines.append(f"  (operators in the vacuum-aligned frame, alpha_f = "
                              f"{', '.join(f'{a:.3f}' for a in ra.alpha)})")
+        if _branch_line(ra):
+            lines += ["", _branch_line(ra)]
         if ra.tunnelling is not None:
             lines += [""] + _tunnelling_lines(ra)
         for w in ra.warnings:
@@ -606,6 +689,7 @@ def analysis_dict(ra: RunAnalysis) -> dict:
         "series": series, "acceptance": ra.acceptance, "masses": masses,
         "vacuum_alignment_phases": ra.alpha,
         "tunnelling": _tunnelling_dict(ra.tunnelling) if ra.tunnelling is not None else None,
+        "branch": ra.branch,
         "warnings": ra.warnings,
     })
 
@@ -693,8 +777,9 @@ def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = 
     data = [(p, open_run(p)) for p in resolved]
     analyses, written = [], []
     for p, d in data:
-        ra = analyze_data(d.series, d.slices, d.config, status=d.status, path=p, band=band)
-        analyses.append(ra)
+        analyses.append(analyze_data(d.series, d.slices, d.config, status=d.status, path=p, band=band))
+    compare_branches(analyses)
+    for (p, d), ra in zip(data, analyses):
         written += list(write_outputs(ra))
         if plot:
             from .plots import plot_all
