@@ -370,3 +370,19 @@ def test_branch_marked_global_or_metastable_tree_and_measured():
     assert a.branch["measured"].startswith("global")
     assert "METASTABLE at tree level (global 0)" in _branch_line(b)
     assert any("branch -1" in w for w in b.warnings) and not a.warnings
+
+
+def test_tunnelling_lines_use_the_branch_numbers_of_vacua():
+    """U(3) at theta = 2.8, every measurement at arg omega_h = (2.8 - 2 pi)/3: that is branch -1
+    (sigmasim.vacua convention), which the tunnelling table must print as -1, not 2."""
+    from types import SimpleNamespace
+
+    from sigmasim.analysis.report import _tunnelling_lines
+    from sigmasim.analysis.tunnelling import tunnelling_analysis
+
+    om = np.full(40, 0.7 * np.exp(1j * (2.8 - 2 * np.pi) / 3))
+    t = tunnelling_analysis(om, 2.8, 3, band=0.5, sweeps=np.arange(40))
+    ra = SimpleNamespace(tunnelling=t, config=SimpleNamespace(nf=3))
+    rows = {ln.split()[0]: ln.split()[1] for ln in _tunnelling_lines(ra)[3:6]}
+    assert rows == {"-1": "1.000", "0": "0.000", "1": "0.000"}
+    assert "branch -1 for" in "\n".join(_tunnelling_lines(ra))

@@ -617,13 +617,17 @@ def _tunnelling_lines(ra: RunAnalysis) -> list[str]:
              f"{fmt_err(t.rate, t.rate_error)} per sweep (1/mean completed dwell, bootstrap), "
              f"{fmt_err(t.rate_mle, t.rate_mle_error)} (events / sweeps); per site "
              f"{fmt_err(t.rate_per_volume, t.rate_per_volume_error)}"]
+    from sigmasim.vacua import branch_range, canonical_branch
+
     head = f"  {'branch':<8}{'occupation':>12}{'dwells':>8}{'mean dwell':>14}"
     lines += [head]
-    for k in range(nf):
+    # the index series counts k modulo nf from 0; print k in the range of sigmasim.vacua
+    for kk in branch_range(nf):
+        k = kk % nf
         d = t.dwells_by_branch.get(k, np.array([]))
         md = fmt_err(d.mean(), d.std(ddof=1) / np.sqrt(len(d))) if len(d) > 1 else (
             f"{d[0]:.0f}" if len(d) == 1 else "-")
-        lines.append(f"  {k:<8}{t.occupation[k]:>12.3f}{len(d):>8}{md:>14}")
+        lines.append(f"  {kk:<8}{t.occupation[k]:>12.3f}{len(d):>8}{md:>14}")
     f = t.fit
     if f.n:
         lines.append(f"  dwell times: exponential fit tau = {fmt_err(f.tau_mle, f.tau_mle_error)} sweeps "
@@ -632,7 +636,7 @@ def _tunnelling_lines(ra: RunAnalysis) -> list[str]:
     cens = [c for c in (t.censored_first, t.censored_last) if c is not None]
     if cens:
         lines.append("  censored (first/last, not in the rates' mean): "
-                     + ", ".join(f"branch {b} for {w:.0f} sweeps" for b, w in cens))
+                     + ", ".join(f"branch {canonical_branch(b, nf)} for {w:.0f} sweeps" for b, w in cens))
     return lines
 
 
