@@ -386,3 +386,27 @@ def test_tunnelling_lines_use_the_branch_numbers_of_vacua():
     rows = {ln.split()[0]: ln.split()[1] for ln in _tunnelling_lines(ra)[3:6]}
     assert rows == {"-1": "1.000", "0": "0.000", "1": "0.000"}
     assert "branch -1 for" in "\n".join(_tunnelling_lines(ra))
+
+
+def test_phase_figure_marks_the_branch_of_the_run(run_file):
+    """The phase history says which branch the run sits in and whether it is global at tree level,
+    and its guide lines are the tree-level minima with the same branch numbers."""
+    import matplotlib.pyplot as plt
+
+    from sigmasim import vacua
+    from sigmasim.analysis.plots import plot_phase_history
+
+    ra = analyze_run(run_file, masses=False)
+    fig = plot_phase_history(ra)
+    ax = fig.axes[0]
+    b = ra.branch
+    assert ax.get_title().startswith(f"the run sits in branch k = {b['k']} (")
+    assert f"{b['tree_status']} at tree level" in ax.get_title()
+    labels = [t.get_text() for t in ax.get_legend().get_texts()]
+    guides = [t for t in labels if t.startswith("branch k=")]
+    assert guides and all("tree level" in t for t in guides)
+    for t in guides:  # the legend's k and arg agree with the convention
+        k = int(t.split("=")[1].split()[0])
+        a = float(t.rsplit("=", 1)[1])
+        assert vacua.branch_label(np.exp(1j * a), ra.config.theta, ra.config.nf) == k
+    plt.close(fig)

@@ -129,6 +129,11 @@ def plot_phase_history(ra, ax=None):
         ax.set_xlabel("")
     ax.set_ylabel(r"arg $\Omega_h$,  $\Omega_h = e^{i\theta_m}\sum_x \mathrm{Tr}\,U_x/(N_f V)$")
     ax.legend(fontsize=7, loc="upper right", ncol=2, framealpha=0.85)
+    b = getattr(ra, "branch", None)
+    if b:
+        where = f", {b['tree_status']} at tree level" if b.get("tree_status") else ""
+        ax.set_title(f"the run sits in branch k = {b['k']} ({b['fraction']:.0%} of the measurements "
+                     f"after the cut{where})", fontsize=8)
     if fig is not None:
         _title(fig, ra, "phase of the condensate")
     return fig
