@@ -126,7 +126,7 @@ def _summary_table(paths) -> str:
     from sigmasim.storage import open_run
 
     head = (f"{'run':<22}{'theta':>8}{'<S>/V':>10}{'<Re Omega_h>':>14}{'<Im Omega_h>':>14}"
-            f"{'<|Omega|>':>11}{'acc':>7}")
+            f"{'<|Omega|>':>11}{'acc':>7}  branch (tree level)")
     lines = [head, "-" * len(head)]
     for p in paths:
         d = open_run(p)
@@ -137,10 +137,31 @@ def _summary_table(paths) -> str:
         lines.append(
             f"{d.config.name:<22}{d.config.theta:>8.3f}{s['action'].mean():>10.4f}"
             f"{s['omega_h'].real.mean():>14.4f}{s['omega_h'].imag.mean():>14.4f}"
-            f"{np.abs(s['omega']).mean():>11.4f}{acc:>7.2f}"
+            f"{np.abs(s['omega']).mean():>11.4f}{acc:>7.2f}  {_branch_note(d.config, s['omega_h'])}"
         )
-    lines.append("(plain means; run 'sigmasim analyze' for errors. Research toy, not a physical prediction.)")
+    lines.append("(plain means; run 'sigmasim analyze' for errors. branch k: arg Omega_h nearest "
+                 "(theta + 2 pi k)/nf for most measurements;")
+    lines.append(" global/METASTABLE: the tree-level minima at that theta (sigmasim vacua). "
+                 "Research toy, not a physical prediction.)")
     return "\n".join(lines)
+
+
+def _branch_note(config, omega_h) -> str:
+    """``k = -1 METASTABLE (global 0)`` for the summary tables (the convention of sigmasim.vacua)."""
+    from sigmasim import vacua
+
+    k, frac = vacua.measured_branch(omega_h, config.theta, config.nf)
+    note = f"k = {k}"
+    if frac == frac and frac < 0.9:
+        note += f" ({frac:.0%} of meas.)"
+    pot = vacua.potential_of_config(config)
+    if pot is None:
+        return note + " (no tree-level potential for this model)"
+    st = vacua.branch_status(pot, k)
+    g = ",".join(str(b) for b in st.global_branches)
+    word = {"metastable": "METASTABLE", "no minimum": "not a tree-level minimum"}.get(st.status, st.status)
+    return f"{note} {word}" + ("" if st.status.startswith("global") and len(st.global_branches) == 1
+                                 else f" (global {g})")
 
 
 PROTOCOL_TABLES = {"sweep": "sweep", "tempering": "temper", "lifetimes": "lifetimes", "scan": "scan"}
@@ -256,24 +277,26 @@ def cmd_scan(args) -> int:
 
 
 def cmd_demo(args) -> int:
+    import math
+
     from sigmasim.chain import Interrupted
     from sigmasim.config import config_from_dict
 
     _set_threads(0)
-    thetas = [2.6, 3.0, 3.14159265, 3.3, 3.7]
+    thetas = [2.6, 3.0, math.pi, 3.3, 3.7]
     paths = []
-    print("demo: three flavours with a strong anomaly on an 8^3 lattice, theta across pi;\n"
-          "each run starts in the tree-level vacuum (branch 0 below pi, branch -1 above;\n"
-          "at theta = pi both are degenerate and the run stays in branch 0)")
+    print("demo: three flavours with a strong anomaly on a 4^3 lattice, theta across pi;\n"
+          "every theta starts from the same random field (hot start, same seed) and the lattice is\n"
+          "small enough for the field to tunnel between branches, so the sign of Im Omega_h follows\n"
+          "the vacuum that is global at each theta (branch 0 below pi, branch -1 above), not the start")
     for th in thetas:
         raw = {
             "name": f"demo-theta-{th:.3f}",
             "seed": 2026,
-            "lattice": {"shape": [8, 8, 8]},
+            "lattice": {"shape": [4, 4, 4]},
             "model": {"nf": 3, "beta": 1.0, "mass": 0.2, "kappa": 1.0, "theta": th},
             "updates": {"schedule": [{"update": "heatbath", "repeat": 1}, {"update": "overrelax", "repeat": 2}]},
-            "run": {"thermalize": 100, "measurements": 300, "start": "branch",
-                    "start_branch": 0 if th <= 3.1416 else -1, "output": args.output},
+            "run": {"thermalize": 200, "measurements": 3000, "start": "hot", "output": args.output},
         }
         cfg = config_from_dict(raw)
         if cfg.run_file.exists():
@@ -368,7 +391,7 @@ def cmd_vacua(args) -> int:
     except ValueError as exc:
         raise ConfigError(f"cannot analyse this potential: {exc}") from None
     print(f"tree-level local minima at theta = {cfg.theta:.6g} (energies per site):")
-    print(vacua.format_table(minima))
+    print(vacua.format_table(minima, theta=pot.theta))
     print()
     print("branches over theta in [0, 4 pi]:")
     print(vacua.format_table(scan, step=max(1, args.points // 24)))

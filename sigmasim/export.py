@@ -439,7 +439,9 @@ def _tree_truth(cfg) -> dict:
     except Exception:  # pragma: no cover - a vacuum search failure must not stop an export
         found = []
     for i, v in enumerate(found):
-        tag = "global minimum" if v.is_global else "metastable"
+        # i orders the minima by energy; k is the branch number used everywhere else
+        k = vacua.branch_label(v.omega_rot, cfg.theta, cfg.nf)
+        tag = f"branch k = {k}, " + ("global minimum" if v.is_global else "metastable")
         t[f"vacuum_{i}_energy"] = truth_entry(
             v.energy, "tree level", SRC_VACUA,
             f"potential energy per site of tree-level vacuum {i} ({tag}); compare with "

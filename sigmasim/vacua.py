@@ -93,6 +93,25 @@ All of the above is derived here; the numerical cross-check against an
 unrestricted minimisation over U(Nf) is :func:`minimize_unrestricted` (and the
 test-suite).
 
+Branch numbers (the one convention of the package)
+--------------------------------------------------
+Branch ``k`` is the vacuum continued from the tree-level minimum
+``e^{i theta_m} U = e^{i (theta + 2 pi k)/Nf} 1`` (the degenerate large-kappa
+vacua), i.e. the one whose placement-independent order parameter
+``omega_h = e^{i theta_m} Omega`` has the phase nearest to
+``(theta + 2 pi k)/Nf``.  ``k`` is defined modulo ``Nf`` and is always quoted
+in the range ``-floor((Nf-1)/2) .. floor(Nf/2)`` (:func:`branch_range`):
+``{0}`` for Nf = 1, ``{0, 1}`` for Nf = 2, ``{-1, 0, 1}`` for Nf = 3,
+``{-1, 0, 1, 2}`` for Nf = 4.  With positive degenerate masses branch 0 is the
+global minimum for ``|theta| < pi``, branch -1 for ``pi < theta < 3 pi`` (for
+Nf >= 3; for Nf = 2 it is quoted as 1); at ``theta = pi`` the two are a
+degenerate CP pair.  ``theta`` is the physical angle itself, not reduced
+modulo 2 pi, so branch ``k`` at ``theta + 2 pi`` is the vacuum of branch
+``k + 1`` at ``theta``.  :func:`branch_label` computes ``k``, everything that
+prints a branch number (``vacua``, ``run``, ``analyze``, the demo and the
+figures) uses it, and :func:`branch_status` says whether a branch is the
+tree-level global minimum or a metastable one.
+
 Branch following
 ----------------
 :func:`scan_theta` finds all local minima at the first grid point, follows each
@@ -116,6 +135,14 @@ from scipy import linalg, optimize
 
 __all__ = [
     "PLACEMENTS",
+    "branch_range",
+    "canonical_branch",
+    "branch_label",
+    "branch_phase",
+    "branch_status",
+    "BranchStatus",
+    "potential_of_config",
+    "measured_branch",
     "ChiralPotential",
     "Vacuum",
     "FirstOrderPoint",
@@ -158,6 +185,126 @@ _CONT_MAXIT = 25
 def _wrap(x):
     """Map angles to [-pi, pi) so that distances modulo 2 pi are plain differences."""
     return (np.asarray(x) + np.pi) % TWO_PI - np.pi
+
+
+# ----------------------------------------------------------------------------
+# branch numbers
+# ----------------------------------------------------------------------------
+
+
+def branch_range(nf: int) -> range:
+    """The quoted branch numbers ``-floor((nf-1)/2) .. floor(nf/2)`` (module docstring)."""
+    return range(-((nf - 1) // 2), nf // 2 + 1)
+
+
+def canonical_branch(k, nf: int):
+    """``k`` modulo ``nf`` moved into :func:`branch_range` (int or int array)."""
+    lo = (nf - 1) // 2
+    out = (np.asarray(k, dtype=np.int64) + lo) % nf - lo
+    return int(out) if out.ndim == 0 else out
+
+
+def branch_label(omega_h, theta, nf: int):
+    """Branch number of ``omega_h = e^{i theta_m} Omega`` at the physical angle ``theta``.
+
+    The nearest ``k`` with ``arg omega_h = (theta + 2 pi k)/nf`` (mod 2 pi), in
+    :func:`branch_range`; scalar or array (element-wise, ``theta`` broadcast).
+    """
+    om = np.asarray(omega_h, dtype=np.complex128)
+    x = (nf * np.angle(om) - np.asarray(theta, dtype=float)) / TWO_PI
+    return canonical_branch(np.round(x).astype(np.int64), nf)
+
+
+def branch_phase(k, theta, nf: int):
+    """``(theta + 2 pi k)/nf`` wrapped to ``(-pi, pi]``: the large-kappa phase of branch ``k``."""
+    return np.angle(np.exp(1j * (np.asarray(theta, float) + TWO_PI * np.asarray(k)) / nf))
+
+
+@dataclass(frozen=True)
+class BranchStatus:
+    """Where a branch stands among the tree-level minima at one theta.
+
+    Attributes
+    ----------
+    branch : int
+        The branch asked about (:func:`branch_label` convention).
+    status : str
+        ``'global'``, ``'global (degenerate)'`` (one of several global minima,
+        e.g. a CP pair at theta = pi), ``'metastable'`` or ``'no minimum'``
+        (not a tree-level local minimum at this theta).
+    global_branches : tuple of int
+        Branches of the tree-level global minimum.
+    minima : tuple of (int, float)
+        ``(branch, energy per site)`` of every tree-level local minimum, by energy.
+    """
+
+    branch: int
+    status: str
+    global_branches: tuple
+    minima: tuple
+
+    def describe(self) -> str:
+        """One line, e.g. ``branch -1: metastable at tree level (global: 0)``."""
+        g = ", ".join(str(k) for k in self.global_branches) or "none"
+        return f"branch {self.branch}: {self.status} at tree level (global: {g})"
+
+
+def measured_branch(omega_h, theta, nf: int) -> tuple:
+    """Majority branch number of a series of ``omega_h`` and the fraction of it in that branch.
+
+    Returns ``(k, fraction)``; ``(0, nan)`` for an empty series.
+    """
+    om = np.asarray(omega_h, dtype=np.complex128).ravel()
+    om = om[np.isfinite(om)]
+    if om.size == 0:
+        return 0, float("nan")
+    lab = branch_label(om, theta, nf)
+    lo = (nf - 1) // 2
+    counts = np.bincount(np.atleast_1d(lab) + lo, minlength=nf)
+    j = int(np.argmax(counts))
+    return j - lo, float(counts[j] / counts.sum())
+
+
+def potential_of_config(config) -> "ChiralPotential | None":
+    """Tree-level potential of a run config (None for models without one, e.g. linear)."""
+    if getattr(config, "kind", "chiral") != "chiral":
+        return None
+    theta_m, theta_a = config.theta_angles
+    return make_potential(list(config.mass), config.kappa, theta_m=theta_m, theta_a=theta_a,
+                          nf=config.nf, group=config.group)
+
+
+@functools.lru_cache(maxsize=64)
+def _tree_minima(pot):
+    theta = pot.theta
+    out = []
+    for v in find_local_minima(pot):
+        out.append((branch_label(v.omega_rot, theta, pot.nf), v.energy, v.is_global))
+    return tuple(out)
+
+
+def branch_status(pot: "ChiralPotential", branch: int) -> BranchStatus:
+    """Classify ``branch`` at the theta of ``pot`` against its tree-level minima.
+
+    Parameters
+    ----------
+    pot : ChiralPotential
+        The potential at the run's theta (e.g. :func:`potential_of_config`).
+    branch : int
+        Measured branch number (any integer; taken modulo Nf).
+    """
+    nf = pot.nf
+    k = canonical_branch(int(branch), nf)
+    mins = _tree_minima(pot)
+    glob = tuple(sorted({b for b, _, g in mins if g}))
+    labels = {b for b, _, _ in mins}
+    if k in glob:
+        status = "global" if len(glob) == 1 else "global (degenerate)"
+    elif k in labels:
+        status = "metastable"
+    else:
+        status = "no minimum"
+    return BranchStatus(k, status, glob, tuple((b, float(e)) for b, e, _ in mins))
 
 
 # ----------------------------------------------------------------------------
@@ -1047,8 +1194,11 @@ class FirstOrderPoint:
     energy : float
         Common energy at ``theta``.
     method : str
-        ``'brentq'`` (root of ``E_a - E_b``), ``'grid'`` (degenerate at a grid
-        point) or ``'spinodal'`` (switch limited by a branch end).
+        ``'brentq'`` (root of ``E_a - E_b``, on the part of the grid interval
+        where both branches exist), ``'grid'`` (degenerate at a grid point),
+        ``'cp'`` (a degenerate global CP pair at a CP-invariant grid point,
+        also at an end of the grid) or ``'spinodal'`` (switch limited by a
+        branch end).
     """
 
     theta: float
@@ -1121,9 +1271,10 @@ class BranchScan:
     n_minima, n_metastable : ndarray, shape (nt,)
         Number of local minima and of those other than one global minimum.
     first_order : list of FirstOrderPoint
-        Switches of the global branch between neighbouring grid points (a
-        degeneracy exactly at the first or last grid point is not a switch and
-        is not listed; one switch per grid interval is resolved).
+        Switches of the global branch between neighbouring grid points (one
+        switch per grid interval is resolved), and every CP-invariant grid
+        point whose global minimum is a degenerate CP pair (method ``'cp'``,
+        also at the first or last grid point).
     spinodals : list of SpinodalPoint
     cp_pairs : list of CPPair
         At grid points with ``2 theta = 0 mod 2 pi``.
@@ -1151,6 +1302,33 @@ class BranchScan:
     def n_branches(self) -> int:
         """Number of branches."""
         return self.energies.shape[0]
+
+    @property
+    def labels(self) -> np.ndarray:
+        """Branch number (:func:`branch_label`) of every followed branch at every grid point,
+        int array (nb, nt), ``-999`` where the branch is absent.  The rows of the scan are
+        followed minima; their number can change along a row where no barrier separates two
+        branches (e.g. below the first-order threshold in kappa)."""
+        nf = self.potential.nf
+        lab = branch_label(np.where(np.isnan(self.omega_rot), 1.0, self.omega_rot),
+                           self.thetas[None, :], nf)
+        return np.where(np.isnan(self.energies), -999, lab)
+
+    @property
+    def global_label(self) -> np.ndarray:
+        """Branch number of the global minimum at every grid point (int (nt,), -999 if none)."""
+        lab = self.labels
+        gb = self.global_branch
+        return np.where(gb >= 0, lab[np.maximum(gb, 0), np.arange(len(gb))], -999)
+
+    def row_labels(self, b: int) -> str:
+        """The branch numbers that row ``b`` takes along theta, e.g. ``'0'`` or ``'0 -> -1'``."""
+        seq = [int(v) for v in self.labels[b] if v != -999]
+        out = [seq[0]] if seq else []
+        for v in seq[1:]:
+            if v != out[-1]:
+                out.append(v)
+        return " -> ".join(str(v) for v in out) if out else "-"
 
 
 class _Tracker:
@@ -1208,17 +1386,60 @@ class _Tracker:
         pot = self.pot(t1)
         xs, conv = _newton(self._predict(xp, t0, t1), pot, saddle_free=False, max_step=0.25,
                             maxit=_CONT_MAXIT)
-        ok = self._accept(xs, xp, conv, pot, require_min)
+        ok = self._accept(xs, xp, conv, pot, require_min) & self._returns(xs, xp, t0, conv)
         if not ok.all():
             xn, conv = _newton(xp, pot, saddle_free=False, max_step=0.25,
                             maxit=_CONT_MAXIT)
-            okn = self._accept(xn, xp, conv, pot, require_min) & ~ok
+            okn = (self._accept(xn, xp, conv, pot, require_min)
+                   & self._returns(xn, xp, t0, conv) & ~ok)
             xs[okn] = xn[okn]
             ok = ok | okn
         return xs, ok
 
+    def _returns(self, xn, xp, t0, conv):
+        """True where Newton at t0 started from the continued point xn comes back to xp.
+
+        When a branch ends inside the step, Newton at t1 can land on a different
+        minimum (typically the CP mirror of the dying one near a first-order
+        point, which lies closer than ``jump_tol``); that minimum also exists at
+        t0, so the way back finds it and not xp.  A genuine continuation step
+        is reversible.
+        """
+        ok = conv.copy()
+        if xn.shape[-1] == 0 or not ok.any():
+            return ok
+        pot0 = self.pot(t0)
+        xb, convb = _newton(xn[ok], pot0, saddle_free=False, max_step=0.25, maxit=_CONT_MAXIT)
+        back = np.abs(_wrap(_x_to_phases(xb, pot0) - _x_to_phases(xp[ok], pot0))).max(-1)
+        fwd = np.abs(_wrap(_x_to_phases(xn[ok], pot0) - _x_to_phases(xp[ok], pot0))).max(-1)
+        ok[ok] = convb & (back <= 1e-3 * fwd + _KEY_TOL)
+        return ok
+
+    def cp_inside(self, t0, t1):
+        """CP-invariant angles (theta = 0 mod pi) strictly between t0 and t1, in path order.
+
+        A continuation step never jumps over one of them: at a first-order point there
+        the CP mirror of the dying minimum exists too, and only a step that stops at the
+        CP-invariant angle lets the reversibility test (:meth:`_returns`) see it.
+        """
+        lo, hi = min(t0, t1), max(t0, t1)
+        # physical theta = t (the placement only splits it between the phases)
+        n0, n1 = math.floor(lo / np.pi) + 1, math.ceil(hi / np.pi) - 1
+        out = [n * np.pi for n in range(n0, n1 + 1)
+               if lo + 1e-12 < n * np.pi < hi - 1e-12]
+        return out if t1 > t0 else out[::-1]
+
     def continue_one(self, x0, t0, t1, depth=6, require_min=True):
         """Continue one branch from t0 to t1, halving the step when it fails."""
+        cps = self.cp_inside(t0, t1)
+        if cps:
+            x, t = x0, t0
+            for tc in cps + [t1]:
+                x, ok = self.continue_one(x, t, tc, depth, require_min)
+                if not ok:
+                    return x0, False
+                t = tc
+            return x, True
         xn, ok = self.step(x0[None], t0, t1, require_min)
         if ok[0]:
             return xn[0], True
@@ -1345,7 +1566,11 @@ def scan_theta(
         live = [k for k in range(len(tr.x)) if tr.alive[k]]
         if live:
             xp = np.array([tr.x[k][i - 1] for k in live])
-            xn, ok = tr.step(xp, t0, t1)
+            if tr.cp_inside(t0, t1):
+                # stop at the CP-invariant angle inside the interval (continue_one does)
+                xn, ok = xp.copy(), np.zeros(len(live), bool)
+            else:
+                xn, ok = tr.step(xp, t0, t1)
             for j, k in enumerate(live):
                 if ok[j]:
                     tr.x[k][i] = xn[j]
@@ -1443,8 +1668,8 @@ def _assemble(tr, template, x_frac):
         n_metastable=np.maximum(n_min - 1, 0), spinodals=sorted(tr.spinodals,
                                                                 key=lambda s: s.theta),
     )
-    res.first_order = _first_order_points(tr, res)
     res.cp_pairs = _cp_pairs(tr, res)
+    res.first_order = _first_order_points(tr, res)
     return res
 
 
@@ -1483,6 +1708,11 @@ def _first_order_points(tr, res):
             ts = optimize.brentq(f, t0, t1, xtol=1e-13, rtol=4 * np.finfo(float).eps)
             method = "brentq"
             e_at = cont_energy(a, i - 1, ts)
+        elif (root := _root_on_overlap(f, a, b, t0, t1, res.spinodals)) is not None:
+            # a ends and/or b starts inside the interval (no stationary point to
+            # continue past a fold): the crossing lies where both exist
+            ts, method = root, "brentq"
+            e_at = cont_energy(a, i - 1, ts)
         else:
             # the switch is limited by a branch end (no common interval of existence)
             ends = [s.theta for s in res.spinodals
@@ -1491,7 +1721,44 @@ def _first_order_points(tr, res):
             method = "spinodal"
             e_at = np.nanmin([E[a, i - 1], E[b, i]])
         out.append(FirstOrderPoint(float(ts), int(a), int(b), float(e_at), method))
+    # a degenerate global CP pair at a grid point is a first-order point even where
+    # the argmin of the two equal energies did not change across it (or at an end
+    # point of the grid)
+    for c in res.cp_pairs:
+        a, b = c.branch_a, c.branch_b
+        if a == b:
+            continue
+        i = int(np.argmin(np.abs(thetas - c.theta)))
+        ea, eb, eg = E[a, i], E[b, i], res.global_energy[i]
+        if max(abs(ea - eg), abs(eb - eg)) > tol:
+            continue
+        if any(abs(p.theta - c.theta) <= 1e-9 for p in out):
+            continue
+        out.append(FirstOrderPoint(float(c.theta), int(a), int(b), float(eg), "cp"))
+    out.sort(key=lambda p: p.theta)
     return out
+
+
+def _root_on_overlap(f, a, b, t0, t1, spinodals):
+    """Root of f = E_a - E_b on the part of [t0, t1] where both branches exist, or None."""
+    ends = [s.theta for s in spinodals if s.branch == a and s.kind == "end" and t0 <= s.theta <= t1]
+    starts = [s.theta for s in spinodals
+              if s.branch == b and s.kind == "start" and t0 <= s.theta <= t1]
+    lo = max([t0] + starts)
+    hi = min([t1] + ends)
+    # the spinodals are bisected to 1e-11: stay just inside the common interval
+    pad = 1e-10
+    lo, hi = lo + (pad if lo > t0 else 0.0), hi - (pad if hi < t1 else 0.0)
+    if not lo < hi:
+        return None
+    flo, fhi = f(lo), f(hi)
+    if not (np.isfinite(flo) and np.isfinite(fhi)) or flo * fhi > 0:
+        return None
+    if flo == 0.0:
+        return float(lo)
+    if fhi == 0.0:
+        return float(hi)
+    return float(optimize.brentq(f, lo, hi, xtol=1e-13, rtol=4 * np.finfo(float).eps))
 
 
 def _cp_pairs(tr, res):
@@ -1522,7 +1789,7 @@ def _fmt_c(z):
     return f"{z.real:+.5f}{z.imag:+.5f}i"
 
 
-def format_table(obj, step: int | None = None) -> str:
+def format_table(obj, step: int | None = None, theta: float | None = None) -> str:
     """Plain-text table of vacua or of a branch scan.
 
     Parameters
@@ -1531,6 +1798,9 @@ def format_table(obj, step: int | None = None) -> str:
         What to tabulate.
     step : int, optional
         For a scan: print every ``step``-th grid point (default: about 17 rows).
+    theta : float, optional
+        For a list of vacua: the physical angle they belong to, to print their
+        branch numbers (:func:`branch_label`); ``?`` without it.
 
     Returns
     -------
@@ -1543,35 +1813,56 @@ def format_table(obj, step: int | None = None) -> str:
                      "tree level, research toy")
         nt = len(r.thetas)
         step = step or max(1, (nt - 1) // 16)
-        head = f"{'theta':>9} {'theta/pi':>9} {'glob':>4} {'E_glob':>13} {'n_meta':>6}"
-        head += "".join(f" {'E_' + str(k):>12}" for k in range(r.n_branches))
+        lines.append("# k = branch number: arg e^{i theta_m} Omega nearest (theta + 2 pi k)/Nf, "
+                     f"k in {branch_range(r.potential.nf).start}..{branch_range(r.potential.nf).stop - 1}")
+        lines.append("# followed minima (columns E_#): " + "; ".join(
+            f"#{b}: k = {r.row_labels(b)}" for b in range(r.n_branches)))
+        glab = r.global_label
+        head = f"{'theta':>9} {'theta/pi':>9} {'k_glob':>6} {'E_glob':>13} {'n_meta':>6}"
+        head += "".join(f" {'E_#' + str(k):>12}" for k in range(r.n_branches))
         lines.append(head)
         for i in range(0, nt, step):
-            row = (f"{r.thetas[i]:9.5f} {r.thetas[i] / np.pi:9.4f} {r.global_branch[i]:4d} "
+            row = (f"{r.thetas[i]:9.5f} {r.thetas[i] / np.pi:9.4f} {glab[i]:6d} "
                    f"{r.global_energy[i]:13.8f} {r.n_metastable[i]:6d}")
             row += "".join(f" {r.energies[k, i]:12.6f}" if np.isfinite(r.energies[k, i])
                            else f" {'-':>12}" for k in range(r.n_branches))
             lines.append(row)
-        lines.append("# first-order points (theta, theta/pi, from -> to, E, method)")
+        lab = r.labels
+        nfl = r.potential.nf
+
+        def k_at(b, t):
+            # branch number of row b at theta t (from the nearest grid point where it exists)
+            ok = np.flatnonzero(lab[b] != -999)
+            if not ok.size:
+                return "-"
+            j = ok[np.argmin(np.abs(r.thetas[ok] - t))]
+            ph = r.omega_rot[b, j]
+            return str(branch_label(ph, t, nfl)) if abs(r.thetas[j] - t) > 0 else str(lab[b, j])
+
+        lines.append("# first-order points (theta, theta/pi, k from -> to, E, method, rows #)")
         for p in r.first_order:
-            lines.append(f"  {p.theta:.10f} {p.theta / np.pi:.8f} {p.branch_from} -> "
-                         f"{p.branch_to} {p.energy:.8f} {p.method}")
-        lines.append("# spinodal points (theta, theta/pi, branch, kind, E)")
+            lines.append(f"  {p.theta:.10f} {p.theta / np.pi:.8f} k {k_at(p.branch_from, p.theta)} -> "
+                         f"{k_at(p.branch_to, p.theta)} {p.energy:.8f} {p.method} "
+                         f"#{p.branch_from} -> #{p.branch_to}")
+        lines.append("# spinodal points (theta, theta/pi, k, kind, E, row #)")
         for s in r.spinodals:
-            lines.append(f"  {s.theta:.10f} {s.theta / np.pi:.8f} {s.branch} {s.kind} "
-                         f"{s.energy:.8f}")
-        lines.append("# CP pairs at CP-invariant theta (theta/pi, a, b; a == b: self-conjugate)")
+            lines.append(f"  {s.theta:.10f} {s.theta / np.pi:.8f} k {k_at(s.branch, s.theta)} {s.kind} "
+                         f"{s.energy:.8f} #{s.branch}")
+        lines.append("# CP pairs at CP-invariant theta (theta/pi, k_a, k_b; the same: self-conjugate)")
         for c in r.cp_pairs:
-            lines.append(f"  {c.theta / np.pi:.4f} {c.branch_a} {c.branch_b}")
+            lines.append(f"  {c.theta / np.pi:.4f} {k_at(c.branch_a, c.theta)} {k_at(c.branch_b, c.theta)}")
         return "\n".join(lines)
     vac = list(obj)
-    lines.append(f"{'#':>3} {'energy':>14} {'Omega':>20} {'det U':>20} {'lam_min':>11} "
-                 f"{'flat':>4} {'glob':>4}  phases/pi")
-    for j, v in enumerate(vac):
+    lines.append(f"{'k':>3} {'energy':>14} {'Omega':>20} {'det U':>20} {'lam_min':>11} "
+                 f"{'flat':>4} {'status':>10}  phases/pi")
+    for v in vac:
         lam = v.hessian_full[0] if v.hessian_full.size else float("nan")
         ph = " ".join(f"{p / np.pi:+.4f}" for p in v.phases)
-        lines.append(f"{j:3d} {v.energy:14.8f} {_fmt_c(v.omega):>20} {_fmt_c(v.det):>20} "
-                     f"{lam:11.3e} {v.n_flat:4d} {'*' if v.is_global else '':>4}  {ph}")
+        k = "?" if theta is None else str(branch_label(v.omega_rot, theta, len(v.phases)))
+        lines.append(f"{k:>3} {v.energy:14.8f} {_fmt_c(v.omega):>20} {_fmt_c(v.det):>20} "
+                     f"{lam:11.3e} {v.n_flat:4d} {'global' if v.is_global else 'metastable':>10}  {ph}")
+    if theta is not None:
+        lines.append("(k = branch number: arg e^{i theta_m} Omega nearest (theta + 2 pi k)/Nf)")
     return "\n".join(lines)
 
 
@@ -1594,7 +1885,7 @@ def plot_branches(result: BranchScan, ax=None):
         _, ax = plt.subplots(figsize=(8, 5))
     th = result.thetas
     for k in range(result.n_branches):
-        ax.plot(th, result.energies[k], lw=1.0, label=f"branch {k}")
+        ax.plot(th, result.energies[k], lw=1.0, label=f"k = {result.row_labels(k)}")
     ax.plot(th, result.global_energy, color="k", lw=3.0, alpha=0.6, label="global minimum")
     for j, p in enumerate(result.first_order):
         ax.axvline(p.theta, color="grey", ls="--", lw=0.8,

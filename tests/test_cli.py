@@ -175,10 +175,23 @@ def test_example_sweep_runs(tmp_path, capsys):
 
 
 def test_demo_runs(tmp_path, capsys):
+    from sigmasim import vacua
+    from sigmasim.storage import open_run
+
     assert main(["demo", "--output", str(tmp_path), "--quiet"]) == 0
     out = capsys.readouterr().out
     assert "research toy" in out.lower() or "Research toy" in out
-    assert len(list(tmp_path.rglob("*.h5"))) == 5
+    files = sorted(tmp_path.rglob("*.h5"))
+    assert len(files) == 5
+    runs = {round(open_run(f).config.theta, 2): open_run(f) for f in files}
+    # the jump comes from the physics: every theta starts from the same field (a hot start
+    # with one seed, theta-independent), and the runs next to pi visit both branches
+    assert {(d.config.start, d.config.seed) for d in runs.values()} == {("hot", 2026)}
+    for th in (3.0, 3.3):
+        k = vacua.branch_label(runs[th].series["omega_h"], th, 3)
+        assert set(np.unique(k)) == {0, -1}
+    assert runs[2.6].series["omega_h"].imag.mean() > 0 > runs[3.7].series["omega_h"].imag.mean()
+    assert "k = 0 global" in out and "k = -1 global" in out
 
 
 def test_vacua_command(tmp_path, capsys):
@@ -215,3 +228,17 @@ def json_theta(f):
     import json
 
     return json.loads(f.attrs["config"])["model"]["theta"]
+
+
+def test_run_summary_flags_metastable_branch(tmp_path, capsys):
+    # Tree level (sigmasim.vacua): U(3), h = 0.3, kappa = 3 at theta = 2.8 has the global
+    # minimum in branch 0 and a metastable one in branch -1; a run started in branch -1
+    # stays there (strong anomaly, short run) and the summary must say so.
+    cfg = tmp_path / "meta.toml"
+    cfg.write_text('name = "meta"\nseed = 3\n[lattice]\nshape = [4, 4, 4]\n'
+                   '[model]\nnf = 3\nbeta = 2.0\nmass = 0.3\nkappa = 3.0\ntheta = 2.8\n'
+                   f'[run]\nthermalize = 5\nmeasurements = 20\nstart = "branch"\nstart_branch = -1\n'
+                   f'output = "{tmp_path}"\nthreads = 1\n')
+    assert main(["run", str(cfg), "--quiet"]) == 0
+    out = capsys.readouterr().out
+    assert "k = -1 METASTABLE (global 0)" in out

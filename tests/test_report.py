@@ -344,3 +344,96 @@ def test_analyze_reports_tunnelling_of_a_real_run(tmp_path, capsys):
     assert (figs / "tun.dwell_times.png").stat().st_size > 1000
     with pytest.raises(SigmasimError, match="--band"):
         analyze_command([str(path)], band=1.0)
+
+
+def test_guide_lines_are_the_solver_minima():
+    """U(1), h = -0.2, kappa = 0.3, theta = 0.5 (mass placement): V(phi) = 0.2 cos(phi + 0.5)
+    - 0.6 cos(phi); its minimum (brute force on a fine grid here, independent of the solver)
+    gives arg Omega_h = phi + 0.5 = 0.722, not the large-kappa 0.5."""
+    from sigmasim.analysis.plots import tree_guides
+    from sigmasim.config import config_from_dict
+
+    c = config_from_dict({"lattice": {"shape": [4]},
+                          "model": {"nf": 1, "mass": -0.2, "kappa": 0.3, "theta": 0.5}})
+    phi = np.linspace(-np.pi, np.pi, 2_000_001)
+    ref = phi[np.argmin(0.2 * np.cos(phi + 0.5) - 0.6 * np.cos(phi))] + 0.5
+    g = tree_guides(c)
+    assert [(k, what) for k, _, what in g] == [(0, "global")]
+    assert g[0][1] == pytest.approx(ref, abs=1e-5)
+    assert g[0][1] == pytest.approx(0.722, abs=1e-3)
+    # U(3), h = 0.3, kappa = 3, theta = 2.8: the legend's k agrees with its phase
+    # (branch -1 near (2.8 - 2 pi)/3 = -1.161, metastable; branch 0 global)
+    c = config_from_dict({"lattice": {"shape": [4]},
+                          "model": {"nf": 3, "mass": 0.3, "kappa": 3.0, "theta": 2.8}})
+    g = {k: (a, what) for k, a, what in tree_guides(c)}
+    assert set(g) == {0, -1}
+    assert g[-1][1] == "metastable" and g[0][1] == "global"
+    assert abs(g[-1][0] - (2.8 - 2 * np.pi) / 3) < 0.1 and abs(g[0][0] - 2.8 / 3) < 0.1
+
+
+def test_branch_marked_global_or_metastable_tree_and_measured():
+    """U(3), h = 0.3, kappa = 3, theta = 2.8: tree level (sigmasim.vacua) has branch 0 global and
+    branch -1 metastable.  Two runs at these couplings, one in each branch: the tree-level flag and
+    the measured comparison of <S>/V (lower wins) mark the branch -1 run metastable."""
+    from types import SimpleNamespace
+
+    from sigmasim.analysis.report import _branch, _branch_line, compare_branches
+    from sigmasim.config import config_from_dict
+
+    cfg = config_from_dict({"lattice": {"shape": [4, 4]},
+                            "model": {"nf": 3, "mass": 0.3, "kappa": 3.0, "theta": 2.8}})
+    runs = []
+    for name, k, act in (("a", 0, -5.0), ("b", -1, -4.9)):
+        om = np.full(50, np.exp(1j * (2.8 + 2 * np.pi * k) / 3) * 0.7)
+        ra = SimpleNamespace(cut=0, series={"action": SimpleNamespace(mean=act, error=0.01)},
+                             warnings=[], name=name, config=cfg, branch=None)
+        _branch(ra, {"omega_h": om}, cfg)
+        runs.append(ra)
+    compare_branches(runs)
+    a, b = runs
+    assert (a.branch["k"], a.branch["tree_status"]) == (0, "global")
+    assert (b.branch["k"], b.branch["tree_status"], b.branch["tree_global"]) == (-1, "metastable", [0])
+    assert b.branch["measured"].startswith("metastable") and "7.1 sigma" in b.branch["measured"]
+    assert a.branch["measured"].startswith("global")
+    assert "METASTABLE at tree level (global 0)" in _branch_line(b)
+    assert any("branch -1" in w for w in b.warnings) and not a.warnings
+
+
+def test_tunnelling_lines_use_the_branch_numbers_of_vacua():
+    """U(3) at theta = 2.8, every measurement at arg omega_h = (2.8 - 2 pi)/3: that is branch -1
+    (sigmasim.vacua convention), which the tunnelling table must print as -1, not 2."""
+    from types import SimpleNamespace
+
+    from sigmasim.analysis.report import _tunnelling_lines
+    from sigmasim.analysis.tunnelling import tunnelling_analysis
+
+    om = np.full(40, 0.7 * np.exp(1j * (2.8 - 2 * np.pi) / 3))
+    t = tunnelling_analysis(om, 2.8, 3, band=0.5, sweeps=np.arange(40))
+    ra = SimpleNamespace(tunnelling=t, config=SimpleNamespace(nf=3))
+    rows = {ln.split()[0]: ln.split()[1] for ln in _tunnelling_lines(ra)[3:6]}
+    assert rows == {"-1": "1.000", "0": "0.000", "1": "0.000"}
+    assert "branch -1 for" in "\n".join(_tunnelling_lines(ra))
+
+
+def test_phase_figure_marks_the_branch_of_the_run(run_file):
+    """The phase history says which branch the run sits in and whether it is global at tree level,
+    and its guide lines are the tree-level minima with the same branch numbers."""
+    import matplotlib.pyplot as plt
+
+    from sigmasim import vacua
+    from sigmasim.analysis.plots import plot_phase_history
+
+    ra = analyze_run(run_file, masses=False)
+    fig = plot_phase_history(ra)
+    ax = fig.axes[0]
+    b = ra.branch
+    assert ax.get_title().startswith(f"the run sits in branch k = {b['k']} (")
+    assert f"{b['tree_status']} at tree level" in ax.get_title()
+    labels = [t.get_text() for t in ax.get_legend().get_texts()]
+    guides = [t for t in labels if t.startswith("branch k=")]
+    assert guides and all("tree level" in t for t in guides)
+    for t in guides:  # the legend's k and arg agree with the convention
+        k = int(t.split("=")[1].split()[0])
+        a = float(t.rsplit("=", 1)[1])
+        assert vacua.branch_label(np.exp(1j * a), ra.config.theta, ra.config.nf) == k
+    plt.close(fig)

@@ -100,3 +100,50 @@ def test_multi_histogram_refuses_mixed_runs():
     b = run(0.5, 2, [4], 0.0, 20, kappa=0.7)
     with pytest.raises(ValueError, match="differ in kappa"):
         multi_histogram([a, b], [0.2])
+
+
+def _u3_branch_run(theta, k, seed, meas=1000):
+    cfg = config_from_dict({
+        "seed": seed, "lattice": {"shape": [4, 4, 4]},
+        "model": {"nf": 3, "beta": 3.0, "mass": 0.3, "kappa": 3.0, "theta": float(theta)},
+        "run": {"thermalize": 50, "measurements": meas, "start": "branch", "start_branch": k},
+    })
+    return simulate(cfg), cfg
+
+
+def test_reweighting_across_pi_into_an_unvisited_vacuum_is_refused():
+    """U(3), 4^3, beta 3, h 0.3, kappa 3 (tree level, sigmasim.vacua: first-order point at pi,
+    branch 0 global below, branch -1 above).  A run at theta = 3.0 sits in branch 0 throughout;
+    reweighted to 3.3 it gives Im omega_h > 0 with a Kish ESS above half the sample, while the
+    direct run at 3.3 in the global branch -1 has Im omega_h < 0 (measured: +0.61 with ESS 0.60
+    against -0.62).  The ESS cannot see this; the branch census does."""
+    import warnings
+
+    from sigmasim.analysis.reweighting import (UnvisitedVacuumError, UnvisitedVacuumWarning,
+                                               branch_census)
+
+    s, cfg = _u3_branch_run(3.0, 0, 1)
+    assert branch_census(s, cfg, 3.3) == {0: 1.0}
+    _, im = reweight_omega_h(s, cfg, 3.3, branch_check="off")
+    d, _ = _u3_branch_run(3.3, -1, 2)
+    direct = gamma_analysis(d["omega_h"].imag)
+    assert im.ess_fraction > 0.4                     # "healthy" ESS ...
+    assert im.value > 0 > direct.value + 4 * direct.error  # ... and the wrong sign
+    with pytest.raises(UnvisitedVacuumError, match="branch -1"):
+        reweight_omega_h(s, cfg, 3.3)
+    with pytest.warns(UnvisitedVacuumWarning):
+        re, _ = reweight_omega_h(s, cfg, 3.3, branch_check="warn")
+    assert re.warning and re.target_global == (-1,)
+    # on the same side of pi the run's branch is the global one: no complaint
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", UnvisitedVacuumWarning)
+        re, _ = reweight_omega_h(s, cfg, 3.1)
+    assert re.warning is None and re.target_global == (0,)
+    # multi-histogram from runs at 2.9 and 3.0 (both only in branch 0; a run at 3.1 on this
+    # small lattice already tunnels to branch -1, which the census would count as visited):
+    # 3.2 is flagged, 2.95 is not
+    s2, cfg2 = _u3_branch_run(2.9, 0, 3)
+    assert branch_census(s2, cfg2, 3.2) == {0: 1.0}
+    with pytest.warns(UnvisitedVacuumWarning, match="3.2"):
+        mh = multi_histogram([(s, cfg), (s2, cfg2)], [2.95, 3.2], theta_ref=3.0, n_boot=4)
+    assert mh.unreliable.tolist() == [False, True]

@@ -376,3 +376,95 @@ def test_input_validation():
         V.resolve_angles(2, 1.0, theta_m=0.2)
     with pytest.raises(ValueError):
         V.make_potential(1.0, nf=2, placement="nowhere")
+
+
+# ---------------------------------------------------------------------------
+# first-order points just above the threshold in kappa
+# ---------------------------------------------------------------------------
+
+# Derived here (tree level, degenerate masses h, Nf >= 2): at the CP-invariant
+# angle theta_c the symmetric vacuum e^{i theta_m} U = +-1 turns unstable and a
+# CP pair takes over for kappa > kappa_c = |h| / (2 Nf); checked numerically with
+# find_local_minima for Nf = 2..6.  theta_c = pi, except for h < 0 and odd Nf,
+# where h -> -h is theta -> theta + Nf pi, so theta_c = 0 (mod 2 pi).  Above
+# kappa_c the metastable windows shrink to zero at kappa_c, so a scan must
+# find the jump whatever its grid (a step that jumps onto the CP mirror of a
+# dying minimum must not count as continuation).
+def _theta_c(nf, h):
+    return 2 * PI if (h < 0 and nf % 2) else PI
+
+
+@pytest.mark.parametrize("nf", [2, 3, 4, 5, 6])
+@pytest.mark.parametrize("h", [1.0, -1.0])
+@pytest.mark.parametrize("ratio,offset", [(0.99, 0.03), (1.003, 0.03), (1.02, 0.0)])
+def test_first_order_point_just_above_threshold(nf, h, ratio, offset):
+    tc = _theta_c(nf, h)
+    kappa = abs(h) / (2 * nf) * ratio
+    # offset 0: tc is a grid point; otherwise it lies inside a grid interval
+    th = tc + offset + np.linspace(-0.5, 0.5, 5)
+    res = V.scan_theta([h] * nf, kappa, thetas=th, nf=nf)
+    fo = res.first_order
+    if ratio < 1:
+        assert fo == []
+        return
+    assert len(fo) == 1, fo
+    assert fo[0].theta == pytest.approx(tc, abs=1e-8)
+    lab = res.global_label
+    # the global branch changes by one step of k across the point (k -> k - 1)
+    assert V.canonical_branch(lab[0] - 1, nf) == lab[-1]
+
+
+# the command-line cases (default grid: 241 points over [0, 4 pi], pi on the grid)
+@pytest.mark.parametrize("nf,h,kappa", [(4, 1.0, 0.1275), (3, 1.0, 0.17), (3, 0.4, 0.068)])
+def test_first_order_point_cli_cases(nf, h, kappa):
+    th = np.linspace(0, 4 * PI, 241)[:121]  # [0, 2 pi] with the default spacing
+    res = V.scan_theta([h] * nf, kappa, thetas=th, nf=nf)
+    assert [p.theta for p in res.first_order] == pytest.approx([PI], abs=1e-9)
+    assert res.first_order[0].energy == pytest.approx(
+        V.find_local_minima(res.potential.with_theta(PI))[0].energy, abs=1e-9)
+    assert [(res.global_label[0], res.global_label[-1])] == [(0, -1 if nf > 2 else 1)]
+
+
+# the answer must not depend on the last bit of kappa
+def test_first_order_stable_under_last_bit():
+    th = np.linspace(0, 2 * PI, 121)
+    k = 0.1 * 1.01
+    a = V.scan_theta([1.0] * 5, k, thetas=th, nf=5)
+    b = V.scan_theta([1.0] * 5, np.nextafter(k, 1.0), thetas=th, nf=5)
+    assert [p.theta for p in a.first_order] == pytest.approx([PI], abs=1e-9)
+    assert [p.theta for p in b.first_order] == pytest.approx([PI], abs=1e-9)
+
+
+# A degenerate global CP pair at a CP-invariant grid point is a first-order
+# point, also at an end of the grid (h < 0, odd Nf: theta_c = 0).
+def test_degenerate_cp_pair_at_grid_end_is_first_order():
+    for th in (np.linspace(0.0, 1.0, 5), np.linspace(-1.0, 0.0, 5)):
+        res = V.scan_theta([-1.0] * 3, 0.3, thetas=th, nf=3)
+        assert [p.theta for p in res.first_order] == [0.0]
+        assert res.first_order[0].method in ("cp", "grid")
+
+
+# Branch numbers (convention of sigmasim.vacua): k modulo Nf in
+# -floor((Nf-1)/2) .. floor(Nf/2), arg omega_h nearest (theta + 2 pi k)/Nf.
+def test_branch_convention():
+    assert [list(V.branch_range(n)) for n in (1, 2, 3, 4)] == [[0], [0, 1], [-1, 0, 1],
+                                                                [-1, 0, 1, 2]]
+    assert V.canonical_branch(2, 3) == -1 and V.canonical_branch(-1, 2) == 1
+    for nf in range(1, 7):
+        for k in V.branch_range(nf):
+            for theta in (0.3, 2.8, 3.3, 8.0):
+                om = np.exp(1j * V.branch_phase(k, theta, nf))
+                assert V.branch_label(om, theta, nf) == k
+    # the metastable vacuum of U(3), h = 0.3, kappa = 3 at theta = 2.8 is branch -1 at
+    # arg omega_h = (2.8 - 2 pi)/3 = -1.161 (tree level: 0 is global)
+    pot = V.make_potential(0.3, 3.0, 2.8, nf=3)
+    st = V.branch_status(pot, -1)
+    assert st.status == "metastable" and st.global_branches == (0,)
+    assert V.branch_status(pot, 2).status == "metastable"
+    assert V.branch_status(pot, 0).status == "global"
+    assert V.branch_status(pot, 1).status == "no minimum"
+    assert V.branch_phase(-1, 2.8, 3) == pytest.approx(-1.161, abs=1e-3)
+    # at theta = pi above kappa_c the CP pair is 0 and -1
+    pot = V.make_potential(1.0, 0.1275, PI, nf=4)
+    assert V.branch_status(pot, -1).global_branches == (-1, 0)
+    assert V.branch_status(pot, 0).status == "global (degenerate)"

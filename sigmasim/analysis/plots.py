@@ -14,13 +14,19 @@ kappa the det term fixes ``nf alpha - theta = 2 pi k``, so branch ``k`` has
 
     V = e^{i (2 pi k + theta) / nf} 1,    arg Omega_h = (2 pi k + theta) / nf,
 
-``k = 0 .. nf-1`` (mod 2 pi), and the mass term ``-h nf cos alpha`` selects the
+``k`` modulo ``nf``, quoted in ``-floor((nf-1)/2) .. floor(nf/2)`` (the branch
+convention of :mod:`sigmasim.vacua`), and the mass term ``-h nf cos alpha`` selects the
 ``k`` with the smallest ``|2 pi k + theta|`` (for SU(nf) the same directions
 follow from the centre ``U = e^{2 pi i k / nf}`` and ``theta_m = theta / nf``).
 In the U frame this is ``arg Omega = (2 pi k - theta_a) / nf`` (the
 ``start = "branch"`` field of the config).  Checked numerically: U(2), theta = 2,
 kappa = 2, h = 0.3 gives ``arg Omega_h = 0.97`` for every theta placement
 (tree level 1.0; the mass term pulls towards 0).
+
+The figures draw the tree-level minima of the run's own potential from the vacuum solver
+(:func:`tree_guides`), labelled with their branch number and global/metastable; at small kappa
+they differ from the large-kappa directions (U(1), h = -0.2, kappa = 0.3, theta = 0.5: arg 0.72,
+not 0.5).
 """
 
 from __future__ import annotations
@@ -29,7 +35,7 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["branch_phases", "plot_phase_history", "plot_omega_plane", "plot_autocorrelation",
+__all__ = ["branch_phases", "tree_guides", "plot_phase_history", "plot_omega_plane", "plot_autocorrelation",
            "plot_effective_mass", "plot_dwell_times", "plot_all", "FIGURES"]
 
 FIGURES = ("phase_history", "omega_plane", "dwell_times", "autocorrelation", "effective_mass")
@@ -53,8 +59,32 @@ def branch_phases(nf: int, theta: float) -> np.ndarray:
 
 
 def _branch_k(nf, theta):
-    """The k of each wrapped phase, labelled in the legend."""
-    return list(range(nf))
+    """The branch number of each phase of :func:`branch_phases` (:mod:`sigmasim.vacua` convention)."""
+    from sigmasim.vacua import canonical_branch
+
+    return [canonical_branch(k, nf) for k in range(nf)]
+
+
+def tree_guides(config) -> list:
+    """Guide lines for arg Omega_h: ``(k, arg, text)`` per tree-level local minimum of the run.
+
+    The minima come from the vacuum solver (:func:`sigmasim.vacua.find_local_minima`) at the
+    run's couplings and theta, so they are right at finite kappa too (the large-kappa phases
+    ``(2 pi k + theta)/nf`` of :func:`branch_phases` are only the kappa -> infinity limit);
+    ``text`` says global or metastable.  Models without a tree-level potential (linear) get the
+    large-kappa directions, marked as such.
+    """
+    from sigmasim import vacua
+
+    pot = vacua.potential_of_config(config)
+    if pot is None:
+        return [(k, float(a), "large-kappa direction")
+                for k, a in zip(_branch_k(config.nf, config.theta), branch_phases(config.nf, config.theta))]
+    out = []
+    for v in vacua.find_local_minima(pot):
+        k = vacua.branch_label(v.omega_rot, config.theta, config.nf)
+        out.append((k, float(np.angle(v.omega_rot)), "global" if v.is_global else "metastable"))
+    return out
 
 
 def _title(fig, ra, what):
@@ -87,9 +117,9 @@ def plot_phase_history(ra, ax=None):
     om = ra.data["omega_h"]
     sw = ra.data["sweep"]
     ax.plot(sw, np.angle(om), ".", ms=2, color="C0", label=r"arg $\Omega_h$ per measurement")
-    for k, a in zip(_branch_k(c.nf, c.theta), branch_phases(c.nf, c.theta)):
-        ax.axhline(a, color=f"C{k + 1}", ls="--", lw=1.2,
-                   label=fr"branch k={k}: $(2\pi k+\theta)/N_f$ = {a:.3f}")
+    for k, a, what in tree_guides(c):
+        ax.axhline(a, color=f"C{k % 10 + 1}", ls="--", lw=1.2,
+                   label=f"branch k={k} ({what}, tree level): arg = {a:.3f}")
     if ra.cut:
         ax.axvline(sw[ra.cut], color="k", ls=":", lw=1, label=f"thermalisation cut ({ra.cut} meas.)")
     ax.set_ylim(-np.pi * 1.05, np.pi * 1.05)
@@ -99,6 +129,11 @@ def plot_phase_history(ra, ax=None):
         ax.set_xlabel("")
     ax.set_ylabel(r"arg $\Omega_h$,  $\Omega_h = e^{i\theta_m}\sum_x \mathrm{Tr}\,U_x/(N_f V)$")
     ax.legend(fontsize=7, loc="upper right", ncol=2, framealpha=0.85)
+    b = getattr(ra, "branch", None)
+    if b:
+        where = f", {b['tree_status']} at tree level" if b.get("tree_status") else ""
+        ax.set_title(f"the run sits in branch k = {b['k']} ({b['fraction']:.0%} of the measurements "
+                     f"after the cut{where})", fontsize=8)
     if fig is not None:
         _title(fig, ra, "phase of the condensate")
     return fig
@@ -106,14 +141,19 @@ def plot_phase_history(ra, ax=None):
 
 def _plot_index(ra, ax):
     """The vacuum index k per measurement (all measurements) with the tunnelling events."""
+    from sigmasim.vacua import branch_range, canonical_branch
+
     t = ra.tunnelling
+    nf = ra.config.nf
     sw = np.asarray(ra.data["sweep"])[:len(t.index)]
-    ax.step(sw, t.index, where="post", color="k", lw=0.9, label="vacuum index k")
+    idx = canonical_branch(np.asarray(t.index), nf)  # the vacua module's numbering
+    ax.step(sw, idx, where="post", color="k", lw=0.9, label="vacuum index k")
     ev = np.asarray(t.events, dtype=int)
     if ev.size:
-        ax.plot(sw[ev], t.index[ev], "v", color="C3", ms=4, label=f"tunnelling events ({t.n_events})")
-    ax.set_yticks(range(ra.config.nf))
-    ax.set_ylim(-0.5, ra.config.nf - 0.5)
+        ax.plot(sw[ev], idx[ev], "v", color="C3", ms=4, label=f"tunnelling events ({t.n_events})")
+    ks = branch_range(nf)
+    ax.set_yticks(list(ks))
+    ax.set_ylim(ks.start - 0.5, ks.stop - 0.5)
     ax.set_xlabel("sweep")
     ax.set_ylabel("branch k")
     ax.legend(fontsize=7, loc="upper right", framealpha=0.85)
@@ -161,11 +201,12 @@ def plot_omega_plane(ra, ax=None):
     r = 1.05
     phi = np.linspace(0, 2 * np.pi, 400)
     m = om.mean() if om.size else 0j
+    guides = tree_guides(c)
     for a_ in (ax, az):
         a_.plot(np.cos(phi), np.sin(phi), color="0.5", lw=0.8, label=r"$|\Omega_h| = 1$")
-        for k, a in zip(_branch_k(c.nf, c.theta), branch_phases(c.nf, c.theta)):
-            a_.plot([0, np.cos(a)], [0, np.sin(a)], ls="--", color=f"C{k + 1}", lw=1.2,
-                    label=fr"branch k={k}: arg = $(2\pi k+\theta)/N_f$ = {a:.3f}")
+        for k, a, what in guides:
+            a_.plot([0, np.cos(a)], [0, np.sin(a)], ls="--", color=f"C{k % 10 + 1}", lw=1.2,
+                    label=f"branch k={k} ({what}, tree level): arg = {a:.3f}")
         a_.set_xlabel(r"Re $\Omega_h$ ($\sigma$ direction)")
         a_.set_ylabel(r"Im $\Omega_h$ ($\eta'$ direction)")
     ax.hist2d(om.real, om.imag, bins=120, range=[[-r, r], [-r, r]], cmin=1, cmap="viridis")

@@ -62,6 +62,13 @@ Output files (next to the run file ``<dir>/<name>.h5``)
   (completed, per branch), ``censored_first``/``censored_last`` ([branch, sweeps]),
   ``exponential_fit`` (``tau_mle`` = sweeps / events with ``tau_mle_error`` and ``tau_interval``,
   ``tau_hist`` with error (completed dwells only), ``ks_pvalue``, ``n``);
+* ``branch``: ``k`` (majority branch number after the cut, :mod:`sigmasim.vacua` convention:
+  arg omega_h nearest ``(theta + 2 pi k)/nf``, ``k`` in ``-floor((nf-1)/2) .. floor(nf/2)``),
+  ``fraction``, ``tree_status`` (``global``, ``global (degenerate)``, ``metastable``, ``no
+  minimum``; null for models without a tree-level potential), ``tree_global`` (branches of the
+  tree-level global minimum), ``action_per_site`` with ``_error``, ``measured`` (when several
+  runs with the same couplings sit in different branches: global or metastable by their mean
+  action per site, with the difference in sigma; else null);
 * ``warnings``: list of strings (also printed in the table).
 
 NaN and infinities are written as ``null``.
@@ -193,6 +200,7 @@ class RunAnalysis:
     masses: dict = field(default_factory=dict)
     alpha: np.ndarray | None = None
     tunnelling: object | None = None  # TunnellingResult over all measurements (nf >= 2)
+    branch: dict | None = None  # branch number and global/metastable (see _branch)
     warnings: list = field(default_factory=list)
     data: dict = field(default_factory=dict)  # the cut series used (for plots), not serialised
 
@@ -410,6 +418,7 @@ def analyze_data(series: dict, slices: dict, config, *, status: str = "complete"
             float(g.tau_int_error), float(g.n_independent), int(g.window), int(g.n),
             "V var(phi2), Gamma method for the derived quantity")
     _tunnelling(ra, series, config, band)
+    _branch(ra, series, config)
     acc_m = ra.series.get("accept_metropolis")
     acc_p = ra.series.get("accept_phase")
     drift = reals.get("unitarity_drift")
@@ -451,6 +460,78 @@ def analyze_data(series: dict, slices: dict, config, *, status: str = "complete"
         ra.masses["sigma"].window_reason += (" [sigma = Re Tr W is a two-pion state at tree level;"
                                               " its cosh mass includes wrap-around terms]")
     return ra
+
+
+def _branch(ra: RunAnalysis, series: dict, config) -> None:
+    """Branch number of the run (majority after the cut, :mod:`sigmasim.vacua` convention) and its
+    tree-level standing; ``measured`` is filled by :func:`compare_branches` when several runs at
+    the same couplings are analysed together."""
+    from sigmasim import vacua
+
+    om = np.asarray(series["omega_h"])[ra.cut:]
+    k, frac = vacua.measured_branch(om, config.theta, config.nf)
+    pot = vacua.potential_of_config(config)
+    st = vacua.branch_status(pot, k) if pot is not None else None
+    act = ra.series.get("action")
+    ra.branch = {"k": k, "fraction": frac,
+                 "tree_status": st.status if st else None,
+                 "tree_global": list(st.global_branches) if st else None,
+                 "action_per_site": act.mean if act else None,
+                 "action_per_site_error": act.error if act else None,
+                 "measured": None}
+    if st is not None and st.status in ("metastable", "no minimum"):
+        g = ",".join(str(b) for b in st.global_branches)
+        ra.warnings.append(f"the run sits in branch {k}, which is {st.status} at tree level "
+                           f"(global: {g}); its averages are those of that branch")
+
+
+def _physics_key(config):
+    d = config.physics_dict()
+    d.pop("seed", None)
+    d.get("run", {}).pop("start", None)
+    d.get("run", {}).pop("start_branch", None)
+    d.get("run", {}).pop("thermalize", None)
+    d.get("run", {}).pop("measure_every", None)
+    return json.dumps(d, sort_keys=True)
+
+
+def compare_branches(analyses) -> None:
+    """Runs with the same couplings (theta included) sitting in different branches: the branch with
+    the lowest mean action per site is marked measured-global, the others metastable with the
+    action difference and its error (errors of independent runs added in quadrature)."""
+    groups: dict = {}
+    for ra in analyses:
+        if ra.branch is not None and ra.branch["action_per_site"] is not None:
+            groups.setdefault(_physics_key(ra.config), []).append(ra)
+    for runs in groups.values():
+        if len({ra.branch["k"] for ra in runs}) < 2:
+            continue
+        best = min(runs, key=lambda ra: ra.branch["action_per_site"])
+        b0 = best.branch
+        for ra in runs:
+            b = ra.branch
+            if b["k"] == b0["k"]:
+                b["measured"] = f"global among {len(runs)} runs (lowest action per site)"
+                continue
+            d = b["action_per_site"] - b0["action_per_site"]
+            e = math.hypot(b["action_per_site_error"] or 0.0, b0["action_per_site_error"] or 0.0)
+            nsig = d / e if e > 0 else float("inf")
+            b["measured"] = (f"metastable among {len(runs)} runs: <S>/V higher by {d:.4g} +- {e:.2g} "
+                             f"({nsig:.1f} sigma) than branch {b0['k']} ({best.name})")
+
+
+def _branch_line(ra: RunAnalysis) -> str | None:
+    b = ra.branch
+    if b is None:
+        return None
+    line = f"branch k = {b['k']} ({b['fraction']:.0%} of the measurements after the cut)"
+    if b["tree_status"] is not None:
+        g = ",".join(str(v) for v in b["tree_global"])
+        word = "METASTABLE" if b["tree_status"] == "metastable" else b["tree_status"]
+        line += f": {word} at tree level (global {g})"
+    if b["measured"]:
+        line += f"; measured: {b['measured']}"
+    return line + "  [k: arg Omega_h nearest (theta + 2 pi k)/nf]"
 
 
 def analyze_run(path, masses: bool = True, band: float = 0.5) -> RunAnalysis:
@@ -524,6 +605,8 @@ def format_table(analyses) -> str:
             if ra.alpha is not None and np.any(np.abs(ra.alpha) > 1e-3):
                 lines.append(f"  (operators in the vacuum-aligned frame, alpha_f = "
                              f"{', '.join(f'{a:.3f}' for a in ra.alpha)})")
+        if _branch_line(ra):
+            lines += ["", _branch_line(ra)]
         if ra.tunnelling is not None:
             lines += [""] + _tunnelling_lines(ra)
         for w in ra.warnings:
@@ -549,13 +632,17 @@ def _tunnelling_lines(ra: RunAnalysis) -> list[str]:
     else:
         lines.append(f"  tunnelling rate: {t.rate_text()}")
     head = f"  {'branch':<8}{'occupation':>12}{'dwells':>8}{'mean dwell':>14}{'escapes':>9}{'escape rate':>14}"
+    from sigmasim.vacua import branch_range, canonical_branch
+
     lines += [head]
-    for k in range(nf):
+    # the index series counts k modulo nf from 0; print k in the range of sigmasim.vacua
+    for kk in branch_range(nf):
+        k = kk % nf
         d = t.dwells_by_branch.get(k, np.array([]))
         md = fmt_err(d.mean(), d.std(ddof=1) / np.sqrt(len(d))) if len(d) > 1 else (
             f"{d[0]:.0f}" if len(d) == 1 else "-")
         ne, _, er = t.escape.get(k, (0, 0.0, float("nan")))
-        lines.append(f"  {k:<8}{t.occupation[k]:>12.3f}{len(d):>8}{md:>14}{ne:>9}{_f(er):>14}")
+        lines.append(f"  {kk:<8}{t.occupation[k]:>12.3f}{len(d):>8}{md:>14}{ne:>9}{_f(er):>14}")
     f = t.fit
     if f.n and t.counted:
         lines.append(f"  dwell times: censored maximum likelihood tau = sweeps / events = {f.tau_mle:.4g} "
@@ -565,7 +652,7 @@ def _tunnelling_lines(ra: RunAnalysis) -> list[str]:
     cens = [c for c in (t.censored_first, t.censored_last) if c is not None]
     if cens:
         lines.append("  first/last dwell (open at the series ends; in the exposure, not in the mean dwell column): "
-                     + ", ".join(f"branch {b} for {w:.0f} sweeps" for b, w in cens))
+                     + ", ".join(f"branch {canonical_branch(b, nf)} for {w:.0f} sweeps" for b, w in cens))
     return lines
 
 
@@ -630,6 +717,7 @@ def analysis_dict(ra: RunAnalysis) -> dict:
         "series": series, "acceptance": ra.acceptance, "masses": masses,
         "vacuum_alignment_phases": ra.alpha,
         "tunnelling": _tunnelling_dict(ra.tunnelling) if ra.tunnelling is not None else None,
+        "branch": ra.branch,
         "warnings": ra.warnings,
     })
 
@@ -721,8 +809,9 @@ def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = 
     data = [(p, open_run(p)) for p in resolved]
     analyses, written = [], []
     for p, d in data:
-        ra = analyze_data(d.series, d.slices, d.config, status=d.status, path=p, band=band)
-        analyses.append(ra)
+        analyses.append(analyze_data(d.series, d.slices, d.config, status=d.status, path=p, band=band))
+    compare_branches(analyses)
+    for (p, d), ra in zip(data, analyses):
         written += list(write_outputs(ra))
         if plot:
             from .plots import plot_all

@@ -22,7 +22,15 @@ and ``<O>_{theta'} = <O e^{-Delta S}>_theta / <e^{-Delta S}>_theta``,
 observable that itself depends on theta (``omega_h = e^{i theta_m} Omega``) is formed with the new
 ``theta_m'`` (:func:`reweight_omega_h`).  The effective sample size of the weights is Kish's
 ``(sum w)^2 / sum w^2`` (L. Kish, Survey Sampling, Wiley 1965); when it is a small fraction of the
-sample the result is not trustworthy.  Errors are blocked jackknife errors (blocks longer than the
+sample the result is not trustworthy.  A large ESS does *not* show that it is: the weights only
+reshuffle the configurations the run visited, so if the vacuum that dominates at the target angle is
+a branch the run never sat in (e.g. from theta = 3.0 in branch 0 to 3.2, past the first-order point
+at pi, where branch -1 is the global minimum) the result has the wrong sign with a healthy ESS.
+:func:`reweight` therefore compares the run's *branch census* (the branch numbers of
+:mod:`sigmasim.vacua`, each measurement labelled with ``omega_h`` formed at the target angle) with the
+tree-level global minimum at the target and refuses (``branch_check='refuse'``, default) or warns
+(``'warn'``) when no visited branch is global there; :func:`multi_histogram` flags such evaluation
+angles (``unreliable``) and warns.  Errors are blocked jackknife errors (blocks longer than the
 autocorrelation time are the caller's responsibility via ``n_blocks``).
 
 Multi-histogram: the Ferrenberg-Swendsen equations (A. M. Ferrenberg and R. H. Swendsen, Phys. Rev.
@@ -42,11 +50,13 @@ block bootstrap within each run.  This is a research toy, not a physical predict
 from __future__ import annotations
 
 import dataclasses
-from dataclasses import dataclass
+import warnings
+from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["theta_action", "delta_action", "kish_ess", "ReweightResult", "reweight",
+__all__ = ["theta_action", "delta_action", "kish_ess", "ReweightResult", "reweight", "branch_census",
+           "target_branch_check", "UnvisitedVacuumError", "UnvisitedVacuumWarning",
            "reweight_omega_h", "free_energy_shift", "MultiHistogramResult", "multi_histogram"]
 
 
@@ -112,6 +122,57 @@ class ReweightResult:
     n: int
     theta: float
     theta_run: float
+    census: dict = field(default_factory=dict)
+    target_global: tuple = ()
+    warning: str | None = None
+
+
+class UnvisitedVacuumError(ValueError):
+    """The run never visited the branch that is the global minimum at the target angle."""
+
+
+class UnvisitedVacuumWarning(UserWarning):
+    """As :class:`UnvisitedVacuumError`, issued instead of raising (``branch_check='warn'``)."""
+
+
+#: a branch counts as visited by a run when at least this fraction of its measurements sit in it
+MIN_BRANCH_FRACTION = 0.01
+
+
+def branch_census(series: dict, config, theta: float) -> dict:
+    """Fraction of the measurements in each branch (``{k: fraction}``), labelled at angle ``theta``.
+
+    Each measurement's ``omega_h`` is formed with the ``theta_m`` of ``theta`` from the recorded
+    per-flavour condensates, and numbered with :func:`sigmasim.vacua.branch_label` at ``theta``, so
+    a configuration keeps its branch when the angle moves continuously.
+    """
+    from sigmasim.vacua import branch_label
+
+    c = np.asarray(series["condensate"], dtype=np.complex128).reshape(-1, config.nf)
+    tm, _ = _angles(config, theta)
+    om = np.exp(1j * tm) * c.sum(axis=1) / config.nf
+    lab = np.atleast_1d(branch_label(om, theta, config.nf))
+    ks, counts = np.unique(lab, return_counts=True)
+    return {int(k): float(n) / len(lab) for k, n in zip(ks, counts)}
+
+
+def target_branch_check(census: dict, config, theta: float) -> tuple:
+    """``(target_global, message or None)``: None when a visited branch is the tree-level global
+    minimum at ``theta`` (or the model has no tree-level potential)."""
+    from sigmasim.vacua import find_local_minima, branch_label, potential_of_config
+
+    pot = potential_of_config(dataclasses.replace(config, theta=float(theta)))
+    if pot is None:
+        return (), None
+    glob = tuple(sorted({branch_label(v.omega_rot, theta, config.nf)
+                         for v in find_local_minima(pot) if v.is_global}))
+    visited = sorted(k for k, f in census.items() if f >= MIN_BRANCH_FRACTION)
+    if set(glob) & set(visited):
+        return glob, None
+    return glob, (f"reweighting to theta = {theta:g}: the run visited branch(es) "
+                  f"{', '.join(map(str, visited))} only, but the tree-level global minimum there is "
+                  f"branch {', '.join(map(str, glob))}; reweighting cannot reach a vacuum the run "
+                  "never sat in (the result can even have the wrong sign with a large ESS)")
 
 
 def _blocks(n, n_blocks):
@@ -134,7 +195,8 @@ def _jackknife_ratio(obs, log_w, n_blocks):
     return float(value), float(err)
 
 
-def reweight(series: dict, config, theta_new: float, observable, n_blocks: int = 50) -> ReweightResult:
+def reweight(series: dict, config, theta_new: float, observable, n_blocks: int = 50,
+             branch_check: str = "refuse") -> ReweightResult:
     """Single-histogram reweighting of a real observable to ``theta_new``.
 
     Parameters
@@ -146,18 +208,35 @@ def reweight(series: dict, config, theta_new: float, observable, n_blocks: int =
         A real series name (e.g. ``'action_beta'``) or the values themselves.
     n_blocks : int
         Jackknife blocks (each should be longer than the autocorrelation time).
+    branch_check : {'refuse', 'warn', 'off'}
+        What to do when no branch the run visited is the tree-level global minimum at
+        ``theta_new`` (module docstring): raise :class:`UnvisitedVacuumError`, or issue an
+        :class:`UnvisitedVacuumWarning` and set ``warning`` on the result.
     """
+    if branch_check not in ("refuse", "warn", "off"):
+        raise ValueError(f"branch_check must be 'refuse', 'warn' or 'off', got {branch_check!r}")
     obs = np.asarray(series[observable] if isinstance(observable, str) else observable, float).ravel()
     log_w = -delta_action(series, config, theta_new)
     if len(obs) != len(log_w):
         raise ValueError(f"observable has {len(obs)} samples, the series {len(log_w)}")
+    census, glob, msg = {}, (), None
+    if branch_check != "off":
+        census = branch_census(series, config, theta_new)
+        glob, msg = target_branch_check(census, config, theta_new)
+        if msg is not None and branch_check == "refuse":
+            raise UnvisitedVacuumError(msg)
+        if msg is not None:
+            warnings.warn(msg, UnvisitedVacuumWarning, stacklevel=2)
     value, err = _jackknife_ratio(obs, log_w, n_blocks)
     ess = kish_ess(log_w)
-    return ReweightResult(value, err, ess, ess / len(obs), len(obs), float(theta_new), config.theta)
+    return ReweightResult(value, err, ess, ess / len(obs), len(obs), float(theta_new), config.theta,
+                          census, glob, msg)
 
 
-def reweight_omega_h(series: dict, config, theta_new: float, n_blocks: int = 50):
-    """Reweighted ``<omega_h>`` at ``theta_new`` (formed with the new ``theta_m``).
+def reweight_omega_h(series: dict, config, theta_new: float, n_blocks: int = 50,
+                     branch_check: str = "refuse"):
+    """Reweighted ``<omega_h>`` at ``theta_new`` (formed with the new ``theta_m``); ``branch_check``
+    as in :func:`reweight`.
 
     Returns
     -------
@@ -166,8 +245,11 @@ def reweight_omega_h(series: dict, config, theta_new: float, n_blocks: int = 50)
     c = np.asarray(series["condensate"], dtype=np.complex128).reshape(-1, config.nf)
     tm, _ = _angles(config, theta_new)
     om = np.exp(1j * tm) * c.sum(axis=1) / config.nf
-    return (reweight(series, config, theta_new, om.real, n_blocks),
-            reweight(series, config, theta_new, om.imag, n_blocks))
+    re = reweight(series, config, theta_new, om.real, n_blocks, branch_check)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UnvisitedVacuumWarning)  # said once, for the real part
+        im = reweight(series, config, theta_new, om.imag, n_blocks, branch_check)
+    return re, im
 
 
 def free_energy_shift(series: dict, config, theta_new: float, n_blocks: int = 50):
@@ -203,6 +285,9 @@ class MultiHistogramResult:
         ``-ln Z(theta_j) + ln Z(theta_ref)`` at the run angles.
     iterations : int
     converged : bool
+    unreliable : bool array (m,)
+        True where no run visited the branch that is the tree-level global minimum at that theta
+        (module docstring); a warning lists them.
     """
 
     thetas: np.ndarray
@@ -212,6 +297,7 @@ class MultiHistogramResult:
     f_runs: np.ndarray
     iterations: int
     converged: bool
+    unreliable: np.ndarray | None = None
 
 
 def _check_compatible(configs):
@@ -295,4 +381,12 @@ def multi_histogram(runs, thetas, theta_ref: float = 0.0, *, n_boot: int = 100, 
             n_j.append(sum(len(c) for c in chosen))
         boots.append(estimate(np.concatenate(parts), np.array(n_j), f_full)[0])
     err = np.std(np.array(boots), axis=0, ddof=1) if n_boot >= 2 else np.full(len(thetas), np.nan)
-    return MultiHistogramResult(thetas, delta_f, err, run_thetas, f_runs, it, conv)
+    unreliable = np.zeros(len(thetas), bool)
+    for i, t in enumerate(thetas):
+        census = branch_census(pooled, cfg0, t)
+        unreliable[i] = target_branch_check(census, cfg0, t)[1] is not None
+    if unreliable.any():
+        warnings.warn("multi_histogram: no run visited the tree-level global branch at theta = "
+                      + ", ".join(f"{t:g}" for t in thetas[unreliable])
+                      + "; F(theta) there is not reliable", UnvisitedVacuumWarning, stacklevel=2)
+    return MultiHistogramResult(thetas, delta_f, err, run_thetas, f_runs, it, conv, unreliable)
