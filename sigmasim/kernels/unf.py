@@ -1,0 +1,400 @@
+"""Heatbath and overrelaxation for nf >= 2 (U(nf) and SU(nf)), vectorised across sites.
+
+The algorithms of :func:`sigmasim.kernels.general.heatbath` and
+:func:`~sigmasim.kernels.general.overrelax` (Cabibbo-Marinari SU(2) subgroups in the
+flavour order of :func:`~sigmasim.kernels.general.flavour_order`, then for U(nf) the
+U(1) phase step accepted with the determinant's Metropolis ratio), laid out as the
+nf = 3 Metropolis of :mod:`sigmasim.kernels.u3`: the rows of one colour are cut into
+chunks, the neighbour sums, U and W = U A of a chunk live in scratch with the sites
+innermost, and each step of the site update is one pass over the chunk's sites:
+
+- the neighbour sums (same order of additions as ``lattice.neighbours``), W = U A,
+  the SU(2) direction of a subgroup and the rotation of two rows of U and W are
+  branch-free loops over the sites, which LLVM vectorises;
+- the rejection loops (x0 of the SU(2) heatbath, the von Mises angle of the phase)
+  run site by site, each site from its own counters, so the numbers do not depend on
+  the chunking or the thread count.
+
+Local action as in :mod:`sigmasim.kernels.general`: ``A = M^dagger`` with
+``M = beta N + diag(conj hdiag)`` stored as its real parts (components ``a nf + b``)
+and imaginary parts (``nf^2 + a nf + b``).
+
+Counters of site x (``n0 = x * SITE_STRIDE``): subgroup number g of the order uses
+``n0 + g * SUB_STRIDE`` (+0, +1 the direction on the sphere, x0 attempts from +2),
+the phase step ``n0 + MAX_SUB * SUB_STRIDE`` (+0 the accept draw, von Mises attempts
+from +1); the overrelaxation draws only the phase step's accept at ``n0``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit, prange
+
+from sigmasim.kernels import tables
+from sigmasim.kernels.general import flavour_order
+from sigmasim.kernels.group import sample_su2_x0, von_mises_angle
+from sigmasim.kernels.serial import total, zeros_bool, zeros_int
+from sigmasim.kernels.u3 import CHUNK_SITES, _fast_rows
+from sigmasim.rng import SITE_STRIDE, uniform
+
+__all__ = ["local_unf", "local_unf_update", "MAX_SUB", "SUB_STRIDE"]
+
+MAX_SUB = 28  # subgroups of nf = 8
+SUB_STRIDE = np.uint64(1 << 19)  # MAX_SUB + 1 of them fit SITE_STRIDE = 2^24
+_ONE = np.uint64(1)
+_TWO = np.uint64(2)
+
+
+@njit(cache=True, inline="always")
+def _add_run(M, nc, dst, re, im, src, n, c):
+    """M[(c, nc + c), dst + i] += (re, im)[c, src + i] for i < n (unsigned indices: affine)."""
+    s = np.uint64(src)
+    d = np.uint64(dst)
+    for i in range(n):
+        q = s + np.uint64(i)
+        p = d + np.uint64(i)
+        M[c, p] += re[c, q]
+        M[nc + c, p] += im[c, q]
+
+
+@njit(cache=True, inline="always")
+def _fast_row(M, nc, b, re, im, rs, h, o, j0, w):
+    """The fastest-direction neighbours (+ before -) of the sites j0 .. j0 + w - 1 of one row
+    (chunk offset b, other colour's row at rs): :func:`u3._fast_row18` for nc components."""
+    ub = np.uint64(b)
+    urs = np.uint64(rs)
+    uh = np.uint64(h)
+    if o == 0:
+        i0 = 0
+        if j0 == 0:
+            for comp in range(nc):
+                M[comp, ub] = (M[comp, ub] + re[comp, urs]) + re[comp, urs + uh - _ONE]
+                M[nc + comp, ub] = (M[nc + comp, ub] + im[comp, urs]) + im[comp, urs + uh - _ONE]
+            i0 = 1
+        q0 = urs + np.uint64(j0)
+        for comp in range(nc):
+            for i in range(i0, w):
+                p = ub + np.uint64(i)
+                q = q0 + np.uint64(i)
+                M[comp, p] = (M[comp, p] + re[comp, q]) + re[comp, q - _ONE]
+                M[nc + comp, p] = (M[nc + comp, p] + im[comp, q]) + im[comp, q - _ONE]
+    else:
+        n1 = w
+        if j0 + w == h:
+            p = ub + np.uint64(w - 1)
+            for comp in range(nc):
+                M[comp, p] = (M[comp, p] + re[comp, urs]) + re[comp, urs + uh - _ONE]
+                M[nc + comp, p] = (M[nc + comp, p] + im[comp, urs]) + im[comp, urs + uh - _ONE]
+            n1 = w - 1
+        q0 = urs + np.uint64(j0)
+        for comp in range(nc):
+            for i in range(n1):
+                p = ub + np.uint64(i)
+                q = q0 + np.uint64(i)
+                M[comp, p] = (M[comp, p] + re[comp, q + _ONE]) + re[comp, q]
+                M[nc + comp, p] = (M[nc + comp, p] + im[comp, q + _ONE]) + im[comp, q]
+
+
+@njit(cache=True, inline="always")
+def _rot_rows(X, nf, nc, i, j, r0r, r0i, r1r, r1i, m):
+    """Rows i, j of X -> r (rows i, j), r = [[r0, r1], [-conj r1, conj r0]] per site."""
+    for b in range(nf):
+        ci = i * nf + b
+        cj = j * nf + b
+        for s in range(m):
+            xr = X[ci, s]
+            xi = X[nc + ci, s]
+            yr = X[cj, s]
+            yi = X[nc + cj, s]
+            ar = r0r[s]
+            ai = r0i[s]
+            br = r1r[s]
+            bi = r1i[s]
+            X[ci, s] = (ar * xr - ai * xi) + (br * yr - bi * yi)
+            X[nc + ci, s] = (ar * xi + ai * xr) + (br * yi + bi * yr)
+            X[cj, s] = (ar * yr + ai * yi) - (br * xr + bi * xi)
+            X[nc + cj, s] = (ar * yi - ai * yr) + (bi * xr - br * xi)
+
+
+@njit(cache=True)
+def _det_site(U, nf, nc, s, work):
+    """det of the nf x nf matrix of chunk site s (closed forms for nf = 2, 3; LU above)."""
+    if nf == 2:
+        ar = U[0, s]; ai = U[nc, s]; br = U[1, s]; bi = U[nc + 1, s]
+        cr = U[2, s]; ci = U[nc + 2, s]; dr = U[3, s]; di = U[nc + 3, s]
+        return complex((ar * dr - ai * di) - (br * cr - bi * ci), (ar * di + ai * dr) - (br * ci + bi * cr))
+    for a in range(nf):
+        for b in range(nf):
+            work[a, b] = complex(U[a * nf + b, s], U[nc + a * nf + b, s])
+    if nf == 3:
+        return (work[0, 0] * (work[1, 1] * work[2, 2] - work[1, 2] * work[2, 1])
+                - work[0, 1] * (work[1, 0] * work[2, 2] - work[1, 2] * work[2, 0])
+                + work[0, 2] * (work[1, 0] * work[2, 1] - work[1, 1] * work[2, 0]))
+    d = complex(1.0, 0.0)
+    for k in range(nf):
+        p = k
+        big = abs(work[k, k])
+        for r in range(k + 1, nf):
+            v = abs(work[r, k])
+            if v > big:
+                big = v
+                p = r
+        if big == 0.0:
+            return complex(0.0, 0.0)
+        if p != k:
+            for b in range(nf):
+                t = work[k, b]
+                work[k, b] = work[p, b]
+                work[p, b] = t
+            d = -d
+        piv = work[k, k]
+        d *= piv
+        for r in range(k + 1, nf):
+            f = work[r, k] / piv
+            for b in range(k + 1, nf):
+                work[r, b] -= f * work[k, b]
+    return d
+
+
+@njit(cache=True, parallel=True, error_model="numpy")
+def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special, hb, key, rows, nblk=0):
+    """One heatbath (``hb``) or overrelaxation update of every site of ``colour``, nf >= 2.
+
+    ``rnbr``, ``rpar``, ``h``: the lattice's row tables; ``hdiag`` complex (nf,);
+    ``k2r + i k2i = 2 kappa eta``; ``rows``/``nblk`` as in :func:`u3.metropolis_u3`
+    (the numbers depend on neither).  Returns the accepted phase steps (0 for SU(nf)).
+    """
+    nc = nf * nf
+    half = re.shape[1] // 2
+    nrows = rpar.shape[0]
+    start = colour * half
+    other = (1 - colour) * half
+    rows = min(rows, CHUNK_SITES // h)
+    if rows > 0:
+        nseg = 1
+        nch = (nrows + rows - 1) // rows
+    else:
+        nseg = (h + CHUNK_SITES - 1) // CHUNK_SITES
+        nch = nrows * nseg
+    perm = np.empty(nf, dtype=np.int64)
+    flavour_order(key, nf, perm)
+    acc = zeros_int(nch)
+    nblk = nch if nblk <= 0 else min(nch, nblk)
+    ff = zeros_bool(CHUNK_SITES)
+    fl = zeros_bool(CHUNK_SITES)
+    if rows > 0:
+        for g in range(rows):
+            ff[g * h] = True
+            fl[g * h + h - 1] = True
+    phase_base = np.uint64(MAX_SUB) * SUB_STRIDE
+    for blk in prange(nblk):
+        M = np.empty((2 * nc, CHUNK_SITES))
+        R = np.empty((2 * nc, CHUNK_SITES))
+        U = np.empty((2 * nc, CHUNK_SITES))
+        W = np.empty((2 * nc, CHUNK_SITES))
+        V = np.empty((6, CHUNK_SITES))  # per-site SU(2) data: A (2), B (2), alpha, x
+        Q = np.empty((4, CHUNK_SITES))  # the rotation r0, r1 per site
+        X = np.empty(CHUNK_SITES + 2 * h if rows > 0 else 1)
+        fo = np.empty(CHUNK_SITES, dtype=np.bool_)
+        work = np.empty((nf, nf), dtype=np.complex128)
+        for ch in range(blk * nch // nblk, (blk + 1) * nch // nblk):
+            if rows > 0:
+                r0 = ch * rows
+                r1 = min(nrows, r0 + rows)
+                j0 = 0
+                w = h
+            else:
+                r0 = ch // nseg
+                r1 = r0 + 1
+                j0 = (ch % nseg) * CHUNK_SITES
+                w = min(CHUNK_SITES, h - j0)
+            m = (r1 - r0) * w
+            c0 = start + r0 * h + j0
+            uc0 = np.uint64(c0)
+            na = 0
+            # ---- neighbour sums -> M = beta N + diag(conj h)
+            for comp in range(2 * nc):
+                for j in range(m):
+                    R[comp, j] = 0.0
+            for k in range(rnbr.shape[0]):
+                g = r0
+                while g < r1:
+                    g2 = g + 1
+                    while g2 < r1 and rnbr[k, g2] == rnbr[k, g2 - 1] + 1:
+                        g2 += 1
+                    for c in range(nc):
+                        _add_run(R, nc, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, (g2 - g) * w, c)
+                    g = g2
+            if rows > 0:
+                for g in range(r0, r1):
+                    o = (colour + rpar[g]) % 2 == 1
+                    b = (g - r0) * h
+                    for j in range(h):
+                        fo[b + j] = o
+                src = other + r0 * h
+                for comp in range(nc):
+                    _fast_rows(R[comp], M[comp], X, re[comp], src, m, h, fo, ff, fl)
+                    _fast_rows(R[nc + comp], M[nc + comp], X, im[comp], src, m, h, fo, ff, fl)
+            else:
+                for g in range(r0, r1):
+                    _fast_row(R, nc, (g - r0) * w, re, im, other + g * h, h, (colour + rpar[g]) % 2, j0, w)
+                for comp in range(2 * nc):
+                    for j in range(m):
+                        M[comp, j] = R[comp, j]
+            for comp in range(2 * nc):
+                for j in range(m):
+                    M[comp, j] *= beta
+            for a in range(nf):
+                hr = hdiag[a].real
+                hi = -hdiag[a].imag
+                for j in range(m):
+                    M[a * nf + a, j] += hr
+                    M[nc + a * nf + a, j] += hi
+            # ---- U and W = U A = U M^dagger
+            for comp in range(nc):
+                for j in range(m):
+                    q = uc0 + np.uint64(j)
+                    U[comp, j] = re[comp, q]
+                    U[nc + comp, j] = im[comp, q]
+            for a in range(nf):
+                for e in range(nf):
+                    cw = a * nf + e
+                    for j in range(m):
+                        W[cw, j] = 0.0
+                        W[nc + cw, j] = 0.0
+                    for c in range(nf):
+                        cu = a * nf + c
+                        cm = e * nf + c
+                        for j in range(m):
+                            ur = U[cu, j]
+                            ui = U[nc + cu, j]
+                            mr = M[cm, j]
+                            mi = M[nc + cm, j]
+                            W[cw, j] += ur * mr + ui * mi
+                            W[nc + cw, j] += ui * mr - ur * mi
+            # ---- SU(2) subgroups in the order of perm
+            g = 0
+            for pi in range(nf):
+                for pj in range(pi + 1, nf):
+                    i = perm[pi]
+                    jj = perm[pj]
+                    cii = i * nf + i
+                    cjj = jj * nf + jj
+                    cij = i * nf + jj
+                    cji = jj * nf + i
+                    if hb:
+                        for s in range(m):
+                            ar = 0.5 * (W[cii, s] + W[cjj, s])
+                            ai = 0.5 * (W[nc + cii, s] - W[nc + cjj, s])
+                            br = 0.5 * (W[cij, s] - W[cji, s])
+                            bi = 0.5 * (W[nc + cij, s] + W[nc + cji, s])
+                            k = np.sqrt(ar * ar + ai * ai + br * br + bi * bi)
+                            ik = 1.0 / k
+                            V[0, s] = ar * ik
+                            V[1, s] = ai * ik
+                            V[2, s] = br * ik
+                            V[3, s] = bi * ik
+                            V[4, s] = 2.0 * k
+                        gb = np.uint64(g) * SUB_STRIDE
+                        for s in range(m):
+                            n = (uc0 + np.uint64(s)) * SITE_STRIDE + gb
+                            if V[4, s] < 2e-300:
+                                V[5, s] = 2.0  # no field in this subgroup: r = 1 below
+                            else:
+                                x0, _ = sample_su2_x0(V[4, s], key, n + _TWO)
+                                V[5, s] = x0
+                        for s in range(m):
+                            n = (uc0 + np.uint64(s)) * SITE_STRIDE + gb
+                            u = uniform(key, n)
+                            v = uniform(key, n + _ONE)
+                            x0 = V[5, s]
+                            one = x0 > 1.5
+                            x0 = 1.0 if one else x0
+                            rr2 = max(0.0, 1.0 - x0 * x0)
+                            rr = np.sqrt(rr2)
+                            c3 = 2.0 * u - 1.0
+                            rs = rr * np.sqrt(max(0.0, 1.0 - c3 * c3))
+                            ph = np.pi * (2.0 * v - 1.0)
+                            x1 = rs * np.cos(ph)
+                            x2 = rs * np.sin(ph)
+                            x3 = rr * c3
+                            Ar = 1.0 if one else V[0, s]
+                            Ai = 0.0 if one else V[1, s]
+                            Br = 0.0 if one else V[2, s]
+                            Bi = 0.0 if one else V[3, s]
+                            # r = X V^dagger, X = [[p, q], [-conj q, conj p]], p = x0 + i x3, q = x2 + i x1
+                            Q[0, s] = (x0 * Ar + x3 * Ai) + (x2 * Br + x1 * Bi)
+                            Q[1, s] = (x3 * Ar - x0 * Ai) + (x1 * Br - x2 * Bi)
+                            Q[2, s] = (x2 * Ar - x1 * Ai) + (x3 * Bi - x0 * Br)
+                            Q[3, s] = (x2 * Ai + x1 * Ar) - (x0 * Bi + x3 * Br)
+                    else:
+                        for s in range(m):
+                            ar = 0.5 * (W[cii, s] + W[cjj, s])
+                            ai = 0.5 * (W[nc + cii, s] - W[nc + cjj, s])
+                            br = 0.5 * (W[cij, s] - W[cji, s])
+                            bi = 0.5 * (W[nc + cij, s] + W[nc + cji, s])
+                            k2 = ar * ar + ai * ai + br * br + bi * bi
+                            tiny = k2 < 1e-300
+                            # r = (V^dagger)^2 = [[f conj a / ... ]]: r0 = f a* - 1, r1 = -f b, f = 2 Re a / k^2
+                            f = 0.0 if tiny else (ar + ar) / k2
+                            Q[0, s] = 1.0 if tiny else f * ar - 1.0
+                            Q[1, s] = -f * ai
+                            Q[2, s] = -f * br
+                            Q[3, s] = -f * bi
+                    _rot_rows(U, nf, nc, i, jj, Q[0], Q[1], Q[2], Q[3], m)
+                    _rot_rows(W, nf, nc, i, jj, Q[0], Q[1], Q[2], Q[3], m)
+                    g += 1
+            # ---- U(nf): the phase step, accepted with the determinant's Metropolis ratio
+            if not special:
+                for s in range(m):
+                    zr = 0.0
+                    zi = 0.0
+                    for a in range(nf):
+                        zr += W[a * nf + a, s]
+                        zi += W[nc + a * nf + a, s]
+                    kz = np.sqrt(zr * zr + zi * zi)
+                    n = (uc0 + np.uint64(s)) * SITE_STRIDE
+                    if hb:
+                        n += phase_base
+                        c, sn, _ = von_mises_angle(kz, key, n + _ONE)
+                        e = complex(c, sn)
+                        if kz > 1e-300:
+                            e = e * complex(zr, -zi) / kz
+                    else:
+                        if not kz > 1e-300:
+                            continue
+                        e = complex(zr, -zi) / kz
+                        e = e * e
+                    d = _det_site(U, nf, nc, s, work)
+                    en = e ** nf
+                    dnew = en * d
+                    dd = dnew - d
+                    ds = -(k2r * dd.real - k2i * dd.imag)
+                    uacc = uniform(key, n)
+                    if ds <= 0.0 or uacc < np.exp(-ds):
+                        er = e.real
+                        ei = e.imag
+                        for comp in range(nc):
+                            xr = U[comp, s]
+                            xi = U[nc + comp, s]
+                            U[comp, s] = er * xr - ei * xi
+                            U[nc + comp, s] = er * xi + ei * xr
+                        na += 1
+            for comp in range(nc):
+                for j in range(m):
+                    q = uc0 + np.uint64(j)
+                    re[comp, q] = U[comp, j]
+                    im[comp, q] = U[nc + comp, j]
+            acc[ch] = na
+    return total(acc)
+
+
+@njit(cache=True)
+def local_unf_update(re, im, rnbr, rpar, h, nf, beta, hdiag, k2r, k2i, special, hb, seed_hash, step, rows, nblk):
+    """One heatbath or overrelaxation update of both colours in one call: colour ``c`` is colour
+    update ``step + c`` with key ``step_key(seed, step + c)``.  Returns the accepted phase steps."""
+    acc = 0
+    for colour in range(2):
+        key = tables.step_key_nb(seed_hash, step + colour, 0)
+        acc += local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special, hb, key, rows, nblk)
+    return acc
