@@ -34,7 +34,8 @@ from sigmasim.kernels import tables
 from sigmasim.kernels.general import flavour_order
 from sigmasim.kernels.group import sample_su2_x0, von_mises_angle
 from sigmasim.kernels.serial import total, zeros_bool, zeros_int
-from sigmasim.kernels.u3 import CHUNK_SITES, _fast_rows
+from sigmasim.kernels.simd import exp_le0
+from sigmasim.kernels.u3 import CHUNK_SITES, _det3, _fast_rows
 from sigmasim.rng import SITE_STRIDE, uniform
 
 __all__ = ["local_unf", "local_unf_update", "MAX_SUB", "SUB_STRIDE"]
@@ -114,6 +115,24 @@ def _rot_rows(X, nf, nc, i, j, r0r, r0i, r1r, r1i, m):
             X[nc + ci, s] = (ar * xi + ai * xr) + (br * yi + bi * yr)
             X[cj, s] = (ar * yr + ai * yi) - (br * xr + bi * xi)
             X[nc + cj, s] = (ar * yi - ai * yr) + (bi * xr - br * xi)
+
+
+@njit(cache=True, inline="always")
+def _det_rows(U, nf, nc, V, m):
+    """V[3] + i V[4] = det of every chunk site, nf = 2 or 3 (closed forms, vectorised)."""
+    if nf == 2:
+        for s in range(m):
+            ar = U[0, s]; ai = U[nc, s]; br = U[1, s]; bi = U[nc + 1, s]
+            cr = U[2, s]; ci = U[nc + 2, s]; dr = U[3, s]; di = U[nc + 3, s]
+            V[3, s] = (ar * dr - ai * di) - (br * cr - bi * ci)
+            V[4, s] = (ar * di + ai * dr) - (br * ci + bi * cr)
+    else:
+        for s in range(m):
+            dr, di = _det3(U[0, s], U[9, s], U[1, s], U[10, s], U[2, s], U[11, s],
+                           U[3, s], U[12, s], U[4, s], U[13, s], U[5, s], U[14, s],
+                           U[6, s], U[15, s], U[7, s], U[16, s], U[8, s], U[17, s])
+            V[3, s] = dr
+            V[4, s] = di
 
 
 @njit(cache=True)
@@ -346,40 +365,75 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
                     g += 1
             # ---- U(nf): the phase step, accepted with the determinant's Metropolis ratio
             if not special:
+                # z = Tr W; the proposal e (hb: von Mises around conj z, or: (conj z / |z|)^2)
                 for s in range(m):
                     zr = 0.0
                     zi = 0.0
                     for a in range(nf):
                         zr += W[a * nf + a, s]
                         zi += W[nc + a * nf + a, s]
-                    kz = np.sqrt(zr * zr + zi * zi)
-                    n = (uc0 + np.uint64(s)) * SITE_STRIDE
+                    V[0, s] = zr
+                    V[1, s] = zi
+                    V[2, s] = np.sqrt(zr * zr + zi * zi)
+                if hb:
+                    for s in range(m):
+                        n = (uc0 + np.uint64(s)) * SITE_STRIDE + phase_base
+                        c, sn, _ = von_mises_angle(V[2, s], key, n + _ONE)
+                        Q[0, s] = c
+                        Q[1, s] = sn
+                for s in range(m):
+                    kz = V[2, s]
+                    big = kz > 1e-300
+                    ik = 1.0 / kz if big else 0.0
+                    cr = V[0, s] * ik
+                    ci = -V[1, s] * ik
                     if hb:
-                        n += phase_base
-                        c, sn, _ = von_mises_angle(kz, key, n + _ONE)
-                        e = complex(c, sn)
-                        if kz > 1e-300:
-                            e = e * complex(zr, -zi) / kz
+                        c = Q[0, s]
+                        sn = Q[1, s]
+                        er = c * cr - sn * ci if big else c
+                        ei = c * ci + sn * cr if big else sn
                     else:
-                        if not kz > 1e-300:
-                            continue
-                        e = complex(zr, -zi) / kz
-                        e = e * e
-                    d = _det_site(U, nf, nc, s, work)
-                    en = e ** nf
-                    dnew = en * d
-                    dd = dnew - d
-                    ds = -(k2r * dd.real - k2i * dd.imag)
-                    uacc = uniform(key, n)
-                    if ds <= 0.0 or uacc < np.exp(-ds):
-                        er = e.real
-                        ei = e.imag
-                        for comp in range(nc):
-                            xr = U[comp, s]
-                            xi = U[nc + comp, s]
-                            U[comp, s] = er * xr - ei * xi
-                            U[nc + comp, s] = er * xi + ei * xr
-                        na += 1
+                        er = cr * cr - ci * ci if big else 1.0
+                        ei = 2.0 * cr * ci if big else 0.0
+                    Q[0, s] = er
+                    Q[1, s] = ei
+                    Q[2, s] = er
+                    Q[3, s] = ei
+                for t in range(nf - 1):  # Q[2] + i Q[3] = e^nf
+                    for s in range(m):
+                        pr = Q[2, s]
+                        pi_ = Q[3, s]
+                        Q[2, s] = pr * Q[0, s] - pi_ * Q[1, s]
+                        Q[3, s] = pr * Q[1, s] + pi_ * Q[0, s]
+                if nf == 2 or nf == 3:
+                    _det_rows(U, nf, nc, V, m)
+                else:
+                    for s in range(m):
+                        d = _det_site(U, nf, nc, s, work)
+                        V[3, s] = d.real
+                        V[4, s] = d.imag
+                pb = phase_base if hb else np.uint64(0)
+                for s in range(m):
+                    dr = V[3, s]
+                    di = V[4, s]
+                    ddr = (Q[2, s] * dr - Q[3, s] * di) - dr
+                    ddi = (Q[2, s] * di + Q[3, s] * dr) - di
+                    mds = k2r * ddr - k2i * ddi  # -dS
+                    uacc = uniform(key, (uc0 + np.uint64(s)) * SITE_STRIDE + pb)
+                    ok = uacc < exp_le0(min(mds, 0.0))
+                    if not hb:
+                        ok = ok and V[2, s] > 1e-300
+                    V[5, s] = 1.0 if ok else 0.0
+                    na += np.int64(ok)
+                for comp in range(nc):
+                    for s in range(m):
+                        ok = V[5, s] != 0.0
+                        er = Q[0, s] if ok else 1.0
+                        ei = Q[1, s] if ok else 0.0
+                        xr = U[comp, s]
+                        xi = U[nc + comp, s]
+                        U[comp, s] = er * xr - ei * xi
+                        U[nc + comp, s] = er * xi + ei * xr
             for comp in range(nc):
                 for j in range(m):
                     q = uc0 + np.uint64(j)
