@@ -103,3 +103,26 @@ def test_heatbath_overrelaxation_agree_with_metropolis(nf, group):
             continue
         ga, gb = gamma_analysis(a[:, k]), gamma_analysis(b[:, k])
         assert abs(ga.value - gb.value) < 4 * np.hypot(ga.error, gb.error), (k, ga, gb)
+
+
+@pytest.mark.parametrize("shape", [(4, 4, 4), (8,), (2, 260), (2, 4, 2, 2)])
+def test_metropolis_u2_chunking_and_blocks_do_not_change_the_numbers(shape):
+    from sigmasim.kernels.unf import metropolis_u2, pack_table2
+    from sigmasim.updates import proposal_table
+
+    lat = make_lattice(shape)
+    hdiag = np.array([0.2 + 0.1j, -0.1 + 0.05j])
+    table, tdet = proposal_table(2, False, 0.8, 123)
+    tab = np.empty((10, 16))
+    pack_table2(table, tdet, tab)
+    out = []
+    for rows, nblk in ((rows_per_chunk3(lat.row_len_half), 1), (0, 3), (1, 2)):
+        re, im = _random_field(lat, 2, 5)
+        acc = [metropolis_u2(re, im, lat.row_neighbours, lat.row_parity, lat.row_len_half, step % 2, 0.6, hdiag,
+                             0.3, 0.1, tab, 4, np.uint64(9 + step), rows, nblk) for step in range(3)]
+        out.append((re, im, acc))
+    for re, im, acc in out[1:]:
+        np.testing.assert_array_equal(re, out[0][0])
+        np.testing.assert_array_equal(im, out[0][1])
+        assert acc == out[0][2]
+    assert 0 < sum(out[0][2]) < 3 * 4 * lat.half

@@ -34,11 +34,12 @@ from sigmasim.kernels import tables
 from sigmasim.kernels.general import flavour_order
 from sigmasim.kernels.group import sample_su2_x0, von_mises_angle
 from sigmasim.kernels.serial import total, zeros_bool, zeros_int
-from sigmasim.kernels.simd import exp_le0
+from sigmasim.kernels.simd import exp_le0, lookup16, u01_from_bits
 from sigmasim.kernels.u3 import CHUNK_SITES, _det3, _fast_rows
-from sigmasim.rng import SITE_STRIDE, uniform
+from sigmasim.rng import SITE_STRIDE, bits, uniform
 
-__all__ = ["local_unf", "local_unf_update", "MAX_SUB", "SUB_STRIDE"]
+__all__ = ["local_unf", "local_unf_update", "metropolis_u2", "metropolis_u2_update", "pack_table2", "MAX_SUB",
+           "SUB_STRIDE"]
 
 MAX_SUB = 28  # subgroups of nf = 8
 SUB_STRIDE = np.uint64(1 << 19)  # MAX_SUB + 1 of them fit SITE_STRIDE = 2^24
@@ -175,6 +176,51 @@ def _det_site(U, nf, nc, s, work):
     return d
 
 
+@njit(cache=True, inline="always")
+def _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, hdiag, rows, r0, r1, j0, w, m,
+                 other):
+    """M[:, :m] = beta N + diag(conj hdiag) of the chunk's sites (rows r0..r1, sites j0..j0+w of
+    each), components a nf + b (real) and nf^2 + a nf + b (imaginary); R, X, fo: scratch."""
+    nc = nf * nf
+    for comp in range(2 * nc):
+        for j in range(m):
+            R[comp, j] = 0.0
+    for k in range(rnbr.shape[0]):
+        g = r0
+        while g < r1:
+            g2 = g + 1
+            while g2 < r1 and rnbr[k, g2] == rnbr[k, g2 - 1] + 1:
+                g2 += 1
+            for c in range(nc):
+                _add_run(R, nc, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, (g2 - g) * w, c)
+            g = g2
+    if rows > 0:
+        for g in range(r0, r1):
+            o = (colour + rpar[g]) % 2 == 1
+            b = (g - r0) * h
+            for j in range(h):
+                fo[b + j] = o
+        src = other + r0 * h
+        for comp in range(nc):
+            _fast_rows(R[comp], M[comp], X, re[comp], src, m, h, fo, ff, fl)
+            _fast_rows(R[nc + comp], M[nc + comp], X, im[comp], src, m, h, fo, ff, fl)
+    else:
+        for g in range(r0, r1):
+            _fast_row(R, nc, (g - r0) * w, re, im, other + g * h, h, (colour + rpar[g]) % 2, j0, w)
+        for comp in range(2 * nc):
+            for j in range(m):
+                M[comp, j] = R[comp, j]
+    for comp in range(2 * nc):
+        for j in range(m):
+            M[comp, j] *= beta
+    for a in range(nf):
+        hr = hdiag[a].real
+        hi = -hdiag[a].imag
+        for j in range(m):
+            M[a * nf + a, j] += hr
+            M[nc + a * nf + a, j] += hi
+
+
 @njit(cache=True, parallel=True, error_model="numpy")
 def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special, hb, key, rows, nblk=0):
     """One heatbath (``hb``) or overrelaxation update of every site of ``colour``, nf >= 2.
@@ -232,43 +278,8 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
             uc0 = np.uint64(c0)
             na = 0
             # ---- neighbour sums -> M = beta N + diag(conj h)
-            for comp in range(2 * nc):
-                for j in range(m):
-                    R[comp, j] = 0.0
-            for k in range(rnbr.shape[0]):
-                g = r0
-                while g < r1:
-                    g2 = g + 1
-                    while g2 < r1 and rnbr[k, g2] == rnbr[k, g2 - 1] + 1:
-                        g2 += 1
-                    for c in range(nc):
-                        _add_run(R, nc, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, (g2 - g) * w, c)
-                    g = g2
-            if rows > 0:
-                for g in range(r0, r1):
-                    o = (colour + rpar[g]) % 2 == 1
-                    b = (g - r0) * h
-                    for j in range(h):
-                        fo[b + j] = o
-                src = other + r0 * h
-                for comp in range(nc):
-                    _fast_rows(R[comp], M[comp], X, re[comp], src, m, h, fo, ff, fl)
-                    _fast_rows(R[nc + comp], M[nc + comp], X, im[comp], src, m, h, fo, ff, fl)
-            else:
-                for g in range(r0, r1):
-                    _fast_row(R, nc, (g - r0) * w, re, im, other + g * h, h, (colour + rpar[g]) % 2, j0, w)
-                for comp in range(2 * nc):
-                    for j in range(m):
-                        M[comp, j] = R[comp, j]
-            for comp in range(2 * nc):
-                for j in range(m):
-                    M[comp, j] *= beta
-            for a in range(nf):
-                hr = hdiag[a].real
-                hi = -hdiag[a].imag
-                for j in range(m):
-                    M[a * nf + a, j] += hr
-                    M[nc + a * nf + a, j] += hi
+            _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, hdiag, rows, r0, r1,
+                         j0, w, m, other)
             # ---- U and W = U A = U M^dagger
             for comp in range(nc):
                 for j in range(m):
@@ -451,4 +462,163 @@ def local_unf_update(re, im, rnbr, rpar, h, nf, beta, hdiag, k2r, k2i, special, 
     for colour in range(2):
         key = tables.step_key_nb(seed_hash, step + colour, 0)
         acc += local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special, hb, key, rows, nblk)
+    return acc
+
+
+# ----------------------------------------------------------------------------- nf = 2 Metropolis
+TABLE_ENTRIES = 16
+
+
+@njit(cache=True)
+def pack_table2(table, tdet, out):
+    """(16, 2, 2) complex table and its dets -> ``out`` float64 (10, 16): re R[a, b] at 2a + b,
+    im at 4 + 2a + b, det at 8, 9."""
+    for k in range(table.shape[0]):
+        for a in range(2):
+            for b in range(2):
+                out[2 * a + b, k] = table[k, a, b].real
+                out[4 + 2 * a + b, k] = table[k, a, b].imag
+        out[8, k] = tdet[k].real
+        out[9, k] = tdet[k].imag
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _hit2(W, M, D, T, uu, j, k2r, k2i):
+    """One Metropolis hit on chunk site j (nf = 2): V = R U, accept test, branch-free select."""
+    u0r = W[0, j]; u1r = W[1, j]; u2r = W[2, j]; u3r = W[3, j]
+    u0i = W[4, j]; u1i = W[5, j]; u2i = W[6, j]; u3i = W[7, j]
+    r0r = T[0, j]; r1r = T[1, j]; r2r = T[2, j]; r3r = T[3, j]
+    r0i = T[4, j]; r1i = T[5, j]; r2i = T[6, j]; r3i = T[7, j]
+    v0r = (r0r * u0r - r0i * u0i) + (r1r * u2r - r1i * u2i)
+    v0i = (r0r * u0i + r0i * u0r) + (r1r * u2i + r1i * u2r)
+    v1r = (r0r * u1r - r0i * u1i) + (r1r * u3r - r1i * u3i)
+    v1i = (r0r * u1i + r0i * u1r) + (r1r * u3i + r1i * u3r)
+    v2r = (r2r * u0r - r2i * u0i) + (r3r * u2r - r3i * u2i)
+    v2i = (r2r * u0i + r2i * u0r) + (r3r * u2i + r3i * u2r)
+    v3r = (r2r * u1r - r2i * u1i) + (r3r * u3r - r3i * u3i)
+    v3i = (r2r * u1i + r2i * u1r) + (r3r * u3i + r3i * u3r)
+    e0 = (v0r - u0r) * M[0, j] + (v0i - u0i) * M[4, j]
+    e1 = (v1r - u1r) * M[1, j] + (v1i - u1i) * M[5, j]
+    e2 = (v2r - u2r) * M[2, j] + (v2i - u2i) * M[6, j]
+    e3 = (v3r - u3r) * M[3, j] + (v3i - u3i) * M[7, j]
+    dtr = (e0 + e1) + (e2 + e3)
+    dr = D[0, j]
+    di = D[1, j]
+    tr = T[8, j]
+    ti = T[9, j]
+    nr = tr * dr - ti * di
+    ni = tr * di + ti * dr
+    mds = dtr + (k2r * (nr - dr) - k2i * (ni - di))
+    ok = uu[j] < exp_le0(min(mds, 0.0))
+    W[0, j] = v0r if ok else u0r
+    W[1, j] = v1r if ok else u1r
+    W[2, j] = v2r if ok else u2r
+    W[3, j] = v3r if ok else u3r
+    W[4, j] = v0i if ok else u0i
+    W[5, j] = v1i if ok else u1i
+    W[6, j] = v2i if ok else u2i
+    W[7, j] = v3i if ok else u3i
+    D[0, j] = nr if ok else dr
+    D[1, j] = ni if ok else di
+    return np.int64(ok)
+
+
+@njit(cache=True, parallel=True, error_model="numpy")
+def metropolis_u2(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhits, key, rows, nblk=0):
+    """Metropolis for nf = 2 on every site of ``colour`` (the algorithm and draws of
+    :func:`u3.metropolis_u3`: hit h of site x uses ``bits(key, x * SITE_STRIDE + h)``, low 4 bits
+    the entry of ``tab`` (:func:`pack_table2`), top 53 bits the accept uniform); returns the
+    accepted hits."""
+    nf = 2
+    half = re.shape[1] // 2
+    nrows = rpar.shape[0]
+    start = colour * half
+    other = (1 - colour) * half
+    mask = np.uint64(TABLE_ENTRIES - 1)
+    rows = min(rows, CHUNK_SITES // h)
+    if rows > 0:
+        nseg = 1
+        nch = (nrows + rows - 1) // rows
+    else:
+        nseg = (h + CHUNK_SITES - 1) // CHUNK_SITES
+        nch = nrows * nseg
+    acc = zeros_int(nch)
+    nblk = nch if nblk <= 0 else min(nch, nblk)
+    ff = zeros_bool(CHUNK_SITES)
+    fl = zeros_bool(CHUNK_SITES)
+    if rows > 0:
+        for g in range(rows):
+            ff[g * h] = True
+            fl[g * h + h - 1] = True
+    for blk in prange(nblk):
+        M = np.empty((8, CHUNK_SITES))
+        R = np.empty((8, CHUNK_SITES))
+        W = np.empty((8, CHUNK_SITES))
+        D = np.empty((2, CHUNK_SITES))
+        T = np.empty((10, CHUNK_SITES))
+        uu = np.empty(CHUNK_SITES)
+        ix = np.empty(CHUNK_SITES, dtype=np.int64)
+        X = np.empty(CHUNK_SITES + 2 * h if rows > 0 else 1)
+        fo = np.empty(CHUNK_SITES, dtype=np.bool_)
+        for ch in range(blk * nch // nblk, (blk + 1) * nch // nblk):
+            if rows > 0:
+                r0 = ch * rows
+                r1 = min(nrows, r0 + rows)
+                j0 = 0
+                w = h
+            else:
+                r0 = ch // nseg
+                r1 = r0 + 1
+                j0 = (ch % nseg) * CHUNK_SITES
+                w = min(CHUNK_SITES, h - j0)
+            m = (r1 - r0) * w
+            c0 = start + r0 * h + j0
+            uc0 = np.uint64(c0)
+            _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, hdiag, rows, r0, r1,
+                         j0, w, m, other)
+            for comp in range(4):
+                for j in range(m):
+                    q = uc0 + np.uint64(j)
+                    W[comp, j] = re[comp, q]
+                    W[4 + comp, j] = im[comp, q]
+            for j in range(m):
+                ar = W[0, j]; ai = W[4, j]; br = W[1, j]; bi = W[5, j]
+                cr = W[2, j]; ci = W[6, j]; dr = W[3, j]; di = W[7, j]
+                D[0, j] = (ar * dr - ai * di) - (br * cr - bi * ci)
+                D[1, j] = (ar * di + ai * dr) - (br * ci + bi * cr)
+            na = 0
+            for hit in range(nhits):
+                hh = np.uint64(hit)
+                for j in range(m):
+                    bb = bits(key, (uc0 + np.uint64(j)) * SITE_STRIDE + hh)
+                    ix[j] = np.int64(bb & mask)
+                    uu[j] = u01_from_bits(bb)
+                for j8 in range(0, m, 8):
+                    lookup16(tab, ix, T, 10, j8)
+                for j in range(m):
+                    na += _hit2(W, M, D, T, uu, j, k2r, k2i)
+            for comp in range(4):
+                for j in range(m):
+                    q = uc0 + np.uint64(j)
+                    re[comp, q] = W[comp, j]
+                    im[comp, q] = W[4 + comp, j]
+            acc[ch] = na
+    return total(acc)
+
+
+@njit(cache=True)
+def metropolis_u2_update(re, im, rnbr, rpar, h, beta, hdiag, k2r, k2i, special, eps, seed_hash, step, salt,
+                         nhits, rows, nblk):
+    """One nf = 2 Metropolis update of both colours in one call (keys and proposal tables as
+    :func:`u3.metropolis_u3_update`: the table of colour c from ``step_key(seed, step + c, salt)``)."""
+    table = np.empty((TABLE_ENTRIES, 2, 2), dtype=np.complex128)
+    dets = np.empty(TABLE_ENTRIES, dtype=np.complex128)
+    tab = np.empty((10, TABLE_ENTRIES))
+    acc = 0
+    for colour in range(2):
+        key = tables.step_key_nb(seed_hash, step + colour, 0)
+        tkey = tables.step_key_nb(seed_hash, step + colour, salt)
+        tables.rotation_table(2, special, eps, tkey, table, dets)
+        pack_table2(table, dets, tab)
+        acc += metropolis_u2(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhits, key, rows, nblk)
     return acc
