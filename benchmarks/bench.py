@@ -1,7 +1,7 @@
 #!/usr/bin/env python3
 """Speed benchmark of sigmasim's kernels against the hand-written C yardstick.
 
-    python benchmarks/bench.py [--quick] [--threads N] [--no-c] [--no-compile] [--repeat N]
+    python benchmarks/bench.py [--quick] [--threads N] [--no-c] [--no-compile] [--repeat N] [--models ...]
 
 Measures, through the public path (config_from_dict + Simulation.sweep, after
 thermalisation and Metropolis step tuning), site-hits per second of
@@ -440,6 +440,8 @@ def main(argv=None) -> int:
     ap.add_argument("--threads", type=int, default=0, help="the 'all threads' count (default: all cores)")
     ap.add_argument("--no-c", action="store_true", help="skip the C yardstick")
     ap.add_argument("--no-compile", action="store_true", help="skip compile, start-up and memory timings")
+    ap.add_argument("--models", default=",".join(MODELS),
+                    help=f"comma-separated subset of {', '.join(MODELS)} (default all)")
     ap.add_argument("--repeat", type=int, default=3,
                     help="repetitions of the interleaved 1 vs all threads timing (default 3)")
     args = ap.parse_args(argv)
@@ -448,7 +450,14 @@ def main(argv=None) -> int:
 
     nall = args.threads or numba.config.NUMBA_NUM_THREADS
     secs = 1.0 if args.quick else 3.0
-    therm = {"U1_d3": 100 if args.quick else 200, "U3_d3": 60 if args.quick else 100}
+    therm = {"U1_d3": 100 if args.quick else 200, "U3_d3": 60 if args.quick else 100,
+             "U2_d3": 60 if args.quick else 100}
+    models = [m.strip() for m in args.models.split(",") if m.strip()]
+    bad = [m for m in models if m not in MODELS]
+    if bad or not models:
+        print(f"error: --models takes a comma-separated subset of {', '.join(MODELS)}, got {args.models!r}",
+              file=sys.stderr)
+        return 2
     RESULTS.mkdir(parents=True, exist_ok=True)
     out_path = RESULTS / time.strftime("bench-%Y%m%d-%H%M%S.jsonl")
     lines = []
@@ -482,7 +491,7 @@ def main(argv=None) -> int:
         show_machine(ms, "start")
 
     # warm the JIT cache so that no compile lands in a timed run
-    for model in MODELS:
+    for model in models:
         for algo in ALGOS[model]:
             c = config(model, algo, 0).to_dict()
             c["lattice"]["shape"] = [4, 4, 4]
@@ -530,7 +539,7 @@ def main(argv=None) -> int:
         d["implementation"] = impl
         return d
 
-    for model in MODELS:
+    for model in models:
         print(f"== {model}")
         for algo in ALGOS[model]:
             prog = C_PROGRAM[model]
@@ -579,7 +588,7 @@ def main(argv=None) -> int:
                   f"latency-bound {ms['latency_bound']:.2f}x", flush=True)
             emit({"measurement": "machine_scaling", "when": f"interleaved repetition {rep + 1}", "threads": nall,
                   **ms})
-            for model in MODELS:
+            for model in models:
                 for algo in ALGOS[model]:
                     d = interleaved_speedup(model, algo, nall, secs, therm[model])
                     d["repetition"] = rep + 1
@@ -594,7 +603,7 @@ def main(argv=None) -> int:
         show_machine(machine_scaling(nall), "after the timings")
     print("== ratios (same run; numba over C, each the mean of the ABBA pair beside it; wall-time "
           "rates, CPU-time rates in brackets; goal: >= 0.7 on 1 thread, >= 1.7x from 1 to 2 threads)")
-    for model in MODELS:
+    for model in models:
         for algo in ALGOS[model]:
             one = res[(model, algo, 1)]["site_hits_per_second"]
             if nall > 1:
@@ -618,7 +627,7 @@ def main(argv=None) -> int:
                 print(f"  {model} {algo:11s} C 2-thread speed-up: {sp:5.2f}x")
 
     print("== physics sanity (Metropolis; numba vs C, each mean +- blocked error; z = difference / error)")
-    for model in MODELS:
+    for model in models:
         nb = res[(model, "metropolis", 1)]
         c = res.get((model, "c:c", "metropolis"))
         if c is None:
@@ -655,7 +664,7 @@ def main(argv=None) -> int:
         print("== memory (one subprocess per run, every kernel loaded first on a 4^3 lattice; counted: the "
               "growth of the process from just before the Simulation is built to after 60 sweeps and 12 "
               "measurements, with the Simulation alive)")
-        for model in MODELS:
+        for model in models:
             for algo in ("metropolis", "heatbath", "overrelax"):
                 mem = memory(model, algo, nall)
                 f = mem["field_bytes"]
