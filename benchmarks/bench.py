@@ -1,7 +1,7 @@
 #!/usr/bin/env python3
 """Speed benchmark of sigmasim's kernels against the hand-written C yardstick.
 
-    python benchmarks/bench.py [--quick] [--threads N] [--no-c] [--no-compile] [--repeat N]
+    python benchmarks/bench.py [--quick] [--threads N] [--no-c] [--no-compile] [--repeat N] [--models ...]
 
 Measures, through the public path (config_from_dict + Simulation.sweep, after
 thermalisation and Metropolis step tuning), site-hits per second of
@@ -9,11 +9,15 @@ thermalisation and Metropolis step tuning), site-hits per second of
   (a) U(1), d = 3, L = 32, beta = 0.45, h = 0.05, theta = 3.0, kappa = 0
       (Metropolis 1 hit per visit, heatbath, overrelaxation);
   (b) U(3), d = 3, L = 16, beta = 0.5, h = 0.1, kappa = 0.2, theta = 3.0 in the
-      mass phase (Metropolis 4 hits per visit, heatbath, overrelaxation);
+      mass phase (Metropolis 4 hits per visit, heatbath, overrelaxation, and the
+      default schedule 1 heatbath + 3 overrelaxation, counted as 4 site-hits per site);
+  (c) U(2), the same couplings and updates as (b);
 
 on 1 thread and on all threads; builds and runs the yardstick's `c`,
-`c_omp2` and `c_scalar` Metropolis programs in the same run and prints the
-ratios; times the JIT compile (empty cache, in a subprocess with a temporary
+`c_omp2` (and for Metropolis `c_scalar`) programs of every update it has
+(`u1`, `u3`, `u2` with `--algo`) in the same run, numba and C back to back in
+ABBA order (numba, C, C, numba), and prints the ratios of wall-time and of
+CPU-time rates (site-hits per CPU second depend less on a busy machine); times the JIT compile (empty cache, in a subprocess with a temporary
 NUMBA_CACHE_DIR) and the cached load; the start-up of `sigmasim run` on a tiny
 config with a warm cache; and the memory a run adds compared with its field
 arrays.  One JSON line per measurement goes to benchmarks/results/.
@@ -47,13 +51,33 @@ sys.path.insert(0, str(ROOT))
 MODELS = {
     "U1_d3": dict(nf=1, shape=[32, 32, 32], beta=0.45, mass=0.05, kappa=0.0, theta=3.0, hits=1, step=1.0),
     "U3_d3": dict(nf=3, shape=[16, 16, 16], beta=0.5, mass=0.1, kappa=0.2, theta=3.0, hits=4, step=0.3),
+    "U2_d3": dict(nf=2, shape=[16, 16, 16], beta=0.5, mass=0.1, kappa=0.2, theta=3.0, hits=4, step=0.3),
 }
+ALGOS = {"U1_d3": ("metropolis", "heatbath", "overrelax"),
+         "U3_d3": ("metropolis", "heatbath", "overrelax", "hbor"),
+         "U2_d3": ("metropolis", "heatbath", "overrelax", "hbor")}
+SCHEDULES = {"hbor": [{"update": "heatbath", "repeat": 1}, {"update": "overrelax", "repeat": 3}]}
 ALGO_NAMES = {  # the yardstick's algorithm names where it has the algorithm
     ("U1_d3", "metropolis"): "metropolis",
     ("U1_d3", "heatbath"): "heatbath_best_fisher",
     ("U3_d3", "metropolis"): "metropolis_4hit",
     ("U3_d3", "heatbath"): "heatbath_cabibbo_marinari",
+    ("U3_d3", "overrelax"): "overrelax",
+    ("U3_d3", "hbor"): "heatbath1_overrelax3",
+    ("U2_d3", "metropolis"): "metropolis_4hit",
+    ("U2_d3", "heatbath"): "heatbath_cabibbo_marinari",
+    ("U2_d3", "overrelax"): "overrelax",
+    ("U2_d3", "hbor"): "heatbath1_overrelax3",
 }
+C_PROGRAM = {"U1_d3": "u1", "U3_d3": "u3", "U2_d3": "u2"}
+C_ALGO = {"metropolis": "metro", "heatbath": "hb", "overrelax": "or", "hbor": "hbor"}
+
+
+def hits_per_site(cfg, algo: str) -> int:
+    """Site-hits per site and sweep: Metropolis hits, 4 for the 1 + 3 schedule, else 1."""
+    if algo == "metropolis":
+        return cfg.metropolis_hits
+    return sum(r for _, r in cfg.schedule)
 
 
 def config(model: str, algo: str, thermalize: int, seed: int = 11):
@@ -66,7 +90,7 @@ def config(model: str, algo: str, thermalize: int, seed: int = 11):
         "lattice": {"shape": m["shape"]},
         "model": {"nf": m["nf"], "beta": m["beta"], "mass": m["mass"], "kappa": m["kappa"],
                   "theta": m["theta"], "theta_placement": "mass"},
-        "updates": {"schedule": [{"update": algo}], "metropolis_hits": m["hits"],
+        "updates": {"schedule": SCHEDULES.get(algo, [{"update": algo}]), "metropolis_hits": m["hits"],
                     "initial_step": m["step"], "tune_every": 10, "target_acceptance": 0.5},
         "run": {"thermalize": thermalize, "measurements": 1, "start": "cold"},
     })
@@ -128,20 +152,23 @@ def time_sweeps(cfg, model: str, algo: str, algo_name: str, threads: int, second
     load = foreign_load()
     action, retr = [], []
     t_upd = 0.0
+    c_upd = 0.0
     n = 0
     acc_sum = [0, 0]
     t_start = time.perf_counter()
     while n < min_sweeps or time.perf_counter() - t_start < seconds:
         t0 = time.perf_counter()
+        p0 = time.process_time()
         sim.sweep()
         t_upd += time.perf_counter() - t0
+        c_upd += time.process_time() - p0
         n += 1
         acc_sum[0] += int(st.win_acc[k])
         acc_sum[1] += int(st.win_tried[k])
         rec = sim.measure()  # resets the acceptance window
         action.append(rec["action"])
         retr.append(rec["omega"].real)
-    hits = cfg.metropolis_hits if algo == "metropolis" else 1
+    hits = hits_per_site(cfg, algo)
     a, ae = blocked_mean(action)
     r, re_ = blocked_mean(retr)
     impl = "numba" if threads == 1 else f"numba_{threads}threads"
@@ -150,6 +177,7 @@ def time_sweeps(cfg, model: str, algo: str, algo_name: str, threads: int, second
         "lattice": "x".join(map(str, cfg.shape)), "threads": threads, "sweeps": n,
         "therm": thermalize, "hits_per_site": hits, "seconds": t_upd,
         "site_hits_per_second": n * cfg.volume * hits / t_upd,
+        "site_hits_per_cpu_second": n * cfg.volume * hits / max(c_upd, 1e-9),
         "acceptance": acc_sum[0] / acc_sum[1] if acc_sum[1] else 1.0,
         "step": st.step_size, "action_per_site": a, "action_per_site_err": ae,
         "retr_over_nf": r, "retr_over_nf_err": re_, "foreign_load_before": load,
@@ -193,7 +221,7 @@ def interleaved_speedup(model: str, algo: str, threads: int, seconds: float, the
         k += 1
     numba.set_num_threads(threads)
     one, many = float(np.median(res[1])), float(np.median(res[threads]))
-    hits = cfg.metropolis_hits if algo == "metropolis" else 1
+    hits = hits_per_site(cfg, algo)
     return {"measurement": "interleaved_speedup", "model": model, "algorithm": algo, "threads": threads,
             "blocks": len(res[1]), "sweeps_per_block": per_block,
             "seconds_per_sweep_1": one, f"seconds_per_sweep_{threads}": many,
@@ -261,7 +289,7 @@ def perf_dir() -> Path | None:
 
 
 def build_c(src: Path, work: Path) -> dict:
-    """Build the yardstick's Metropolis programs as its run_all.sh does; returns name -> argv prefix."""
+    """Build the yardstick's programs as its run_all.sh does; returns name -> argv prefix."""
     cc = os.environ.get("CC", "gcc")
     flags = ["-O3", "-march=native", "-fno-math-errno", "-std=gnu11", "-Wall", "-Wno-unknown-pragmas"]
     shutil.copytree(src / "src", work / "src")
@@ -273,6 +301,9 @@ def build_c(src: Path, work: Path) -> dict:
         "u3": ["-o", "build/u3", "src/u3.c", "-lm"],
         "u3_omp": ["-fopenmp", "-o", "build/u3_omp", "src/u3.c", "-lm"],
         "u3_scalar": ["-DVL=1", "-fno-tree-vectorize", "-o", "build/u3_scalar", "src/u3.c", "-lm"],
+        "u2": ["-o", "build/u2", "src/u2.c", "-lm"],
+        "u2_omp": ["-fopenmp", "-o", "build/u2_omp", "src/u2.c", "-lm"],
+        "u2_scalar": ["-DVL=1", "-fno-tree-vectorize", "-o", "build/u2_scalar", "src/u2.c", "-lm"],
     }
     procs = {k: subprocess.Popen([cc, *flags, *v], cwd=work, stderr=subprocess.PIPE, text=True)
              for k, v in jobs.items()}
@@ -305,7 +336,7 @@ from benchmarks.bench import config
 from sigmasim.chain import Simulation
 t_import = time.perf_counter() - t0
 out = {"import": t_import}
-for model in ("U1_d3", "U3_d3"):
+for model in ("U1_d3", "U3_d3", "U2_d3"):
     for algo in ("metropolis", "heatbath", "overrelax"):
         sim = Simulation(config(model, algo, 0))
         t0 = time.perf_counter()
@@ -409,6 +440,8 @@ def main(argv=None) -> int:
     ap.add_argument("--threads", type=int, default=0, help="the 'all threads' count (default: all cores)")
     ap.add_argument("--no-c", action="store_true", help="skip the C yardstick")
     ap.add_argument("--no-compile", action="store_true", help="skip compile, start-up and memory timings")
+    ap.add_argument("--models", default=",".join(MODELS),
+                    help=f"comma-separated subset of {', '.join(MODELS)} (default all)")
     ap.add_argument("--repeat", type=int, default=3,
                     help="repetitions of the interleaved 1 vs all threads timing (default 3)")
     args = ap.parse_args(argv)
@@ -417,7 +450,14 @@ def main(argv=None) -> int:
 
     nall = args.threads or numba.config.NUMBA_NUM_THREADS
     secs = 1.0 if args.quick else 3.0
-    therm = {"U1_d3": 100 if args.quick else 200, "U3_d3": 60 if args.quick else 100}
+    therm = {"U1_d3": 100 if args.quick else 200, "U3_d3": 60 if args.quick else 100,
+             "U2_d3": 60 if args.quick else 100}
+    models = [m.strip() for m in args.models.split(",") if m.strip()]
+    bad = [m for m in models if m not in MODELS]
+    if bad or not models:
+        print(f"error: --models takes a comma-separated subset of {', '.join(MODELS)}, got {args.models!r}",
+              file=sys.stderr)
+        return 2
     RESULTS.mkdir(parents=True, exist_ok=True)
     out_path = RESULTS / time.strftime("bench-%Y%m%d-%H%M%S.jsonl")
     lines = []
@@ -437,7 +477,8 @@ def main(argv=None) -> int:
     def show(d):
         flag = "  [contended]" if d.get("contended") else ""
         print(f"  {d['model']:6s} {d['algorithm']:26s} {d['implementation']:16s} th={d['threads']} "
-              f"{d['site_hits_per_second']:10.3e} hits/s  acc {d['acceptance']:.3f}  "
+              f"{d['site_hits_per_second']:10.3e} hits/s ({d.get('site_hits_per_cpu_second', float('nan')):9.3e}"
+              f" per CPU s)  acc {d['acceptance']:.3f}  "
               f"S/V {d['action_per_site']:.5f}+-{d['action_per_site_err']:.5f}  "
               f"ReTrU/nf {d['retr_over_nf']:.5f}+-{d['retr_over_nf_err']:.5f}  "
               f"load {d['foreign_load_before']:.2f}{flag}", flush=True)
@@ -450,8 +491,8 @@ def main(argv=None) -> int:
         show_machine(ms, "start")
 
     # warm the JIT cache so that no compile lands in a timed run
-    for model in MODELS:
-        for algo in ("metropolis", "heatbath", "overrelax"):
+    for model in models:
+        for algo in ALGOS[model]:
             c = config(model, algo, 0).to_dict()
             c["lattice"]["shape"] = [4, 4, 4]
             from sigmasim.chain import Simulation
@@ -477,36 +518,65 @@ def main(argv=None) -> int:
             print(f"C yardstick: build failed, ratios to C skipped ({exc})")
             exes = None
 
-    c_sweeps = {"U1_d3": (1500, 200) if args.quick else (3000, 200),
-                "U3_d3": (600, 100) if args.quick else (1500, 100)}
-    c_scalar_sweeps = {"U1_d3": (300, 200), "U3_d3": (150, 100) if args.quick else (300, 100)}
+    c_sweeps = {  # (sweeps, thermalisation) of one C run, about a second on an idle core
+        ("U1_d3", "metropolis"): (3000, 200), ("U1_d3", "heatbath"): (1500, 200),
+        ("U3_d3", "metropolis"): (1500, 100), ("U3_d3", "heatbath"): (600, 50),
+        ("U3_d3", "overrelax"): (1500, 50), ("U3_d3", "hbor"): (300, 50),
+        ("U2_d3", "metropolis"): (3000, 300), ("U2_d3", "heatbath"): (1200, 50),
+        ("U2_d3", "overrelax"): (3000, 50), ("U2_d3", "hbor"): (600, 50),
+    }
+    c_scalar_sweeps = {"U1_d3": (300, 200), "U3_d3": (150, 100) if args.quick else (300, 100),
+                       "U2_d3": (300, 100)}
     res = {}
-    for model in MODELS:
+    rates = {}  # (model, algo, impl) -> [(wall rate, cpu rate)], impl numba / numba_N / c / c_omp2
+
+    def c_run(exe, argv, th, impl):
+        try:
+            d = run_c(exe, argv, th, "c_scalar" if impl == "c_scalar" else None)
+        except (subprocess.SubprocessError, OSError, ValueError) as exc:
+            print(f"  {impl}: failed ({exc})")
+            return None
+        d["implementation"] = impl
+        return d
+
+    for model in models:
         print(f"== {model}")
-        for algo in ("metropolis", "heatbath", "overrelax"):
+        for algo in ALGOS[model]:
+            prog = C_PROGRAM[model]
+            has_c = exes is not None and (model, algo) in c_sweeps
+            n, t = c_sweeps.get((model, algo), (0, 0))
+            if args.quick:
+                n = max(50, n // 2)
+            cargs = ["--algo", C_ALGO[algo], "--sweeps", str(n), "--therm", str(t), "--seed", "1001"]
             for th in sorted({1, nall}):
-                d = run_numba(model, algo, th, secs, therm[model])
-                emit(d)
-                show(d)
-                res[(model, algo, th)] = d
-            if algo == "metropolis" and exes:
-                prog = "u1" if model == "U1_d3" else "u3"
-                extra = ["--algo", "metro"] if prog == "u1" else []
-                n, t = c_sweeps[model]
-                for impl, exe, th in (("c", exes[prog], 1), ("c_omp2", exes[prog + "_omp"], 2),
-                                      ("c_scalar", exes[prog + "_scalar"], 1)):
-                    if impl == "c_scalar":
-                        n, t = c_scalar_sweeps[model]
-                    try:
-                        d = run_c(exe, [*extra, "--sweeps", str(n), "--therm", str(t), "--seed", "1001"],
-                                  th, "c_scalar" if impl == "c_scalar" else None)
-                    except (subprocess.SubprocessError, OSError, ValueError) as exc:
-                        print(f"  {impl}: failed ({exc})")
-                        continue
-                    d["implementation"] = impl
+                impl_c, exe = ("c", prog) if th == 1 else ("c_omp2", prog + "_omp")
+                # ABBA: numba, C, C, numba (each compared only with the runs beside it)
+                order = ("numba", "c", "c", "numba") if has_c and (th == 1 or nall == 2) else ("numba",)
+                for who in order:
+                    if who == "numba":
+                        d = run_numba(model, algo, th, secs, therm[model])
+                        key = "numba" if th == 1 else f"numba_{th}"
+                        res.setdefault((model, algo, th), d)
+                    else:
+                        d = c_run(exes[exe], cargs, th, impl_c)
+                        if d is None:
+                            continue
+                        key = impl_c
+                        res.setdefault((model, "c:" + impl_c, algo), d)
                     emit(d)
                     show(d)
-                    res[(model, "c:" + impl)] = d
+                    rates.setdefault((model, algo, key), []).append(
+                        (d["site_hits_per_second"], d.get("site_hits_per_cpu_second", float("nan"))))
+            if algo == "metropolis" and exes:
+                n, t = c_scalar_sweeps[model]
+                d = c_run(exes[prog + "_scalar"], ["--algo", "metro", "--sweeps", str(n), "--therm", str(t),
+                                                   "--seed", "1001"], 1, "c_scalar")
+                if d is not None:
+                    emit(d)
+                    show(d)
+                    res[(model, "c:c_scalar", algo)] = d
+                    rates.setdefault((model, algo, "c_scalar"), []).append(
+                        (d["site_hits_per_second"], d.get("site_hits_per_cpu_second", float("nan"))))
 
     inter = {}
     if nall > 1:
@@ -518,8 +588,8 @@ def main(argv=None) -> int:
                   f"latency-bound {ms['latency_bound']:.2f}x", flush=True)
             emit({"measurement": "machine_scaling", "when": f"interleaved repetition {rep + 1}", "threads": nall,
                   **ms})
-            for model in MODELS:
-                for algo in ("metropolis", "heatbath", "overrelax"):
+            for model in models:
+                for algo in ALGOS[model]:
                     d = interleaved_speedup(model, algo, nall, secs, therm[model])
                     d["repetition"] = rep + 1
                     emit(d)
@@ -531,9 +601,10 @@ def main(argv=None) -> int:
                           f"({d['blocks']} blocks of {d['sweeps_per_block']})  load {d['foreign_load_before']:.2f}"
                           f"{flag}", flush=True)
         show_machine(machine_scaling(nall), "after the timings")
-    print("== ratios (same run)")
-    for model in MODELS:
-        for algo in ("metropolis", "heatbath", "overrelax"):
+    print("== ratios (same run; numba over C, each the mean of the ABBA pair beside it; wall-time "
+          "rates, CPU-time rates in brackets; goal: >= 0.7 on 1 thread, >= 1.7x from 1 to 2 threads)")
+    for model in models:
+        for algo in ALGOS[model]:
             one = res[(model, algo, 1)]["site_hits_per_second"]
             if nall > 1:
                 many = res[(model, algo, nall)]["site_hits_per_second"]
@@ -543,25 +614,22 @@ def main(argv=None) -> int:
                     extra = (f"  (interleaved on one chain: median {float(np.median(sp)):.2f}x, "
                              f"range {sp[0]:.2f}-{sp[-1]:.2f}x over {len(sp)})")
                 print(f"  {model} {algo:11s} numba {nall} threads / 1 thread: {many / one:5.2f}x{extra}")
-        m1 = res[(model, "metropolis", 1)]
-        for impl in ("c", "c_scalar", "c_omp2"):
-            c = res.get((model, "c:" + impl))
-            if c is None:
-                continue
-            print(f"  {model} metropolis numba(1 thread) / {impl}: "
-                  f"{m1['site_hits_per_second'] / c['site_hits_per_second']:5.2f}")
-        if nall > 1 and (model, "c:c_omp2") in res:
-            mn = res[(model, "metropolis", nall)]["site_hits_per_second"]
-            print(f"  {model} metropolis numba({nall} threads) / c_omp2: "
-                  f"{mn / res[(model, 'c:c_omp2')]['site_hits_per_second']:5.2f}")
-        if (model, "c:c") in res and (model, "c:c_omp2") in res:
-            print(f"  {model} metropolis C 2-thread speed-up: "
-                  f"{res[(model, 'c:c_omp2')]['site_hits_per_second'] / res[(model, 'c:c')]['site_hits_per_second']:5.2f}x")
+            for mine, theirs in (("numba", "c"), ("numba", "c_scalar"), (f"numba_{nall}", "c_omp2")):
+                a_, b_ = rates.get((model, algo, mine)), rates.get((model, algo, theirs))
+                if not a_ or not b_:
+                    continue
+                w = np.mean([x[0] for x in a_]) / np.mean([x[0] for x in b_])
+                c = np.mean([x[1] for x in a_]) / np.mean([x[1] for x in b_])
+                print(f"  {model} {algo:11s} {mine} / {theirs}: {w:5.2f}  [{c:5.2f}]")
+            if (model, algo, "c") in rates and (model, algo, "c_omp2") in rates:
+                sp = (np.mean([x[0] for x in rates[(model, algo, "c_omp2")]])
+                      / np.mean([x[0] for x in rates[(model, algo, "c")]]))
+                print(f"  {model} {algo:11s} C 2-thread speed-up: {sp:5.2f}x")
 
     print("== physics sanity (Metropolis; numba vs C, each mean +- blocked error; z = difference / error)")
-    for model in MODELS:
+    for model in models:
         nb = res[(model, "metropolis", 1)]
-        c = res.get((model, "c:c"))
+        c = res.get((model, "c:c", "metropolis"))
         if c is None:
             print(f"  {model}: numba S/V {nb['action_per_site']:.5f}+-{nb['action_per_site_err']:.5f}, "
                   f"ReTrU/nf {nb['retr_over_nf']:.5f}+-{nb['retr_over_nf_err']:.5f} (no C run)")
@@ -596,7 +664,7 @@ def main(argv=None) -> int:
         print("== memory (one subprocess per run, every kernel loaded first on a 4^3 lattice; counted: the "
               "growth of the process from just before the Simulation is built to after 60 sweeps and 12 "
               "measurements, with the Simulation alive)")
-        for model in MODELS:
+        for model in models:
             for algo in ("metropolis", "heatbath", "overrelax"):
                 mem = memory(model, algo, nall)
                 f = mem["field_bytes"]

@@ -10,6 +10,7 @@ CPU time per *independent* sample.  For the two benchmark models of benchmarks/b
 
   (a) U1_d3: U(1), d = 3, L = 32, beta = 0.45, h = 0.05, theta = 3.0;
   (b) U3_d3: U(3), d = 3, L = 16, beta = 0.5, h = 0.1, kappa = 0.2, theta = 3.0;
+  (c) U2_d3: U(2), the couplings of (b);
 
 and each update schedule (tuned Metropolis with bench.py's hits per visit; 1 heatbath +
 3 overrelaxation; 1 heatbath + 1 overrelaxation) this script runs one thermalised chain
@@ -19,7 +20,13 @@ sweep, and reports
   * CPU seconds per sweep (time.process_time around Simulation.sweep only, one numba
     thread; the measurement is timed separately and shown in its own column),
   * tau_int of |Omega| in sweeps, with its error, from sigmasim.analysis.gamma_analysis,
-  * the cost of one independent measurement, 2 tau_int x seconds per sweep, with its error.
+  * the cost of one independent measurement, 2 tau_int x seconds per sweep, with its error;
+  * the tunnelling time: sweeps per change of the branch of omega_h (the slow mode of a
+    theta run; sigmasim.analysis.tunnelling_analysis with the hysteresis band 0.5, total
+    sweeps / number of events), and its cost in CPU seconds.  It is the slow mode: in the
+    nf = 2, 3 benchmark models a chain of a few thousand sweeps sees 0-6 changes, so the
+    column is a rough figure or a lower bound ("> N": no change in N sweeps); nf = 1 has one
+    branch ("-").
 
 Convention: gamma_analysis defines tau_int = 1/2 + sum_{t>=1} rho(t), so that
 var(mean) = 2 tau_int var / N (uncorrelated data: tau_int = 1/2).  N samples are then worth
@@ -73,7 +80,7 @@ SCHEDULES = {
 }
 
 #: thermalisation sweeps (Metropolis: its step is tuned every 10 of them, then frozen)
-THERMALIZE = {"U1_d3": 1000, "U3_d3": 300}
+THERMALIZE = {"U1_d3": 1000, "U3_d3": 300, "U2_d3": 300}
 
 
 def make_config(model: str, schedule: str, thermalize: int, size: int | None = None,
@@ -118,7 +125,7 @@ def measure_cost(model: str, schedule: str, budget: float, rel_error: float, the
         sim.sweep()
     t_therm = time.process_time() - c0
     sim.measure()  # empties the acceptance windows of the thermalisation
-    absomega, t_sweep, t_meas, acc = [], [], 0.0, []
+    absomega, omega_h, t_sweep, t_meas, acc = [], [], [], 0.0, []
     acc_key = "accept_metropolis" if schedule == "metropolis" else "accept_phase"
     done_reason = "budget"
     chunk = 100
@@ -131,6 +138,7 @@ def measure_cost(model: str, schedule: str, budget: float, rel_error: float, the
             t_meas += time.process_time() - b
             t_sweep.append(b - a)
             absomega.append(abs(rec["omega"]))
+            omega_h.append(rec["omega_h"])
             acc.append(rec[acc_key])
         n = len(absomega)
         g, window_ok = _tau(np.asarray(absomega))
@@ -141,6 +149,8 @@ def measure_cost(model: str, schedule: str, budget: float, rel_error: float, the
             break
         chunk = max(100, n // 5)
 
+    from sigmasim.analysis.tunnelling import tunnelling_analysis
+
     x = np.asarray(absomega)
     ts = np.asarray(t_sweep)
     th = thermalisation_cut(x)
@@ -148,6 +158,10 @@ def measure_cost(model: str, schedule: str, budget: float, rel_error: float, the
     if cut:
         x, ts = x[cut:], ts[cut:]
         g, window_ok = _tau(x)
+    tun = tunnelling_analysis(np.asarray(omega_h[cut:]), cfg.theta, cfg.nf, band=0.5)
+    per_tunnel = tun.total_time / tun.n_events if tun.n_events else float("inf")
+    if cfg.nf == 1:
+        per_tunnel = float("nan")  # one branch: nothing to tunnel to
     s_sweep, s_sweep_err = blocked_mean(ts)
     s_meas = t_meas / len(absomega)
     cost = 2.0 * g.tau_int * s_sweep
@@ -164,10 +178,22 @@ def measure_cost(model: str, schedule: str, budget: float, rel_error: float, the
         "tau_int": g.tau_int, "tau_int_err": g.tau_int_error, "window": g.window,
         "cpu_seconds_per_independent": cost, "cpu_seconds_per_independent_err": cost * rel,
         "cpu_seconds_per_independent_measuring_every_sweep": 2.0 * g.tau_int * (s_sweep + s_meas),
+        "tunnelling_events": tun.n_events, "sweeps_per_tunnelling": per_tunnel,
+        "cpu_seconds_per_tunnelling": per_tunnel * s_sweep,
         "acceptance": float(np.nanmean(acc)) if np.isfinite(acc).any() else float("nan"),
         "step": sim.state.step_size, "foreign_load_before": load,
         "contended": contended(load, 1),
     }
+
+
+def _tunnel_text(d) -> str:
+    """The two tunnelling columns of the table: '-' for one branch, '> N' without an event."""
+    per = d["sweeps_per_tunnelling"]
+    if math.isnan(per):
+        return "- | -"
+    if math.isinf(per):
+        return f"> {d['sweeps']} (0) | > {d['sweeps'] * d['cpu_seconds_per_sweep']:.2e}"
+    return f"{per:.3g} ({d['tunnelling_events']}) | {d['cpu_seconds_per_tunnelling']:.2e}"
 
 
 def warm_jit(models, schedules) -> None:
@@ -206,8 +232,8 @@ def main(argv=None) -> int:
                     help="target relative error of tau_int (default 0.10, --quick 0.25)")
     ap.add_argument("--size", type=int, default=None,
                     help="override the lattice extent (all directions)")
-    ap.add_argument("--models", default=",".join(MODELS),
-                    help="comma-separated subset of the models")
+    ap.add_argument("--models", default="U1_d3,U3_d3",
+                    help=f"comma-separated subset of the models {', '.join(MODELS)} (default U1_d3,U3_d3)")
     ap.add_argument("--schedules", default=",".join(SCHEDULES),
                     help="comma-separated subset of the schedules")
     ap.add_argument("--results", type=Path, default=RESULTS,
@@ -279,8 +305,9 @@ def main(argv=None) -> int:
 
     print()
     print("| model | update | CPU s / sweep | tau_int of abs(Omega) (sweeps) "
-          "| CPU s / independent sample | same, measuring every sweep | sweeps |")
-    print("| --- | --- | --- | --- | --- | --- | --- |")
+          "| CPU s / independent sample | same, measuring every sweep | sweeps "
+          "| sweeps per tunnelling (events) | CPU s per tunnelling |")
+    print("| --- | --- | --- | --- | --- | --- | --- | --- | --- |")
     for d in rows:
         flag = "" if d["stopped_on"] == "target" and d["window_found"] else " *"
         print(f"| {d['model']} {d['lattice']} | {d['schedule']} "
@@ -288,13 +315,15 @@ def main(argv=None) -> int:
               f"| {d['tau_int']:.2f} +- {d['tau_int_err']:.2f} "
               f"| {d['cpu_seconds_per_independent']:.2e} "
               f"+- {d['cpu_seconds_per_independent_err']:.1e}{flag} "
-              f"| {d['cpu_seconds_per_independent_measuring_every_sweep']:.2e} | {d['sweeps']} |")
+              f"| {d['cpu_seconds_per_independent_measuring_every_sweep']:.2e} | {d['sweeps']} "
+              f"| {_tunnel_text(d)} |")
     meas = ", ".join(
         f"{m} {np.mean([d['cpu_seconds_measure'] for d in rows if d['model'] == m]):.1e} s"
         for m in models)
     print("(CPU s / independent sample = 2 tau_int x CPU s per sweep of the updates alone; the "
           f"next column adds one Simulation.measure per sweep, which costs {meas}.  * stopped on "
-          "the CPU budget before the target error of tau_int.)")
+          "the CPU budget before the target error of tau_int.  Tunnelling: changes of the branch of "
+          "omega_h, hysteresis band 0.5; sweeps per tunnelling = sweeps / events.)")
     # physics sanity: every schedule samples the same distribution
     for m in models:
         same = [d for d in rows if d["model"] == m]

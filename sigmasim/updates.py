@@ -21,6 +21,7 @@ from sigmasim.kernels.u1 import (
     rows_per_chunk,
 )
 from sigmasim.kernels.u3 import metropolis_u3_update, pack_table3, rows_per_chunk3
+from sigmasim.kernels.unf import local_unf_update, metropolis_u2_update
 from sigmasim.rng import mix64_int, step_key
 
 __all__ = ["apply", "proposal_table", "TABLE_SIZE"]
@@ -63,7 +64,7 @@ def table_u3_packed(special: bool, eps: float, key) -> np.ndarray:
 def _one_call_update(sim, name):
     """A function ``state -> (accepted, tried)`` that runs update ``name`` on both colours in one
     numba call (keys and proposal tables built inside), or None where there is no such kernel
-    (only nf = 1, and Metropolis for nf = 3, have one).
+    (nf = 1, the heatbath and overrelaxation for nf >= 2, and Metropolis for nf = 2, 3 have one).
 
     Its fixed arguments depend on the config, the lattice and the field arrays only, so it is
     built again only when one of those objects changes (:meth:`Simulation.set_theta` makes a new
@@ -118,6 +119,27 @@ def _one_call_update(sim, name):
         def fn(st):
             acc = metropolis_u3_update(*head, float(st.step_size), seed_hash, st.step, _SALT_TABLE, hits, rows,
                                        get_num_threads())
+            st.step += 2
+            return int(acc), tried
+    elif nf == 2 and name == "metropolis":
+        head = (re, im, *nbr, float(cfg.beta), sim.hdiag, float(k2.real), float(k2.imag), bool(cfg.special))
+        hits = cfg.metropolis_hits
+        rows = rows_per_chunk3(h)
+        tried = 2 * lat.half * hits
+
+        def fn(st):
+            acc = metropolis_u2_update(*head, float(st.step_size), seed_hash, st.step, _SALT_TABLE, hits, rows,
+                                       get_num_threads())
+            st.step += 2
+            return int(acc), tried
+    elif nf >= 2 and name in ("heatbath", "overrelax"):
+        head = (re, im, *nbr, nf, float(cfg.beta), sim.hdiag, float(k2.real), float(k2.imag), bool(cfg.special),
+                name == "heatbath")
+        rows = rows_per_chunk3(h)
+        tried = 0 if cfg.special else 2 * lat.half
+
+        def fn(st):
+            acc = local_unf_update(*head, seed_hash, st.step, rows, get_num_threads())
             st.step += 2
             return int(acc), tried
     made[name] = fn

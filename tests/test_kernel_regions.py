@@ -25,7 +25,7 @@ from numba.parfors.parfor import Parfor
 from sigmasim.chain import make_simulation
 from sigmasim.config import config_from_dict
 
-MODULES = ["sigmasim.kernels.u1", "sigmasim.kernels.u3", "sigmasim.kernels.general",
+MODULES = ["sigmasim.kernels.u1", "sigmasim.kernels.u3", "sigmasim.kernels.unf", "sigmasim.kernels.general",
            "sigmasim.kernels.measure", "sigmasim.kernels.linear"]
 
 
@@ -77,6 +77,7 @@ def _exercise_all_kernels():
         ({"nf": 1, "beta": 0.5, "mass": 0.1}, [8]),  # d = 1 measures through the neighbour table
         ({"nf": 3, "beta": 0.5, "mass": 0.1, "kappa": 0.2}, [4, 4, 4]),
         ({"nf": 2, "beta": 0.5, "mass": 0.1, "kappa": 0.2}, [4, 4]),
+        ({"nf": 4, "beta": 0.5, "mass": 0.1, "kappa": 0.2}, [4, 4]),  # the generic Metropolis
         ({"kind": "linear", "nf": 2, "beta": 0.5, "mass": 0.1}, [4, 4]),
     ]
     for model, shape in cases:
@@ -110,6 +111,26 @@ def _exercise_all_kernels():
             tabs = np.empty((2, 20, 16))
             rotation_tables3(False, 0.3, np.array([5, 6], dtype=np.uint64), tabs, 2)
             assert np.array_equal(tabs[0], table_u3_packed(False, 0.3, 5))
+    # the nf >= 2 heatbath/overrelaxation run as unf.local_unf (called from numba); the per-site
+    # kernels of general.py stay as the reference
+    from sigmasim.kernels.general import heatbath, overrelax
+    from sigmasim.kernels.unf import local_unf
+
+    sim = make_simulation(config_from_dict(dict(base, model={"nf": 3, "beta": 0.5, "mass": 0.1},
+                                                lattice={"shape": [4, 4, 4]})))
+    st, lat = sim.state, sim.lattice
+    for hb in (False, True):
+        local_unf(st.re, st.im, lat.row_neighbours, lat.row_parity, lat.row_len_half, 0, 3, 0.5, sim.hdiag,
+                  0.1, 0.0, False, hb, np.uint64(3), rows_per_chunk3(lat.row_len_half), 2)
+    for k in (heatbath, overrelax):
+        k(st.re, st.im, lat.neighbours, 0, lat.half, 3, 0.5, sim.hdiag, 0.2, 1.0 + 0j, False, np.uint64(4), 2)
+    from sigmasim.kernels.unf import metropolis_u2
+
+    sim = make_simulation(config_from_dict(dict(base, model={"nf": 2, "beta": 0.5, "mass": 0.1},
+                                                lattice={"shape": [4, 4, 4]})))
+    st, lat = sim.state, sim.lattice
+    metropolis_u2(st.re, st.im, lat.row_neighbours, lat.row_parity, lat.row_len_half, 0, 0.5, sim.hdiag, 0.0, 0.0,
+                  np.zeros((10, 16)), 2, np.uint64(3), rows_per_chunk3(lat.row_len_half), 2)
 
 
 _exercised = False

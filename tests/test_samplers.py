@@ -47,14 +47,40 @@ def _su2_cdf(alpha):
     return lambda x: np.interp(x, grid, cdf)
 
 
-@pytest.mark.parametrize("alpha", [0.01, 0.5, 1.99, 2.0, 6.0, 40.0])
+@pytest.mark.parametrize("alpha", [0.01, 0.5, 1.99, 2.0, 2.99, 3.0, 6.0, 40.0])
 def test_su2_x0_against_exact_density(alpha):
     # density ~ sqrt(1 - x0^2) exp(alpha x0): Creutz, PRD 21 (1980) 2308; Kennedy & Pendleton,
-    # PLB 156 (1985) 393.  Both branches (alpha < 2 and >= 2) are covered.
+    # PLB 156 (1985) 393.  Both branches (alpha < 3 and >= 3) are covered.
     x = _draw_x0(alpha, step_key(2, int(alpha * 100)), 20000)
     assert (np.abs(x) <= 1).all()
     p = stats.kstest(x, _su2_cdf(alpha)).pvalue
     assert p > 1e-3
+
+
+@njit(cache=True)
+def _x0_counters(alpha, key, n):
+    """Counters consumed by each of n x0 draws."""
+    out = np.empty(n)
+    for i in range(n):
+        n0 = np.uint64(i) * SITE_STRIDE
+        _, n1 = sample_su2_x0(alpha, key, n0)
+        out[i] = np.float64(n1 - n0)
+    return out
+
+
+@pytest.mark.parametrize("alpha", [0.05, 1.0, 2.9])
+def test_su2_x0_small_alpha_uses_creutz_cost(alpha):
+    # Creutz, PRD 21 (1980) 2308: x = 1 - x0 from exp(-alpha x) on (0, 2), accepted with
+    # probability sqrt(x (2 - x)), two counters per attempt.  Its acceptance is
+    # p = int sqrt(x(2-x)) e^{-alpha x} / int e^{-alpha x}; the attempts are geometric, so the
+    # mean counter use is 2/p with standard deviation 2 sqrt(1 - p)/p per draw.  (The disk
+    # rejection used before took about 3.5 attempts of three counters at small alpha.)
+    num = integrate.quad(lambda x: np.sqrt(x * (2 - x)) * np.exp(-alpha * x), 0, 2)[0]
+    p = num / (-np.expm1(-2 * alpha) / alpha)
+    n = 20000
+    c = _x0_counters(alpha, step_key(5, int(alpha * 100)), n)
+    sigma = 2 * np.sqrt(1 - p) / p / np.sqrt(n)
+    assert abs(c.mean() - 2 / p) < 4 * sigma, (c.mean(), 2 / p, sigma)
 
 
 def test_samplers_fail_on_wrong_density():

@@ -118,20 +118,24 @@ def reunitarize_site(m, nf, special, work):
     return drift
 
 
+KP_MIN = 3.0  # Kennedy-Pendleton for alpha >= KP_MIN, Creutz below
+
+
 @njit(cache=True)
 def sample_su2_x0(alpha, key, n):
     """Draw x0 in [-1, 1] with density ~ sqrt(1 - x0^2) exp(alpha x0), alpha >= 0.
 
-    Kennedy & Pendleton, Phys. Lett. B 156 (1985) 393 for alpha >= 2; for
-    smaller alpha the x-coordinate of a uniform point of the unit disk (density
-    ~ sqrt(1 - x^2)) accepted with probability exp(alpha (x - 1)), which is
-    exact and efficient there (common practice, no source).  Returns
-    ``(x0, next counter)``.
+    For alpha < ``KP_MIN``: M. Creutz, Phys. Rev. D 21 (1980) 2308: x = 1 - x0 from the
+    exponential density exp(-alpha x) truncated to (0, 2) (inverse CDF, two counters per
+    attempt), accepted with probability sqrt(x (2 - x)); about 1.3 attempts at small alpha and
+    1.6 at alpha = 3.  Above: A. D. Kennedy & B. J. Pendleton, Phys. Lett. B 156 (1985) 393
+    (four counters per attempt).  The switch point is common practice, no source.
+    Returns ``(x0, next counter)``.
     """
     if not (alpha >= 0.0 and alpha < np.inf):
         # a NaN or inf field must reach the finiteness guard, not hang the rejection loop
         return np.nan, n
-    if alpha >= 2.0:
+    if alpha >= KP_MIN:
         while True:
             r1 = uniform(key, n)
             r2 = uniform(key, n + np.uint64(1))
@@ -142,14 +146,17 @@ def sample_su2_x0(alpha, key, n):
             x = -(np.log(r1) + c * c * np.log(r3)) / alpha
             if r4 * r4 <= 1.0 - 0.5 * x:
                 return 1.0 - x, n
+    em = -np.expm1(-2.0 * alpha)  # 1 - exp(-2 alpha), the truncated exponential's mass
     while True:
-        u = 2.0 * uniform(key, n) - 1.0
-        v = 2.0 * uniform(key, n + np.uint64(1))
-        w = uniform(key, n + np.uint64(2))
-        n += np.uint64(3)
-        # v in (0, 2): accept a point of the upper half disk, u^2 + (v/2)^2 < 1
-        if u * u + 0.25 * v * v < 1.0 and w < np.exp(alpha * (u - 1.0)):
-            return u, n
+        u1 = uniform(key, n)
+        u2 = uniform(key, n + np.uint64(1))
+        n += np.uint64(2)
+        if alpha > 1e-300:
+            x = -np.log1p(-u1 * em) / alpha
+        else:
+            x = 2.0 * u1
+        if u2 * u2 < x * (2.0 - x):
+            return 1.0 - x, n
 
 
 @njit(cache=True)
