@@ -256,15 +256,21 @@ def write_arrays(prefix, arrays: dict, entries: list[dict], fmt: str, sidecar: d
         if t.resolve() in protected:
             raise RunFileError(f"refusing to overwrite {t}: choose another --out")
     entries = [dict(e) for e in entries]
-    try:
-        if fmt == "npz":
-            np.savez(targets[0], **arrays)
-            for e in entries:
-                e["file"] = targets[0].name
-        elif fmt == "hdf5":
-            import h5py
+    from sigmasim.storage import atomic_output  # temporary names, then rename: never truncated
 
-            with h5py.File(targets[0], "w") as f:
+    def savez(tmp):
+        with open(tmp, "wb") as fh:
+            np.savez(fh, **arrays)
+
+    if fmt == "npz":
+        atomic_output(targets[0], savez, what="export")
+        for e in entries:
+            e["file"] = targets[0].name
+    elif fmt == "hdf5":
+        import h5py
+
+        def save_h5(tmp):
+            with h5py.File(tmp, "w") as f:
                 f.attrs["format"] = "sigmasim-export"
                 f.attrs["sidecar"] = side.name
                 for e, (k, a) in zip(entries, arrays.items()):
@@ -272,20 +278,21 @@ def write_arrays(prefix, arrays: dict, entries: list[dict], fmt: str, sidecar: d
                     d.attrs["description"] = e["description"]
                     d.attrs["convention"] = e["convention"]
                     e["file"] = targets[0].name
-        else:
-            for e, t, (k, a) in zip(entries, targets, arrays.items()):
-                cols = column_names(k, a)
-                mat = _csv_matrix(a)
-                fmt_ = "%d" if np.issubdtype(mat.dtype, np.integer) else "%.17g"
-                np.savetxt(t, mat, delimiter=",", header=",".join(cols), comments="", fmt=fmt_)
-                e["file"] = t.name
-                e["columns"] = cols
-        doc = {"format": SIDECAR_FORMAT, "format_version": SIDECAR_VERSION, **sidecar,
-               "data_format": fmt, "files": [t.name for t in targets], "arrays": entries}
-        side.write_text(json.dumps(_clean(doc), indent=1, allow_nan=False) + "\n")
-    except OSError as exc:
-        raise RunFileError(f"could not write the export next to {prefix}: "
-                           f"{exc.strerror or exc}") from None
+
+        atomic_output(targets[0], save_h5, what="export")
+    else:
+        for e, t, (k, a) in zip(entries, targets, arrays.items()):
+            cols = column_names(k, a)
+            mat = _csv_matrix(a)
+            fmt_ = "%d" if np.issubdtype(mat.dtype, np.integer) else "%.17g"
+            atomic_output(t, lambda tmp: np.savetxt(tmp, mat, delimiter=",", header=",".join(cols),
+                                                    comments="", fmt=fmt_), what="export")
+            e["file"] = t.name
+            e["columns"] = cols
+    doc = {"format": SIDECAR_FORMAT, "format_version": SIDECAR_VERSION, **sidecar,
+           "data_format": fmt, "files": [t.name for t in targets], "arrays": entries}
+    text = json.dumps(_clean(doc), indent=1, allow_nan=False) + "\n"
+    atomic_output(side, lambda tmp: tmp.write_text(text), what="export sidecar")
     return targets + [side]
 
 

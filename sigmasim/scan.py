@@ -542,43 +542,17 @@ def run_scan(spec: ScanSpec, scheduler: str | None = None, workers: int | None =
     try:
         return _run_locked(spec, points, scheduler, workers, threads, quiet)
     finally:
-        lock.unlink(missing_ok=True)
+        from sigmasim.storage import release_lock
+
+        release_lock(lock)
 
 
 def _take_lock(spec: ScanSpec) -> Path:
-    """``<output>/scan.lock`` (host and pid): two scans never write the same points at once."""
-    import socket
+    """``<output>/scan.lock`` (an flock held for the life of the scan, naming host and pid): two scans
+    never write the same points at once, even when they start at the same instant."""
+    from sigmasim.storage import take_lock
 
-    lock = spec.output / LOCK_FILE
-    me = f"{socket.gethostname()} {os.getpid()}"
-    for _ in range(2):
-        try:
-            fd = os.open(lock, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o644)
-        except FileExistsError:
-            try:
-                host, pid = lock.read_text().split()
-                alive = host != socket.gethostname() or _pid_alive(int(pid))
-            except (OSError, ValueError):
-                alive = False
-            if alive:
-                raise RunFileError(f"another scan (host {host}, pid {pid}) is writing {spec.output}; "
-                                   f"wait for it or remove {lock} if it is gone") from None
-            lock.unlink(missing_ok=True)  # left by a scan that was killed
-            continue
-        with os.fdopen(fd, "w") as fh:
-            fh.write(me)
-        return lock
-    raise RunFileError(f"cannot take {lock}")
-
-
-def _pid_alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
+    return take_lock(spec.output / LOCK_FILE, "scan", spec.output)
 
 
 def _run_locked(spec, points, scheduler, workers, threads, quiet) -> list[Point]:
