@@ -346,7 +346,7 @@ def cmd_analyze(args) -> int:
 def cmd_sweep(args) -> int:
     from sigmasim.protocols import sweep_command
 
-    return sweep_command(args.config, plot=args.plot, out=args.out)
+    return sweep_command(args.config, plot=args.plot, out=args.out, overwrite=args.overwrite)
 
 
 def cmd_temper(args) -> int:
@@ -364,7 +364,7 @@ def cmd_lifetimes(args) -> int:
 def cmd_export(args) -> int:
     from sigmasim.export import export_command
 
-    return export_command(args.run, args.format, args.out, reference=args.reference)
+    return export_command(args.run, args.format, args.out, reference=args.reference, overwrite=args.overwrite)
 
 
 def cmd_synth(args) -> int:
@@ -503,6 +503,8 @@ def build_parser() -> argparse.ArgumentParser:
     sw.add_argument("config", help="run TOML with a [sweep] table")
     sw.add_argument("--plot", action="store_true", help="draw the loop(s) with the tree-level branches")
     sw.add_argument("--out", default=None, help="sweep file (default <output>/<name>/<name>-sweep.h5)")
+    sw.add_argument("--overwrite", action="store_true",
+                    help="replace an existing sweep file (an unfinished sweep resumes by itself)")
     sw.set_defaults(func=cmd_sweep)
     te = sub.add_parser("temper", help="replica exchange over a ladder of theta values")
     te.add_argument("config", help="run TOML with a [tempering] table")
@@ -519,6 +521,7 @@ def build_parser() -> argparse.ArgumentParser:
     ex.add_argument("--out", default=None, help="output prefix (default: RUN without .h5 + '_export')")
     ex.add_argument("--reference", action="store_true",
                     help="add the run's own Gamma-method means as 'high-statistics estimate' truths")
+    ex.add_argument("--overwrite", action="store_true", help="replace existing output files")
     ex.set_defaults(func=cmd_export)
     sy = sub.add_parser("synth", help="synthetic data with exactly known answers (npz + JSON sidecar)")
     sy.add_argument("kind", choices=["ar1", "free-field", "telegraph"])

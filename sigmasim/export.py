@@ -232,12 +232,12 @@ def _prefix(out) -> Path:
 
 
 def write_arrays(prefix, arrays: dict, entries: list[dict], fmt: str, sidecar: dict,
-                 protect: tuple = ()) -> list[Path]:
+                 protect: tuple = (), overwrite: bool = True) -> list[Path]:
     """Write ``arrays`` (name -> ndarray) in ``fmt`` and the sidecar ``PREFIX.json``.
 
     ``entries`` are the :func:`array_entry` dicts (in the order of ``arrays``);
     ``sidecar`` the remaining sidecar keys.  Paths in ``protect`` are never
-    written.  Returns the written paths (sidecar last).
+    written; with ``overwrite`` false no existing file is.  Returns the written paths (sidecar last).
     """
     if fmt not in FORMATS:
         raise ConfigError(f"unknown export format {fmt!r}; choose one of {', '.join(FORMATS)}")
@@ -255,6 +255,10 @@ def write_arrays(prefix, arrays: dict, entries: list[dict], fmt: str, sidecar: d
     for t in targets + [side]:
         if t.resolve() in protected:
             raise RunFileError(f"refusing to overwrite {t}: choose another --out")
+    if not overwrite:
+        for t in targets + [side]:
+            if t.exists() or t.is_symlink():
+                raise RunFileError(f"refusing to overwrite {t}: it exists (use --overwrite to replace it)")
     entries = [dict(e) for e in entries]
     from sigmasim.storage import atomic_output  # temporary names, then rename: never truncated
 
@@ -497,7 +501,8 @@ def reference_truth(data, skip=()) -> dict:
     return out
 
 
-def export_run(run_path, fmt: str = "npz", out=None, reference: bool = False) -> list[Path]:
+def export_run(run_path, fmt: str = "npz", out=None, reference: bool = False,
+               overwrite: bool = True) -> list[Path]:
     """Export a run file; returns the written paths (sidecar last)."""
     from sigmasim.storage import open_run
 
@@ -525,12 +530,14 @@ def export_run(run_path, fmt: str = "npz", out=None, reference: bool = False) ->
             "config": cfg.to_dict(), "seed": cfg.seed, "provenance": prov, "truth": truth,
             "notes": notes}
     prefix = _prefix(out) if out else run_path.with_name(run_path.stem + "_export")
-    return write_arrays(prefix, arrays, entries, fmt, side, protect=(run_path,))
+    return write_arrays(prefix, arrays, entries, fmt, side, protect=(run_path,), overwrite=overwrite)
 
 
-def export_command(run_path: str, fmt: str, out: str | None, reference: bool = False) -> int:
-    """``sigmasim export``: write the export, print the written files, return 0."""
-    paths = export_run(run_path, fmt, out, reference)
+def export_command(run_path: str, fmt: str, out: str | None, reference: bool = False,
+                   overwrite: bool = False) -> int:
+    """``sigmasim export``: write the export (never over existing files without ``overwrite``),
+    print the written files, return 0."""
+    paths = export_run(run_path, fmt, out, reference, overwrite=overwrite)
     side = json.loads(paths[-1].read_text())
     kinds = {}
     for e in side["truth"].values():

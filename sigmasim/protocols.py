@@ -100,7 +100,7 @@ __all__ = ["LIFETIME_SCHEMA", "LifetimeResult", "run_lifetimes", "lifetime_estim
            "replica_configs", "branch_populations", "branch_census", "BranchCensus",
            "CENSUS_MIN_CHANGES", "SweepParams", "SweepResult", "load_protocol", "split_protocol",
            "run_sweep", "write_sweep", "read_sweep", "plot_sweep", "tree_level", "sweep_command",
-           "temper_command", "lifetimes_command", "SWEEP_FORMAT"]
+           "temper_command", "lifetimes_command", "SWEEP_FORMAT", "sweep_checkpoint_path"]
 
 SWEEP_FORMAT = "sigmasim-sweep"
 
@@ -232,25 +232,145 @@ def _mean_err(x):
     return float(x.mean()), err, 0.5
 
 
-def run_sweep(config: RunConfig, params: SweepParams, progress=None) -> SweepResult:
-    """Run a hysteresis sweep in memory (see the module notes)."""
+_SWEEP_KEYS = ("sweep", "step", "theta", "omega_h", "det", "action", "action_mass", "action_det")
+SWEEP_CHECKPOINT_FORMAT = "sigmasim-sweep-checkpoint"
+
+
+def sweep_checkpoint_path(path) -> Path:
+    """The checkpoint of an unfinished sweep that writes ``path``."""
+    path = Path(path)
+    return path.with_name(path.name + ".checkpoint")
+
+
+def _sweep_identity(config: RunConfig, params: SweepParams) -> str:
+    return json.dumps({"physics": config.physics_hash(), "protocol": dataclasses.asdict(params)},
+                      sort_keys=True)
+
+
+def _save_sweep_checkpoint(path: Path, config, params, sim, next_step: int, ser: dict, wall: float) -> None:
+    """Everything a resumed sweep needs, written atomically (temporary name, fsync, rename)."""
+    import h5py
+
+    from sigmasim.chain import ChainState
+    from sigmasim.storage import atomic_output
+
+    st = sim.state
+
+    def write(tmp):
+        with h5py.File(tmp, "w") as f:
+            f.attrs["format"] = SWEEP_CHECKPOINT_FORMAT
+            f.attrs["identity"] = _sweep_identity(config, params)
+            f.attrs["next_step"] = next_step
+            f.attrs["wall_seconds"] = wall
+            g = f.create_group("state")
+            g.create_dataset("re", data=st.re)
+            g.create_dataset("im", data=st.im)
+            for k in ChainState.SCALARS:
+                g.attrs[k] = getattr(st, k)
+            g.attrs["win_acc"] = st.win_acc
+            g.attrs["win_tried"] = st.win_tried
+            h = f.create_group("series")
+            for k, v in ser.items():
+                h.create_dataset(k, data=np.asarray(v, dtype=np.complex128 if k in ("omega_h", "det")
+                                                    else np.float64 if k in ("theta", "action", "action_mass",
+                                                                             "action_det") else np.int64))
+
+    atomic_output(path, write, what="sweep checkpoint")
+
+
+def _load_sweep_checkpoint(path: Path, config, params, last_sweep: int, n_plan: int):
+    """(state, next_step, series lists, wall seconds) of a checkpoint; one-line errors when damaged."""
+    import h5py
+
+    from sigmasim.chain import ChainState
+    from sigmasim.storage import _check_state_ranges, _check_unitary
+
+    try:
+        with h5py.File(path, "r") as f:
+            if f.attrs.get("format") != SWEEP_CHECKPOINT_FORMAT:
+                raise RunFileError(f"{path} is not a sweep checkpoint; remove it")
+            if f.attrs.get("identity") != _sweep_identity(config, params):
+                raise RunFileError(f"{path} belongs to another config or [sweep] table; remove it or "
+                                   "restore that config")
+            nxt = f.attrs["next_step"]
+            wall = float(f.attrs["wall_seconds"])
+            g = f["state"]
+            st = ChainState(np.ascontiguousarray(g["re"][...], dtype=np.float64),
+                            np.ascontiguousarray(g["im"][...], dtype=np.float64))
+            for k in ChainState.SCALARS:
+                v = g.attrs[k]
+                if not isinstance(v, (int, float, np.integer, np.floating)) or isinstance(v, (bool, np.bool_)):
+                    raise TypeError(f"state attribute {k} is not a number")
+                setattr(st, k, type(getattr(st, k))(v))
+            for k in ("win_acc", "win_tried"):
+                v = g.attrs[k]
+                if not (isinstance(v, np.ndarray) and v.dtype.kind in "iu" and v.shape == (2,)):
+                    raise TypeError(f"state attribute {k} must be 2 integers")
+                setattr(st, k, np.asarray(v, dtype=np.int64).copy())
+            ser = {k: list(f["series"][k][...]) for k in _SWEEP_KEYS}
+    except RunFileError:
+        raise
+    except (OSError, KeyError, TypeError, ValueError, OverflowError) as exc:
+        raise RunFileError(f"{path} is a damaged sweep checkpoint ({' '.join(str(exc).split())}); "
+                           "remove it to start the sweep again") from None
+    nf, v = config.nf, config.volume
+    if st.re.shape != (nf * nf, v) or st.im.shape != (nf * nf, v) or not (
+            isinstance(nxt, (int, np.integer)) and 0 <= int(nxt) <= n_plan) or not (
+            np.isfinite(st.re).all() and np.isfinite(st.im).all()) or len({len(x) for x in ser.values()}) != 1:
+        raise RunFileError(f"{path} is a damaged sweep checkpoint; remove it to start the sweep again")
+    _check_state_ranges(st, config, path, last_sweep=last_sweep)
+    if getattr(config, "kind", "chiral") != "linear":
+        _check_unitary(st, config, path)
+    return st, int(nxt), ser, wall
+
+
+def run_sweep(config: RunConfig, params: SweepParams, progress=None, checkpoint=None) -> SweepResult:
+    """Run a hysteresis sweep in memory (see the module notes).
+
+    With ``checkpoint`` (a path) the chain state and the measurements so far are saved there after
+    the thermalisation and after every theta step once ``run.checkpoint_every`` sweeps or
+    ``run.checkpoint_seconds`` have passed; an existing checkpoint of the same config and protocol
+    is continued, and the result equals that of an uninterrupted sweep bit for bit.
+    """
     from sigmasim.analysis.tunnelling import branch_coordinate, branch_index
     from sigmasim.chain import make_simulation
 
     t0 = time.monotonic()
     grid = params.grid()
     cfg = dataclasses.replace(config, theta=float(grid[0]))
-    sim = make_simulation(cfg)
-    for _ in range(cfg.thermalize):
-        sim.sweep()
     plan = []  # (theta, cycle, direction)
     for c in range(params.cycles):
         plan += [(float(t), c, +1) for t in grid]
         plan += [(float(t), c, -1) for t in grid[::-1]]
-    ser = {k: [] for k in ("sweep", "step", "theta", "omega_h", "det", "action", "action_mass",
-                           "action_det")}
+    last_sweep = cfg.thermalize + len(plan) * (params.thermalize_per_step + params.sweeps_per_step)
+    ser = {k: [] for k in _SWEEP_KEYS}
+    first, wall_before = 0, 0.0
+    checkpoint = Path(checkpoint) if checkpoint is not None else None
+    if checkpoint is not None and checkpoint.exists():
+        state, first, ser, wall_before = _load_sweep_checkpoint(checkpoint, config, params, last_sweep,
+                                                                len(plan))
+        sim = make_simulation(cfg, state)
+    else:
+        sim = make_simulation(cfg)
+        for _ in range(cfg.thermalize):
+            sim.sweep()
+    saved = [sim.state.sweep, time.monotonic()]
+
+    def save(next_step, force=False):
+        if checkpoint is None:
+            return
+        if (force or sim.state.sweep - saved[0] >= cfg.checkpoint_every
+                or time.monotonic() - saved[1] >= cfg.checkpoint_seconds):
+            _save_sweep_checkpoint(checkpoint, config, params, sim, next_step, ser,
+                                   wall_before + time.monotonic() - t0)
+            saved[:] = [sim.state.sweep, time.monotonic()]
+
+    if first == 0:
+        save(0, force=True)
     every = cfg.measure_every
     for i, (th, c, d) in enumerate(plan):
+        if i < first:
+            continue
         sim.set_theta(th)
         for _ in range(params.thermalize_per_step):
             sim.sweep()
@@ -263,6 +383,7 @@ def run_sweep(config: RunConfig, params: SweepParams, progress=None) -> SweepRes
                 ser["theta"].append(th)
                 for k in ("omega_h", "det", "action", "action_mass", "action_det"):
                     ser[k].append(r[k])
+        save(i + 1)
         if progress is not None:
             progress(i + 1, len(plan))
     series = {k: np.asarray(v) for k, v in ser.items()}
@@ -288,7 +409,8 @@ def run_sweep(config: RunConfig, params: SweepParams, progress=None) -> SweepRes
         steps["branch_fraction"][i] = counts.max() / max(1, counts.sum())
         steps["n_meas"][i] = int(sel.sum())
     area, area_err, ju, jd = _loop_observables(steps, params.cycles)
-    return SweepResult(cfg, params, steps, series, area, area_err, ju, jd, time.monotonic() - t0)
+    return SweepResult(cfg, params, steps, series, area, area_err, ju, jd,
+                       wall_before + time.monotonic() - t0)
 
 
 def _jump(theta, branch):
@@ -928,7 +1050,6 @@ def _provenance() -> dict:
 def write_sweep(path, result: SweepResult) -> Path:
     """Write the whole sweep protocol into one HDF5 file (atomically: temporary file, rename)."""
     import datetime as _dt
-    import os
 
     import h5py
 
@@ -937,8 +1058,9 @@ def write_sweep(path, result: SweepResult) -> Path:
         path.parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise RunFileError(f"cannot create the output folder {path.parent}: {exc.strerror}") from None
-    tmp = path.with_name(path.name + ".tmp")
-    try:
+    from sigmasim.storage import atomic_output
+
+    def write(tmp):
         with h5py.File(tmp, "w") as f:
             f.attrs["format"] = SWEEP_FORMAT
             f.attrs["format_version"] = 1
@@ -969,11 +1091,9 @@ def write_sweep(path, result: SweepResult) -> Path:
                 g.create_dataset("im_omega_h", data=result.tree["im_omega_h"])
                 g.create_dataset("spinodals", data=result.tree["spinodals"])
                 g.create_dataset("first_order", data=result.tree["first_order"])
-        os.replace(tmp, path)
-    except OSError as exc:
-        tmp.unlink(missing_ok=True)
-        raise RunFileError(f"could not write {path} ({exc})") from None
-    return path
+
+    # temporary name unique to this process, fsync, rename: never a truncated sweep file
+    return atomic_output(path, write, what="sweep file")
 
 
 def read_sweep(path) -> dict:
@@ -1048,15 +1168,41 @@ def _set_threads(config: RunConfig) -> None:
         numba.set_num_threads(min(config.threads, numba.config.NUMBA_NUM_THREADS))
 
 
-def sweep_command(config_path: str, plot: bool = False, out: str | None = None) -> int:
-    """``sigmasim sweep CONFIG [--plot] [--out FILE]``: run a hysteresis sweep, write, print summary."""
+def sweep_command(config_path: str, plot: bool = False, out: str | None = None, overwrite: bool = False) -> int:
+    """``sigmasim sweep CONFIG [--plot] [--out FILE] [--overwrite]``: run a hysteresis sweep, write,
+    print summary.
+
+    The sweep keeps a checkpoint beside its file (``<file>.checkpoint``) and continues it when run
+    again after a crash; an existing sweep file is replaced only with ``overwrite``.
+    """
+    from sigmasim.storage import lock_path, release_lock, take_lock
+
     config, raw = load_protocol(config_path, "sweep", SWEEP_SCHEMA)
     params = SweepParams(**raw)
     path = Path(out) if out else config.run_dir / f"{config.name}-sweep.h5"
     if path.suffix != ".h5":
         raise ConfigError(f"--out must end in .h5, got {path}")
-    _set_threads(config)
-    result = run_sweep(config, params)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise RunFileError(f"cannot create the output folder {path.parent}: {exc.strerror}") from None
+    ckpt = sweep_checkpoint_path(path)
+    lock = take_lock(lock_path(path), "sigmasim process", path)
+    try:
+        if overwrite:
+            ckpt.unlink(missing_ok=True)  # start again
+        elif path.exists() and not ckpt.exists():
+            raise RunFileError(f"refusing to overwrite {path}: it exists (use --overwrite to replace it)")
+        _set_threads(config)
+        result = run_sweep(config, params, checkpoint=ckpt)
+        _finish_sweep(path, result, config, params, plot)
+        ckpt.unlink(missing_ok=True)
+    finally:
+        release_lock(lock)
+    return 0
+
+
+def _finish_sweep(path, result, config, params, plot) -> None:
     grid = params.grid()
     try:
         # the tree-level branches of sigmasim.vacua are those of the chiral potential only
@@ -1073,7 +1219,6 @@ def sweep_command(config_path: str, plot: bool = False, out: str | None = None) 
     if plot:
         png = plot_sweep(result, path.with_suffix(".png"))
         print(f"wrote {png}")
-    return 0
 
 
 def temper_command(config_path: str, out: str | None = None) -> int:

@@ -19,8 +19,6 @@ import pytest
 
 from sigmasim.cli import main
 from sigmasim.config import config_from_dict
-from sigmasim.storage import lock_path, release_lock, take_lock
-
 from runfiles import contents
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -43,6 +41,10 @@ measurements = {meas}
 checkpoint_every = 1
 threads = 1
 """
+
+
+def lock_path(target):
+    return target.with_name(target.name + ".lock")
 
 
 def _env():
@@ -167,6 +169,7 @@ def test_processes_taking_one_lock_at_the_same_instant_get_it_once(tmp_path, lef
 
 def test_scan_lock_at_library_level_is_exclusive_and_released(tmp_path):
     from sigmasim.errors import RunFileError
+    from sigmasim.storage import release_lock, take_lock
 
     lock = tmp_path / "scan.lock"
     got = take_lock(lock, "scan", tmp_path)
