@@ -68,11 +68,8 @@ def execute_run(config, resume: bool = False, overwrite: bool = False, quiet: bo
     Raises :class:`SigmasimError` subclasses for bad input and
     :class:`sigmasim.chain.Interrupted` after a checkpoint when stopped.
     """
-    from sigmasim.chain import Interrupted, make_simulation, run_chain
     from sigmasim.config import field_bytes
-    from sigmasim.progress import ProgressBar
-    from sigmasim.storage import (RunWriter, check_writable, lock_path, read_state, release_lock,
-                                  take_lock)
+    from sigmasim.storage import check_writable, lock_path, release_lock, take_lock
 
     path = config.run_file
     if resume and not path.exists():
@@ -83,15 +80,17 @@ def execute_run(config, resume: bool = False, overwrite: bool = False, quiet: bo
     # of the same file is refused with the holder's host and pid
     lock = take_lock(lock_path(path), "sigmasim process", path)
     try:
-        return _execute_locked(config, path, resume, overwrite, quiet, label, should_stop, sinks,
-                               Interrupted, make_simulation, run_chain, ProgressBar, RunWriter, read_state)
+        return _execute_locked(config, path, resume, overwrite, quiet, label, should_stop, sinks)
     finally:
         release_lock(lock)
 
 
-def _execute_locked(config, path, resume, overwrite, quiet, label, should_stop, sinks,
-                    Interrupted, make_simulation, run_chain, ProgressBar, RunWriter, read_state) -> Path:
+def _execute_locked(config, path, resume, overwrite, quiet, label, should_stop, sinks) -> Path:
     import os
+
+    from sigmasim.chain import Interrupted, make_simulation, run_chain
+    from sigmasim.progress import ProgressBar
+    from sigmasim.storage import RunWriter, read_state
 
     state = None
     if resume:

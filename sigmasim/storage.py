@@ -521,11 +521,13 @@ class RunWriter:
         try:
             shutil.copyfile(self.path, self.tmp)
             f = h5py.File(self.tmp, "a")
-            n_old = int(f.attrs["n_meas"])
+            series, slices = record_kinds(self.config)
+            # the records on disk (equal to the n_meas attribute, except in a file just rebuilt
+            # around a state with records still to append)
+            n_old = int(f["series"][next(iter(series))].shape[0])
             recs = self.buffer
             n_new = n_old + len(recs)
             if recs:
-                series, slices = record_kinds(self.config)
                 for name in series:
                     d = f["series"][name]
                     d.resize(n_new, axis=0)

@@ -244,3 +244,94 @@ def test_the_linear_model_accepts_only_the_documented_nf(nf):
                           "model": {"kind": "linear", "nf": nf, "kappa": 0.0, "mu2": 1.0}})
     config_from_dict({"lattice": {"shape": [2]}, "model": {"kind": "linear", "nf": 6, "kappa": 0.0,
                                                          "mu2": 1.0}})
+
+
+TEMPER = """
+name = "tm"
+seed = 9
+[lattice]
+shape = [4, 4]
+[model]
+nf = 2
+beta = 0.8
+mass = 0.4
+kappa = 0.6
+[run]
+thermalize = 4
+measurements = 30
+checkpoint_every = 5
+threads = 1
+output = "{out}"
+[tempering]
+thetas = [2.5, 3.1, 3.7]
+swap_every = 2
+"""
+
+
+def _temper(tmp_path, name):
+    cfg = tmp_path / f"{name}.toml"
+    cfg.write_text(TEMPER.format(out=(tmp_path / name).as_posix()))
+    return cfg
+
+
+def _slot_files(tmp_path, name):
+    return [tmp_path / name / "tm" / f"tm-t{i}" / f"tm-t{i}.h5" for i in range(3)]
+
+
+def _printed(capsys):
+    return [line for line in capsys.readouterr().out.splitlines() if not line.startswith("wrote")]
+
+
+@pytest.mark.parametrize("where", ["swap", "slot file"])
+def test_an_interrupted_tempering_continues_bit_identically(tmp_path, capsys, monkeypatch, where):
+    import sigmasim.protocols as pr
+    import sigmasim.storage as storage
+    from runfiles import contents
+
+    from sigmasim.protocols import temper_command, temper_checkpoint_path
+
+    assert temper_command(str(_temper(tmp_path, "ref"))) == 0
+    want_out = _printed(capsys)
+    want = [contents(p) for p in _slot_files(tmp_path, "ref")]
+    calls = [0]
+    with monkeypatch.context() as m:
+        if where == "swap":  # in the middle of the swaps of sweep 22
+            real = pr._slot_action
+
+            def action(*a):
+                calls[0] += 1
+                if calls[0] == 41:
+                    raise KeyboardInterrupt
+                return real(*a)
+
+            m.setattr(pr, "_slot_action", action)
+        else:  # at sweep 20, after the checkpoint and slot 0's commit: slots 1 and 2 are behind
+            real = storage.RunWriter.checkpoint
+
+            def ckpt(self, sim, *a):
+                calls[0] += 1
+                if calls[0] == 3 * 3 + 2:
+                    raise KeyboardInterrupt
+                return real(self, sim, *a)
+
+            m.setattr(storage.RunWriter, "checkpoint", ckpt)
+        with pytest.raises(KeyboardInterrupt):
+            temper_command(str(_temper(tmp_path, "cut")))
+    cfg = _temper(tmp_path, "cut")
+    ck = temper_checkpoint_path(pr.config_from_dict({k: v for k, v in read_toml(cfg).items()
+                                                     if k != "tempering"}))
+    assert ck.exists()
+    capsys.readouterr()
+    assert temper_command(str(cfg)) == 0  # continues; no slot file has to be removed
+    assert _printed(capsys) == want_out
+    assert not ck.exists()
+    for p, w in zip(_slot_files(tmp_path, "cut"), want):
+        got = contents(p)
+        assert got.keys() == w.keys()
+        for k in w:
+            np.testing.assert_array_equal(got[k], w[k], err_msg=f"{p.name} {k}")
+    # finished: a rerun still refuses to replace the slot files
+    from sigmasim.errors import RunFileError
+
+    with pytest.raises(RunFileError, match="exists"):
+        temper_command(str(cfg))
