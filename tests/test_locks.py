@@ -192,3 +192,31 @@ def test_a_stale_lock_file_of_a_killed_process_does_not_block(tmp_path, capsys):
     assert main(["run", str(cfg), "--output", str(out), "--quiet"]) == 0, capsys.readouterr().err
     cfg_obj = config_from_dict({"name": "lk", "lattice": {"shape": [8, 4]}, "run": {"output": str(out)}})
     assert cfg_obj.run_file == target
+
+
+def test_a_held_scan_lock_whose_file_is_still_empty_is_not_taken_over(tmp_path):
+    """The moment between creating the lock file and writing host and pid into it: the old lock read
+    the empty file as stale and removed it, so two scans held it."""
+    from types import SimpleNamespace
+
+    from sigmasim.errors import RunFileError
+    from sigmasim.scan import LOCK_FILE, _take_lock
+
+    spec = SimpleNamespace(output=tmp_path)
+    lock = tmp_path / LOCK_FILE
+    script = ("import sys, time; from types import SimpleNamespace; from sigmasim.scan import _take_lock; "
+              f"p = _take_lock(SimpleNamespace(output=__import__('pathlib').Path({str(tmp_path)!r}))); "
+              "open(p, 'w').close(); print('held', flush=True); time.sleep(60)")
+    holder = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.PIPE, text=True, env=_env(),
+                              cwd=ROOT)
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        assert lock.exists() and lock.read_text() == ""
+        with pytest.raises(RunFileError, match="another scan"):
+            _take_lock(spec)
+    finally:
+        holder.kill()
+        holder.wait()
+    from sigmasim.storage import release_lock
+
+    release_lock(_take_lock(spec))  # free once the holder is gone
