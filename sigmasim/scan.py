@@ -463,12 +463,9 @@ def _read_failures(spec: ScanSpec) -> dict:
 
 
 def _atomic_write(path: Path, text: str) -> None:
-    tmp = path.with_name(path.name + ".tmp")
-    try:
-        tmp.write_text(text)
-        os.replace(tmp, path)
-    except OSError as exc:
-        raise RunFileError(f"cannot write {path}: {exc.strerror}") from None
+    from sigmasim.storage import atomic_output  # per-process temporary name; removed on failure
+
+    atomic_output(path, lambda tmp: tmp.write_text(text), what="scan file")
 
 
 class _Display:
@@ -715,24 +712,25 @@ def _cell(v) -> str:
 
 
 def _write_csv(path: Path, columns, rows) -> None:
-    tmp = path.with_name(path.name + ".tmp")
-    try:
+    from sigmasim.storage import atomic_output  # per-process temporary name; removed on failure
+
+    def write(tmp):
         with open(tmp, "w", newline="") as fh:
             w = csv.writer(fh)
             w.writerow(columns)
             for r in rows:
                 w.writerow([_cell(v) for v in r])
-        os.replace(tmp, path)
-    except OSError as exc:
-        raise RunFileError(f"cannot write {path}: {exc.strerror}") from None
+
+    atomic_output(path, write, what="scan index")
 
 
 def _write_h5(path: Path, columns, rows, spec: ScanSpec) -> None:
     import h5py
 
-    tmp = path.with_name(path.name + ".tmp")
     text = h5py.string_dtype("utf-8")
-    try:
+    from sigmasim.storage import atomic_output  # per-process temporary name; removed on failure
+
+    def write(tmp):
         with h5py.File(tmp, "w") as f:
             f.attrs["format"] = INDEX_FORMAT
             f.attrs["version"] = INDEX_VERSION
@@ -748,9 +746,8 @@ def _write_h5(path: Path, columns, rows, spec: ScanSpec) -> None:
                         isinstance(v, float) for v in vals) else np.int64))
                 else:
                     g.create_dataset(col, data=[_cell(v) for v in vals], dtype=text)
-        os.replace(tmp, path)
-    except OSError as exc:
-        raise RunFileError(f"cannot write {path}: {exc.strerror}") from None
+
+    atomic_output(path, write, what="scan index")
 
 
 def read_index(path) -> dict:

@@ -82,6 +82,10 @@ def _p(path) -> str:
     return text if len(text) <= 200 and text.isprintable() else shown(text)
 
 
+def _size(n: int) -> str:
+    return f"{n / 2**20:.1f} MiB" if n >= 2**20 else f"{n / 2**10:.0f} KiB"
+
+
 def free_bytes(folder: Path) -> int:
     """Free bytes on the file system holding ``folder`` (tests replace this probe)."""
     return shutil.disk_usage(folder).free
@@ -238,10 +242,8 @@ def check_writable(path: Path, need_bytes: int) -> None:
     except OSError as exc:
         raise RunFileError(f"cannot use the output folder {_p(folder)}: {_strerror(exc)}") from None
     if free < need_bytes:
-        raise RunFileError(
-            f"not enough free disk space in {_p(folder)}: need about {need_bytes / 2**20:.0f} MiB, "
-            f"{free / 2**20:.0f} MiB free"
-        )
+        raise RunFileError(f"not enough free disk space in {_p(folder)}: need about {_size(need_bytes)}, "
+                           f"{_size(free)} free")
 
 
 def _one_line(exc: BaseException) -> str:
@@ -514,7 +516,7 @@ class RunWriter:
             # checked before the copy: a write that fails inside HDF5 can take the process down
             raise RunFileError(
                 f"No space left on device: the disk holding {_p(self.path.parent)} is full (a checkpoint needs "
-                f"about {need / 2**20:.1f} MiB, {free / 2**20:.1f} MiB free); the previous checkpoint "
+                f"about {_size(need)}, {_size(free)} free); the previous checkpoint "
                 "is intact, free some space and resume with --resume"
             )
         f = None
@@ -585,7 +587,10 @@ def _close_quietly(f) -> None:
 
 
 def _strerror(exc: BaseException) -> str:
-    return " ".join(str(getattr(exc, "strerror", None) or exc).split()) or type(exc).__name__
+    text = " ".join(str(getattr(exc, "strerror", None) or exc).split()) or type(exc).__name__
+    if getattr(exc, "errno", None) == 28 or "errno = 28" in text:  # HDF5 wraps ENOSPC in a long text
+        return "No space left on device"
+    return text
 
 
 def read_state(path: Path, config: RunConfig) -> ChainState:

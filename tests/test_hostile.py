@@ -364,3 +364,18 @@ def test_analyze_and_export_on_a_full_disk_leave_no_truncated_output(stopped_run
         assert "No space left on device" in err
     left = sorted(p.name for p in (out / "ho").iterdir())
     assert left == ["ho.h5"], left  # nothing half-written beside the run
+
+
+def test_a_scan_on_a_full_disk_ends_in_one_line_and_leaves_no_temporary_files(small_disk, tmp_path):
+    scan = tmp_path / "scan.toml"
+    scan.write_text(f'name = "fs"\n[scan]\nretries = 0\noutput = "{(small_disk / "out").as_posix()}"\n'
+                    '[scan.product]\n"model.theta" = [1.0, 2.0]\n'
+                    + CFG.format(meas=20, nf=2, group="U").split("[lattice]", 1)[1].join(["[lattice]", ""]))
+    _fill(small_disk, 12_000)
+    r = subprocess.run([sys.executable, "-m", "sigmasim", "scan", str(scan), "--workers", "1", "--quiet"],
+                       capture_output=True, text=True, env=_env(), cwd=ROOT, timeout=600)
+    assert r.returncode == 2, r.stderr[-2000:]
+    assert "Traceback" not in r.stderr and "Traceback" not in r.stdout
+    assert r.stderr.strip().splitlines()[-1].startswith("sigmasim: error:")
+    assert "No space left on device" in r.stderr or "not enough free disk space" in r.stderr + r.stdout
+    assert not list((small_disk / "out").rglob("*.tmp"))
