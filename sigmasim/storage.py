@@ -119,13 +119,19 @@ def _holder(fd: int) -> tuple[str, str]:
 
 
 def _pid_alive(pid: int) -> bool:
+    """Whether ``pid`` may be a live sigmasim process (a stale lock file's pid may have been reused)."""
     try:
         os.kill(pid, 0)
     except ProcessLookupError:
         return False
     except (PermissionError, OverflowError, ValueError):
         return True
-    return True
+    try:
+        with open(f"/proc/{pid}/cmdline", "rb") as fh:
+            cmd = fh.read()
+    except OSError:  # no /proc: assume it is
+        return True
+    return b"python" in cmd or b"sigmasim" in cmd
 
 
 def take_lock(lock: Path, who: str, target) -> Path:

@@ -220,3 +220,19 @@ def test_a_held_scan_lock_whose_file_is_still_empty_is_not_taken_over(tmp_path):
     from sigmasim.storage import release_lock
 
     release_lock(_take_lock(spec))  # free once the holder is gone
+
+
+def test_a_lock_file_naming_a_reused_pid_of_another_program_does_not_block(tmp_path, capsys):
+    """After a kill -9 the lock file stays; its pid may later belong to an unrelated program."""
+    cfg = tmp_path / "lk.toml"
+    cfg.write_text(CFG.format(meas=2))
+    out = tmp_path / "o"
+    target = out / "lk" / "lk.h5"
+    target.parent.mkdir(parents=True)
+    other = subprocess.Popen(["sleep", "60"])
+    try:
+        lock_path(target).write_text(f"{socket.gethostname()} {other.pid}")
+        assert main(["run", str(cfg), "--output", str(out), "--quiet"]) == 0, capsys.readouterr().err
+    finally:
+        other.kill()
+        other.wait()
