@@ -379,3 +379,27 @@ def test_a_scan_on_a_full_disk_ends_in_one_line_and_leaves_no_temporary_files(sm
     assert r.stderr.strip().splitlines()[-1].startswith("sigmasim: error:")
     assert "No space left on device" in r.stderr or "not enough free disk space" in r.stderr + r.stdout
     assert not list((small_disk / "out").rglob("*.tmp"))
+
+
+def test_outputs_on_a_read_only_file_system_end_in_one_line(tmp_path, capsys):
+    if os.geteuid() != 0:
+        pytest.skip("mounting a read-only tmpfs needs root")
+    ro = tmp_path / "ro"
+    ro.mkdir()
+    r = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=1m,ro", "tmpfs", str(ro)], capture_output=True)
+    if r.returncode != 0:
+        pytest.skip(f"cannot mount a tmpfs here: {r.stderr.decode().strip()}")
+    try:
+        cfg = _cfg(tmp_path, meas=2)
+        sweep = tmp_path / "sw.toml"
+        sweep.write_text(cfg.read_text() + "[sweep]\nstart = 0.0\nstop = 1.0\nstep = 0.5\nsweeps_per_step = 2\n")
+        for argv in (["sweep", str(sweep), "--out", str(ro / "s.h5")],
+                     ["sweep", str(sweep), "--out", str(ro / "sub" / "s.h5")],
+                     ["run", str(cfg), "--output", str(ro), "--quiet"]):
+            rc = main(argv)
+            err = capsys.readouterr().err
+            assert rc == 2, (argv, err)
+            _one_line(err)
+            assert "Read-only file system" in err or "not writable" in err, err
+    finally:
+        subprocess.run(["umount", "-l", str(ro)], capture_output=True)
