@@ -250,7 +250,7 @@ def cmd_scan(args) -> int:
         if args.resume or args.overwrite:
             raise ConfigError("a scan file resumes by itself; --resume/--overwrite are for a run config")
         return scan_command(args.config, scheduler=args.scheduler, workers=args.workers, threads=args.threads,
-                            collect_only=args.collect, plot=args.plot, x=args.x, quiet=args.quiet)
+                            collect_only=args.collect, plot=args.plot, x=args.x, quiet=args.quiet, raw=raw)
     for flag in ("scheduler", "workers", "plot", "x"):
         if getattr(args, flag) is not None:
             raise ConfigError(f"--{flag} needs a scan file (a TOML with a [scan] table)")

@@ -161,10 +161,12 @@ def _axis_values(v, where: str) -> list:
     return [float(x) for x in vals]
 
 
-def load_scan(path) -> ScanSpec:
-    """Read and validate a scan file (one-line :class:`ConfigError` on any problem)."""
+def load_scan(path, raw: dict | None = None) -> ScanSpec:
+    """Read and validate a scan file (one-line :class:`ConfigError` on any problem); ``raw`` is its
+    parsed TOML when the caller has read it already (a pipe can be read only once)."""
     path = Path(path)
-    raw = read_toml(path)
+    if raw is None:
+        raw = read_toml(path)
     scan = raw.get("scan")
     if not isinstance(scan, dict):
         raise ConfigError(f"{path} has no [scan] table (see 'sigmasim scan --help')")
@@ -828,9 +830,9 @@ def plot_index(spec: ScanSpec, points: list[Point], observable: str, x: str | No
 
 def scan_command(path: str, scheduler: str | None = None, workers: int | None = None,
                  threads: int | None = None, collect_only: bool = False, plot: str | None = None,
-                 x: str | None = None, quiet: bool = False) -> int:
+                 x: str | None = None, quiet: bool = False, raw: dict | None = None) -> int:
     """``sigmasim scan SCAN.toml [--scheduler ADDR] [--workers N] [--collect] [--plot OBS --x KEY]``."""
-    spec = load_scan(path)
+    spec = load_scan(path, raw)
     if workers is not None and workers < 1:
         raise ConfigError(f"--workers must be >= 1, got {workers}")
     if threads is not None and threads < 1:

@@ -407,3 +407,25 @@ def test_outputs_on_a_read_only_file_system_end_in_one_line(tmp_path, capsys):
             assert "Read-only file system" in err or "not writable" in err, err
     finally:
         subprocess.run(["umount", "-l", str(ro)], capture_output=True)
+
+
+def test_a_scan_file_from_a_pipe_is_read_once(tmp_path):
+    fifo = tmp_path / "scan.toml"
+    os.mkfifo(fifo)
+    text = (f'name = "fs"\n[scan]\noutput = "{(tmp_path / "out").as_posix()}"\n'
+            '[scan.product]\n"model.theta" = [1.0, 2.0]\n[lattice]\nshape = [4, 4]\n[model]\nnf = 2\n')
+
+    def feed():
+        with open(fifo, "w") as fh:
+            fh.write(text)
+
+    t = threading.Thread(target=feed, daemon=True)
+    t.start()
+    # a second read of the pipe would wait for a writer that never comes: the timeout fails the test
+    r = subprocess.run([sys.executable, "-m", "sigmasim", "scan", str(fifo), "--collect", "--quiet"],
+                       capture_output=True, text=True, env=_env(), cwd=ROOT, timeout=60)
+    if t.is_alive():
+        with open(fifo, "r") as fh:
+            fh.read()
+    assert "Traceback" not in r.stderr, r.stderr
+    assert (tmp_path / "out" / "index.csv").exists(), (r.returncode, r.stderr)
