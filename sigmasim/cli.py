@@ -68,27 +68,47 @@ def execute_run(config, resume: bool = False, overwrite: bool = False, quiet: bo
     Raises :class:`SigmasimError` subclasses for bad input and
     :class:`sigmasim.chain.Interrupted` after a checkpoint when stopped.
     """
-    from sigmasim.chain import Interrupted, make_simulation, run_chain
     from sigmasim.config import field_bytes
-    from sigmasim.progress import ProgressBar
-    from sigmasim.storage import RunWriter, check_writable, read_state
+    from sigmasim.storage import check_writable, lock_path, release_lock, take_lock
 
     path = config.run_file
+    if resume and not path.exists():
+        raise RunFileError(f"nothing to resume: {path} does not exist")
+    per_record = 16 * config.shape[0] * (config.nf**2 + 1) + 16 * (config.nf + 4) + 64
+    check_writable(path, 2 * (field_bytes(config.shape, config.nf) + per_record * config.measurements))
+    # one writer per run file, for the whole life of this call: another run, resume or overwrite
+    # of the same file is refused with the holder's host and pid
+    lock = take_lock(lock_path(path), "sigmasim process", path)
+    try:
+        return _execute_locked(config, path, resume, overwrite, quiet, label, should_stop, sinks)
+    finally:
+        release_lock(lock)
+
+
+def _execute_locked(config, path, resume, overwrite, quiet, label, should_stop, sinks) -> Path:
+    import os
+
+    from sigmasim.chain import Interrupted, make_simulation, run_chain
+    from sigmasim.progress import ProgressBar
+    from sigmasim.storage import RunWriter, read_state
+
     state = None
     if resume:
         if not path.exists():
             raise RunFileError(f"nothing to resume: {path} does not exist")
+        if not os.access(path, os.W_OK) or not (path.stat().st_mode & 0o222):
+            raise RunFileError(f"refusing to resume {path}: the file is read-only (make it writable to "
+                               "continue the run)")
         state = read_state(path, config)
     elif path.exists():
         _refuse_overwrite(path, config, overwrite)
     tmp = path.with_name(path.name + ".tmp")
     if tmp.exists():
-        # a checkpoint copy left by a crash mid-write: never the committed result, always ours
+        # a checkpoint copy left by a crash mid-write (the lock shows no one else is writing it)
         tmp.unlink()
-    per_record = 16 * config.shape[0] * (config.nf**2 + 1) + 16 * (config.nf + 4) + 64
-    check_writable(path, 2 * (field_bytes(config.shape, config.nf) + per_record * config.measurements))
     sim = make_simulation(config, state)
     if resume and sim.state.sweep >= sim.total_sweeps:
+        _note_complete(path, config, sim)
         return path
     writer = RunWriter(config, path, resume=resume)
     bar = ProgressBar(label or config.name, disable=True if quiet else None)
@@ -104,6 +124,18 @@ def execute_run(config, resume: bool = False, overwrite: bool = False, quiet: bo
         bar.close()
         flag.restore()
     return path
+
+
+def _note_complete(path: Path, config, sim) -> None:
+    """A resume that asks for no more than the file holds: say so, and mark the file complete."""
+    from sigmasim.storage import RunWriter, open_run
+
+    d = open_run(path)
+    if d.status == "complete":
+        return
+    print(f"sigmasim: {path} already holds {len(d)} measurements (sweep {sim.state.sweep}), "
+          f"the config asks for {config.measurements}: nothing to run; marked complete", file=sys.stderr)
+    RunWriter(config, path, resume=True)._commit(sim, "complete")
 
 
 def _refuse_overwrite(path: Path, config, overwrite: bool) -> None:
@@ -167,11 +199,12 @@ def _branch_note(config, omega_h) -> str:
 PROTOCOL_TABLES = {"sweep": "sweep", "tempering": "temper", "lifetimes": "lifetimes", "scan": "scan"}
 
 
-def _refuse_protocol_tables(path) -> None:
+def _refuse_protocol_tables(path, raw=None) -> None:
     from sigmasim.config import read_toml
     from sigmasim.errors import ConfigError
 
-    raw = read_toml(path)
+    if raw is None:
+        raw = read_toml(path)
     for table, command in PROTOCOL_TABLES.items():
         if table in raw:
             raise ConfigError(f"{path} has a [{table}] table: run it with 'sigmasim {command} {path}'")
@@ -179,7 +212,7 @@ def _refuse_protocol_tables(path) -> None:
 
 def cmd_run(args) -> int:
     from sigmasim.chain import Interrupted
-    from sigmasim.config import load_config
+    from sigmasim.config import config_from_dict, read_toml
 
     overrides = {}
     if args.output is not None:
@@ -188,8 +221,9 @@ def cmd_run(args) -> int:
         overrides["threads"] = args.threads
     if args.smoke:
         overrides.update(thermalize=10, measurements=20, name=Path(args.config).stem + "-smoke")
-    _refuse_protocol_tables(args.config)
-    config = load_config(args.config, overrides)
+    raw = read_toml(args.config)  # once: the config may be a pipe
+    _refuse_protocol_tables(args.config, raw)
+    config = config_from_dict(raw, overrides)
     _set_threads(config.threads)
     try:
         path = execute_run(config, resume=args.resume, overwrite=args.overwrite, quiet=args.quiet)
@@ -224,10 +258,11 @@ def cmd_scan(args) -> int:
     """A scan file runs on Dask (:mod:`sigmasim.scan`); a run config with --param/--values runs
     one config at several values of one key in turn: <name>-<key>-<value> per value."""
     from sigmasim.chain import Interrupted
-    from sigmasim.config import SCHEMA, config_from_dict, load_config, read_toml
+    from sigmasim.config import SCHEMA, config_from_dict, read_toml
     from sigmasim.errors import ConfigError
 
-    if "scan" in read_toml(args.config):
+    raw = read_toml(args.config)  # once: the config may be a pipe
+    if "scan" in raw:
         from sigmasim.scan import scan_command
 
         for flag in ("param", "values", "output"):
@@ -236,7 +271,7 @@ def cmd_scan(args) -> int:
         if args.resume or args.overwrite:
             raise ConfigError("a scan file resumes by itself; --resume/--overwrite are for a run config")
         return scan_command(args.config, scheduler=args.scheduler, workers=args.workers, threads=args.threads,
-                            collect_only=args.collect, plot=args.plot, x=args.x, quiet=args.quiet)
+                            collect_only=args.collect, plot=args.plot, x=args.x, quiet=args.quiet, raw=raw)
     for flag in ("scheduler", "workers", "plot", "x"):
         if getattr(args, flag) is not None:
             raise ConfigError(f"--{flag} needs a scan file (a TOML with a [scan] table)")
@@ -244,12 +279,15 @@ def cmd_scan(args) -> int:
         raise ConfigError("--collect needs a scan file (a TOML with a [scan] table)")
     if args.param is None or args.values is None:
         raise ConfigError(f"{args.config} has no [scan] table: give --param and --values, or write a scan file")
-    _refuse_protocol_tables(args.config)
-    base = load_config(args.config)  # validates the file itself first
+    _refuse_protocol_tables(args.config, raw)
+    base = config_from_dict(raw)  # validates the file itself first
     section, _, key = args.param.rpartition(".")
     if section not in SCHEMA or key not in SCHEMA[section] or args.param in ("name", "lattice.shape"):
         raise ConfigError(f"--param {args.param!r} is not a scannable config key (e.g. model.theta)")
-    raw = read_toml(args.config)
+    if args.threads is not None:
+        config_from_dict(raw, {"threads": args.threads})  # checked like the file key
+    if args.output is not None:
+        config_from_dict(raw, {"output": args.output})
     _set_threads(base.threads if args.threads is None else args.threads)
     paths = []
     for value in _parse_scan_values(args.values):
@@ -330,7 +368,7 @@ def cmd_analyze(args) -> int:
 def cmd_sweep(args) -> int:
     from sigmasim.protocols import sweep_command
 
-    return sweep_command(args.config, plot=args.plot, out=args.out)
+    return sweep_command(args.config, plot=args.plot, out=args.out, overwrite=args.overwrite)
 
 
 def cmd_temper(args) -> int:
@@ -348,7 +386,7 @@ def cmd_lifetimes(args) -> int:
 def cmd_export(args) -> int:
     from sigmasim.export import export_command
 
-    return export_command(args.run, args.format, args.out, reference=args.reference)
+    return export_command(args.run, args.format, args.out, reference=args.reference, overwrite=args.overwrite)
 
 
 def cmd_synth(args) -> int:
@@ -487,6 +525,8 @@ def build_parser() -> argparse.ArgumentParser:
     sw.add_argument("config", help="run TOML with a [sweep] table")
     sw.add_argument("--plot", action="store_true", help="draw the loop(s) with the tree-level branches")
     sw.add_argument("--out", default=None, help="sweep file (default <output>/<name>/<name>-sweep.h5)")
+    sw.add_argument("--overwrite", action="store_true",
+                    help="replace an existing sweep file (an unfinished sweep resumes by itself)")
     sw.set_defaults(func=cmd_sweep)
     te = sub.add_parser("temper", help="replica exchange over a ladder of theta values")
     te.add_argument("config", help="run TOML with a [tempering] table")
@@ -503,6 +543,7 @@ def build_parser() -> argparse.ArgumentParser:
     ex.add_argument("--out", default=None, help="output prefix (default: RUN without .h5 + '_export')")
     ex.add_argument("--reference", action="store_true",
                     help="add the run's own Gamma-method means as 'high-statistics estimate' truths")
+    ex.add_argument("--overwrite", action="store_true", help="replace existing output files")
     ex.set_defaults(func=cmd_export)
     sy = sub.add_parser("synth", help="synthetic data with exactly known answers (npz + JSON sidecar)")
     sy.add_argument("kind", choices=["ar1", "free-field", "telegraph"])
@@ -544,17 +585,38 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+def _terminate_as_interrupt() -> None:
+    """SIGTERM before a run installs its own handler stops the command like Ctrl-C (exit 130)."""
+    def handler(signum, frame):
+        raise KeyboardInterrupt
+
+    if threading.current_thread() is threading.main_thread():
+        if signal.getsignal(signal.SIGTERM) in (signal.SIG_DFL, None):
+            signal.signal(signal.SIGTERM, handler)
+
+
 def main(argv=None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
+    _terminate_as_interrupt()
+    try:
+        parser = build_parser()
+        args = parser.parse_args(argv)
+    except KeyboardInterrupt:
+        sys.stderr.write("sigmasim: interrupted\n")
+        return 130
     try:
         return int(args.func(args) or 0)
     except SigmasimError as exc:
         sys.stderr.write(f"sigmasim: error: {exc}\n")
         return 2
-    except KeyboardInterrupt:
-        sys.stderr.write("sigmasim: interrupted\n")
-        return 130
     except BrokenPipeError:  # output piped into head and closed early
         sys.stderr.close()
         return 0
+    except OSError as exc:  # a file system refusal this code did not foresee: still one line
+        from sigmasim.errors import shown
+
+        name = f" {shown(exc.filename)}" if getattr(exc, "filename", None) is not None else ""
+        sys.stderr.write(f"sigmasim: error: {exc.strerror or type(exc).__name__}{name}\n")
+        return 2
+    except KeyboardInterrupt:
+        sys.stderr.write("sigmasim: interrupted\n")
+        return 130

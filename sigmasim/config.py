@@ -19,7 +19,7 @@ from pathlib import Path
 
 import numpy as np
 
-from sigmasim.errors import ConfigError
+from sigmasim.errors import ConfigError, shown
 
 __all__ = ["SCHEMA", "RunConfig", "load_config", "read_toml", "config_from_dict", "UPDATES", "reference_markdown"]
 
@@ -120,9 +120,15 @@ def _check(kind, v, where):
         if not all(ch.isalnum() or ch in "-_." for ch in v) or v.startswith("."):
             raise ConfigError(f"{where} may contain only letters, digits, '-', '_' and '.', got {v!r}")
         return v
-    if kind == "str":
+    if kind == "str":  # a folder name
         if not isinstance(v, str) or not v:
-            raise ConfigError(f"{where} must be a non-empty string, got {v!r}")
+            raise ConfigError(f"{where} must be a non-empty string, got {shown(v)}")
+        if not v.isprintable():
+            raise ConfigError(f"{where} must not contain control characters (NUL, line breaks), "
+                              f"got {shown(v)}")
+        if len(os.fsencode(v)) > 1024 or any(len(os.fsencode(part)) > 255 for part in Path(v).parts):
+            raise ConfigError(f"{where} is too long for a path (at most 1024 bytes, 255 per folder "
+                              f"name), got {shown(v)}")
         return v
     if kind.startswith("choice:"):
         choices = kind[7:].split(",")
@@ -334,8 +340,12 @@ def config_from_dict(raw: dict, overrides: dict | None = None) -> RunConfig:
         for key, (kind, default, _) in keys.items():
             if key not in values:
                 values[key] = _check(kind, default, _where(section, key))
-    if overrides:
-        values.update(overrides)
+    for key, v in (overrides or {}).items():
+        # command-line overrides are checked exactly like the same keys in a file
+        section = next((sec for sec, keys in SCHEMA.items() if key in keys), None)
+        if section is None:
+            raise ConfigError(f"unknown key '{key}'")
+        values[key] = _check(SCHEMA[section][key][0], v, _where(section, key))
     nf = values["nf"]
     if values["group"] == "SU" and nf < 2:
         raise ConfigError("model.group = 'SU' needs model.nf >= 2")
@@ -349,6 +359,8 @@ def config_from_dict(raw: dict, overrides: dict | None = None) -> RunConfig:
     if values["kind"] == "linear":
         if values["group"] != "U":
             raise ConfigError("model.kind = 'linear' needs model.group = 'U' (Phi is a general complex matrix)")
+        if nf > LINEAR_MAX_NF:
+            raise ConfigError(f"model.kind = 'linear' supports model.nf = 1..{LINEAR_MAX_NF}, got {nf}")
         if values["kappa"] != 0:
             raise ConfigError("model.kappa is the chiral model's anomaly coupling; the linear model's is model.c")
         if values["kinetic"] < 0:
@@ -361,6 +373,7 @@ def config_from_dict(raw: dict, overrides: dict | None = None) -> RunConfig:
     return RunConfig(**values)
 
 
+LINEAR_MAX_NF = 6  # the documented range of the linear model (README: Nf = 1..6)
 LINEAR_KEYS = ("kinetic", "mu2", "lambda1", "lambda2", "c", "lambda_s", "stab_power")
 
 

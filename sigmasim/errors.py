@@ -4,7 +4,20 @@ Every error a user can cause derives from :class:`SigmasimError`; the command
 line prints its message as one line and exits with status 2.
 """
 
-__all__ = ["SigmasimError", "ConfigError", "RunFileError", "NumericalError"]
+import re
+
+__all__ = ["SigmasimError", "ConfigError", "RunFileError", "NumericalError", "shown"]
+
+
+def _cut(m) -> str:
+    text = m.group(0)
+    return f"{text[:150]}...{text[-30:]} ({len(text)} characters)"
+
+
+def shown(value, limit: int = 200) -> str:
+    """``repr`` of a value (a path as its string) for an error line, cut to about ``limit`` characters."""
+    text = repr(str(value)) if hasattr(value, "__fspath__") else repr(value)
+    return text if len(text) <= limit else f"{text[:limit - 30]}... ({len(text)} characters)"
 
 
 class SigmasimError(Exception):
@@ -16,7 +29,8 @@ class SigmasimError(Exception):
     """
 
     def __str__(self) -> str:
-        return " ".join(super().__str__().split())
+        # one line, and no value (a 5000-character path, say) quoted at more than ~200 characters
+        return re.sub(r"\S{201,}", _cut, " ".join(super().__str__().split()))
 
 
 class ConfigError(SigmasimError):

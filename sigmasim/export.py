@@ -232,12 +232,12 @@ def _prefix(out) -> Path:
 
 
 def write_arrays(prefix, arrays: dict, entries: list[dict], fmt: str, sidecar: dict,
-                 protect: tuple = ()) -> list[Path]:
+                 protect: tuple = (), overwrite: bool = True) -> list[Path]:
     """Write ``arrays`` (name -> ndarray) in ``fmt`` and the sidecar ``PREFIX.json``.
 
     ``entries`` are the :func:`array_entry` dicts (in the order of ``arrays``);
     ``sidecar`` the remaining sidecar keys.  Paths in ``protect`` are never
-    written.  Returns the written paths (sidecar last).
+    written; with ``overwrite`` false no existing file is.  Returns the written paths (sidecar last).
     """
     if fmt not in FORMATS:
         raise ConfigError(f"unknown export format {fmt!r}; choose one of {', '.join(FORMATS)}")
@@ -255,16 +255,26 @@ def write_arrays(prefix, arrays: dict, entries: list[dict], fmt: str, sidecar: d
     for t in targets + [side]:
         if t.resolve() in protected:
             raise RunFileError(f"refusing to overwrite {t}: choose another --out")
+    if not overwrite:
+        for t in targets + [side]:
+            if t.exists() or t.is_symlink():
+                raise RunFileError(f"refusing to overwrite {t}: it exists (use --overwrite to replace it)")
     entries = [dict(e) for e in entries]
-    try:
-        if fmt == "npz":
-            np.savez(targets[0], **arrays)
-            for e in entries:
-                e["file"] = targets[0].name
-        elif fmt == "hdf5":
-            import h5py
+    from sigmasim.storage import atomic_output  # temporary names, then rename: never truncated
 
-            with h5py.File(targets[0], "w") as f:
+    def savez(tmp):
+        with open(tmp, "wb") as fh:
+            np.savez(fh, **arrays)
+
+    if fmt == "npz":
+        atomic_output(targets[0], savez, what="export")
+        for e in entries:
+            e["file"] = targets[0].name
+    elif fmt == "hdf5":
+        import h5py
+
+        def save_h5(tmp):
+            with h5py.File(tmp, "w") as f:
                 f.attrs["format"] = "sigmasim-export"
                 f.attrs["sidecar"] = side.name
                 for e, (k, a) in zip(entries, arrays.items()):
@@ -272,20 +282,21 @@ def write_arrays(prefix, arrays: dict, entries: list[dict], fmt: str, sidecar: d
                     d.attrs["description"] = e["description"]
                     d.attrs["convention"] = e["convention"]
                     e["file"] = targets[0].name
-        else:
-            for e, t, (k, a) in zip(entries, targets, arrays.items()):
-                cols = column_names(k, a)
-                mat = _csv_matrix(a)
-                fmt_ = "%d" if np.issubdtype(mat.dtype, np.integer) else "%.17g"
-                np.savetxt(t, mat, delimiter=",", header=",".join(cols), comments="", fmt=fmt_)
-                e["file"] = t.name
-                e["columns"] = cols
-        doc = {"format": SIDECAR_FORMAT, "format_version": SIDECAR_VERSION, **sidecar,
-               "data_format": fmt, "files": [t.name for t in targets], "arrays": entries}
-        side.write_text(json.dumps(_clean(doc), indent=1, allow_nan=False) + "\n")
-    except OSError as exc:
-        raise RunFileError(f"could not write the export next to {prefix}: "
-                           f"{exc.strerror or exc}") from None
+
+        atomic_output(targets[0], save_h5, what="export")
+    else:
+        for e, t, (k, a) in zip(entries, targets, arrays.items()):
+            cols = column_names(k, a)
+            mat = _csv_matrix(a)
+            fmt_ = "%d" if np.issubdtype(mat.dtype, np.integer) else "%.17g"
+            atomic_output(t, lambda tmp: np.savetxt(tmp, mat, delimiter=",", header=",".join(cols),
+                                                    comments="", fmt=fmt_), what="export")
+            e["file"] = t.name
+            e["columns"] = cols
+    doc = {"format": SIDECAR_FORMAT, "format_version": SIDECAR_VERSION, **sidecar,
+           "data_format": fmt, "files": [t.name for t in targets], "arrays": entries}
+    text = json.dumps(_clean(doc), indent=1, allow_nan=False) + "\n"
+    atomic_output(side, lambda tmp: tmp.write_text(text), what="export sidecar")
     return targets + [side]
 
 
@@ -492,7 +503,8 @@ def reference_truth(data, skip=()) -> dict:
     return out
 
 
-def export_run(run_path, fmt: str = "npz", out=None, reference: bool = False) -> list[Path]:
+def export_run(run_path, fmt: str = "npz", out=None, reference: bool = False,
+               overwrite: bool = True) -> list[Path]:
     """Export a run file; returns the written paths (sidecar last)."""
     from sigmasim.storage import open_run
 
@@ -520,12 +532,14 @@ def export_run(run_path, fmt: str = "npz", out=None, reference: bool = False) ->
             "config": cfg.to_dict(), "seed": cfg.seed, "provenance": prov, "truth": truth,
             "notes": notes}
     prefix = _prefix(out) if out else run_path.with_name(run_path.stem + "_export")
-    return write_arrays(prefix, arrays, entries, fmt, side, protect=(run_path,))
+    return write_arrays(prefix, arrays, entries, fmt, side, protect=(run_path,), overwrite=overwrite)
 
 
-def export_command(run_path: str, fmt: str, out: str | None, reference: bool = False) -> int:
-    """``sigmasim export``: write the export, print the written files, return 0."""
-    paths = export_run(run_path, fmt, out, reference)
+def export_command(run_path: str, fmt: str, out: str | None, reference: bool = False,
+                   overwrite: bool = False) -> int:
+    """``sigmasim export``: write the export (never over existing files without ``overwrite``),
+    print the written files, return 0."""
+    paths = export_run(run_path, fmt, out, reference, overwrite=overwrite)
     side = json.loads(paths[-1].read_text())
     kinds = {}
     for e in side["truth"].values():

@@ -117,7 +117,8 @@ __all__ = ["LIFETIME_SCHEMA", "LifetimeResult", "run_lifetimes", "lifetime_estim
            "replica_configs", "branch_populations", "branch_census", "BranchCensus",
            "CENSUS_MIN_CHANGES", "SweepParams", "SweepResult", "load_protocol", "split_protocol",
            "run_sweep", "write_sweep", "read_sweep", "plot_sweep", "tree_level", "sweep_command",
-           "temper_command", "lifetimes_command", "SWEEP_FORMAT"]
+           "temper_command", "lifetimes_command", "SWEEP_FORMAT", "sweep_checkpoint_path",
+           "temper_checkpoint_path"]
 
 SWEEP_FORMAT = "sigmasim-sweep"
 
@@ -252,25 +253,147 @@ def _mean_err(x):
     return float(x.mean()), err, 0.5
 
 
-def run_sweep(config: RunConfig, params: SweepParams, progress=None) -> SweepResult:
-    """Run a hysteresis sweep in memory (see the module notes)."""
+_SWEEP_KEYS = ("sweep", "step", "theta", "omega_h", "det", "action", "action_mass", "action_det",
+               "ds_dtheta")
+SWEEP_CHECKPOINT_FORMAT = "sigmasim-sweep-checkpoint"
+
+
+def sweep_checkpoint_path(path) -> Path:
+    """The checkpoint of an unfinished sweep that writes ``path``."""
+    path = Path(path)
+    return path.with_name(path.name + ".checkpoint")
+
+
+def _sweep_identity(config: RunConfig, params: SweepParams) -> str:
+    return json.dumps({"physics": config.physics_hash(), "protocol": dataclasses.asdict(params)},
+                      sort_keys=True)
+
+
+def _save_sweep_checkpoint(path: Path, config, params, sim, next_step: int, ser: dict, wall: float) -> None:
+    """Everything a resumed sweep needs, written atomically (temporary name, fsync, rename)."""
+    import h5py
+
+    from sigmasim.chain import ChainState
+    from sigmasim.storage import atomic_output
+
+    st = sim.state
+
+    def write(tmp):
+        with h5py.File(tmp, "w") as f:
+            f.attrs["format"] = SWEEP_CHECKPOINT_FORMAT
+            f.attrs["identity"] = _sweep_identity(config, params)
+            f.attrs["next_step"] = next_step
+            f.attrs["wall_seconds"] = wall
+            g = f.create_group("state")
+            g.create_dataset("re", data=st.re)
+            g.create_dataset("im", data=st.im)
+            for k in ChainState.SCALARS:
+                g.attrs[k] = getattr(st, k)
+            g.attrs["win_acc"] = st.win_acc
+            g.attrs["win_tried"] = st.win_tried
+            h = f.create_group("series")
+            for k, v in ser.items():
+                h.create_dataset(k, data=np.asarray(v, dtype=np.complex128 if k in ("omega_h", "det")
+                                                    else np.float64 if k in ("theta", "action", "action_mass",
+                                                                             "action_det", "ds_dtheta")
+                                                    else np.int64))
+
+    atomic_output(path, write, what="sweep checkpoint")
+
+
+def _load_sweep_checkpoint(path: Path, config, params, last_sweep: int, n_plan: int):
+    """(state, next_step, series lists, wall seconds) of a checkpoint; one-line errors when damaged."""
+    import h5py
+
+    from sigmasim.chain import ChainState
+    from sigmasim.storage import _check_state_ranges, _check_unitary
+
+    try:
+        with h5py.File(path, "r") as f:
+            if f.attrs.get("format") != SWEEP_CHECKPOINT_FORMAT:
+                raise RunFileError(f"{path} is not a sweep checkpoint; remove it")
+            if f.attrs.get("identity") != _sweep_identity(config, params):
+                raise RunFileError(f"{path} belongs to another config or [sweep] table; remove it or "
+                                   "restore that config")
+            nxt = f.attrs["next_step"]
+            wall = float(f.attrs["wall_seconds"])
+            g = f["state"]
+            st = ChainState(np.ascontiguousarray(g["re"][...], dtype=np.float64),
+                            np.ascontiguousarray(g["im"][...], dtype=np.float64))
+            for k in ChainState.SCALARS:
+                v = g.attrs[k]
+                if not isinstance(v, (int, float, np.integer, np.floating)) or isinstance(v, (bool, np.bool_)):
+                    raise TypeError(f"state attribute {k} is not a number")
+                setattr(st, k, type(getattr(st, k))(v))
+            for k in ("win_acc", "win_tried"):
+                v = g.attrs[k]
+                if not (isinstance(v, np.ndarray) and v.dtype.kind in "iu" and v.shape == (2,)):
+                    raise TypeError(f"state attribute {k} must be 2 integers")
+                setattr(st, k, np.asarray(v, dtype=np.int64).copy())
+            ser = {k: list(f["series"][k][...]) for k in _SWEEP_KEYS}
+    except RunFileError:
+        raise
+    except (OSError, KeyError, TypeError, ValueError, OverflowError) as exc:
+        raise RunFileError(f"{path} is a damaged sweep checkpoint ({' '.join(str(exc).split())}); "
+                           "remove it to start the sweep again") from None
+    nf, v = config.nf, config.volume
+    if st.re.shape != (nf * nf, v) or st.im.shape != (nf * nf, v) or not (
+            isinstance(nxt, (int, np.integer)) and 0 <= int(nxt) <= n_plan) or not (
+            np.isfinite(st.re).all() and np.isfinite(st.im).all()) or len({len(x) for x in ser.values()}) != 1:
+        raise RunFileError(f"{path} is a damaged sweep checkpoint; remove it to start the sweep again")
+    _check_state_ranges(st, config, path, last_sweep=last_sweep)
+    if getattr(config, "kind", "chiral") != "linear":
+        _check_unitary(st, config, path)
+    return st, int(nxt), ser, wall
+
+
+def run_sweep(config: RunConfig, params: SweepParams, progress=None, checkpoint=None) -> SweepResult:
+    """Run a hysteresis sweep in memory (see the module notes).
+
+    With ``checkpoint`` (a path) the chain state and the measurements so far are saved there after
+    the thermalisation and after every theta step once ``run.checkpoint_every`` sweeps or
+    ``run.checkpoint_seconds`` have passed; an existing checkpoint of the same config and protocol
+    is continued, and the result equals that of an uninterrupted sweep bit for bit.
+    """
     from sigmasim.analysis.tunnelling import branch_coordinate, branch_index
     from sigmasim.chain import make_simulation
 
     t0 = time.monotonic()
     grid = params.grid()
     cfg = dataclasses.replace(config, theta=float(grid[0]))
-    sim = make_simulation(cfg)
-    for _ in range(cfg.thermalize):
-        sim.sweep()
     plan = []  # (theta, cycle, direction)
     for c in range(params.cycles):
         plan += [(float(t), c, +1) for t in grid]
         plan += [(float(t), c, -1) for t in grid[::-1]]
-    ser = {k: [] for k in ("sweep", "step", "theta", "omega_h", "det", "action", "action_mass",
-                           "action_det", "ds_dtheta")}
+    last_sweep = cfg.thermalize + len(plan) * (params.thermalize_per_step + params.sweeps_per_step)
+    ser = {k: [] for k in _SWEEP_KEYS}
+    first, wall_before = 0, 0.0
+    checkpoint = Path(checkpoint) if checkpoint is not None else None
+    if checkpoint is not None and checkpoint.exists():
+        state, first, ser, wall_before = _load_sweep_checkpoint(checkpoint, config, params, last_sweep,
+                                                                len(plan))
+        sim = make_simulation(cfg, state)
+    else:
+        sim = make_simulation(cfg)
+        for _ in range(cfg.thermalize):
+            sim.sweep()
+    saved = [sim.state.sweep, time.monotonic()]
+
+    def save(next_step, force=False):
+        if checkpoint is None:
+            return
+        if (force or sim.state.sweep - saved[0] >= cfg.checkpoint_every
+                or time.monotonic() - saved[1] >= cfg.checkpoint_seconds):
+            _save_sweep_checkpoint(checkpoint, config, params, sim, next_step, ser,
+                                   wall_before + time.monotonic() - t0)
+            saved[:] = [sim.state.sweep, time.monotonic()]
+
+    if first == 0:
+        save(0, force=True)
     every = cfg.measure_every
     for i, (th, c, d) in enumerate(plan):
+        if i < first:
+            continue
         sim.set_theta(th)
         for _ in range(params.thermalize_per_step):
             sim.sweep()
@@ -284,6 +407,7 @@ def run_sweep(config: RunConfig, params: SweepParams, progress=None) -> SweepRes
                 for k in ("omega_h", "det", "action", "action_mass", "action_det"):
                     ser[k].append(r[k])
                 ser["ds_dtheta"].append(theta_derivative(sim.config, r))
+        save(i + 1)
         if progress is not None:
             progress(i + 1, len(plan))
     series = {k: np.asarray(v) for k, v in ser.items()}
@@ -312,7 +436,7 @@ def run_sweep(config: RunConfig, params: SweepParams, progress=None) -> SweepRes
         steps["n_meas"][i] = int(sel.sum())
     area, area_err, ju, jd = _loop_observables(steps, params.cycles)
     area_im, _, _, _ = _loop_observables(steps, params.cycles, "im_omega_h")
-    return SweepResult(cfg, params, steps, series, area, area_err, ju, jd, time.monotonic() - t0,
+    return SweepResult(cfg, params, steps, series, area, area_err, ju, jd, wall_before + time.monotonic() - t0,
                        area_im_omega_h=area_im)
 
 
@@ -582,7 +706,128 @@ def replica_configs(config: RunConfig, thetas, mass_scales=None) -> list:
     return out
 
 
-def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = None) -> TemperResult:
+TEMPER_CHECKPOINT_FORMAT = "sigmasim-temper-checkpoint"
+
+
+def temper_checkpoint_path(config: RunConfig) -> Path:
+    """The checkpoint of an unfinished tempering protocol: ``<output>/<name>/<name>-temper.checkpoint``."""
+    return Path(config.output) / config.name / f"{config.name}-temper.checkpoint"
+
+
+def _temper_identity(config, params) -> str:
+    return json.dumps({"physics": config.physics_hash(), "protocol": dataclasses.asdict(params)},
+                      sort_keys=True, default=list)
+
+
+def _save_temper_checkpoint(path, config, params, sims, sinks, sweep, attempt, tried, acc, labels,
+                            history, measured, attempt_sweeps, wall) -> None:
+    """The whole protocol state, written atomically (temporary name, fsync, rename)."""
+    import h5py
+
+    from sigmasim.chain import ChainState
+    from sigmasim.storage import atomic_output
+
+    def write(tmp):
+        with h5py.File(tmp, "w") as f:
+            f.attrs["format"] = TEMPER_CHECKPOINT_FORMAT
+            f.attrs["identity"] = _temper_identity(config, params)
+            f.attrs["sweep"] = sweep
+            f.attrs["attempt"] = attempt
+            f.attrs["wall_seconds"] = wall
+            f.create_dataset("tried", data=tried)
+            f.create_dataset("accepted", data=acc)
+            f.create_dataset("labels", data=labels)
+            f.create_dataset("history", data=np.array(history, dtype=np.int64))
+            f.create_dataset("measured", data=np.array(measured, dtype=np.int64).reshape(-1, len(sims)))
+            f.create_dataset("attempt_sweeps", data=np.array(attempt_sweeps, dtype=np.int64))
+            for i, (sim, sk) in enumerate(zip(sims, sinks)):
+                g = f.create_group(f"slot{i}")
+                st = sim.state
+                g.create_dataset("re", data=st.re)
+                g.create_dataset("im", data=st.im)
+                for k in ChainState.SCALARS:
+                    g.attrs[k] = getattr(st, k)
+                g.attrs["win_acc"] = st.win_acc
+                g.attrs["win_tried"] = st.win_tried
+                recs = sk[0].records
+                g.attrs["n_records"] = len(recs)
+                r = g.create_group("records")
+                for k in (recs[0] if recs else {}):
+                    r.create_dataset(k.replace("/", "%2F"), data=np.array([x[k] for x in recs]))
+
+    atomic_output(path, write, what="tempering checkpoint")
+
+
+def _load_temper_checkpoint(path, config, params, configs, total) -> dict:
+    import h5py
+
+    from sigmasim.chain import ChainState
+    from sigmasim.storage import _check_state_ranges, _check_unitary
+
+    def damaged(why=""):
+        return RunFileError(f"{path} is a damaged tempering checkpoint{why}; remove it and the slot files "
+                            "to start again")
+
+    n_rep = len(configs)
+    try:
+        with h5py.File(path, "r") as f:
+            if f.attrs.get("format") != TEMPER_CHECKPOINT_FORMAT:
+                raise RunFileError(f"{path} is not a tempering checkpoint; remove it")
+            if f.attrs.get("identity") != _temper_identity(config, params):
+                raise RunFileError(f"{path} belongs to another config or [tempering] table; remove it "
+                                   "(and the slot files) or restore that config")
+            out = {"sweep": int(f.attrs["sweep"]), "attempt": int(f.attrs["attempt"]),
+                   "wall": float(f.attrs["wall_seconds"]),
+                   "tried": np.asarray(f["tried"][...], dtype=np.int64),
+                   "acc": np.asarray(f["accepted"][...], dtype=np.int64),
+                   "labels": np.asarray(f["labels"][...], dtype=np.int64),
+                   "history": [np.asarray(h, dtype=np.int64) for h in f["history"][...]],
+                   "measured": [np.asarray(m, dtype=np.int64) for m in f["measured"][...]],
+                   "attempt_sweeps": [int(x) for x in f["attempt_sweeps"][...]],
+                   "states": [], "records": []}
+            for i in range(n_rep):
+                g = f[f"slot{i}"]
+                st = ChainState(np.ascontiguousarray(g["re"][...], dtype=np.float64),
+                                np.ascontiguousarray(g["im"][...], dtype=np.float64))
+                for k in ChainState.SCALARS:
+                    v = g.attrs[k]
+                    if not isinstance(v, (int, float, np.integer, np.floating)) or isinstance(v, (bool, np.bool_)):
+                        raise TypeError(f"state attribute {k} is not a number")
+                    setattr(st, k, type(getattr(st, k))(v))
+                for k in ("win_acc", "win_tried"):
+                    v = g.attrs[k]
+                    if not (isinstance(v, np.ndarray) and v.dtype.kind in "iu" and v.shape == (2,)):
+                        raise TypeError(f"state attribute {k} must be 2 integers")
+                    setattr(st, k, np.asarray(v, dtype=np.int64).copy())
+                n = int(g.attrs["n_records"])
+                cols = {k.replace("%2F", "/"): d[...] for k, d in g["records"].items()}
+                if any(len(v) != n for v in cols.values()) or (n and not cols):
+                    raise ValueError("records of unequal length")
+                out["states"].append(st)
+                out["records"].append([{k: cols[k][j] for k in cols} for j in range(n)])
+    except RunFileError:
+        raise
+    except (OSError, KeyError, TypeError, ValueError, OverflowError) as exc:
+        raise damaged(f" ({' '.join(str(exc).split())})") from None
+    if not (0 < out["sweep"] <= total and out["tried"].shape == (n_rep - 1,) and out["acc"].shape == (n_rep - 1,)
+            and sorted(out["labels"].tolist()) == list(range(n_rep))
+            and all(sorted(h.tolist()) == list(range(n_rep)) for h in out["history"])
+            and len(out["history"]) == len(out["attempt_sweeps"]) == out["attempt"] + 1
+            and (out["acc"] <= out["tried"]).all() and (out["acc"] >= 0).all()):
+        raise damaged()
+    nf, v = config.nf, config.volume
+    for c, st in zip(configs, out["states"]):
+        if st.re.shape != (nf * nf, v) or st.im.shape != (nf * nf, v) or st.sweep != out["sweep"] or not (
+                np.isfinite(st.re).all() and np.isfinite(st.im).all()):
+            raise damaged()
+        _check_state_ranges(st, c, path, last_sweep=total)
+        if getattr(c, "kind", "chiral") != "linear":
+            _check_unitary(st, c, path)
+    return out
+
+
+def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = None,
+                  checkpoint=None) -> TemperResult:
     """Replica exchange over a ladder of slots (theta, and optionally a mass scale) in one process.
 
     Every slot keeps its theta and masses; an accepted swap exchanges the *fields* of neighbouring
@@ -596,6 +841,11 @@ def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = 
     is a tempering chain (fields were exchanged), so ``sigmasim run --resume`` of one of them would not
     continue it.  See the module notes on why a ladder in theta alone cannot mix the branches at a
     first-order point, and :func:`branch_census` for the check.
+
+    With ``checkpoint`` (a path; needs ``write``) the whole protocol state (every slot's chain and
+    records, swap counts, replica positions) is saved there every ``run.checkpoint_every`` sweeps,
+    just before the slot files are committed; when the checkpoint exists the protocol continues from
+    it (the slot files are rebuilt from it) and ends bit-identical to an uninterrupted one.
     """
     from sigmasim.chain import MemorySink, make_simulation
 
@@ -605,41 +855,71 @@ def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = 
     sims = [make_simulation(c) for c in configs]
     sinks = []
     files = []
-    for c, sim in zip(configs, sims):
+    checkpoint = Path(checkpoint) if (checkpoint is not None and write) else None
+    n_rep = len(sims)
+    total = sims[0].total_sweeps
+    resumed = None
+    if checkpoint is not None and checkpoint.exists():
+        resumed = _load_temper_checkpoint(checkpoint, config, params, configs, total)
+        sims = [make_simulation(c, st) for c, st in zip(configs, resumed["states"])]
+    for i, (c, sim) in enumerate(zip(configs, sims)):
         mem = MemorySink()
         sk = [mem]
         if write:
             from sigmasim.storage import RunWriter, check_writable
 
             check_writable(c.run_file, 1 << 20)
-            if c.run_file.exists():
+            if c.run_file.exists() and resumed is None:
                 raise RunFileError(f"{c.run_file} exists; remove it or choose another name or output")
             w = RunWriter(c, c.run_file)
             sk.append(w)
             files.append(c.run_file)
-        for s in sk:
-            s.start(sim)
+        if resumed is not None:
+            # the slot file is rebuilt from the checkpoint: it may be ahead of it after a crash
+            mem.records = list(resumed["records"][i])
+            for s in sk[1:]:
+                s.start(sim)
+                s.buffer = list(resumed["records"][i])
+                s.checkpoint(sim)
+        else:
+            for s in sk:
+                s.start(sim)
         sinks.append(sk)
-    n_rep = len(sims)
-    tried = np.zeros(n_rep - 1, dtype=np.int64)
-    acc = np.zeros(n_rep - 1, dtype=np.int64)
-    labels = np.arange(n_rep)
-    history = [labels.copy()]
-    measured = []
-    attempt_sweeps = [0]
-    total = sims[0].total_sweeps
-    attempt = 0
-    for sweep in range(1, total + 1):
-        for sim, sk in zip(sims, sinks):
-            sim.sweep()
-            past = sim.state.sweep - sim.config.thermalize
-            if past > 0 and past % sim.config.measure_every == 0:
-                rec = sim.measure()
-                for s in sk:
-                    s.record(sim, rec)
-            if sim.state.sweep % sim.config.checkpoint_every == 0:
-                for s in sk[1:]:
-                    s.checkpoint(sim)
+    if resumed is None:
+        tried = np.zeros(n_rep - 1, dtype=np.int64)
+        acc = np.zeros(n_rep - 1, dtype=np.int64)
+        labels = np.arange(n_rep)
+        history = [labels.copy()]
+        measured = []
+        attempt_sweeps = [0]
+        attempt = 0
+        first = 1
+    else:
+        tried, acc, labels = resumed["tried"], resumed["acc"], resumed["labels"]
+        history, measured = resumed["history"], resumed["measured"]
+        attempt_sweeps, attempt = resumed["attempt_sweeps"], resumed["attempt"]
+        first = resumed["sweep"]  # its sweeps are done; its swap step is not
+        t0 -= resumed["wall"]
+    last_saved = time.monotonic()
+    for sweep in range(first, total + 1):
+        if resumed is None or sweep > first:
+            for sim, sk in zip(sims, sinks):
+                sim.sweep()
+                past = sim.state.sweep - sim.config.thermalize
+                if past > 0 and past % sim.config.measure_every == 0:
+                    rec = sim.measure()
+                    for s in sk:
+                        s.record(sim, rec)
+            if (sweep % config.checkpoint_every == 0
+                    or time.monotonic() - last_saved >= config.checkpoint_seconds):
+                last_saved = time.monotonic()
+                if checkpoint is not None:
+                    _save_temper_checkpoint(checkpoint, config, params, sims, sinks, sweep, attempt, tried,
+                                            acc, labels, history, measured, attempt_sweeps,
+                                            time.monotonic() - t0)
+                for sim, sk in zip(sims, sinks):
+                    for s in sk[1:]:
+                        s.checkpoint(sim)
         past = sweep - config.thermalize
         if past > 0 and past % config.measure_every == 0:
             measured.append(labels.copy())
@@ -662,6 +942,8 @@ def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = 
     for sim, sk in zip(sims, sinks):
         for s in sk[1:]:
             s.finish(sim)
+    if checkpoint is not None:
+        checkpoint.unlink(missing_ok=True)
     replica_at = np.array(history)
     sweeps = np.array(attempt_sweeps)
     scales = np.ones(n_rep) if params.mass_scales is None else np.array(params.mass_scales)
@@ -1101,7 +1383,6 @@ def _provenance() -> dict:
 def write_sweep(path, result: SweepResult) -> Path:
     """Write the whole sweep protocol into one HDF5 file (atomically: temporary file, rename)."""
     import datetime as _dt
-    import os
 
     import h5py
 
@@ -1110,8 +1391,9 @@ def write_sweep(path, result: SweepResult) -> Path:
         path.parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise RunFileError(f"cannot create the output folder {path.parent}: {exc.strerror}") from None
-    tmp = path.with_name(path.name + ".tmp")
-    try:
+    from sigmasim.storage import atomic_output
+
+    def write(tmp):
         with h5py.File(tmp, "w") as f:
             f.attrs["format"] = SWEEP_FORMAT
             f.attrs["format_version"] = 1
@@ -1143,11 +1425,9 @@ def write_sweep(path, result: SweepResult) -> Path:
                 g.create_dataset("im_omega_h", data=result.tree["im_omega_h"])
                 g.create_dataset("spinodals", data=result.tree["spinodals"])
                 g.create_dataset("first_order", data=result.tree["first_order"])
-        os.replace(tmp, path)
-    except OSError as exc:
-        tmp.unlink(missing_ok=True)
-        raise RunFileError(f"could not write {path} ({exc})") from None
-    return path
+
+    # temporary name unique to this process, fsync, rename: never a truncated sweep file
+    return atomic_output(path, write, what="sweep file")
 
 
 def read_sweep(path) -> dict:
@@ -1228,15 +1508,41 @@ def _set_threads(config: RunConfig) -> None:
         numba.set_num_threads(min(config.threads, numba.config.NUMBA_NUM_THREADS))
 
 
-def sweep_command(config_path: str, plot: bool = False, out: str | None = None) -> int:
-    """``sigmasim sweep CONFIG [--plot] [--out FILE]``: run a hysteresis sweep, write, print summary."""
+def sweep_command(config_path: str, plot: bool = False, out: str | None = None, overwrite: bool = False) -> int:
+    """``sigmasim sweep CONFIG [--plot] [--out FILE] [--overwrite]``: run a hysteresis sweep, write,
+    print summary.
+
+    The sweep keeps a checkpoint beside its file (``<file>.checkpoint``) and continues it when run
+    again after a crash; an existing sweep file is replaced only with ``overwrite``.
+    """
+    from sigmasim.storage import lock_path, release_lock, take_lock
+
     config, raw = load_protocol(config_path, "sweep", SWEEP_SCHEMA)
     params = SweepParams(**raw)
     path = Path(out) if out else config.run_dir / f"{config.name}-sweep.h5"
     if path.suffix != ".h5":
         raise ConfigError(f"--out must end in .h5, got {path}")
-    _set_threads(config)
-    result = run_sweep(config, params)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise RunFileError(f"cannot create the output folder {path.parent}: {exc.strerror}") from None
+    ckpt = sweep_checkpoint_path(path)
+    lock = take_lock(lock_path(path), "sigmasim process", path)
+    try:
+        if overwrite:
+            ckpt.unlink(missing_ok=True)  # start again
+        elif path.exists() and not ckpt.exists():
+            raise RunFileError(f"refusing to overwrite {path}: it exists (use --overwrite to replace it)")
+        _set_threads(config)
+        result = run_sweep(config, params, checkpoint=ckpt)
+        _finish_sweep(path, result, config, params, plot)
+        ckpt.unlink(missing_ok=True)
+    finally:
+        release_lock(lock)
+    return 0
+
+
+def _finish_sweep(path, result, config, params, plot) -> None:
     grid = params.grid()
     try:
         # the tree-level branches of sigmasim.vacua are those of the chiral potential only
@@ -1262,7 +1568,6 @@ def sweep_command(config_path: str, plot: bool = False, out: str | None = None) 
     if plot:
         png = plot_sweep(result, path.with_suffix(".png"))
         print(f"wrote {png}")
-    return 0
 
 
 def temper_command(config_path: str, out: str | None = None) -> int:
@@ -1282,7 +1587,19 @@ def temper_command(config_path: str, out: str | None = None) -> int:
     if out:
         config = dataclasses.replace(config, output=str(out))
     _set_threads(config)
-    res = run_tempering(config, params)
+    if params.write == "yes":
+        # one process per protocol; a crashed one continues from its checkpoint when run again
+        from sigmasim.storage import check_writable, lock_path, release_lock, take_lock
+
+        ckpt = temper_checkpoint_path(config)
+        check_writable(ckpt, 1 << 20)
+        lock = take_lock(lock_path(ckpt), "sigmasim process", ckpt.parent)
+        try:
+            res = run_tempering(config, params, checkpoint=ckpt)
+        finally:
+            release_lock(lock)
+    else:
+        res = run_tempering(config, params)
     for f in res.files:
         print(f"wrote {f}")
     scales = res.mass_scales

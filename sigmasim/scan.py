@@ -161,10 +161,12 @@ def _axis_values(v, where: str) -> list:
     return [float(x) for x in vals]
 
 
-def load_scan(path) -> ScanSpec:
-    """Read and validate a scan file (one-line :class:`ConfigError` on any problem)."""
+def load_scan(path, raw: dict | None = None) -> ScanSpec:
+    """Read and validate a scan file (one-line :class:`ConfigError` on any problem); ``raw`` is its
+    parsed TOML when the caller has read it already (a pipe can be read only once)."""
     path = Path(path)
-    raw = read_toml(path)
+    if raw is None:
+        raw = read_toml(path)
     scan = raw.get("scan")
     if not isinstance(scan, dict):
         raise ConfigError(f"{path} has no [scan] table (see 'sigmasim scan --help')")
@@ -463,12 +465,9 @@ def _read_failures(spec: ScanSpec) -> dict:
 
 
 def _atomic_write(path: Path, text: str) -> None:
-    tmp = path.with_name(path.name + ".tmp")
-    try:
-        tmp.write_text(text)
-        os.replace(tmp, path)
-    except OSError as exc:
-        raise RunFileError(f"cannot write {path}: {exc.strerror}") from None
+    from sigmasim.storage import atomic_output  # per-process temporary name; removed on failure
+
+    atomic_output(path, lambda tmp: tmp.write_text(text), what="scan file")
 
 
 class _Display:
@@ -542,43 +541,17 @@ def run_scan(spec: ScanSpec, scheduler: str | None = None, workers: int | None =
     try:
         return _run_locked(spec, points, scheduler, workers, threads, quiet)
     finally:
-        lock.unlink(missing_ok=True)
+        from sigmasim.storage import release_lock
+
+        release_lock(lock)
 
 
 def _take_lock(spec: ScanSpec) -> Path:
-    """``<output>/scan.lock`` (host and pid): two scans never write the same points at once."""
-    import socket
+    """``<output>/scan.lock`` (an flock held for the life of the scan, naming host and pid): two scans
+    never write the same points at once, even when they start at the same instant."""
+    from sigmasim.storage import take_lock
 
-    lock = spec.output / LOCK_FILE
-    me = f"{socket.gethostname()} {os.getpid()}"
-    for _ in range(2):
-        try:
-            fd = os.open(lock, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o644)
-        except FileExistsError:
-            try:
-                host, pid = lock.read_text().split()
-                alive = host != socket.gethostname() or _pid_alive(int(pid))
-            except (OSError, ValueError):
-                alive = False
-            if alive:
-                raise RunFileError(f"another scan (host {host}, pid {pid}) is writing {spec.output}; "
-                                   f"wait for it or remove {lock} if it is gone") from None
-            lock.unlink(missing_ok=True)  # left by a scan that was killed
-            continue
-        with os.fdopen(fd, "w") as fh:
-            fh.write(me)
-        return lock
-    raise RunFileError(f"cannot take {lock}")
-
-
-def _pid_alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
+    return take_lock(spec.output / LOCK_FILE, "scan", spec.output)
 
 
 def _run_locked(spec, points, scheduler, workers, threads, quiet) -> list[Point]:
@@ -741,24 +714,25 @@ def _cell(v) -> str:
 
 
 def _write_csv(path: Path, columns, rows) -> None:
-    tmp = path.with_name(path.name + ".tmp")
-    try:
+    from sigmasim.storage import atomic_output  # per-process temporary name; removed on failure
+
+    def write(tmp):
         with open(tmp, "w", newline="") as fh:
             w = csv.writer(fh)
             w.writerow(columns)
             for r in rows:
                 w.writerow([_cell(v) for v in r])
-        os.replace(tmp, path)
-    except OSError as exc:
-        raise RunFileError(f"cannot write {path}: {exc.strerror}") from None
+
+    atomic_output(path, write, what="scan index")
 
 
 def _write_h5(path: Path, columns, rows, spec: ScanSpec) -> None:
     import h5py
 
-    tmp = path.with_name(path.name + ".tmp")
     text = h5py.string_dtype("utf-8")
-    try:
+    from sigmasim.storage import atomic_output  # per-process temporary name; removed on failure
+
+    def write(tmp):
         with h5py.File(tmp, "w") as f:
             f.attrs["format"] = INDEX_FORMAT
             f.attrs["version"] = INDEX_VERSION
@@ -774,9 +748,8 @@ def _write_h5(path: Path, columns, rows, spec: ScanSpec) -> None:
                         isinstance(v, float) for v in vals) else np.int64))
                 else:
                     g.create_dataset(col, data=[_cell(v) for v in vals], dtype=text)
-        os.replace(tmp, path)
-    except OSError as exc:
-        raise RunFileError(f"cannot write {path}: {exc.strerror}") from None
+
+    atomic_output(path, write, what="scan index")
 
 
 def read_index(path) -> dict:
@@ -857,9 +830,9 @@ def plot_index(spec: ScanSpec, points: list[Point], observable: str, x: str | No
 
 def scan_command(path: str, scheduler: str | None = None, workers: int | None = None,
                  threads: int | None = None, collect_only: bool = False, plot: str | None = None,
-                 x: str | None = None, quiet: bool = False) -> int:
+                 x: str | None = None, quiet: bool = False, raw: dict | None = None) -> int:
     """``sigmasim scan SCAN.toml [--scheduler ADDR] [--workers N] [--collect] [--plot OBS --x KEY]``."""
-    spec = load_scan(path)
+    spec = load_scan(path, raw)
     if workers is not None and workers < 1:
         raise ConfigError(f"--workers must be >= 1, got {workers}")
     if threads is not None and threads < 1:

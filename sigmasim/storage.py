@@ -39,10 +39,10 @@ import numpy as np
 from sigmasim import __version__
 from sigmasim.chain import SERIES, SLICES, ChainState
 from sigmasim.config import RunConfig, config_from_dict
-from sigmasim.errors import ConfigError, RunFileError, SigmasimError
+from sigmasim.errors import ConfigError, RunFileError, SigmasimError, shown
 
 __all__ = ["RunWriter", "RunData", "open_run", "read_state", "FORMAT", "FORMAT_VERSION",
-           "check_writable"]
+           "check_writable", "take_lock", "release_lock", "lock_path", "free_bytes", "atomic_output"]
 
 FORMAT = "sigmasim-run"
 FORMAT_VERSION = 1
@@ -76,21 +76,180 @@ def _provenance(config: RunConfig) -> dict:
     }
 
 
+def _p(path) -> str:
+    """A path for an error line: as is when short, cut to about 200 characters when long."""
+    text = str(path)
+    return text if len(text) <= 200 and text.isprintable() else shown(text)
+
+
+def _size(n: int) -> str:
+    return f"{n / 2**20:.1f} MiB" if n >= 2**20 else f"{n / 2**10:.0f} KiB"
+
+
+def free_bytes(folder: Path) -> int:
+    """Free bytes on the file system holding ``folder`` (tests replace this probe)."""
+    return shutil.disk_usage(folder).free
+
+
+# ---------------------------------------------------------------------------------------------
+# One writer per file: an exclusive flock on a small lock file that names its holder.
+#
+# flock is released by the kernel when the holding process dies, so a lock of a killed process
+# never blocks.  The holder removes the lock file while it still holds it; a process that waited
+# on the old file sees that the path no longer names the file it locked and tries again, so two
+# processes never hold locks on two different files of the same name.  The host and pid inside
+# are only for the refusal message, and for lock files written without flock: such a file that
+# names a live process (or another host) is treated as held.
+
+_HELD: dict[str, int] = {}
+
+
+def lock_path(target: Path) -> Path:
+    """The lock file of a run file (``<name>.h5.lock``)."""
+    target = Path(target)
+    return target.with_name(target.name + ".lock")
+
+
+def _holder(fd: int) -> tuple[str, str]:
+    try:
+        parts = os.pread(fd, 300, 0).decode("utf-8", "replace").split()
+    except OSError:
+        parts = []
+    return (parts[0], parts[1]) if len(parts) == 2 else ("?", "?")
+
+
+def _pid_alive(pid: int) -> bool:
+    """Whether ``pid`` may be a live sigmasim process (a stale lock file's pid may have been reused)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, OverflowError, ValueError):
+        return True
+    try:
+        with open(f"/proc/{pid}/cmdline", "rb") as fh:
+            cmd = fh.read()
+    except OSError:  # no /proc: assume it is
+        return True
+    return b"python" in cmd or b"sigmasim" in cmd
+
+
+def take_lock(lock: Path, who: str, target) -> Path:
+    """Hold an exclusive lock on ``lock`` for the life of this process (until :func:`release_lock`).
+
+    ``who`` and ``target`` word the refusal: "another <who> (host H, pid P) is writing <target>".
+    """
+    import fcntl
+    import socket
+
+    lock = Path(lock)
+    key = os.path.abspath(lock)
+    host = socket.gethostname()
+
+    def refuse(h, p):
+        return RunFileError(f"another {who} (host {h}, pid {p}) is writing {_p(target)}; "
+                            f"wait for it or remove {_p(lock)} if it is gone")
+
+    if key in _HELD:
+        raise refuse(host, os.getpid())
+    for _ in range(50):
+        try:
+            fd = os.open(lock, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o644)
+        except OSError as exc:
+            raise RunFileError(f"cannot create the lock file {_p(lock)} "
+                               f"({_strerror(exc)})") from None
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError as exc:
+            h, p = _holder(fd)
+            os.close(fd)
+            if isinstance(exc, BlockingIOError):
+                raise refuse(h, p) from None
+            raise RunFileError(f"cannot lock {_p(lock)} ({_strerror(exc)})") from None
+        try:
+            same = os.fstat(fd).st_ino == os.stat(lock).st_ino
+        except OSError:
+            same = False
+        if not same:  # the holder removed this file while we waited: lock the new one
+            os.close(fd)
+            continue
+        h, p = _holder(fd)
+        if h != "?" and (h != host or (p.isdigit() and int(p) != os.getpid() and _pid_alive(int(p)))
+                         or (p == str(os.getpid()))):
+            # written by a process that did not use flock (or by this one without holding it)
+            os.close(fd)
+            raise refuse(h, p)
+        try:
+            os.ftruncate(fd, 0)
+            os.pwrite(fd, f"{host} {os.getpid()}".encode(), 0)
+        except OSError as exc:
+            os.close(fd)
+            raise RunFileError(f"cannot write the lock file {_p(lock)} "
+                               f"({_strerror(exc)})") from None
+        _HELD[key] = fd
+        return lock
+    raise RunFileError(f"cannot take the lock {_p(lock)}")
+
+
+def release_lock(lock: Path) -> None:
+    """Remove and release a lock taken by :func:`take_lock` (nothing if not held)."""
+    fd = _HELD.pop(os.path.abspath(lock), None)
+    if fd is None:
+        return
+    try:
+        os.unlink(lock)  # while still held: see above
+    except OSError:
+        pass
+    os.close(fd)
+
+
+def atomic_output(path: Path, write, what: str = "output") -> Path:
+    """Write ``path`` through ``write(tmp_path)`` into a temporary name, then rename it into place.
+
+    A failure leaves no truncated file at ``path`` (the previous one, if any, stays) and becomes one
+    line naming the problem.
+    """
+    path = Path(path)
+    tmp = path.with_name(f".{path.name[:120]}.{os.getpid()}.tmp")  # unique to this process
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        write(tmp)
+        with open(tmp, "rb+") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except (OSError, RuntimeError) as exc:  # h5py reports some write failures as RuntimeError
+        try:
+            tmp.unlink(missing_ok=True)
+        except OSError:
+            pass
+        why = _strerror(exc)
+        raise RunFileError(f"could not write the {what} {_p(path)} ({why}); "
+                           "nothing was left behind") from None
+    except BaseException:
+        try:
+            tmp.unlink(missing_ok=True)
+        except OSError:
+            pass
+        raise
+    return path
+
+
 def check_writable(path: Path, need_bytes: int) -> None:
     """Fail early when the run folder cannot be created or written, or the disk is too full."""
     folder = path.parent
     try:
         folder.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise RunFileError(f"cannot create the output folder {folder}: {exc.strerror}") from None
-    if not os.access(folder, os.W_OK):
-        raise RunFileError(f"the output folder {folder} is not writable")
-    free = shutil.disk_usage(folder).free
+        raise RunFileError(f"cannot create the output folder {_p(folder)}: {_strerror(exc)}") from None
+    if not os.access(folder, os.W_OK | os.X_OK):
+        raise RunFileError(f"the output folder {_p(folder)} is not writable")
+    try:
+        free = free_bytes(folder)
+    except OSError as exc:
+        raise RunFileError(f"cannot use the output folder {_p(folder)}: {_strerror(exc)}") from None
     if free < need_bytes:
-        raise RunFileError(
-            f"not enough free disk space in {folder}: need about {need_bytes / 2**20:.0f} MiB, "
-            f"{free / 2**20:.0f} MiB free"
-        )
+        raise RunFileError(f"not enough free disk space in {_p(folder)}: need about {_size(need_bytes)}, "
+                           f"{_size(free)} free")
 
 
 def _one_line(exc: BaseException) -> str:
@@ -343,41 +502,71 @@ class RunWriter:
         f.attrs["n_meas"] = st.n_meas
         f.attrs["sweep"] = st.sweep
 
+    def _need_bytes(self) -> int:
+        """Bytes a checkpoint copy needs: the file, the buffered records, slack for HDF5 chunks."""
+        per_record = sum(int(np.prod(shape or (1,))) * dt.itemsize
+                         for dt, shape in _layout(self.config).values())
+        try:
+            size = self.path.stat().st_size
+        except OSError:
+            size = 0
+        return size + 2 * per_record * len(self.buffer) + (1 << 20)
+
     def _commit(self, sim, status: str) -> None:
+        need = self._need_bytes()
+        try:
+            free = free_bytes(self.path.parent)
+        except OSError:
+            free = need
+        if free < need:
+            # checked before the copy: a write that fails inside HDF5 can take the process down
+            raise RunFileError(
+                f"No space left on device: the disk holding {_p(self.path.parent)} is full (a checkpoint needs "
+                f"about {_size(need)}, {_size(free)} free); the previous checkpoint "
+                "is intact, free some space and resume with --resume"
+            )
+        f = None
         try:
             shutil.copyfile(self.path, self.tmp)
-            with h5py.File(self.tmp, "a") as f:
-                n_old = int(f.attrs["n_meas"])
-                recs = self.buffer
-                n_new = n_old + len(recs)
-                if recs:
-                    series, slices = record_kinds(self.config)
-                    for name in series:
-                        d = f["series"][name]
-                        d.resize(n_new, axis=0)
-                        d[n_old:n_new] = np.array([r[name] for r in recs])
-                    for name in slices:
-                        d = f["slices"][name]
-                        d.resize(n_new, axis=0)
-                        d[n_old:n_new] = np.stack([r["slices/" + name] for r in recs])
-                self._write_state(f, sim)
-                # measurements may have been extended on resume; the rest is checked equal
-                f.attrs["config"] = json.dumps(self.config.to_dict(), sort_keys=True)
-                f.attrs["status"] = status
-                p = f["provenance"]
-                p.attrs["updated"] = _now()
-                p.attrs["wall_seconds"] = self.wall_before + time.monotonic() - self.t0
-                f.flush()
+            f = h5py.File(self.tmp, "a")
+            series, slices = record_kinds(self.config)
+            # the records on disk (equal to the n_meas attribute, except in a file just rebuilt
+            # around a state with records still to append)
+            n_old = int(f["series"][next(iter(series))].shape[0])
+            recs = self.buffer
+            n_new = n_old + len(recs)
+            if recs:
+                for name in series:
+                    d = f["series"][name]
+                    d.resize(n_new, axis=0)
+                    d[n_old:n_new] = np.array([r[name] for r in recs])
+                for name in slices:
+                    d = f["slices"][name]
+                    d.resize(n_new, axis=0)
+                    d[n_old:n_new] = np.stack([r["slices/" + name] for r in recs])
+            self._write_state(f, sim)
+            # measurements may have been extended on resume; the rest is checked equal
+            f.attrs["config"] = json.dumps(self.config.to_dict(), sort_keys=True)
+            f.attrs["status"] = status
+            p = f["provenance"]
+            p.attrs["updated"] = _now()
+            p.attrs["wall_seconds"] = self.wall_before + time.monotonic() - self.t0
+            f.flush()
+            f.close()
+            f = None
             with open(self.tmp, "rb+") as fh:
                 os.fsync(fh.fileno())
             self._switch(self.tmp)
         except (OSError, RuntimeError) as exc:  # disk full, quota, I/O error, h5py write failure
+            _close_quietly(f)
             self.tmp.unlink(missing_ok=True)
+            why = _strerror(exc)
             raise RunFileError(
-                f"could not write checkpoint {self.path} ({_strerror(exc)}); "
+                f"could not write checkpoint {_p(self.path)} ({why}); "
                 "the previous checkpoint is intact, resume with --resume"
             ) from None
         except (KeyError, TypeError, ValueError) as exc:  # the file changed under the run
+            _close_quietly(f)
             self.tmp.unlink(missing_ok=True)
             raise RunFileError(f"could not write checkpoint {self.path}: the file is damaged "
                                f"({_one_line(exc)})") from None
@@ -393,8 +582,21 @@ class RunWriter:
             pass
 
 
+def _close_quietly(f) -> None:
+    """Close an HDF5 file on an error path (explicitly, so no half-written handle outlives it)."""
+    if f is None:
+        return
+    try:
+        f.close()
+    except Exception:  # the close of a file whose write failed can fail again; nothing to save
+        pass
+
+
 def _strerror(exc: BaseException) -> str:
-    return " ".join(str(getattr(exc, "strerror", None) or exc).split()) or type(exc).__name__
+    text = " ".join(str(getattr(exc, "strerror", None) or exc).split()) or type(exc).__name__
+    if getattr(exc, "errno", None) == 28 or "errno = 28" in text:  # HDF5 wraps ENOSPC in a long text
+        return "No space left on device"
+    return text
 
 
 def read_state(path: Path, config: RunConfig) -> ChainState:
@@ -430,9 +632,64 @@ def read_state(path: Path, config: RunConfig) -> ChainState:
                                f"the file {int(f.attrs['n_meas'])} after sweep {int(f.attrs['sweep'])}")
         if st.step < 0 or st.step_size <= 0 or not np.isfinite(st.step_size):
             raise RunFileError(f"{path} has a damaged checkpoint (step {st.step}, step size {st.step_size})")
+        _check_state_ranges(st, stored, path)
         if not (np.isfinite(st.re).all() and np.isfinite(st.im).all()):
             raise RunFileError(f"{path} has a damaged checkpoint (non-finite field)")
+        if getattr(stored, "kind", "chiral") != "linear":
+            _check_unitary(st, stored, path)
     return st
+
+
+# the kernels take the step counter as a signed 64-bit key input: keep far from its end
+STEP_LIMIT = 2**62
+UNITARITY_TOL = 1e-6  # a run re-unitarises every few sweeps; its drift stays near 1e-13
+
+
+def _check_state_ranges(st: ChainState, cfg: RunConfig, path, last_sweep: int | None = None) -> None:
+    """Every checkpoint scalar within what a run can have produced, before any kernel sees it.
+
+    ``last_sweep`` is the chain's last sweep, when known.
+    """
+    def bad(what):
+        return RunFileError(f"{path} has a damaged checkpoint ({what})")
+
+    for k in ("step", "sweep", "n_meas", "tune_acc", "tune_tried"):
+        v = getattr(st, k)
+        if not 0 <= v < STEP_LIMIT:
+            raise bad(f"state attribute {k} = {v} is out of range")
+    # a run file's sweep is tied to its records by _check_file (a resume may ask for fewer
+    # measurements than a file holds); a protocol checkpoint gives its last sweep
+    if last_sweep is not None and st.sweep > last_sweep:
+        raise bad(f"sweep {st.sweep} is past the run's last sweep")
+    if st.tune_acc > st.tune_tried:
+        raise bad(f"{st.tune_acc} accepted of {st.tune_tried} tried")
+    step_max = max(float(cfg.initial_step), 1e3)
+    if not st.step_size <= step_max:
+        raise bad(f"step size {st.step_size} is out of range")
+    if not (np.isfinite(st.win_drift) and 0 <= st.win_drift < 1):
+        raise bad(f"unitarity drift {st.win_drift} is out of range")
+    if ((st.win_acc < 0) | (st.win_tried < 0) | (st.win_acc > st.win_tried)
+            | (st.win_tried >= STEP_LIMIT)).any():
+        raise bad(f"window counts {st.win_acc.tolist()} of {st.win_tried.tolist()} are out of range")
+
+
+def _check_unitary(st: ChainState, cfg: RunConfig, path) -> None:
+    """The chiral field is unitary (and of unit determinant for SU) at every site."""
+    nf = cfg.nf
+    worst, worst_det = 0.0, 0.0
+    eye = np.eye(nf)
+    step = 1 << 14
+    for lo in range(0, st.re.shape[1], step):  # blocks: bounded scratch memory on big lattices
+        u = (st.re[:, lo:lo + step] + 1j * st.im[:, lo:lo + step]).T.reshape(-1, nf, nf)
+        g = np.einsum("sba,sbc->sac", u.conj(), u)
+        worst = max(worst, float(np.abs(g - eye).max()))
+        if cfg.group == "SU":
+            worst_det = max(worst_det, float(np.abs(np.linalg.det(u) - 1).max()))
+    if not worst <= UNITARITY_TOL:
+        raise RunFileError(f"{path} has a damaged checkpoint (the field is not unitary: "
+                           f"|U^+U - 1| = {worst:.3g})")
+    if not worst_det <= UNITARITY_TOL:
+        raise RunFileError(f"{path} has a damaged checkpoint (det U differs from 1 by {worst_det:.3g})")
 
 
 class RunData:

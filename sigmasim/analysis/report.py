@@ -767,17 +767,21 @@ def write_outputs(ra: RunAnalysis, json_path=None, csv_path=None) -> tuple[Path,
         dj, dc = output_paths(ra.path)
         json_path, csv_path = json_path or dj, csv_path or dc
     json_path, csv_path = Path(json_path), Path(csv_path)
-    try:
-        json_path.write_text(json.dumps(analysis_dict(ra), indent=1, allow_nan=False) + "\n")
-        with open(csv_path, "w", newline="") as fh:
+    from sigmasim.storage import atomic_output  # temporary name, fsync, rename: never truncated
+
+    text = json.dumps(analysis_dict(ra), indent=1, allow_nan=False) + "\n"
+
+    def write_csv(tmp):
+        with open(tmp, "w", newline="") as fh:
             w = csv.DictWriter(fh, fieldnames=CSV_COLUMNS)
             w.writeheader()
             for row in _csv_rows(ra):
                 w.writerow({k: ("" if v is None or (isinstance(v, float) and not math.isfinite(v))
                                 else (f"{v:.10g}" if isinstance(v, float) else v))
                             for k, v in row.items()})
-    except OSError as exc:
-        raise RunFileError(f"cannot write the analysis next to {ra.path}: {exc.strerror or exc}") from None
+
+    atomic_output(json_path, lambda tmp: tmp.write_text(text), what="analysis")
+    atomic_output(csv_path, write_csv, what="analysis")
     return json_path, csv_path
 
 
