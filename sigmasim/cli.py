@@ -25,13 +25,12 @@ class _Parser(argparse.ArgumentParser):
         raise SystemExit(2)
 
 
-def _set_threads(n: int) -> int:
-    import numba
+def _set_threads(n: int, sites_per_colour: int | None = None) -> int:
+    """numba threads: ``n`` if positive, else one below the crossover lattice size, else the idle
+    cores (:mod:`sigmasim.threads`)."""
+    from sigmasim.threads import set_threads
 
-    avail = numba.config.NUMBA_NUM_THREADS
-    n = avail if n <= 0 else min(n, avail)
-    numba.set_num_threads(n)
-    return n
+    return set_threads(n, sites_per_colour)
 
 
 class _StopFlag:
@@ -169,7 +168,7 @@ def cmd_run(args) -> int:
         overrides.update(thermalize=10, measurements=20, name=Path(args.config).stem + "-smoke")
     _refuse_protocol_tables(args.config)
     config = load_config(args.config, overrides)
-    _set_threads(config.threads)
+    _set_threads(config.threads, config.volume // 2)
     try:
         path = execute_run(config, resume=args.resume, overwrite=args.overwrite, quiet=args.quiet)
     except Interrupted as exc:
@@ -229,7 +228,7 @@ def cmd_scan(args) -> int:
     if section not in SCHEMA or key not in SCHEMA[section] or args.param in ("name", "lattice.shape"):
         raise ConfigError(f"--param {args.param!r} is not a scannable config key (e.g. model.theta)")
     raw = read_toml(args.config)
-    _set_threads(base.threads if args.threads is None else args.threads)
+    _set_threads(base.threads if args.threads is None else args.threads, base.volume // 2)
     paths = []
     for value in _parse_scan_values(args.values):
         one = dict(raw)
@@ -259,7 +258,7 @@ def cmd_demo(args) -> int:
     from sigmasim.chain import Interrupted
     from sigmasim.config import config_from_dict
 
-    _set_threads(0)
+    _set_threads(0, 8**3 // 2)
     thetas = [2.6, 3.0, 3.14159265, 3.3, 3.7]
     paths = []
     print("demo: three flavours with a strong anomaly on an 8^3 lattice, theta across pi;\n"
@@ -394,7 +393,7 @@ def cmd_vacua(args) -> int:
 def cmd_validate(args) -> int:
     from sigmasim import validation
 
-    _set_threads(0)
+    _set_threads(0, 0)  # every check is a small lattice: one thread (sigmasim.threads)
     checks = validation.quick_checks()
     if args.thorough:
         checks += validation.thorough_checks()

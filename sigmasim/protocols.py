@@ -1042,10 +1042,9 @@ def plot_sweep(result: SweepResult, path) -> Path:
 
 # ---------------------------------------------------------------- commands
 def _set_threads(config: RunConfig) -> None:
-    import numba
+    from sigmasim.threads import set_threads
 
-    if config.threads:
-        numba.set_num_threads(min(config.threads, numba.config.NUMBA_NUM_THREADS))
+    set_threads(config.threads, config.volume // 2)
 
 
 def sweep_command(config_path: str, plot: bool = False, out: str | None = None) -> int:
