@@ -83,3 +83,21 @@ def test_protocols_and_large_lattices_follow_the_same_rule(recorded):
     _set_threads(config_from_dict({**raw, "run": {"threads": 4}}))
     assert recorded == [3, 1, 4]  # 4 cores, load 1: three idle
 
+
+def test_every_test_subprocess_gets_the_one_thread_environment():
+    """Each subprocess.run/Popen call in the tests passes env=subprocess_env(...) (tests/runfiles.py)."""
+    import ast
+    from pathlib import Path
+
+    missing = []
+    for path in sorted(Path(__file__).parent.glob("test_*.py")):
+        for node in ast.walk(ast.parse(path.read_text())):
+            if (isinstance(node, ast.Call) and isinstance(node.func, ast.Attribute)
+                    and isinstance(node.func.value, ast.Name) and node.func.value.id == "subprocess"
+                    and node.func.attr in ("run", "Popen", "call", "check_call", "check_output")):
+                env = [k.value for k in node.keywords if k.arg == "env"]
+                ok = env and (isinstance(env[0], ast.Name) and env[0].id == "env"
+                              or isinstance(env[0], ast.Call) and getattr(env[0].func, "id", "") == "subprocess_env")
+                if not ok:
+                    missing.append(f"{path.name}:{node.lineno}")
+    assert not missing, f"subprocess calls without env=subprocess_env(): {missing}"
