@@ -306,19 +306,19 @@ def cmd_analyze(args) -> int:
 def cmd_sweep(args) -> int:
     from sigmasim.protocols import sweep_command
 
-    return sweep_command(args.config, plot=args.plot, out=args.out)
+    return sweep_command(args.config, plot=args.plot, out=args.out, quiet=args.quiet)
 
 
 def cmd_temper(args) -> int:
     from sigmasim.protocols import temper_command
 
-    return temper_command(args.config, out=args.out)
+    return temper_command(args.config, out=args.out, quiet=args.quiet)
 
 
 def cmd_lifetimes(args) -> int:
     from sigmasim.protocols import lifetimes_command
 
-    return lifetimes_command(args.config, out=args.out, workers=args.workers)
+    return lifetimes_command(args.config, out=args.out, workers=args.workers, quiet=args.quiet)
 
 
 def cmd_export(args) -> int:
@@ -392,11 +392,14 @@ def cmd_vacua(args) -> int:
 
 def cmd_validate(args) -> int:
     from sigmasim import validation
+    from sigmasim.progress import Steps
 
     _set_threads(0, 0)  # every check is a small lattice: one thread (sigmasim.threads)
-    checks = validation.quick_checks()
+    with Steps("validate", args.quiet, "group") as progress:
+        checks = validation.quick_checks(progress)
     if args.thorough:
-        checks += validation.thorough_checks()
+        with Steps("validate --thorough", args.quiet, "group") as progress:
+            checks += validation.thorough_checks(progress)
     print(validation.format_table(checks))
     print("(each check: |MC - exact| <= 4 sigma, sigma from Wolff's Gamma method)")
     return 0 if all(c.passed for c in checks) else 1
@@ -463,15 +466,19 @@ def build_parser() -> argparse.ArgumentParser:
     sw.add_argument("config", help="run TOML with a [sweep] table")
     sw.add_argument("--plot", action="store_true", help="draw the loop(s) with the tree-level branches")
     sw.add_argument("--out", default=None, help="sweep file (default <output>/<name>/<name>-sweep.h5)")
+    sw.add_argument("--quiet", action="store_true", help="no progress bar")
     sw.set_defaults(func=cmd_sweep)
     te = sub.add_parser("temper", help="replica exchange over a ladder of theta values")
     te.add_argument("config", help="run TOML with a [tempering] table")
     te.add_argument("--out", default=None, help="output folder (default: run.output)")
+    te.add_argument("--quiet", action="store_true", help="no progress bar")
     te.set_defaults(func=cmd_temper)
     lt = sub.add_parser("lifetimes", help="escape times from a metastable branch against the volume")
     lt.add_argument("config", help="run TOML with a [lifetimes] table and run.start = 'branch'")
-    lt.add_argument("--out", default=None, help="JSON file for the table and fits")
-    lt.add_argument("--workers", type=int, default=0, help="parallel starts (0: all cores)")
+    lt.add_argument("--out", default=None,
+                    help="JSON file for the table and fits (default <output>/<name>/<name>-lifetimes.json)")
+    lt.add_argument("--workers", type=int, default=0, help="parallel starts (0: the idle cores)")
+    lt.add_argument("--quiet", action="store_true", help="no progress bar")
     lt.set_defaults(func=cmd_lifetimes)
     ex = sub.add_parser("export", help="a run's arrays as npz/csv/hdf5 plus a JSON sidecar with known answers")
     ex.add_argument("run", help="run file (.h5)")
@@ -514,6 +521,7 @@ def build_parser() -> argparse.ArgumentParser:
     v.set_defaults(func=cmd_vacua)
     val = sub.add_parser("validate", help="compare the installed engine with exact results")
     val.add_argument("--thorough", action="store_true", help="also the longer checks (O(4) ratio)")
+    val.add_argument("--quiet", action="store_true", help="no progress bar")
     val.set_defaults(func=cmd_validate)
     c = sub.add_parser("config-reference", help="print every config key with its default")
     c.set_defaults(func=cmd_config_reference)

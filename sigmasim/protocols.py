@@ -538,7 +538,8 @@ def replica_configs(config: RunConfig, thetas, mass_scales=None) -> list:
     return out
 
 
-def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = None) -> TemperResult:
+def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = None,
+                  progress=None) -> TemperResult:
     """Replica exchange over a ladder of slots (theta, and optionally a mass scale) in one process.
 
     Every slot keeps its theta and masses; an accepted swap exchanges the *fields* of neighbouring
@@ -615,6 +616,8 @@ def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = 
             attempt += 1
             history.append(labels.copy())
             attempt_sweeps.append(sweep)
+        if progress is not None:
+            progress(sweep, total)
     for sim, sk in zip(sims, sinks):
         for s in sk[1:]:
             s.finish(sim)
@@ -736,7 +739,7 @@ LIFETIME_SCHEMA = {
     "max_sweeps": ("int:1:1000000000", 10000, "give up (censored) after this many sweeps"),
     "stay": ("int:0:1000000000", 20, "sweeps the new branch must persist for the escape to count"),
     "band": ("real", 0.5, "hysteresis band of the branch classification, 0 <= band < 1"),
-    "workers": ("int:0:1024", 0, "worker processes (0: all cores); numba uses one thread per worker"),
+    "workers": ("int:0:1024", 0, "worker processes (0: the idle cores); numba uses one thread per worker"),
 }
 
 
@@ -864,15 +867,16 @@ class LifetimeResult:
         return "\n".join(lines)
 
 
-def run_lifetimes(config: RunConfig, params: dict) -> LifetimeResult:
+def run_lifetimes(config: RunConfig, params: dict, progress=None) -> LifetimeResult:
     """Escape times from the metastable branch (``run.start = 'branch'``) for every size and start.
 
     Starts run in parallel (``concurrent.futures.ProcessPoolExecutor``, numba one thread per
     worker; ``workers = 1`` runs in this process).  Start i of size L uses seed
     ``config.seed * 100000 + i`` and the lattice ``[L] * d``.
     """
-    import os
-    from concurrent.futures import ProcessPoolExecutor
+    from concurrent.futures import ProcessPoolExecutor, as_completed
+
+    from sigmasim.threads import idle_cores
 
     if config.start != "branch":
         raise ConfigError("lifetimes need run.start = 'branch' (and run.start_branch: the metastable branch)")
@@ -886,9 +890,13 @@ def run_lifetimes(config: RunConfig, params: dict) -> LifetimeResult:
             config_from_dict(raw)  # memory guard per size
             jobs.append((L, raw))
     args = (params["max_sweeps"], params["stay"], params["band"])
-    workers = params.get("workers", 0) or os.cpu_count() or 1
+    workers = params.get("workers", 0) or idle_cores()
+    tick = progress or (lambda done, total: None)
     if workers == 1:
-        results = [_escape_time(raw, *args) for _, raw in jobs]
+        results = []
+        for _, raw in jobs:
+            results.append(_escape_time(raw, *args))
+            tick(len(results), len(jobs))
     else:
         import multiprocessing
 
@@ -896,6 +904,8 @@ def run_lifetimes(config: RunConfig, params: dict) -> LifetimeResult:
         ctx = multiprocessing.get_context("spawn")
         with ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as ex:
             futs = [ex.submit(_escape_time, raw, *args) for _, raw in jobs]
+            for done, _ in enumerate(as_completed(futs), 1):
+                tick(done, len(jobs))
             results = [f.result() for f in futs]
     times = {L: [] for L in params["sizes"]}
     escaped = {L: [] for L in params["sizes"]}
@@ -1047,15 +1057,18 @@ def _set_threads(config: RunConfig) -> None:
     set_threads(config.threads, config.volume // 2)
 
 
-def sweep_command(config_path: str, plot: bool = False, out: str | None = None) -> int:
-    """``sigmasim sweep CONFIG [--plot] [--out FILE]``: run a hysteresis sweep, write, print summary."""
+def sweep_command(config_path: str, plot: bool = False, out: str | None = None, quiet: bool = False) -> int:
+    """``sigmasim sweep CONFIG [--plot] [--out FILE] [--quiet]``: run a hysteresis sweep, write, print summary."""
+    from sigmasim.progress import Steps
+
     config, raw = load_protocol(config_path, "sweep", SWEEP_SCHEMA)
     params = SweepParams(**raw)
     path = Path(out) if out else config.run_dir / f"{config.name}-sweep.h5"
     if path.suffix != ".h5":
         raise ConfigError(f"--out must end in .h5, got {path}")
     _set_threads(config)
-    result = run_sweep(config, params)
+    with Steps("sweep", quiet, "theta step") as progress:
+        result = run_sweep(config, params, progress=progress)
     grid = params.grid()
     try:
         # the tree-level branches of sigmasim.vacua are those of the chiral potential only
@@ -1075,7 +1088,7 @@ def sweep_command(config_path: str, plot: bool = False, out: str | None = None) 
     return 0
 
 
-def temper_command(config_path: str, out: str | None = None) -> int:
+def temper_command(config_path: str, out: str | None = None, quiet: bool = False) -> int:
     """``sigmasim temper CONFIG [--out FOLDER]``: replica exchange over the [tempering] ladder.
 
     Writes ``<out or run.output>/<name>/<name>-t<i>/<name>-t<i>.h5`` (ordinary run files, one per
@@ -1092,7 +1105,10 @@ def temper_command(config_path: str, out: str | None = None) -> int:
     if out:
         config = dataclasses.replace(config, output=str(out))
     _set_threads(config)
-    res = run_tempering(config, params)
+    from sigmasim.progress import Steps
+
+    with Steps("temper", quiet, "sweep") as progress:
+        res = run_tempering(config, params, progress=progress)
     for f in res.files:
         print(f"wrote {f}")
     scales = res.mass_scales
@@ -1125,17 +1141,30 @@ def load_lifetimes(config_path) -> tuple[RunConfig, dict]:
     return config_from_dict(rest), params
 
 
-def lifetimes_command(config_path: str, out: str | None = None, workers: int = 0) -> int:
-    """``sigmasim lifetimes CONFIG [--out FILE.json] [--workers N]``: escape times per volume and fits.
+def lifetimes_command(config_path: str, out: str | None = None, workers: int = 0, quiet: bool = False) -> int:
+    """``sigmasim lifetimes CONFIG [--out FILE.json] [--workers N] [--quiet]``: escape times per volume and fits.
 
-    Prints the table and both fits; with ``--out`` also writes them as JSON.
+    Prints the table and both fits and writes them as JSON to ``--out`` (default
+    ``<run.output>/<name>/<name>-lifetimes.json``; an existing file there is replaced only if
+    this command wrote it).
     """
+    from sigmasim.progress import Steps
+
     config, params = load_lifetimes(config_path)
     if workers:
         params["workers"] = int(workers)
     if out is not None and not str(out).endswith(".json"):
         raise ConfigError(f"--out must end in .json, got {out}")
-    res = run_lifetimes(config, params)
+    out = Path(out) if out is not None else config.run_dir / f"{config.name}-lifetimes.json"
+    if out.exists():
+        try:
+            ours = "fits" in json.loads(out.read_text()) and "protocol" in json.loads(out.read_text())
+        except (OSError, ValueError, TypeError):
+            ours = False
+        if not ours:
+            raise RunFileError(f"refusing to overwrite {out}: it is not a lifetimes file of sigmasim")
+    with Steps("lifetimes", quiet, "start") as progress:
+        res = run_lifetimes(config, params, progress=progress)
     print(res.table())
     if out:
         blob = {"sizes": list(res.sizes), "d": res.d, "tau": res.tau.tolist(), "tau_error": res.tau_error.tolist(),

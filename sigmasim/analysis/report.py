@@ -690,9 +690,13 @@ def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = 
                 raise RunFileError(f"{p} is a folder without {cand.name}")
             p = cand
         resolved.append(p)
+    from sigmasim.progress import Steps
+
     data = [(p, open_run(p)) for p in resolved]
     analyses, written = [], []
-    for p, d in data:
+    progress = Steps("analyze", quiet, "file")
+    for i, (p, d) in enumerate(data):
+        progress(i, len(data), p.name)  # a live line naming the file being analysed
         ra = analyze_data(d.series, d.slices, d.config, status=d.status, path=p, band=band)
         analyses.append(ra)
         written += list(write_outputs(ra))
@@ -705,6 +709,7 @@ def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = 
             except OSError as exc:
                 raise RunFileError(f"cannot create the figure folder {target}: {exc.strerror}") from None
             written += plot_all(ra, target)
+    progress.close()
     if not quiet:
         print(format_table(analyses))
         print("written: " + ", ".join(str(w) for w in written))
