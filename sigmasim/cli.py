@@ -20,9 +20,19 @@ __all__ = ["main"]
 
 
 class _Parser(argparse.ArgumentParser):
+    protocol_table = None  # a protocol command's table: its keys end the --help text
+
     def error(self, message):  # one line, exit 2, no usage dump
         sys.stderr.write(f"sigmasim: error: {message} (see sigmasim --help)\n")
         raise SystemExit(2)
+
+    def format_help(self):
+        text = super().format_help()
+        if self.protocol_table:
+            from sigmasim.reference import table_help
+
+            text += "\n" + table_help(self.protocol_table) + "\n"
+        return text
 
 
 def _set_threads(n: int, sites_per_colour: int | None = None) -> int:
@@ -288,12 +298,9 @@ def cmd_demo(args) -> int:
 
 
 def cmd_info(args) -> int:
-    from sigmasim.storage import open_run
+    from sigmasim.info import info_text
 
-    d = open_run(args.file)
-    print(f"{args.file}: status {d.status}, {len(d)} measurements")
-    print(f"config: {d.config.to_dict()}")
-    print(f"provenance: {d.provenance}")
+    print(info_text(args.file))
     return 0
 
 
@@ -349,7 +356,17 @@ def cmd_vacua(args) -> int:
     from sigmasim.errors import ConfigError
 
     if args.config is not None:
-        cfg = load_config(args.config)
+        from sigmasim.config import read_toml
+
+        raw = read_toml(args.config)
+        if any(t in raw for t in PROTOCOL_TABLES):  # a sweep/temper/lifetimes/scan file: its run config
+            if "scan" in raw:
+                from sigmasim.scan import load_scan
+
+                raw = load_scan(args.config).base
+            cfg = config_from_dict({k: v for k, v in raw.items() if k not in PROTOCOL_TABLES})
+        else:
+            cfg = load_config(args.config)
     else:
         model = {k: v for k, v in (("nf", args.nf), ("group", args.group), ("mass", args.mass),
                                      ("kappa", args.kappa), ("theta", args.theta),
@@ -406,9 +423,9 @@ def cmd_validate(args) -> int:
 
 
 def cmd_config_reference(args) -> int:
-    from sigmasim.config import reference_markdown
+    from sigmasim.reference import reference_text
 
-    print(reference_markdown())
+    print(reference_text())
     return 0
 
 
@@ -446,12 +463,14 @@ def build_parser() -> argparse.ArgumentParser:
     sn.add_argument("--threads", type=int, default=None, help="numba threads per run")
     sn.add_argument("--output", default=None, help="run config: output folder")
     sn.add_argument("--quiet", action="store_true")
+    sn.protocol_table = "scan"
     sn.set_defaults(func=cmd_scan)
     d = sub.add_parser("demo", help="run the built-in demo (about a minute)")
     d.add_argument("--output", default="runs", help="output folder (default: runs)")
     d.add_argument("--quiet", action="store_true")
     d.set_defaults(func=cmd_demo)
-    i = sub.add_parser("info", help="show a run file's config, status and provenance")
+    i = sub.add_parser("info", help="describe a file sigmasim wrote: run (status, config, provenance), "
+                                    "sweep, scan index, lifetimes/analysis/export JSON or CSV")
     i.add_argument("file")
     i.set_defaults(func=cmd_info)
     a = sub.add_parser("analyze", help="errors, autocorrelations, masses (and figures) of run files")
@@ -467,11 +486,13 @@ def build_parser() -> argparse.ArgumentParser:
     sw.add_argument("--plot", action="store_true", help="draw the loop(s) with the tree-level branches")
     sw.add_argument("--out", default=None, help="sweep file (default <output>/<name>/<name>-sweep.h5)")
     sw.add_argument("--quiet", action="store_true", help="no progress bar")
+    sw.protocol_table = "sweep"
     sw.set_defaults(func=cmd_sweep)
     te = sub.add_parser("temper", help="replica exchange over a ladder of theta values")
     te.add_argument("config", help="run TOML with a [tempering] table")
     te.add_argument("--out", default=None, help="output folder (default: run.output)")
     te.add_argument("--quiet", action="store_true", help="no progress bar")
+    te.protocol_table = "tempering"
     te.set_defaults(func=cmd_temper)
     lt = sub.add_parser("lifetimes", help="escape times from a metastable branch against the volume")
     lt.add_argument("config", help="run TOML with a [lifetimes] table and run.start = 'branch'")
@@ -479,6 +500,7 @@ def build_parser() -> argparse.ArgumentParser:
                     help="JSON file for the table and fits (default <output>/<name>/<name>-lifetimes.json)")
     lt.add_argument("--workers", type=int, default=0, help="parallel starts (0: the idle cores)")
     lt.add_argument("--quiet", action="store_true", help="no progress bar")
+    lt.protocol_table = "lifetimes"
     lt.set_defaults(func=cmd_lifetimes)
     ex = sub.add_parser("export", help="a run's arrays as npz/csv/hdf5 plus a JSON sidecar with known answers")
     ex.add_argument("run", help="run file (.h5)")
@@ -523,7 +545,8 @@ def build_parser() -> argparse.ArgumentParser:
     val.add_argument("--thorough", action="store_true", help="also the longer checks (O(4) ratio)")
     val.add_argument("--quiet", action="store_true", help="no progress bar")
     val.set_defaults(func=cmd_validate)
-    c = sub.add_parser("config-reference", help="print every config key with its default")
+    c = sub.add_parser("config-reference",
+                       help="print every config key with its default, and the keys of the protocol tables")
     c.set_defaults(func=cmd_config_reference)
     return p
 
