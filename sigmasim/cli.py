@@ -129,26 +129,56 @@ def _refuse_overwrite(path: Path, config, overwrite: bool) -> None:
     path.unlink()
 
 
+#: below this many independent samples of Im Omega_h the run table warns (N / (2 tau_int))
+FEW_INDEPENDENT = 50
+
+
+def _independent_samples(x) -> float:
+    """N / (2 tau_int) of a series (Gamma method); N for a constant or too short series."""
+    import numpy as np
+
+    from sigmasim.analysis.gamma import gamma_analysis
+
+    x = np.asarray(x, float)
+    if x.size < 4 or not np.ptp(x) > 1e-10:  # constant up to rounding (SU(2): Im Tr U = 0)
+        return float(x.size)
+    try:
+        tau = float(gamma_analysis(x).tau_int)
+    except Exception:  # a decoration of the table: never fail the run over it
+        return float(x.size)
+    return x.size / (2 * max(tau, 0.5))
+
+
 def _summary_table(paths) -> str:
     import numpy as np
 
     from sigmasim.storage import open_run
 
-    head = (f"{'run':<22}{'theta':>8}{'<S>/V':>10}{'<Re Omega_h>':>14}{'<Im Omega_h>':>14}"
-            f"{'<|Omega|>':>11}{'acc':>7}")
+    def rate(x):
+        x = x[~np.isnan(x)]
+        return f"{x.mean():.2f}" if x.size else "-"
+
+    runs = [open_run(p) for p in paths]
+    wide = max([22, *(len(d.config.name) + 2 for d in runs)])
+    head = (f"{'run':<{wide}}{'theta':>8}{'<S>/V':>10}{'<Re Omega_h>':>14}{'<Im Omega_h>':>14}"
+            f"{'<|Omega|>':>11}{'acc Metr':>10}{'acc phase':>11}")
     lines = [head, "-" * len(head)]
-    for p in paths:
-        d = open_run(p)
+    few = []
+    for d in runs:
         s = d.series
-        rates = np.where(np.isnan(s["accept_metropolis"]), s["accept_phase"], s["accept_metropolis"])
-        rates = rates[~np.isnan(rates)]
-        acc = rates.mean() if rates.size else 1.0  # every move of an exact heatbath is taken
         lines.append(
-            f"{d.config.name:<22}{d.config.theta:>8.3f}{s['action'].mean():>10.4f}"
+            f"{d.config.name:<{wide}}{d.config.theta:>8.3f}{s['action'].mean():>10.4f}"
             f"{s['omega_h'].real.mean():>14.4f}{s['omega_h'].imag.mean():>14.4f}"
-            f"{np.abs(s['omega']).mean():>11.4f}{acc:>7.2f}"
+            f"{np.abs(s['omega']).mean():>11.4f}{rate(s['accept_metropolis']):>10}{rate(s['accept_phase']):>11}"
         )
-    lines.append("(plain means; run 'sigmasim analyze' for errors. Research toy, not a physical prediction.)")
+        n_ind = _independent_samples(s["omega_h"].imag)
+        if n_ind < FEW_INDEPENDENT:
+            few.append(f"warning: {d.config.name}: <Im Omega_h> rests on about {n_ind:.0f} independent samples "
+                       f"({len(d)} measurements); its plain mean is not reliable, run longer")
+    lines += few
+    lines.append("(plain means; acc: Metropolis and U(1) phase-move acceptance, '-' where the schedule has none,\n"
+                 " an exact heatbath takes every move; run 'sigmasim analyze' for errors. "
+                 "Research toy, not a physical prediction.)")
     return "\n".join(lines)
 
 
@@ -525,7 +555,8 @@ def build_parser() -> argparse.ArgumentParser:
     sy.add_argument("--p10", type=float, help="telegraph: switching probability 1 -> 0 per step")
     sy.add_argument("--noise", type=float, help="telegraph: Gaussian noise on the two levels")
     sy.set_defaults(func=cmd_synth)
-    sc = sub.add_parser("score", help="pulls of your estimates against a sidecar's truth")
+    sc = sub.add_parser("score", help="pulls of your estimates against a sidecar's truth "
+                                      "(exit 1 when a verdict is not ok)")
     sc.add_argument("truth", help="sidecar JSON with a truth section")
     sc.add_argument("estimates", help="your estimates: JSON of name, value, error (see sigmasim.score)")
     sc.set_defaults(func=cmd_score)

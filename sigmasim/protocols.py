@@ -862,8 +862,12 @@ class LifetimeResult:
             lines.append(f"{L:4d} {L ** self.d:6d} {len(self.times[L]):7d} {self.n_escaped[i]:8d} "
                          f"{self.tau[i]:10.4g} {self.tau_error[i]:9.3g}")
         for name, f in self.fits.items():
+            if f["dof"] > 0:
+                quality = f"chi2/dof = {f['chi2']:.3g}/{f['dof']}"
+            else:  # two sizes: the line goes through both points, chi2 is rounding noise
+                quality = "no chi2 test (0 dof: the line passes through the points; use >= 3 sizes)"
             lines.append(f"ln tau = a + b L^{f['power']} ({name}): b = {f['slope']:.4g} +- {f['slope_error']:.2g}, "
-                         f"a = {f['intercept']:.4g} +- {f['intercept_error']:.2g}, chi2/dof = {f['chi2']:.3g}/{f['dof']}")
+                         f"a = {f['intercept']:.4g} +- {f['intercept_error']:.2g}, {quality}")
         return "\n".join(lines)
 
 
