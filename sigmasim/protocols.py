@@ -1016,13 +1016,21 @@ def plot_sweep(result: SweepResult, path) -> Path:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
+    from sigmasim.analysis.plots import pi_ticks
+
     cfg, p, st = result.config, result.params, result.steps
     fig, ax = plt.subplots(figsize=(7.5, 5.2))
     tree = result.tree
     if tree:
+        # tree level has |Omega| = 1; fluctuations shrink the measured |Omega|, so the curves are
+        # drawn at the measured median |omega_h| to compare shapes and jump points
+        mod = np.hypot(np.asarray(st["re_omega_h"]), np.asarray(st["im_omega_h"]))
+        mod = mod[np.isfinite(mod)]
+        scale = float(np.median(mod)) if mod.size else 1.0
         for b in range(tree["im_omega_h"].shape[0]):
-            ax.plot(tree["theta"], tree["im_omega_h"][b], color="0.6", lw=1.2, ls="--",
-                    label="tree-level branches (|Omega| = 1)" if b == 0 else None, zorder=1)
+            ax.plot(tree["theta"], scale * np.asarray(tree["im_omega_h"][b]), color="0.6", lw=1.2, ls="--",
+                    label=(rf"tree-level branches $\times$ median $|\Omega|$ = {scale:.2f}") if b == 0 else None,
+                    zorder=1)
         for j, (t, b) in enumerate(tree["spinodals"]):
             ax.axvline(t, color="0.6", lw=0.8, ls=":", zorder=0,
                        label="tree-level spinodals" if j == 0 else None)
@@ -1036,12 +1044,13 @@ def plot_sweep(result: SweepResult, path) -> Path:
             ax.errorbar(st["theta"][sel], st["im_omega_h"][sel], yerr=st["im_omega_h_err"][sel],
                         color=colours[d], marker="o" if d == 1 else "s", ms=3, lw=1, capsize=2,
                         alpha=1.0 if c == 0 else 0.5,
-                        label=f"theta {name}" if c == 0 else None)
+                        label=rf"$\theta$ {name}" if c == 0 else None)
     s = result.summary
-    ax.set_xlabel(r"$\theta$")
+    ax.set_xlabel(r"vacuum angle $\theta$")
+    pi_ticks(ax, float(np.min(st["theta"])), float(np.max(st["theta"])))
     ax.set_ylabel(r"Im $\omega_h$ = Im $e^{i\theta_m}\Omega$")
     ax.legend(loc="best", fontsize=8)
-    ax.set_title(f"hysteresis sweep, loop area {s['area']:.3g} +- {s['area_error']:.2g}", fontsize=10)
+    ax.set_title(rf"hysteresis sweep, loop area {s['area']:.3g} $\pm$ {s['area_error']:.2g}", fontsize=10)
     from sigmasim.analysis.report import run_label
 
     cap = f"{run_label(cfg)}; dtheta={p.step:g}, {p.sweeps_per_step}+{p.thermalize_per_step} sweeps/step, " \
