@@ -404,15 +404,22 @@ def cmd_vacua(args) -> int:
         if isinstance(model.get("mass"), list) and len(model["mass"]) == 1:
             model["mass"] = model["mass"][0]
         cfg = config_from_dict({"lattice": {"shape": [2]}, "model": model})
+    from sigmasim.progress import task_bar
+
     theta_m, theta_a = cfg.theta_angles
     kw = dict(nf=cfg.nf, group=cfg.group)
+    live = task_bar(2, "vacua: local minima, then branches over theta", args.quiet, unit="part")
+    live.refresh()  # a live line while the minimisations run (terminal only)
     try:
         pot = vacua.make_potential(list(cfg.mass), cfg.kappa, theta_m=theta_m, theta_a=theta_a, **kw)
         minima = vacua.find_local_minima(pot)
+        live.update(1)
         scan = vacua.scan_theta(list(cfg.mass), cfg.kappa, thetas=np.linspace(0, 4 * np.pi, args.points),
                                 placement=cfg.theta_placement if cfg.group == "U" else "mass", **kw)
     except ValueError as exc:
         raise ConfigError(f"cannot analyse this potential: {exc}") from None
+    finally:
+        live.close()
     print(f"tree-level local minima at theta = {cfg.theta:.6g} (energies per site):")
     print(vacua.format_table(minima))
     print()
@@ -571,6 +578,7 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--points", type=int, default=241, help="theta grid points over [0, 4 pi]")
     v.add_argument("--plot", action="store_true", help="draw E_k(theta) for every branch")
     v.add_argument("--out", default="vacua", help="figure path without suffix (default: vacua)")
+    v.add_argument("--quiet", action="store_true", help="no progress line")
     v.set_defaults(func=cmd_vacua)
     val = sub.add_parser("validate", help="compare the installed engine with exact results")
     val.add_argument("--thorough", action="store_true", help="also the longer checks (O(4) ratio)")

@@ -77,3 +77,11 @@ def test_validate_shows_its_groups(monkeypatch, capsys):
         monkeypatch.setattr("sys.stderr", err)
         assert main(["validate", *extra]) == 0
         assert ("validate" in err.getvalue() and "/3" in err.getvalue()) == want, err.getvalue()
+
+
+def test_vacua_shows_a_live_line(monkeypatch, capsys):
+    for where, extra, want in (("terminal", [], True), ("pipe", [], False), ("terminal", ["--quiet"], False)):
+        err = (_Pipe if where == "pipe" else _Terminal)()
+        monkeypatch.setattr("sys.stderr", err)
+        assert main(["vacua", "--nf", "2", "--mass", "0.3", "--kappa", "0.5", "--points", "9", *extra]) == 0
+        assert ("vacua" in err.getvalue()) == want, err.getvalue()
