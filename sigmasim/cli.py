@@ -35,12 +35,12 @@ class _Parser(argparse.ArgumentParser):
         return text
 
 
-def _set_threads(n: int, sites_per_colour: int | None = None) -> int:
+def _set_threads(n: int, sites_per_colour: int | None = None, nf: int = 1) -> int:
     """numba threads: ``n`` if positive, else one below the crossover lattice size, else the idle
     cores (:mod:`sigmasim.threads`)."""
     from sigmasim.threads import set_threads
 
-    return set_threads(n, sites_per_colour)
+    return set_threads(n, sites_per_colour, nf)
 
 
 class _StopFlag:
@@ -208,7 +208,7 @@ def cmd_run(args) -> int:
         overrides.update(thermalize=10, measurements=20, name=Path(args.config).stem + "-smoke")
     _refuse_protocol_tables(args.config)
     config = load_config(args.config, overrides)
-    _set_threads(config.threads, config.volume // 2)
+    _set_threads(config.threads, config.volume // 2, config.nf)
     try:
         path = execute_run(config, resume=args.resume, overwrite=args.overwrite, quiet=args.quiet)
     except Interrupted as exc:
@@ -268,7 +268,7 @@ def cmd_scan(args) -> int:
     if section not in SCHEMA or key not in SCHEMA[section] or args.param in ("name", "lattice.shape"):
         raise ConfigError(f"--param {args.param!r} is not a scannable config key (e.g. model.theta)")
     raw = read_toml(args.config)
-    _set_threads(base.threads if args.threads is None else args.threads, base.volume // 2)
+    _set_threads(base.threads if args.threads is None else args.threads, base.volume // 2, base.nf)
     paths = []
     for value in _parse_scan_values(args.values):
         one = dict(raw)
@@ -298,7 +298,7 @@ def cmd_demo(args) -> int:
     from sigmasim.chain import Interrupted
     from sigmasim.config import config_from_dict
 
-    _set_threads(0, 8**3 // 2)
+    _set_threads(0, 8**3 // 2, 3)
     thetas = [2.6, 3.0, 3.14159265, 3.3, 3.7]
     paths = []
     print("demo: three flavours with a strong anomaly on an 8^3 lattice, theta across pi;\n"

@@ -1067,7 +1067,7 @@ def plot_sweep(result: SweepResult, path) -> Path:
 def _set_threads(config: RunConfig) -> None:
     from sigmasim.threads import set_threads
 
-    set_threads(config.threads, config.volume // 2)
+    set_threads(config.threads, config.volume // 2, config.nf)
 
 
 def sweep_command(config_path: str, plot: bool = False, out: str | None = None, quiet: bool = False) -> int:

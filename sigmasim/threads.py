@@ -2,9 +2,11 @@
 
 The chain does not depend on the thread count (see ``rng.py``), so this only changes the speed:
 
-- below ``CROSSOVER_SITES`` sites per colour one thread: a colour update then takes tens of
-  microseconds, and waking a second thread costs about as much as it saves
-  (``benchmarks/threads_crossover.py`` measures this);
+- below ``CROSSOVER_SITES`` sites per colour times nf^2 (the work of a colour update grows with
+  the nf x nf matrices) one thread: a colour update then takes tens of microseconds, and waking
+  a second thread costs about as much as it saves (``benchmarks/threads_crossover.py`` measures
+  this; U(1) 32^3 and U(3) 16^3, 2^14 and 2^11 x 9 site-components per colour, gain 1.8x on an
+  idle 2-core machine, see the README's performance section);
 - above it every core that is idle, never more: the number of cores this process may use
   (``os.sched_getaffinity``) minus the one-minute load average (``os.getloadavg``), rounded,
   at least one.  A parallel region waits for its slowest thread, so a thread that shares a
@@ -19,8 +21,8 @@ import os
 
 __all__ = ["CROSSOVER_SITES", "usable_cores", "idle_cores", "auto_threads", "choose_threads", "set_threads"]
 
-# Sites per colour (volume / 2) below which one thread is faster or as fast as two.
-# Measured with benchmarks/threads_crossover.py (see DEVELOPERS.md, "Threading notes").
+# Sites per colour (volume / 2) times nf^2 below which one thread is used.
+# See benchmarks/threads_crossover.py and DEVELOPERS.md ("Benchmarks").
 CROSSOVER_SITES = 2**14
 
 
@@ -46,26 +48,27 @@ def idle_cores(load: float | None = None, cores: int | None = None) -> int:
     return max(1, min(cores, int(cores - load + 0.5)))
 
 
-def auto_threads(sites_per_colour: int | None, *, load: float | None = None, cores: int | None = None) -> int:
-    """The ``run.threads = 0`` choice for a lattice of ``sites_per_colour`` (None: a large lattice)."""
-    if sites_per_colour is not None and sites_per_colour < CROSSOVER_SITES:
+def auto_threads(sites_per_colour: int | None, nf: int = 1, *, load: float | None = None,
+                 cores: int | None = None) -> int:
+    """The ``run.threads = 0`` choice for ``sites_per_colour`` sites of nf x nf matrices (None: large)."""
+    if sites_per_colour is not None and sites_per_colour * nf * nf < CROSSOVER_SITES:
         return 1
     return idle_cores(load, cores)
 
 
-def choose_threads(requested: int, sites_per_colour: int | None = None, *, available: int | None = None,
-                   load: float | None = None, cores: int | None = None) -> int:
+def choose_threads(requested: int, sites_per_colour: int | None = None, nf: int = 1, *,
+                   available: int | None = None, load: float | None = None, cores: int | None = None) -> int:
     """Threads to use: ``requested`` if positive, else :func:`auto_threads`; capped at ``available``."""
-    n = requested if requested > 0 else auto_threads(sites_per_colour, load=load, cores=cores)
+    n = requested if requested > 0 else auto_threads(sites_per_colour, nf, load=load, cores=cores)
     if available is not None:
         n = min(n, available)
     return max(1, n)
 
 
-def set_threads(requested: int, sites_per_colour: int | None = None) -> int:
+def set_threads(requested: int, sites_per_colour: int | None = None, nf: int = 1) -> int:
     """Set numba's thread count for a command (see :func:`choose_threads`); returns it."""
     import numba
 
-    n = choose_threads(requested, sites_per_colour, available=numba.config.NUMBA_NUM_THREADS)
+    n = choose_threads(requested, sites_per_colour, nf, available=numba.config.NUMBA_NUM_THREADS)
     numba.set_num_threads(n)
     return n
