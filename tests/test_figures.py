@@ -40,12 +40,15 @@ def _data_inside(ax, artist, xy):
                   [box.contains(*p) for p in pts])
 
 
-def test_phase_history_legend_covers_no_data(u1):
-    fig = plots.plot_phase_history(u1)
+def test_phase_history_legend_covers_no_data():
+    # weak coupling to the mass on a small lattice: arg Omega_h fills (-pi, pi] at every sweep
+    ra = _ra({"nf": 1, "beta": 0.1, "mass": 0.01, "theta": 1.0}, shape=(4, 4), meas=300)
+    fig = plots.plot_phase_history(ra)
     ax = fig.axes[0]
     leg = ax.get_legend()
-    om = u1.data["omega_h"]
-    assert _data_inside(ax, leg, (u1.data["sweep"], np.angle(om))) == 0
+    om = ra.data["omega_h"]
+    assert np.ptp(np.angle(om)) > 5.0
+    assert _data_inside(ax, leg, (ra.data["sweep"], np.angle(om))) == 0
     plots._plt().close(fig)
 
 
