@@ -100,7 +100,7 @@ def _sweep_file(path: Path) -> str:
     summ = ", ".join(f"{k} {v:.4g}" if isinstance(v, float) else f"{k} {v}" for k, v in s["summary"].items()
                      if not isinstance(v, list))
     return "\n".join([f"{path}: sigmasim sweep file, {n} theta steps", f"summary: {summ}",
-                      "protocol [sweep]:", _indent(config_block({"sweep": s["protocol"]})),
+                      "protocol:", _indent(config_block({"sweep": s["protocol"]})),
                       "config:", _indent(config_block(s["config"]))])
 
 
