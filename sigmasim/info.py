@@ -200,4 +200,11 @@ def info_text(path) -> str:
         return _sweep_file(path)
     if fmt == INDEX_FORMAT:
         return _index_h5(path, attrs)
+    if fmt == "sigmasim-export":
+        try:
+            with h5py.File(path, "r") as f:
+                shapes = {k: list(f[k].shape) for k in f if isinstance(f[k], h5py.Dataset)}
+        except Exception:
+            raise RunFileError(f"{path}: cannot read the exported arrays") from None
+        return f"{path}: sigmasim export (HDF5): " + ", ".join(f"{k} {s}" for k, s in shapes.items())
     return _run_file(path, attrs)  # a run file, or a one-line error naming what is wrong

@@ -109,6 +109,7 @@ def test_info_reads_every_file_the_tool_writes(tmp_path, capsys):
     assert main(["analyze", str(h5), "--quiet"]) == 0
     assert main(["export", str(h5), "--out", str(tmp_path / "ex")]) == 0
     assert main(["export", str(h5), "--format", "csv", "--out", str(tmp_path / "exc")]) == 0
+    assert main(["export", str(h5), "--format", "hdf5", "--out", str(tmp_path / "exh")]) == 0
     capsys.readouterr()
     files = [tmp_path / "s.h5", h5, *sorted((tmp_path / "r").glob("r.analysis.*")),
              *sorted(tmp_path.glob("ex*.*"))]
