@@ -1016,10 +1016,10 @@ def plot_sweep(result: SweepResult, path) -> Path:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    from sigmasim.analysis.plots import pi_ticks
+    from sigmasim.analysis.plots import legend_outside, pi_ticks
 
     cfg, p, st = result.config, result.params, result.steps
-    fig, ax = plt.subplots(figsize=(7.5, 5.2))
+    fig, ax = plt.subplots(figsize=(10.0, 5.2))
     tree = result.tree
     if tree:
         # tree level has |Omega| = 1; fluctuations shrink the measured |Omega|, so the curves are
@@ -1049,7 +1049,7 @@ def plot_sweep(result: SweepResult, path) -> Path:
     ax.set_xlabel(r"vacuum angle $\theta$")
     pi_ticks(ax, float(np.min(st["theta"])), float(np.max(st["theta"])))
     ax.set_ylabel(r"Im $\omega_h$ = Im $e^{i\theta_m}\Omega$")
-    ax.legend(loc="best", fontsize=8)
+    legend_outside(ax, fontsize=8)  # beside the loop: never on the data
     ax.set_title(rf"hysteresis sweep, loop area {s['area']:.3g} $\pm$ {s['area_error']:.2g}", fontsize=10)
     from sigmasim.analysis.report import run_label
 
