@@ -20,18 +20,27 @@ __all__ = ["main"]
 
 
 class _Parser(argparse.ArgumentParser):
+    protocol_table = None  # a protocol command's table: its keys end the --help text
+
     def error(self, message):  # one line, exit 2, no usage dump
         sys.stderr.write(f"sigmasim: error: {message} (see sigmasim --help)\n")
         raise SystemExit(2)
 
+    def format_help(self):
+        text = super().format_help()
+        if self.protocol_table:
+            from sigmasim.reference import table_help
 
-def _set_threads(n: int) -> int:
-    import numba
+            text += "\n" + table_help(self.protocol_table) + "\n"
+        return text
 
-    avail = numba.config.NUMBA_NUM_THREADS
-    n = avail if n <= 0 else min(n, avail)
-    numba.set_num_threads(n)
-    return n
+
+def _set_threads(n: int, sites_per_colour: int | None = None, nf: int = 1) -> int:
+    """numba threads: ``n`` if positive, else one below the crossover lattice size, else the idle
+    cores (:mod:`sigmasim.threads`)."""
+    from sigmasim.threads import set_threads
+
+    return set_threads(n, sites_per_colour, nf)
 
 
 class _StopFlag:
@@ -152,26 +161,56 @@ def _refuse_overwrite(path: Path, config, overwrite: bool) -> None:
     path.unlink()
 
 
+#: below this many independent samples of Im Omega_h the run table warns (N / (2 tau_int))
+FEW_INDEPENDENT = 50
+
+
+def _independent_samples(x) -> float:
+    """N / (2 tau_int) of a series (Gamma method); N for a constant or too short series."""
+    import numpy as np
+
+    from sigmasim.analysis.gamma import gamma_analysis
+
+    x = np.asarray(x, float)
+    if x.size < 4 or not np.ptp(x) > 1e-10:  # constant up to rounding (SU(2): Im Tr U = 0)
+        return float(x.size)
+    try:
+        tau = float(gamma_analysis(x).tau_int)
+    except Exception:  # a decoration of the table: never fail the run over it
+        return float(x.size)
+    return x.size / (2 * max(tau, 0.5))
+
+
 def _summary_table(paths) -> str:
     import numpy as np
 
     from sigmasim.storage import open_run
 
-    head = (f"{'run':<22}{'theta':>8}{'<S>/V':>10}{'<Re Omega_h>':>14}{'<Im Omega_h>':>14}"
-            f"{'<|Omega|>':>11}{'acc':>7}  branch (tree level)")
+    def rate(x):
+        x = x[~np.isnan(x)]
+        return f"{x.mean():.2f}" if x.size else "-"
+
+    runs = [open_run(p) for p in paths]
+    wide = max([22, *(len(d.config.name) + 2 for d in runs)])
+    head = (f"{'run':<{wide}}{'theta':>8}{'<S>/V':>10}{'<Re Omega_h>':>14}{'<Im Omega_h>':>14}"
+            f"{'<|Omega|>':>11}{'acc Metr':>10}{'acc phase':>11}  branch (tree level)")
     lines = [head, "-" * len(head)]
-    for p in paths:
-        d = open_run(p)
+    few = []
+    for d in runs:
         s = d.series
-        rates = np.where(np.isnan(s["accept_metropolis"]), s["accept_phase"], s["accept_metropolis"])
-        rates = rates[~np.isnan(rates)]
-        acc = rates.mean() if rates.size else 1.0  # every move of an exact heatbath is taken
         lines.append(
-            f"{d.config.name:<22}{d.config.theta:>8.3f}{s['action'].mean():>10.4f}"
+            f"{d.config.name:<{wide}}{d.config.theta:>8.3f}{s['action'].mean():>10.4f}"
             f"{s['omega_h'].real.mean():>14.4f}{s['omega_h'].imag.mean():>14.4f}"
-            f"{np.abs(s['omega']).mean():>11.4f}{acc:>7.2f}  {_branch_note(d.config, s['omega_h'])}"
+            f"{np.abs(s['omega']).mean():>11.4f}{rate(s['accept_metropolis']):>10}{rate(s['accept_phase']):>11}"
+            f"  {_branch_note(d.config, s['omega_h'])}"
         )
-    lines.append("(plain means; run 'sigmasim analyze' for errors. branch k: arg Omega_h nearest "
+        n_ind = _independent_samples(s["omega_h"].imag)
+        if n_ind < FEW_INDEPENDENT:
+            few.append(f"warning: {d.config.name}: <Im Omega_h> rests on about {n_ind:.0f} independent samples "
+                       f"({len(d)} measurements); its plain mean is not reliable, run longer")
+    lines += few
+    lines.append("(plain means; acc: Metropolis and U(1) phase-move acceptance, '-' where the schedule has none,\n"
+                 " an exact heatbath takes every move; run 'sigmasim analyze' for errors. branch k: arg Omega_h nearest "
                  "(theta + 2 pi k)/nf for most measurements;")
     lines.append(" global/METASTABLE: the tree-level minima at that theta (sigmasim vacua). "
                  "Research toy, not a physical prediction.)")
@@ -224,7 +263,7 @@ def cmd_run(args) -> int:
     raw = read_toml(args.config)  # once: the config may be a pipe
     _refuse_protocol_tables(args.config, raw)
     config = config_from_dict(raw, overrides)
-    _set_threads(config.threads)
+    _set_threads(config.threads, config.volume // 2, config.nf)
     try:
         path = execute_run(config, resume=args.resume, overwrite=args.overwrite, quiet=args.quiet)
     except Interrupted as exc:
@@ -288,7 +327,7 @@ def cmd_scan(args) -> int:
         config_from_dict(raw, {"threads": args.threads})  # checked like the file key
     if args.output is not None:
         config_from_dict(raw, {"output": args.output})
-    _set_threads(base.threads if args.threads is None else args.threads)
+    _set_threads(base.threads if args.threads is None else args.threads, base.volume // 2, base.nf)
     paths = []
     for value in _parse_scan_values(args.values):
         one = dict(raw)
@@ -320,7 +359,7 @@ def cmd_demo(args) -> int:
     from sigmasim.chain import Interrupted
     from sigmasim.config import config_from_dict
 
-    _set_threads(0)
+    _set_threads(0, 4**3 // 2, 3)
     thetas = [2.6, 3.0, math.pi, 3.3, 3.7]
     paths = []
     print("demo: three flavours with a strong anomaly on a 4^3 lattice, theta across pi;\n"
@@ -350,12 +389,9 @@ def cmd_demo(args) -> int:
 
 
 def cmd_info(args) -> int:
-    from sigmasim.storage import open_run
+    from sigmasim.info import info_text
 
-    d = open_run(args.file)
-    print(f"{args.file}: status {d.status}, {len(d)} measurements")
-    print(f"config: {d.config.to_dict()}")
-    print(f"provenance: {d.provenance}")
+    print(info_text(args.file))
     return 0
 
 
@@ -368,19 +404,20 @@ def cmd_analyze(args) -> int:
 def cmd_sweep(args) -> int:
     from sigmasim.protocols import sweep_command
 
-    return sweep_command(args.config, plot=args.plot, out=args.out, overwrite=args.overwrite)
+    return sweep_command(args.config, plot=args.plot, out=args.out, overwrite=args.overwrite,
+                         quiet=args.quiet)
 
 
 def cmd_temper(args) -> int:
     from sigmasim.protocols import temper_command
 
-    return temper_command(args.config, out=args.out)
+    return temper_command(args.config, out=args.out, quiet=args.quiet)
 
 
 def cmd_lifetimes(args) -> int:
     from sigmasim.protocols import lifetimes_command
 
-    return lifetimes_command(args.config, out=args.out, workers=args.workers)
+    return lifetimes_command(args.config, out=args.out, workers=args.workers, quiet=args.quiet)
 
 
 def cmd_export(args) -> int:
@@ -411,7 +448,17 @@ def cmd_vacua(args) -> int:
     from sigmasim.errors import ConfigError
 
     if args.config is not None:
-        cfg = load_config(args.config)
+        from sigmasim.config import read_toml
+
+        raw = read_toml(args.config)
+        if any(t in raw for t in PROTOCOL_TABLES):  # a sweep/temper/lifetimes/scan file: its run config
+            if "scan" in raw:
+                from sigmasim.scan import load_scan
+
+                raw = load_scan(args.config).base
+            cfg = config_from_dict({k: v for k, v in raw.items() if k not in PROTOCOL_TABLES})
+        else:
+            cfg = load_config(args.config)
     else:
         model = {k: v for k, v in (("nf", args.nf), ("group", args.group), ("mass", args.mass),
                                      ("kappa", args.kappa), ("theta", args.theta),
@@ -419,15 +466,22 @@ def cmd_vacua(args) -> int:
         if isinstance(model.get("mass"), list) and len(model["mass"]) == 1:
             model["mass"] = model["mass"][0]
         cfg = config_from_dict({"lattice": {"shape": [2]}, "model": model})
+    from sigmasim.progress import task_bar
+
     theta_m, theta_a = cfg.theta_angles
     kw = dict(nf=cfg.nf, group=cfg.group)
+    live = task_bar(2, "vacua: local minima, then branches over theta", args.quiet, unit="part")
+    live.refresh()  # a live line while the minimisations run (terminal only)
     try:
         pot = vacua.make_potential(list(cfg.mass), cfg.kappa, theta_m=theta_m, theta_a=theta_a, **kw)
         minima = vacua.find_local_minima(pot)
+        live.update(1)
         scan = vacua.scan_theta(list(cfg.mass), cfg.kappa, thetas=np.linspace(0, 4 * np.pi, args.points),
                                 placement=cfg.theta_placement if cfg.group == "U" else "mass", **kw)
     except ValueError as exc:
         raise ConfigError(f"cannot analyse this potential: {exc}") from None
+    finally:
+        live.close()
     print(f"tree-level local minima at theta = {cfg.theta:.6g} (energies per site):")
     print(vacua.format_table(minima, theta=pot.theta))
     print()
@@ -454,20 +508,23 @@ def cmd_vacua(args) -> int:
 
 def cmd_validate(args) -> int:
     from sigmasim import validation
+    from sigmasim.progress import Steps
 
-    _set_threads(0)
-    checks = validation.quick_checks()
+    _set_threads(0, 0)  # every check is a small lattice: one thread (sigmasim.threads)
+    with Steps("validate", args.quiet, "group") as progress:
+        checks = validation.quick_checks(progress)
     if args.thorough:
-        checks += validation.thorough_checks()
+        with Steps("validate --thorough", args.quiet, "group") as progress:
+            checks += validation.thorough_checks(progress)
     print(validation.format_table(checks))
     print("(each check: |MC - exact| <= 4 sigma, sigma from Wolff's Gamma method)")
     return 0 if all(c.passed for c in checks) else 1
 
 
 def cmd_config_reference(args) -> int:
-    from sigmasim.config import reference_markdown
+    from sigmasim.reference import reference_text
 
-    print(reference_markdown())
+    print(reference_text())
     return 0
 
 
@@ -505,12 +562,14 @@ def build_parser() -> argparse.ArgumentParser:
     sn.add_argument("--threads", type=int, default=None, help="numba threads per run")
     sn.add_argument("--output", default=None, help="run config: output folder")
     sn.add_argument("--quiet", action="store_true")
+    sn.protocol_table = "scan"
     sn.set_defaults(func=cmd_scan)
     d = sub.add_parser("demo", help="run the built-in demo (about a minute)")
     d.add_argument("--output", default="runs", help="output folder (default: runs)")
     d.add_argument("--quiet", action="store_true")
     d.set_defaults(func=cmd_demo)
-    i = sub.add_parser("info", help="show a run file's config, status and provenance")
+    i = sub.add_parser("info", help="describe a file sigmasim wrote: run (status, config, provenance), "
+                                    "sweep, scan index, lifetimes/analysis/export JSON or CSV")
     i.add_argument("file")
     i.set_defaults(func=cmd_info)
     a = sub.add_parser("analyze", help="errors, autocorrelations, masses (and figures) of run files")
@@ -527,15 +586,23 @@ def build_parser() -> argparse.ArgumentParser:
     sw.add_argument("--out", default=None, help="sweep file (default <output>/<name>/<name>-sweep.h5)")
     sw.add_argument("--overwrite", action="store_true",
                     help="replace an existing sweep file (an unfinished sweep resumes by itself)")
+    sw.add_argument("--quiet", action="store_true", help="no progress bar")
+    sw.protocol_table = "sweep"
     sw.set_defaults(func=cmd_sweep)
     te = sub.add_parser("temper", help="replica exchange over a ladder of theta values")
     te.add_argument("config", help="run TOML with a [tempering] table")
     te.add_argument("--out", default=None, help="output folder (default: run.output)")
+    te.add_argument("--quiet", action="store_true", help="no progress bar")
+    te.protocol_table = "tempering"
     te.set_defaults(func=cmd_temper)
     lt = sub.add_parser("lifetimes", help="escape times from a metastable branch against the volume")
     lt.add_argument("config", help="run TOML with a [lifetimes] table and run.start = 'branch'")
-    lt.add_argument("--out", default=None, help="JSON file for the table and fits (and FILE.png: escape-time distributions)")
-    lt.add_argument("--workers", type=int, default=0, help="parallel starts (0: all cores)")
+    lt.add_argument("--out", default=None,
+                    help="JSON file for the table and fits, with FILE.png: the escape-time distributions "
+                         "(default <output>/<name>/<name>-lifetimes.json)")
+    lt.add_argument("--workers", type=int, default=0, help="parallel starts (0: the idle cores)")
+    lt.add_argument("--quiet", action="store_true", help="no progress bar")
+    lt.protocol_table = "lifetimes"
     lt.set_defaults(func=cmd_lifetimes)
     ex = sub.add_parser("export", help="a run's arrays as npz/csv/hdf5 plus a JSON sidecar with known answers")
     ex.add_argument("run", help="run file (.h5)")
@@ -561,7 +628,8 @@ def build_parser() -> argparse.ArgumentParser:
     sy.add_argument("--p10", type=float, help="telegraph: switching probability 1 -> 0 per step")
     sy.add_argument("--noise", type=float, help="telegraph: Gaussian noise on the two levels")
     sy.set_defaults(func=cmd_synth)
-    sc = sub.add_parser("score", help="pulls of your estimates against a sidecar's truth")
+    sc = sub.add_parser("score", help="pulls of your estimates against a sidecar's truth "
+                                      "(exit 1 when a verdict is not ok)")
     sc.add_argument("truth", help="sidecar JSON with a truth section")
     sc.add_argument("estimates", help="your estimates: JSON of name, value, error (see sigmasim.score)")
     sc.set_defaults(func=cmd_score)
@@ -576,11 +644,14 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--points", type=int, default=241, help="theta grid points over [0, 4 pi]")
     v.add_argument("--plot", action="store_true", help="draw E_k(theta) for every branch")
     v.add_argument("--out", default="vacua", help="figure path without suffix (default: vacua)")
+    v.add_argument("--quiet", action="store_true", help="no progress line")
     v.set_defaults(func=cmd_vacua)
     val = sub.add_parser("validate", help="compare the installed engine with exact results")
     val.add_argument("--thorough", action="store_true", help="also the longer checks (O(4) ratio)")
+    val.add_argument("--quiet", action="store_true", help="no progress bar")
     val.set_defaults(func=cmd_validate)
-    c = sub.add_parser("config-reference", help="print every config key with its default")
+    c = sub.add_parser("config-reference",
+                       help="print every config key with its default, and the keys of the protocol tables")
     c.set_defaults(func=cmd_config_reference)
     return p
 

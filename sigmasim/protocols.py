@@ -827,7 +827,7 @@ def _load_temper_checkpoint(path, config, params, configs, total) -> dict:
 
 
 def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = None,
-                  checkpoint=None) -> TemperResult:
+                  checkpoint=None, progress=None) -> TemperResult:
     """Replica exchange over a ladder of slots (theta, and optionally a mass scale) in one process.
 
     Every slot keeps its theta and masses; an accepted swap exchanges the *fields* of neighbouring
@@ -939,6 +939,8 @@ def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = 
             attempt += 1
             history.append(labels.copy())
             attempt_sweeps.append(sweep)
+        if progress is not None:
+            progress(sweep, total)
     for sim, sk in zip(sims, sinks):
         for s in sk[1:]:
             s.finish(sim)
@@ -1067,7 +1069,7 @@ LIFETIME_SCHEMA = {
     "max_sweeps": ("int:1:1000000000", 10000, "give up (censored) after this many sweeps"),
     "stay": ("int:0:1000000000", 20, "sweeps the new branch must persist for the escape to count"),
     "band": ("real", 0.5, "hysteresis band of the branch classification, 0 <= band < 1"),
-    "workers": ("int:0:1024", 0, "worker processes (0: all cores); numba uses one thread per worker"),
+    "workers": ("int:0:1024", 0, "worker processes (0: the idle cores); numba uses one thread per worker"),
 }
 
 
@@ -1270,20 +1272,25 @@ class LifetimeResult:
         lines.append("tau: mean escape time after the dead time (shifted exponential); errors: bootstrap over "
                      "starts; fits use ln tau with its bootstrap error")
         for name, f in self.fits.items():
+            if f["dof"] > 0:
+                quality = f"chi2/dof = {f['chi2']:.3g}/{f['dof']}"
+            else:  # two sizes: the line goes through both points, chi2 is rounding noise
+                quality = "no chi2 test (0 dof: the line passes through the points; use >= 3 sizes)"
             lines.append(f"ln tau = a + b L^{f['power']} ({name}): b = {f['slope']:.4g} +- {f['slope_error']:.2g}, "
-                         f"a = {f['intercept']:.4g} +- {f['intercept_error']:.2g}, chi2/dof = {f['chi2']:.3g}/{f['dof']}")
+                         f"a = {f['intercept']:.4g} +- {f['intercept_error']:.2g}, {quality}")
         return "\n".join(lines)
 
 
-def run_lifetimes(config: RunConfig, params: dict) -> LifetimeResult:
+def run_lifetimes(config: RunConfig, params: dict, progress=None) -> LifetimeResult:
     """Escape times from the metastable branch (``run.start = 'branch'``) for every size and start.
 
     Starts run in parallel (``concurrent.futures.ProcessPoolExecutor``, numba one thread per
     worker; ``workers = 1`` runs in this process).  Start i of size L uses seed
     ``config.seed * 100000 + i`` and the lattice ``[L] * d``.
     """
-    import os
-    from concurrent.futures import ProcessPoolExecutor
+    from concurrent.futures import ProcessPoolExecutor, as_completed
+
+    from sigmasim.threads import idle_cores
 
     if config.start != "branch":
         raise ConfigError("lifetimes need run.start = 'branch' (and run.start_branch: the metastable branch)")
@@ -1297,9 +1304,13 @@ def run_lifetimes(config: RunConfig, params: dict) -> LifetimeResult:
             config_from_dict(raw)  # memory guard per size
             jobs.append((L, raw))
     args = (params["max_sweeps"], params["stay"], params["band"])
-    workers = params.get("workers", 0) or os.cpu_count() or 1
+    workers = params.get("workers", 0) or idle_cores()
+    tick = progress or (lambda done, total: None)
     if workers == 1:
-        results = [_escape_time(raw, *args) for _, raw in jobs]
+        results = []
+        for _, raw in jobs:
+            results.append(_escape_time(raw, *args))
+            tick(len(results), len(jobs))
     else:
         import multiprocessing
 
@@ -1307,6 +1318,8 @@ def run_lifetimes(config: RunConfig, params: dict) -> LifetimeResult:
         ctx = multiprocessing.get_context("spawn")
         with ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as ex:
             futs = [ex.submit(_escape_time, raw, *args) for _, raw in jobs]
+            for done, _ in enumerate(as_completed(futs), 1):
+                tick(done, len(jobs))
             results = [f.result() for f in futs]
     times = {L: [] for L in params["sizes"]}
     escaped = {L: [] for L in params["sizes"]}
@@ -1456,13 +1469,21 @@ def plot_sweep(result: SweepResult, path) -> Path:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
+    from sigmasim.analysis.plots import legend_outside, pi_ticks
+
     cfg, p, st = result.config, result.params, result.steps
-    fig, ax = plt.subplots(figsize=(7.5, 5.2))
+    fig, ax = plt.subplots(figsize=(10.0, 5.2))
     tree = result.tree
     if tree:
+        # tree level has |Omega| = 1; fluctuations shrink the measured |Omega|, so the curves are
+        # drawn at the measured median |omega_h| to compare shapes and jump points
+        mod = np.hypot(np.asarray(st["re_omega_h"]), np.asarray(st["im_omega_h"]))
+        mod = mod[np.isfinite(mod)]
+        scale = float(np.median(mod)) if mod.size else 1.0
         for b in range(tree["im_omega_h"].shape[0]):
-            ax.plot(tree["theta"], tree["im_omega_h"][b], color="0.6", lw=1.2, ls="--",
-                    label="tree-level branches (|Omega| = 1)" if b == 0 else None, zorder=1)
+            ax.plot(tree["theta"], scale * np.asarray(tree["im_omega_h"][b]), color="0.6", lw=1.2, ls="--",
+                    label=(rf"tree-level branches $\times$ median $|\Omega|$ = {scale:.2f}") if b == 0 else None,
+                    zorder=1)
         for j, (t, b) in enumerate(tree["spinodals"]):
             ax.axvline(t, color="0.6", lw=0.8, ls=":", zorder=0,
                        label="tree-level spinodals" if j == 0 else None)
@@ -1476,12 +1497,13 @@ def plot_sweep(result: SweepResult, path) -> Path:
             ax.errorbar(st["theta"][sel], st["im_omega_h"][sel], yerr=st["im_omega_h_err"][sel],
                         color=colours[d], marker="o" if d == 1 else "s", ms=3, lw=1, capsize=2,
                         alpha=1.0 if c == 0 else 0.5,
-                        label=f"theta {name}" if c == 0 else None)
+                        label=rf"$\theta$ {name}" if c == 0 else None)
     s = result.summary
-    ax.set_xlabel(r"$\theta$")
+    ax.set_xlabel(r"vacuum angle $\theta$")
+    pi_ticks(ax, float(np.min(st["theta"])), float(np.max(st["theta"])))
     ax.set_ylabel(r"Im $\omega_h$ = Im $e^{i\theta_m}\Omega$")
-    ax.legend(loc="best", fontsize=8)
-    ax.set_title(f"hysteresis sweep, dissipated work per site {s['area']:.3g} +- {s['area_error']:.2g}",
+    legend_outside(ax, fontsize=8)  # beside the loop: never on the data
+    ax.set_title(rf"hysteresis sweep, dissipated work per site {s['area']:.3g} $\pm$ {s['area_error']:.2g}",
                  fontsize=10)
     from sigmasim.analysis.report import run_label
 
@@ -1502,19 +1524,20 @@ def _jump_text(v) -> str:
 
 # ---------------------------------------------------------------- commands
 def _set_threads(config: RunConfig) -> None:
-    import numba
+    from sigmasim.threads import set_threads
 
-    if config.threads:
-        numba.set_num_threads(min(config.threads, numba.config.NUMBA_NUM_THREADS))
+    set_threads(config.threads, config.volume // 2, config.nf)
 
 
-def sweep_command(config_path: str, plot: bool = False, out: str | None = None, overwrite: bool = False) -> int:
-    """``sigmasim sweep CONFIG [--plot] [--out FILE] [--overwrite]``: run a hysteresis sweep, write,
+def sweep_command(config_path: str, plot: bool = False, out: str | None = None, overwrite: bool = False,
+                  quiet: bool = False) -> int:
+    """``sigmasim sweep CONFIG [--plot] [--out FILE] [--overwrite] [--quiet]``: run a hysteresis sweep, write,
     print summary.
 
     The sweep keeps a checkpoint beside its file (``<file>.checkpoint``) and continues it when run
     again after a crash; an existing sweep file is replaced only with ``overwrite``.
     """
+    from sigmasim.progress import Steps
     from sigmasim.storage import lock_path, release_lock, take_lock
 
     config, raw = load_protocol(config_path, "sweep", SWEEP_SCHEMA)
@@ -1534,7 +1557,8 @@ def sweep_command(config_path: str, plot: bool = False, out: str | None = None, 
         elif path.exists() and not ckpt.exists():
             raise RunFileError(f"refusing to overwrite {path}: it exists (use --overwrite to replace it)")
         _set_threads(config)
-        result = run_sweep(config, params, checkpoint=ckpt)
+        with Steps("sweep", quiet, "theta step") as progress:
+            result = run_sweep(config, params, checkpoint=ckpt, progress=progress)
         _finish_sweep(path, result, config, params, plot)
         ckpt.unlink(missing_ok=True)
     finally:
@@ -1570,7 +1594,7 @@ def _finish_sweep(path, result, config, params, plot) -> None:
         print(f"wrote {png}")
 
 
-def temper_command(config_path: str, out: str | None = None) -> int:
+def temper_command(config_path: str, out: str | None = None, quiet: bool = False) -> int:
     """``sigmasim temper CONFIG [--out FOLDER]``: replica exchange over the [tempering] ladder.
 
     Writes ``<out or run.output>/<name>/<name>-t<i>/<name>-t<i>.h5`` (ordinary run files, one per
@@ -1587,6 +1611,8 @@ def temper_command(config_path: str, out: str | None = None) -> int:
     if out:
         config = dataclasses.replace(config, output=str(out))
     _set_threads(config)
+    from sigmasim.progress import Steps
+
     if params.write == "yes":
         # one process per protocol; a crashed one continues from its checkpoint when run again
         from sigmasim.storage import check_writable, lock_path, release_lock, take_lock
@@ -1595,11 +1621,13 @@ def temper_command(config_path: str, out: str | None = None) -> int:
         check_writable(ckpt, 1 << 20)
         lock = take_lock(lock_path(ckpt), "sigmasim process", ckpt.parent)
         try:
-            res = run_tempering(config, params, checkpoint=ckpt)
+            with Steps("temper", quiet, "sweep") as progress:
+                res = run_tempering(config, params, checkpoint=ckpt, progress=progress)
         finally:
             release_lock(lock)
     else:
-        res = run_tempering(config, params)
+        with Steps("temper", quiet, "sweep") as progress:
+            res = run_tempering(config, params, progress=progress)
     for f in res.files:
         print(f"wrote {f}")
     scales = res.mass_scales
@@ -1632,20 +1660,33 @@ def load_lifetimes(config_path) -> tuple[RunConfig, dict]:
     return config_from_dict(rest), params
 
 
-def lifetimes_command(config_path: str, out: str | None = None, workers: int = 0) -> int:
-    """``sigmasim lifetimes CONFIG [--out FILE.json] [--workers N]``: escape times per volume and fits.
+def lifetimes_command(config_path: str, out: str | None = None, workers: int = 0, quiet: bool = False) -> int:
+    """``sigmasim lifetimes CONFIG [--out FILE.json] [--workers N] [--quiet]``: escape times per volume and fits.
 
     Prints the table (per size: dead time, tau after it with its bootstrap error and exact interval,
     the mean escape time, std/mean and KS p-values against the shifted and the pure exponential) and
-    both fits of ln tau; with ``--out`` also writes them as JSON and the escape-time distributions
-    against the fitted laws as a PNG beside it (needs matplotlib).
+    both fits of ln tau, and writes them as JSON to ``--out`` (default
+    ``<run.output>/<name>/<name>-lifetimes.json``; an existing file there is replaced only if this
+    command wrote it) with the escape-time distributions against the fitted laws as a PNG beside it
+    (needs matplotlib).
     """
+    from sigmasim.progress import Steps
+
     config, params = load_lifetimes(config_path)
     if workers:
         params["workers"] = int(workers)
     if out is not None and not str(out).endswith(".json"):
         raise ConfigError(f"--out must end in .json, got {out}")
-    res = run_lifetimes(config, params)
+    out = Path(out) if out is not None else config.run_dir / f"{config.name}-lifetimes.json"
+    if out.exists():
+        try:
+            ours = "fits" in json.loads(out.read_text()) and "protocol" in json.loads(out.read_text())
+        except (OSError, ValueError, TypeError):
+            ours = False
+        if not ours:
+            raise RunFileError(f"refusing to overwrite {out}: it is not a lifetimes file of sigmasim")
+    with Steps("lifetimes", quiet, "start") as progress:
+        res = run_lifetimes(config, params, progress=progress)
     print(res.table())
     if out:
         blob = {"sizes": list(res.sizes), "d": res.d, "tau": res.tau.tolist(), "tau_error": res.tau_error.tolist(),

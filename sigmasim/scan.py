@@ -785,6 +785,15 @@ def format_index(spec: ScanSpec, points: list[Point]) -> str:
     return "\n".join(lines)
 
 
+#: axis and column names of the scan figure in words
+_AXIS_WORDS = {"model.theta": r"vacuum angle $\theta$", "model.mass": "quark mass h", "model.beta": r"coupling $\beta$",
+               "model.kappa": r"anomaly coupling $\kappa$", "model.nf": r"flavours $N_f$", "seed": "seed",
+               "lattice.shape": "lattice"}
+_OBSERVABLE_WORDS = {"action": "action per site <S>/V", "re_omega_h": r"Re $\Omega_h$ (condensate)",
+                     "im_omega_h": r"Im $\Omega_h$ ($\eta'$ direction)", "abs_omega": r"$|\Omega|$",
+                     "re_det": r"Re det $U$", "im_det": r"Im det $U$"}
+
+
 def plot_index(spec: ScanSpec, points: list[Point], observable: str, x: str | None = None) -> Path:
     """Draw one observable against axis ``x``, one curve per value of the other axes (seeds averaged)."""
     import matplotlib
@@ -808,22 +817,31 @@ def plot_index(spec: ScanSpec, points: list[Point], observable: str, x: str | No
         curves.setdefault(key, {}).setdefault(float(np.real(p.params[x])), []).append((o[0], o[1]))
     if not curves:
         raise ConfigError(f"no finished point has {observable} yet")
+    from sigmasim.analysis.plots import pi_ticks
+
     fig, ax = plt.subplots(figsize=(7, 4.5))
+    all_x = []
     for key, by_x in sorted(curves.items()):
         xs = sorted(by_x)
+        all_x += xs
         ys = [np.mean([v for v, _ in by_x[t]]) for t in xs]
         es = [math.sqrt(sum(e * e for _, e in by_x[t])) / len(by_x[t]) for t in xs]  # mean over seeds
-        lab = ", ".join(f"{a.rpartition('.')[2]}={k}" for a, k in zip(others, key)) or None
-        ax.errorbar(xs, ys, yerr=es, marker="o", ms=4, capsize=2, label=lab)
-    ax.set_xlabel(x)
-    ax.set_ylabel(observable)
+        lab = ", ".join(f"{_AXIS_WORDS.get(a, a.rpartition('.')[2])} = {k}" for a, k in zip(others, key)) or None
+        # markers only: a line between two points would draw a jump (first-order point) as a slope
+        ax.errorbar(xs, ys, yerr=es, marker="o", ms=4, capsize=2, ls="none", label=lab)
+    if x == "model.theta" and min(all_x) <= math.pi <= max(all_x):
+        ax.axvline(math.pi, color="0.5", lw=0.8, ls=":", label=r"$\theta = \pi$")
+    if x == "model.theta":
+        pi_ticks(ax, min(all_x), max(all_x))
+    ax.set_xlabel(_AXIS_WORDS.get(x, x))
+    ax.set_ylabel(_OBSERVABLE_WORDS.get(observable, observable))
     ax.set_title(f"scan {spec.name} (research toy, not a physical prediction)", fontsize=9)
-    if any(k for k in curves):
-        ax.legend(fontsize=8)
+    if any(k for k in curves) or x == "model.theta":
+        ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
     fig.tight_layout()
     out = spec.output / f"index-{observable}.png"
-    fig.savefig(out, dpi=130)
-    fig.savefig(out.with_suffix(".pdf"))
+    fig.savefig(out, dpi=130, bbox_inches="tight")
+    fig.savefig(out.with_suffix(".pdf"), bbox_inches="tight")
     plt.close(fig)
     return out
 

@@ -235,10 +235,10 @@ def _g(x, spec=".3f"):
 
 
 def format_scores(rows: list[ScoreRow]) -> str:
-    """Text table: one line per quantity."""
-    head = (f"{'quantity':<22}{'truth':>13}  {'how':<10}{'n':>5}{'pull / mean':>13}"
-            f"{'width':>14}{'KS p':>8}  verdict")
-    lines = [head, "-" * len(head)]
+    """Text table: one line per quantity; every column as wide as its widest cell plus two spaces."""
+    head = ["quantity", "truth", "how", "n", "pull / mean", "width", "KS p", "verdict"]
+    left = {0, 2, 7}
+    cells = []
     for r in rows:
         how = {"high-statistics estimate": "estimate"}.get(r.how, r.how)
         if r.n >= 2:
@@ -246,17 +246,28 @@ def format_scores(rows: list[ScoreRow]) -> str:
             width = f"{r.width:.3f}({r.width_error:.3f})"
         else:
             mean, width = f"{r.mean:+.2f}", "-"
-        lines.append(f"{r.name:<22}{r.truth:>13.6g}  {how:<10}{r.n:>5}{mean:>13}{width:>14}"
-                     f"{_g(r.ks_p):>8}  {r.verdict}")
-    return "\n".join(lines)
+        cells.append([r.name, f"{r.truth:.6g}", how, str(r.n), mean, width, _g(r.ks_p), r.verdict])
+    widths = [max(len(c[i]) for c in [head, *cells]) for i in range(len(head))]
+
+    def line(c):
+        return "  ".join(x.ljust(w) if i in left else x.rjust(w) for i, (x, w) in enumerate(zip(c, widths))).rstrip()
+
+    text = [line(head)]
+    text.append("-" * len(text[0]))
+    return "\n".join(text + [line(c) for c in cells])
 
 
 def score_command(truth_json: str, estimates_json: str) -> int:
-    """``sigmasim score``: print the table; return 0 (also when the verdicts are bad)."""
+    """``sigmasim score``: print the table; return 0 when every verdict is 'ok', 1 otherwise
+    (biased, errors too small or too large, not normal, off by > 3 sigma), so scripts can test it."""
     truth = load_truth(truth_json)
     rows = score(truth, load_estimates(estimates_json))
     print(format_scores(rows))
     if any(r.n >= 2 for r in rows):
         print("pull = (estimate - truth)/error; over replicas honest errors give mean 0, "
               "width 1 (errors in brackets)")
+    bad = [r.name for r in rows if r.verdict != "ok"]
+    if bad:
+        print(f"not ok: {', '.join(bad)} (exit status 1)")
+        return 1
     return 0

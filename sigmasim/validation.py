@@ -13,6 +13,7 @@ check says otherwise).
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import partial
 
 import numpy as np
 
@@ -188,28 +189,49 @@ def o4_ratio(sizes=(8, 12), n_meas=4000, seed=13, tolerance=4.0) -> list[Check]:
     return out
 
 
-def quick_checks() -> list[Check]:
-    """The set ``sigmasim validate`` runs by default (about a minute on 2 cores)."""
-    out = []
+def _quick_parts() -> list:
+    parts = []
     for algorithm in ("heatbath", "metropolis"):
-        out += zero_dim(1, 0.8, 0.5, 2.0, algorithm=algorithm, placement="split")
-        out += zero_dim(2, 1.1, 0.7, 2.5, algorithm=algorithm, placement="anomaly")
-        out += zero_dim(3, -0.6, 0.9, 3.0, algorithm=algorithm, placement="mass")
-        out += zero_dim(2, 1.3, 0.0, 1.0, group="SU", algorithm=algorithm)
-    out += u1_chain(algorithm="heatbath")
-    out += free_field()
+        parts += [
+            partial(zero_dim, 1, 0.8, 0.5, 2.0, algorithm=algorithm, placement="split"),
+            partial(zero_dim, 2, 1.1, 0.7, 2.5, algorithm=algorithm, placement="anomaly"),
+            partial(zero_dim, 3, -0.6, 0.9, 3.0, algorithm=algorithm, placement="mass"),
+            partial(zero_dim, 2, 1.3, 0.0, 1.0, group="SU", algorithm=algorithm),
+        ]
+    return parts + [partial(u1_chain, algorithm="heatbath"), free_field]
+
+
+def _thorough_parts() -> list:
+    parts = []
+    for algorithm in ("heatbath", "metropolis"):
+        parts += [
+            partial(zero_dim, 4, 0.7, 0.6, 2.0, algorithm=algorithm, placement="anomaly", n_meas=3000),
+            partial(zero_dim, 3, 0.8, 0.0, 2.5, group="SU", algorithm=algorithm, n_meas=3000),
+            partial(u1_chain, algorithm=algorithm, n_meas=40000),
+        ]
+    return parts + [o4_ratio]
+
+
+def _run_parts(parts, progress) -> list[Check]:
+    out = []
+    for i, part in enumerate(parts):
+        out += part()
+        if progress is not None:
+            progress(i + 1, len(parts))
     return out
 
 
-def thorough_checks() -> list[Check]:
+def quick_checks(progress=None) -> list[Check]:
+    """The set ``sigmasim validate`` runs by default (about a minute on 2 cores).
+
+    ``progress(done, total)`` is called after each group of checks.
+    """
+    return _run_parts(_quick_parts(), progress)
+
+
+def thorough_checks(progress=None) -> list[Check]:
     """The longer set added by ``sigmasim validate --thorough``."""
-    out = []
-    for algorithm in ("heatbath", "metropolis"):
-        out += zero_dim(4, 0.7, 0.6, 2.0, algorithm=algorithm, placement="anomaly", n_meas=3000)
-        out += zero_dim(3, 0.8, 0.0, 2.5, group="SU", algorithm=algorithm, n_meas=3000)
-        out += u1_chain(algorithm=algorithm, n_meas=40000)
-    out += o4_ratio()
-    return out
+    return _run_parts(_thorough_parts(), progress)
 
 
 def format_table(checks) -> str:

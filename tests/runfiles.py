@@ -1,10 +1,31 @@
 """Shared helpers of the tests that write, interrupt, resume and compare run files."""
 
+import os
+from pathlib import Path
+
 import h5py
 import numpy as np
 
 from sigmasim.chain import Interrupted, make_simulation, run_chain
 from sigmasim.storage import RunWriter, read_state
+
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def subprocess_env(**extra) -> dict:
+    """The environment for a subprocess of a test: one numba thread and one BLAS thread.
+
+    Numba's default is every core; on a machine whose other core is busy a parallel region then
+    waits for a descheduled thread at every colour update, and a run of seconds takes minutes.
+    The numbers do not depend on the thread count, so one thread tests the same thing.  This
+    checkout goes first on PYTHONPATH, so the subprocess runs the code under test.
+    """
+    env = dict(os.environ, NUMBA_NUM_THREADS="1", OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1",
+               MKL_NUM_THREADS="1")
+    env["PYTHONPATH"] = os.pathsep.join([str(ROOT), *filter(None, [os.environ.get("PYTHONPATH")])])
+    env.update({k: str(v) for k, v in extra.items()})
+    return env
 
 
 def run_file(cfg, stop_at=None) -> bool:

@@ -12,6 +12,8 @@ import pytest
 
 from sigmasim.cli import main
 
+from runfiles import subprocess_env
+
 ROOT = Path(__file__).resolve().parents[1]
 
 GOOD = """
@@ -38,9 +40,9 @@ def _write(tmp_path, text, name="c.toml"):
     return p
 
 
-def _run(*args, cwd=None, timeout=120):
+def _run(*args, cwd=None, timeout=300):
     return subprocess.run([sys.executable, "-m", "sigmasim", *map(str, args)], capture_output=True,
-                          text=True, cwd=cwd, timeout=timeout)
+                          text=True, cwd=cwd, timeout=timeout, env=subprocess_env())
 
 
 @pytest.mark.parametrize(
@@ -121,28 +123,32 @@ def _series(path):
 
 
 def test_sigterm_stops_cleanly_and_resume_matches(tmp_path):
-    long = GOOD.replace("measurements = 40", "measurements = 4000").replace("[8, 4, 4]", "[16, 8, 8]")
+    # about two seconds of sweeps (1510 on 16 x 8 x 8, six checkpoints): the signal comes half a
+    # second after the run file appears, so the run is stopped mid-way on an idle or a busy machine
+    long = (GOOD.replace("measurements = 40", "measurements = 1500").replace("[8, 4, 4]", "[16, 8, 8]")
+            .replace("checkpoint_every = 5", "checkpoint_every = 250"))
     cfg = _write(tmp_path, long)
     ref_dir, cut_dir = tmp_path / "ref", tmp_path / "cut"
-    r = _run("run", cfg, "--output", ref_dir, "--quiet", timeout=600)
+    r = _run("run", cfg, "--output", ref_dir, "--quiet")
     assert r.returncode == 0, r.stderr
     p = subprocess.Popen([sys.executable, "-m", "sigmasim", "run", str(cfg), "--output", str(cut_dir),
-                          "--quiet"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+                          "--quiet"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                         env=subprocess_env())
     target = cut_dir / "cli" / "cli.h5"
-    deadline = time.time() + 120
+    deadline = time.time() + 300
     while not target.exists() and time.time() < deadline:
         time.sleep(0.05)
     time.sleep(0.5)
     p.send_signal(signal.SIGTERM)
-    out, err = p.communicate(timeout=120)
+    out, err = p.communicate(timeout=300)
     if p.returncode == 0:
         pytest.skip("run finished before the signal arrived")
     assert p.returncode == 130, err
     assert "--resume" in err and "Traceback" not in err
     with h5py.File(target, "r") as f:
         assert f.attrs["status"] == "interrupted"
-        assert 0 < f.attrs["sweep"] < 4010
-    r = _run("run", cfg, "--output", cut_dir, "--quiet", "--resume", timeout=600)
+        assert 0 < f.attrs["sweep"] < 1510
+    r = _run("run", cfg, "--output", cut_dir, "--quiet", "--resume")
     assert r.returncode == 0, r.stderr
     a, b = _series(ref_dir / "cli" / "cli.h5"), _series(target)
     for part in (0, 1):

@@ -32,7 +32,7 @@ import pytest
 
 from sigmasim.storage import open_run
 
-from runfiles import contents
+from runfiles import contents, subprocess_env
 
 ROOT = Path(__file__).resolve().parents[1]
 CHECKPOINT_EVERY = 4
@@ -72,7 +72,7 @@ def _cmd(cfg, out, *extra):
 
 def _run(cfg, out, *extra, timeout=300):
     return subprocess.run(_cmd(cfg, out, *extra), capture_output=True, text=True, timeout=timeout,
-                          cwd=ROOT)
+                          cwd=ROOT, env=subprocess_env())
 
 
 @pytest.fixture(scope="module")
@@ -86,7 +86,8 @@ def reference(tmp_path_factory):
     out = base / "ref"
     target = out / "crash" / "crash.h5"
     t0 = time.monotonic()
-    p = subprocess.Popen(_cmd(cfg, out), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT)
+    p = subprocess.Popen(_cmd(cfg, out), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT,
+                         env=subprocess_env())
     t_file = None
     while p.poll() is None:
         if t_file is None and target.exists():
@@ -117,7 +118,7 @@ class _Watched:
         self.t_switch = None
         self.t0 = time.monotonic()
         self.proc = subprocess.Popen(_cmd(cfg, out, *extra), stdout=subprocess.PIPE,
-                                     stderr=subprocess.PIPE, text=True, cwd=ROOT)
+                                     stderr=subprocess.PIPE, text=True, cwd=ROOT, env=subprocess_env())
         self.tmp_seen = 0
         self._tmp_now = False
 

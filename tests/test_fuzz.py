@@ -27,6 +27,8 @@ from hypothesis import strategies as st
 from sigmasim.cli import main
 from sigmasim.config import SCHEMA
 
+from runfiles import subprocess_env
+
 SETTINGS = dict(deadline=None, derandomize=True, database=None,
                 suppress_health_check=[HealthCheck.too_slow, HealthCheck.filter_too_much])
 
@@ -366,7 +368,7 @@ def test_subprocess_errors_have_no_traceback(tmp_path):
         cfg.write_text(to_toml(raw))
         procs.append(subprocess.Popen([sys.executable, "-m", "sigmasim", "run", str(cfg), "--output",
                                        str(tmp_path / f"o{i}"), "--quiet"], stdout=subprocess.PIPE,
-                                      stderr=subprocess.PIPE, text=True))
+                                      stderr=subprocess.PIPE, text=True, env=subprocess_env()))
         if len(procs) % 10 == 0:  # at most 10 at a time on a small machine
             for p in procs[-10:]:
                 p.wait(timeout=300)

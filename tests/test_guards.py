@@ -16,6 +16,8 @@ from sigmasim.errors import NumericalError
 from sigmasim.kernels.group import det as kernel_det
 from sigmasim.storage import open_run
 
+from runfiles import subprocess_env
+
 
 def _cfg(nf=3, group="U", shape=(4, 4, 4), schedule="heatbath", output="runs", **run):
     sched = {"heatbath": [{"update": "heatbath"}, {"update": "overrelax"}],
@@ -87,7 +89,8 @@ def test_nan_in_nf3_heatbath_does_not_hang():
         except NumericalError as exc:
             print("OK", exc)
     """)
-    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300,
+                       env=subprocess_env())
     assert r.returncode == 0, r.stderr
     assert r.stdout.startswith("OK") and "sweep 7" in r.stdout and "site 5" in r.stdout
 

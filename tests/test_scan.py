@@ -13,7 +13,7 @@ import h5py
 import numpy as np
 import pytest
 
-from runfiles import assert_same_contents, contents
+from runfiles import assert_same_contents, contents, subprocess_env
 from sigmasim.cli import execute_run, main
 from sigmasim.config import config_from_dict
 from sigmasim.scan import config_key, expand_points, load_scan, read_index
@@ -221,7 +221,7 @@ def long_reference(tmp_path_factory):
 
 
 def _start(scan_path, workers=2):
-    env = dict(os.environ, PYTHONUNBUFFERED="1")
+    env = subprocess_env(PYTHONUNBUFFERED="1")
     return subprocess.Popen([sys.executable, "-m", "sigmasim", "scan", str(scan_path), "--workers", str(workers)],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env,
                             start_new_session=True)
@@ -337,6 +337,6 @@ def test_a_second_scan_on_the_same_output_is_refused_and_a_stale_lock_taken_over
     assert err.count("\n") == 1 and "another scan" in err and str(lock) in err
     assert not list((spec.output / "points").iterdir())  # nothing was run
     dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True,
-                          text=True).stdout.strip()
+                          text=True, env=subprocess_env()).stdout.strip()
     lock.write_text(f"{socket.gethostname()} {dead}")  # left by a scan that was killed
     assert _take_lock(spec) == lock and lock.read_text() == f"{socket.gethostname()} {os.getpid()}"

@@ -61,9 +61,10 @@ def test_command_prints_a_table(tmp_path, capsys):
     est = [{"name": "mean", "value": float(r.mean()), "error": 0.2} for r in x]
     est.append({"name": "tau_int", "value": 1.4, "error": 0.2})
     (tmp_path / "e.json").write_text(json.dumps(est))
-    assert score_command(str(tmp_path / "s.json"), str(tmp_path / "e.json")) == 0
+    # an error of 0.2 on these means is too large (width 0.62): a bad verdict, exit status 1
+    assert score_command(str(tmp_path / "s.json"), str(tmp_path / "e.json")) == 1
     out = capsys.readouterr().out
-    assert "mean" in out and "tau_int" in out and "KS p" in out
+    assert "mean" in out and "tau_int" in out and "KS p" in out and "errors too large" in out
 
 
 @pytest.mark.parametrize("content, match", [
@@ -95,3 +96,33 @@ def test_bad_truth_file(tmp_path):
     (tmp_path / "t.json").write_text('{"arrays": []}')
     with pytest.raises(ConfigError, match="no 'truth'"):
         score_command(str(tmp_path / "t.json"), str(tmp_path / "e.json"))
+
+
+def test_command_exits_1_on_a_bad_verdict_and_keeps_columns_apart(tmp_path, capsys):
+    truth = _truth_file(tmp_path)
+    rng = np.random.default_rng(2)
+    z = rng.standard_normal(200)
+    est = [{"name": "a", "value": 1.5 + zz, "error": 1.0} for zz in z]  # biased by half an error
+    (tmp_path / "e.json").write_text(json.dumps(est))
+    assert score_command(str(truth), str(tmp_path / "e.json")) == 1
+    out = capsys.readouterr().out
+    assert "biased" in out and "exit status 1" in out
+    head, rule, row = out.splitlines()[:3]
+    cols = head.split()
+    assert cols[:3] == ["quantity", "truth", "how"]
+    # every cell is separated by at least two spaces
+    fields = [f for f in row.split("  ") if f.strip()]
+    assert len(fields) == 8, row
+
+
+def test_command_exits_0_when_every_verdict_is_ok(tmp_path, capsys):
+    truth = _truth_file(tmp_path)
+    z = np.random.default_rng(3).standard_normal(200)
+    est = [{"name": "a_quantity_name_longer_than_22", "value": 1.0 + zz, "error": 1.0} for zz in z]
+    doc = json.loads(truth.read_text())
+    doc["truth"]["a_quantity_name_longer_than_22"] = doc["truth"]["a"]
+    truth.write_text(json.dumps(doc))
+    (tmp_path / "e.json").write_text(json.dumps(est))
+    assert score_command(str(truth), str(tmp_path / "e.json")) == 0
+    row = capsys.readouterr().out.splitlines()[2]
+    assert row.startswith("a_quantity_name_longer_than_22  ")

@@ -36,7 +36,7 @@ from pathlib import Path
 import numpy as np
 
 __all__ = ["branch_phases", "tree_guides", "plot_phase_history", "plot_omega_plane", "plot_autocorrelation",
-           "plot_effective_mass", "plot_dwell_times", "plot_all", "FIGURES"]
+           "plot_effective_mass", "plot_dwell_times", "plot_all", "FIGURES", "pi_ticks", "legend_outside"]
 
 FIGURES = ("phase_history", "omega_plane", "dwell_times", "autocorrelation", "effective_mass")
 _TOY = "research toy"
@@ -87,6 +87,37 @@ def tree_guides(config) -> list:
     return out
 
 
+def pi_ticks(ax, lo: float, hi: float, axis: str = "x") -> None:
+    """Ticks at multiples of pi/2 (pi/4 on a short range) labelled in mathtext over [lo, hi]."""
+    from fractions import Fraction
+
+    span = hi - lo
+    step = 0.25 if span < 2.5 else (0.5 if span < 8 else 1.0)
+    k0, k1 = int(np.ceil(lo / np.pi / step - 1e-9)), int(np.floor(hi / np.pi / step + 1e-9))
+    ticks, labels = [], []
+    for k in range(k0, k1 + 1):
+        f = Fraction(k * step).limit_denominator(4)
+        if f == 0:
+            lab = "0"
+        else:
+            num = {1: "", -1: "-"}.get(f.numerator, str(f.numerator))
+            lab = rf"${num}\pi$" if f.denominator == 1 else rf"${num}\pi/{f.denominator}$"
+        ticks.append(float(f) * np.pi)
+        labels.append(lab)
+    if len(ticks) >= 2:
+        (ax.set_xticks if axis == "x" else ax.set_yticks)(ticks, labels)
+
+
+def legend_outside(ax, **kw):
+    """A legend beside the axes (right), so that it never covers data."""
+    kw.setdefault("fontsize", 7)
+    return ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0, **kw)
+
+
+def _is_linear(config) -> bool:
+    return getattr(config, "kind", "chiral") == "linear"
+
+
 def _title(fig, ra, what):
     fig.suptitle(f"{what}\n{ra.label} -- {_TOY}", fontsize=9)
 
@@ -130,8 +161,9 @@ def plot_phase_history(ra, ax=None):
     ax.set_xlabel("sweep")
     if t is not None and fig is not None:
         ax.set_xlabel("")
-    ax.set_ylabel(r"arg $\Omega_h$,  $\Omega_h = e^{i\theta_m}\sum_x \mathrm{Tr}\,U_x/(N_f V)$")
-    ax.legend(fontsize=7, loc="upper right", ncol=2, framealpha=0.85)
+    field = r"\Phi_x" if _is_linear(c) else "U_x"
+    ax.set_ylabel(rf"arg $\Omega_h$,  $\Omega_h = e^{{i\theta_m}}\sum_x \mathrm{{Tr}}\,{field}/(N_f V)$")
+    legend_outside(ax)
     b = getattr(ra, "branch", None)
     if b:
         where = f", {b['tree_status']} at tree level" if b.get("tree_status") else ""
@@ -159,7 +191,7 @@ def _plot_index(ra, ax):
     ax.set_ylim(ks.start - 0.5, ks.stop - 0.5)
     ax.set_xlabel("sweep")
     ax.set_ylabel("branch k")
-    ax.legend(fontsize=7, loc="upper right", framealpha=0.85)
+    legend_outside(ax)
     ax.set_title(f"vacuum index, hysteresis band {t.band:g} (no thermalisation cut)", fontsize=8)
 
 
@@ -200,8 +232,9 @@ def plot_omega_plane(ra, ax=None):
     plt = _plt()
     c = ra.config
     om = ra.data["omega_h"][ra.cut:]
-    fig, (ax, az) = plt.subplots(1, 2, figsize=(10.5, 5.0), layout="constrained")
-    r = 1.05
+    fig, (ax, az) = plt.subplots(1, 2, figsize=(11.5, 5.4), layout="constrained")
+    # the whole data: |Omega_h| <= 1 for a group field, any size for the linear model's Phi
+    r = 1.05 * max(1.0, float(np.max(np.abs(om))) if om.size else 1.0)
     phi = np.linspace(0, 2 * np.pi, 400)
     m = om.mean() if om.size else 0j
     guides = tree_guides(c)
@@ -217,8 +250,8 @@ def plot_omega_plane(ra, ax=None):
     ax.set_xlim(-r, r)
     ax.set_ylim(-r, r)
     ax.set_aspect("equal")
-    ax.set_title("unit disk", fontsize=8)
-    ax.legend(fontsize=7, loc="lower left", framealpha=0.85)
+    ax.set_title("unit disk" if r <= 1.06 else rf"disk $|\Omega_h| \leq$ {r:.2f}", fontsize=8)
+    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(0.0, -0.12), ncol=2)  # below: never on data
     # zoom: a square around the data (at least 0.05 wide)
     lo = np.array([om.real.min(), om.imag.min()]) if om.size else np.zeros(2)
     hi = np.array([om.real.max(), om.imag.max()]) if om.size else np.ones(2)
@@ -233,8 +266,9 @@ def plot_omega_plane(ra, ax=None):
     az.set_title("zoom on the measurements", fontsize=8)
     cb = fig.colorbar(h[3], ax=az, shrink=0.8)
     cb.set_label("measurements per bin")
-    fig.suptitle(f"Omega_h = exp(i theta_m) sum_x Tr U_x / (nf V), after the thermalisation cut\n"
-                 f"{ra.label} -- {_TOY}", fontsize=9)
+    field = r"\Phi_x" if _is_linear(c) else "U_x"
+    fig.suptitle(rf"$\Omega_h = e^{{i\theta_m}}\sum_x \mathrm{{Tr}}\,{field}\,/\,(N_f V)$, after the "
+                 f"thermalisation cut\n{ra.label} -- {_TOY}", fontsize=9)
     return fig
 
 
@@ -262,8 +296,8 @@ def plot_autocorrelation(ra, names=("action", "omega_h.re", "omega_h.im", "abs_o
     ax.set_xlim(0, tmax_all)
     ax.set_xlabel("lag t (measurements)")
     ax.set_ylabel(r"$\rho(t) = \Gamma(t)/\Gamma(0)$")
-    ax.legend(fontsize=7, title=r"dashed: window W;  $\tau_{int} = 1/2 + \sum_{t\leq W}\rho(t)$",
-              title_fontsize=7)
+    legend_outside(ax, title="dashed: window W\n" + r"$\tau_{int} = 1/2 + \sum_{t\leq W}\rho(t)$",
+                   title_fontsize=7)
     if fig is not None:
         _title(fig, ra, "autocorrelation (Wolff Gamma method, S = 1.5)")
     return fig
@@ -296,21 +330,20 @@ def plot_effective_mass(ra, channels=None):
         if m.tree_level_mass is not None:
             ax.axhline(m.tree_level_mass, color="C2", ls="--", lw=1.2,
                        label=f"tree level (LO 1/beta) {m.tree_level_mass:.4f}")
-        good = y[ok & np.isfinite(e) & (e < 0.5 * np.abs(y) + 0.05)]
-        if good.size:
-            lo, hi = np.min(good), np.max(good)
+        shown = y[ok]  # every point is inside the frame (error bars may leave it)
+        if shown.size:
             ref = [v for v in (m.mass, m.tree_level_mass) if v is not None and np.isfinite(v)]
-            lo, hi = min([lo] + ref), max([hi] + ref)
-            pad = 0.25 * (hi - lo) + 0.02
-            ax.set_ylim(max(0, lo - pad), hi + pad)
+            lo, hi = min([np.min(shown)] + ref), max([np.max(shown)] + ref)
+            pad = 0.15 * (hi - lo) + 0.02
+            ax.set_ylim(max(0.0, lo - pad) if lo >= 0 else lo - pad, hi + pad)
         ax.set_xlabel("t (lattice units, time = direction 0)")
         ax.set_ylabel(r"$a\,m_{eff}$")
         ax.set_title(f"{ch}: {m.operator}", fontsize=8)
-        ax.legend(fontsize=7)
+        ax.legend(fontsize=7, loc="best")
     for ax in list(axes.flat)[len(chans):]:
         ax.axis("off")
-    fig.suptitle("cosh effective masses of zero-momentum correlators; operators of W = vacuum-aligned "
-                 f"V = exp(i theta_m) U\n{ra.label} -- {_TOY}",
+    fig.suptitle("cosh effective masses of zero-momentum correlators; operators of the vacuum-aligned "
+                 + r"$W = V = e^{i\theta_m}U$" + f"\n{ra.label} -- {_TOY}",
                  fontsize=9)
     return fig
 
@@ -323,8 +356,8 @@ def plot_all(ra, out_dir) -> list[Path]:
     if ra.data.get("omega_h") is not None and ra.n_used > 0:
         written += _save(plot_phase_history(ra), out, stem, "phase_history")
         written += _save(plot_omega_plane(ra), out, stem, "omega_plane")
-    if getattr(ra, "tunnelling", None) is not None:
-        written += _save(plot_dwell_times(ra), out, stem, "dwell_times")
+    if getattr(ra, "tunnelling", None) is not None and len(ra.tunnelling.completed):
+        written += _save(plot_dwell_times(ra), out, stem, "dwell_times")  # none without a completed dwell
     if ra.series:
         written += _save(plot_autocorrelation(ra), out, stem, "autocorrelation")
     if ra.masses:

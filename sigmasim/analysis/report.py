@@ -249,6 +249,10 @@ def _real_series(series: dict, nf: int) -> dict[str, np.ndarray]:
     return out
 
 
+#: relative spread below which a series counts as constant (rounding of an exact identity)
+ROUNDING = 1e-12
+
+
 def summarise_series(name: str, x: np.ndarray) -> SeriesSummary:
     """Gamma-method summary; drops NaN; handles constant and too short series."""
     x = np.asarray(x, dtype=float)
@@ -263,14 +267,21 @@ def summarise_series(name: str, x: np.ndarray) -> SeriesSummary:
     n = x.size
     if n == 0:
         return SeriesSummary(name, math.nan, math.nan, math.nan, math.nan, math.nan, 0, 0, "no data")
-    if np.ptp(x) == 0.0:
-        return SeriesSummary(name, float(x[0]), 0.0, 0.5, 0.0, float(n), 0, n,
+    if np.ptp(x) <= ROUNDING * max(1.0, float(np.max(np.abs(x)))):
+        # constant, or constant up to rounding (SU(nf): det U = 1, Im Tr U = 0 for nf = 2)
+        return SeriesSummary(name, float(np.mean(x)), 0.0, 0.5, 0.0, float(n), 0, n,
                              (note + "; " if note else "") + "constant")
     if n < MIN_SAMPLES:
         err = float(np.std(x, ddof=1) / np.sqrt(n)) if n > 1 else math.nan
         return SeriesSummary(name, float(x.mean()), err, math.nan, math.nan, math.nan, 0, n,
                              f"only {n} samples: naive error, no tau_int")
     g = gamma_analysis(x)
+    if g.tau_int < 0.5:
+        # anticorrelated (or rounding noise): the Gamma method's error would claim more
+        # independent samples than measurements; use the naive error, N_indep = N, and say so
+        note = (note + "; " if note else "") + f"tau_int {g.tau_int:.2g} < 1/2 capped: naive error"
+        return SeriesSummary(name, g.value, float(g.error * np.sqrt(0.5 / max(g.tau_int, 1e-300))), 0.5,
+                             g.tau_int_error, float(n), g.window, n, note, g.rho)
     return SeriesSummary(name, g.value, g.error, g.tau_int, g.tau_int_error, g.n_independent,
                          g.window, n, note, g.rho)
 
@@ -399,8 +410,10 @@ def analyze_data(series: dict, slices: dict, config, *, status: str = "complete"
     cut, reason, deciding, ok, checked = _thermalisation(reals, n)
     ra.cut, ra.cut_reason, ra.cut_series, ra.thermalised, ra.cut_checked = cut, reason, deciding, ok, checked
     if not ok:
+        # the sentence that says why (not the cut's own first sentence, which may say 'no cut')
+        why = reason[reason.index("Not trusted:"):] if "Not trusted:" in reason else reason
         ra.warnings.append(f"thermalisation: not established ({deciding or 'check skipped'}): "
-                           + reason.split(". ")[0])
+                           + why.split("; ")[0].split(". ")[0].rstrip("."))
     ra.n_used = n - cut
     cut_reals = {k: v[cut:] for k, v in reals.items()}
     ra.data = {"series": cut_reals, "sweep": np.asarray(series.get("sweep", np.arange(1, n + 1))),
@@ -448,6 +461,8 @@ def analyze_data(series: dict, slices: dict, config, *, status: str = "complete"
         return ra
     ra.alpha = cd.alpha
     for ch, est in cd.correlators.items():
+        if ch == "eta_prime_det" and config.nf == 1:
+            continue  # for U(1) det W = Tr W: the same operator as eta_prime
         try:
             ms = _fit_channel(ch, est, tree.get(ch))
         except ValueError as exc:  # pragma: no cover - defensive
@@ -584,11 +599,17 @@ def format_table(analyses) -> str:
             names = [k for k in TABLE_SERIES if k in ra.series]
             names += [k for k in LINEAR_TABLE_SERIES if k in ra.series]
             names += [k for k in ra.series if k.startswith("condensate")]
+            constant = []
             for k in names:
                 s = ra.series[k]
+                if s.note.endswith("constant"):
+                    constant.append(f"{k} = {0.0 if abs(s.mean) < ROUNDING else s.mean:.6g}")
+                    continue
                 tau = fmt_err(s.tau_int, s.tau_int_error) if np.isfinite(s.tau_int) else "-"
                 lines.append(f"{k:<22}{fmt_err(s.mean, s.error):>22}{tau:>16}"
                              f"{_f(s.n_independent, '.0f'):>10}  {s.note}")
+            if constant:
+                lines.append(f"{'constant':<22}{', '.join(constant)}")
             acc = ra.acceptance
             lines.append(f"{'acceptance':<22}metropolis {_f(acc.get('metropolis'))}, phase moves "
                          f"{_f(acc.get('phase'))}, max unitarity drift {_f(acc.get('max_unitarity_drift'))}")
@@ -810,9 +831,13 @@ def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = 
                 raise RunFileError(f"{p} is a folder without {cand.name}")
             p = cand
         resolved.append(p)
+    from sigmasim.progress import Steps
+
     data = [(p, open_run(p)) for p in resolved]
     analyses, written = [], []
-    for p, d in data:
+    progress = Steps("analyze", quiet, "file")
+    for i, (p, d) in enumerate(data):
+        progress(i, len(data), p.name)  # a live line naming the file being analysed
         analyses.append(analyze_data(d.series, d.slices, d.config, status=d.status, path=p, band=band))
     compare_branches(analyses)
     for (p, d), ra in zip(data, analyses):
@@ -826,6 +851,7 @@ def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = 
             except OSError as exc:
                 raise RunFileError(f"cannot create the figure folder {target}: {exc.strerror}") from None
             written += plot_all(ra, target)
+    progress.close()
     if not quiet:
         print(format_table(analyses))
         print("written: " + ", ".join(str(w) for w in written))
