@@ -99,7 +99,7 @@ def _execute_locked(config, path, resume, overwrite, quiet, label, should_stop, 
 
     from sigmasim.chain import Interrupted, make_simulation, run_chain
     from sigmasim.progress import ProgressBar
-    from sigmasim.storage import RunWriter, read_state
+    from sigmasim.storage import RunWriter, checkpoint_leftovers, read_state
 
     state = None
     if resume:
@@ -111,10 +111,9 @@ def _execute_locked(config, path, resume, overwrite, quiet, label, should_stop, 
         state = read_state(path, config)
     elif path.exists():
         _refuse_overwrite(path, config, overwrite)
-    tmp = path.with_name(path.name + ".tmp")
-    if tmp.exists():
-        # a checkpoint copy left by a crash mid-write (the lock shows no one else is writing it)
-        tmp.unlink()
+    for left in checkpoint_leftovers(path):
+        # checkpoint copies left by a crash mid-write (the lock shows no one else is writing them)
+        left.unlink(missing_ok=True)
     sim = make_simulation(config, state)
     if resume and sim.state.sweep >= sim.total_sweeps:
         _note_complete(path, config, sim)

@@ -28,6 +28,7 @@ import datetime as _dt
 import json
 import os
 import platform
+import re
 import shutil
 import subprocess
 import time
@@ -388,13 +389,26 @@ def _check_file(f: h5py.File, path, cfg: RunConfig) -> int:
     return n_meas
 
 
+def checkpoint_leftovers(path) -> list[Path]:
+    """Checkpoint copies of ``path`` left by writers that died mid-write (``<name>.<pid>.tmp`` and
+    ``.new``, and the older fixed ``<name>.tmp``).  Remove them only while holding the run's lock."""
+    path = Path(path)
+    pat = re.compile(re.escape(path.name) + r"(\.[0-9]+)?\.(tmp|new)")
+    try:
+        return sorted(p for p in path.parent.iterdir() if pat.fullmatch(p.name))
+    except OSError:
+        return []
+
+
 class RunWriter:
     """Sink that buffers records and writes them at checkpoints, atomically."""
 
     def __init__(self, config: RunConfig, path: Path, resume: bool = False):
         self.config = config
         self.path = Path(path)
-        self.tmp = self.path.with_name(self.path.name + ".tmp")
+        # unique to this process: a writer never touches another process's copy (the run lock keeps
+        # a second writer away in any case; leftovers of dead writers go via checkpoint_leftovers)
+        self.tmp = self.path.with_name(f"{self.path.name}.{os.getpid()}.tmp")
         self.buffer: list[dict] = []
         self.resume = resume
         self.t0 = time.monotonic()
@@ -426,10 +440,10 @@ class RunWriter:
 
     # -------------------------------------------------------------------
     def _create(self, sim) -> None:
-        # The first file is built under its own name, not <name>.h5.tmp: a crash here must not
-        # leave a lone <name>.h5.tmp (the command line refuses a fresh run beside one), and
+        # The first file is built under its own name, not the checkpoint copy's: a crash here must
+        # not leave a lone checkpoint copy (the command line refuses a fresh run beside one), and
         # a leftover of this name is never a checkpoint, so it is simply replaced.
-        new = self.path.with_name(self.path.name + ".new")
+        new = self.path.with_name(f"{self.path.name}.{os.getpid()}.new")
         try:
             new.unlink(missing_ok=True)
             self._build(sim, new)

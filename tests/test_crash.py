@@ -3,12 +3,12 @@
 Real runs (``python -m sigmasim run CFG --output DIR --quiet``) are killed with
 SIGKILL at moments drawn from a fixed seed: some before the first checkpoint,
 some at random moments of the run, and some exactly while a checkpoint is
-being written (the harness polls for ``<name>.h5.tmp`` and kills as soon as it
+being written (the harness polls for ``<name>.h5.<pid>.tmp`` and kills as soon as it
 appears).  The killed run's resume is killed again in every episode, so the
 chain crosses two crashes.  After every kill:
 
 - the run file, if there is one, opens with :func:`sigmasim.storage.open_run`;
-- a ``<name>.h5.tmp`` never exists without the run file beside it;
+- a ``<name>.h5.<pid>.tmp`` never exists without the run file beside it;
 - at most one checkpoint interval of work is lost (roughly: the stored sweep
   against the progress expected from the reference run's speed);
 - with no run file, ``--resume`` says 'nothing to resume' and a fresh run works.
@@ -30,7 +30,7 @@ import h5py
 import numpy as np
 import pytest
 
-from sigmasim.storage import open_run
+from sigmasim.storage import checkpoint_leftovers, open_run
 
 from runfiles import contents, subprocess_env
 
@@ -102,12 +102,22 @@ def reference(tmp_path_factory):
             "run_time": t_end - t_file, "rate": rate}
 
 
+class _Leftover:
+    """The run's checkpoint copies in the making (``crash.h5.<pid>.tmp``), whichever process writes them."""
+
+    def __init__(self, target):
+        self.target = target
+
+    def exists(self) -> bool:
+        return bool(checkpoint_leftovers(self.target))
+
+
 class _Watched:
     """A run subprocess watched every ~2 ms: when the run file was last switched, and its sweep."""
 
     def __init__(self, cfg, out, *extra):
         self.target = out / "crash" / "crash.h5"
-        self.tmp = self.target.with_name("crash.h5.tmp")
+        self.tmp = _Leftover(self.target)
         # a resumed run starts from a file it did not write: only a switch by this process counts
         # (t_switch is the time of this process's last checkpoint, None before its first)
         try:
@@ -224,7 +234,7 @@ def test_sigkill_anywhere_then_resume_is_bit_identical(reference, tmp_path):
         assert got.keys() == want.keys()
         for key in want:
             np.testing.assert_array_equal(got[key], want[key], err_msg=f"episode {i}: {key}")
-        assert not target.with_name("crash.h5.tmp").exists()
+        assert not checkpoint_leftovers(target)
         if i == len(episodes) - 1 and kills < 10 and len(episodes) < len(EPISODES) + 4:
             episodes.append(("random", "checkpoint"))  # a kill came too late (run already done)
         i += 1

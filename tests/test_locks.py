@@ -19,6 +19,7 @@ import pytest
 
 from sigmasim.cli import main
 from sigmasim.config import config_from_dict
+from sigmasim.storage import RunWriter, checkpoint_leftovers
 from runfiles import contents
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -86,7 +87,7 @@ def test_a_second_writer_of_a_run_file_is_refused_naming_the_holder(tmp_path, ca
             _one_line(err)
             assert f"pid {holder.pid}" in err and socket.gethostname() in err, err
         assert target.read_bytes() == b""  # untouched
-        assert not target.with_name("lk.h5.tmp").exists()
+        assert not checkpoint_leftovers(target)
     finally:
         holder.kill()
         holder.wait()
@@ -127,7 +128,7 @@ def test_two_resumes_at_once_one_wins_and_the_file_equals_an_uninterrupted_run(t
     assert got.keys() == want.keys()
     for key in want:
         np.testing.assert_array_equal(got[key], want[key], err_msg=key)
-    assert not lock_path(target).exists() and not target.with_name("lk.h5.tmp").exists()
+    assert not lock_path(target).exists() and not checkpoint_leftovers(target)
 
 
 def _race(lock, start, queue):
@@ -236,3 +237,27 @@ def test_a_lock_file_naming_a_reused_pid_of_another_program_does_not_block(tmp_p
     finally:
         other.kill()
         other.wait()
+
+
+def test_checkpoint_copies_are_named_per_process_and_leftovers_go_at_resume(tmp_path, capsys):
+    """Issue: every writer used ``<name>.h5.tmp``; now the copy is ``<name>.h5.<pid>.tmp`` and a
+    resume (holding the lock) removes the copies that dead writers left, old name included."""
+    cfg = tmp_path / "lk.toml"
+    cfg.write_text(CFG.format(meas=6))
+    out = tmp_path / "out"
+    assert main(["run", str(cfg), "--output", str(out), "--quiet"]) == 0
+    target = out / "lk" / "lk.h5"
+    w = RunWriter(config_from_dict({"name": "lk", "model": {"nf": 2}, "lattice": {"shape": [8, 4]}}),
+                  target)
+    assert w.tmp.name == f"lk.h5.{os.getpid()}.tmp"
+    dead = [target.with_name("lk.h5.tmp"), target.with_name("lk.h5.999999.tmp"),
+            target.with_name("lk.h5.999999.new")]
+    for p in dead:
+        p.write_bytes(b"half a checkpoint")
+    target.with_name("lk.h5.backup").write_bytes(b"not ours")  # not a checkpoint copy: kept
+    assert checkpoint_leftovers(target) == sorted(dead)
+    cfg.write_text(CFG.format(meas=8))
+    capsys.readouterr()
+    assert main(["run", str(cfg), "--output", str(out), "--quiet", "--resume"]) == 0
+    assert checkpoint_leftovers(target) == []
+    assert target.with_name("lk.h5.backup").read_bytes() == b"not ours"
