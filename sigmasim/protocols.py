@@ -1637,12 +1637,16 @@ def temper_command(config_path: str, out: str | None = None, quiet: bool = False
               f"{scales[i + 1]:7.4f}  {a:.3f}")
     rt = res.round_trips
     print(f"round trips: {len(rt)}" + (f", mean {np.mean(rt):.1f} sweeps" if rt else ""))
+    from sigmasim.vacua import branch_range
+
     census = branch_census(res, config.nf, params.band)
     print(f"branch census of the replicas changed {census.changes} times; in-slot branch changes per slot: "
           + " ".join(str(int(c)) for c in census.slot_changes))
     for i, (t, (occ, err)) in enumerate(zip(res.thetas, branch_populations(res, config.nf, params.band))):
+        # branch numbers of sigmasim.vacua (the populations count k modulo nf from 0)
         print(f"slot {i:2d} theta {t:7.4f} scale {scales[i]:.4f}  branch occupation "
-              + "  ".join(f"{o:.3f}+-{e:.3f}" for o, e in zip(occ, err)))
+              + "  ".join(f"k={kk}: {occ[kk % config.nf]:.3f}+-{err[kk % config.nf]:.3f}"
+                          for kk in branch_range(config.nf)))
     if config.nf > 1 and census.changes < CENSUS_MIN_CHANGES:
         print(f"warning: the branch census changed only {census.changes} times (< {CENSUS_MIN_CHANGES}): the "
               "populations are fixed by the starting branches and their errors are not trustworthy; "

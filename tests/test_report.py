@@ -343,7 +343,7 @@ def test_analyze_reports_tunnelling_of_a_real_run(tmp_path, capsys):
     t = doc["tunnelling"]
     assert t["n_events"] >= 10, t["n_events"]
     assert f"{t['n_events']} events / " in out and t["counted"]
-    assert sum(t["occupation"]) == pytest.approx(1.0)
+    assert sum(t["occupation"].values()) == pytest.approx(1.0)
     assert t["rate_per_site"] == pytest.approx(t["rate_per_sweep"] / 64)
     assert (figs / "tun.dwell_times.png").stat().st_size > 1000
     with pytest.raises(SigmasimError, match="--band"):
@@ -414,9 +414,26 @@ def test_tunnelling_lines_use_the_branch_numbers_of_vacua():
     om = np.full(40, 0.7 * np.exp(1j * (2.8 - 2 * np.pi) / 3))
     t = tunnelling_analysis(om, 2.8, 3, band=0.5, sweeps=np.arange(40))
     ra = SimpleNamespace(tunnelling=t, config=SimpleNamespace(nf=3))
-    rows = {ln.split()[0]: ln.split()[1] for ln in _tunnelling_lines(ra)[3:6]}
+    lines = _tunnelling_lines(ra)
+    head = next(i for i, ln in enumerate(lines) if ln.split()[:2] == ["branch", "occupation"])
+    rows = {ln.split()[0]: ln.split()[1] for ln in lines[head + 1:head + 4]}
     assert rows == {"-1": "1.000", "0": "0.000", "1": "0.000"}
     assert "branch -1 for" in "\n".join(_tunnelling_lines(ra))
+
+
+def test_tunnelling_json_and_csv_use_the_branch_numbers_of_vacua():
+    """The same series: the JSON and CSV name the branch -1 too (they said 2 before)."""
+    from sigmasim.analysis.report import _tunnelling_dict
+    from sigmasim.analysis.tunnelling import tunnelling_analysis
+
+    om = np.full(40, 0.7 * np.exp(1j * (2.8 - 2 * np.pi) / 3))
+    t = tunnelling_analysis(om, 2.8, 3, band=0.5, sweeps=np.arange(40))
+    doc = _tunnelling_dict(t)
+    assert doc["occupation"] == {"-1": 1.0, "0": 0.0, "1": 0.0}
+    assert doc["censored_first"] == [-1, 39.0]  # one open dwell over the whole series
+    assert set(doc["dwells"]) == set(doc["escape"]) == {"-1", "0", "1"}
+    assert doc["escape"]["-1"]["sweeps"] == 39.0
+    assert "k=-1: 1.000" in t.summary()
 
 
 def test_phase_figure_marks_the_branch_of_the_run(run_file):

@@ -678,20 +678,33 @@ def _tunnelling_lines(ra: RunAnalysis) -> list[str]:
 
 
 def _tunnelling_dict(t) -> dict:
+    """The tunnelling JSON section; every branch number in the :mod:`sigmasim.vacua` convention
+    (the index series counts k modulo nf from 0 internally)."""
+    from sigmasim.vacua import branch_range, canonical_branch
+
+    nf = len(t.occupation)
+
+    def k(x):
+        return canonical_branch(int(x), nf)
+
+    def cens(c):
+        return None if c is None else [k(c[0]), c[1]]
+
     b = t.bimodality
     return {"band": t.band, "source": t.source,
             "bimodality": {"verdict": b.verdict, "dip_depth": b.dip_depth, "binder": b.binder,
-                           "binder_error": b.binder_error, "branches": list(b.branches),
+                           "binder_error": b.binder_error, "branches": [k(x) for x in b.branches],
                            "midpoint": b.midpoint, "fractions": list(b.fractions)},
             "counted": t.counted, "n_events": t.n_events, "total_sweeps": t.total_time,
             "rate_per_sweep": t.rate, "rate_per_sweep_error": t.rate_error,
             "rate_per_sweep_interval": [t.rate_low, t.rate_high],
             "rate_per_sweep_upper_95": t.rate_upper_95,
             "rate_per_site": t.rate_per_volume, "rate_per_site_error": t.rate_per_volume_error,
-            "escape": {str(k): {"events": v[0], "sweeps": v[1], "rate": v[2]} for k, v in t.escape.items()},
-            "occupation": t.occupation, "event_measurements": t.events,
-            "dwells": {str(k): v for k, v in t.dwells_by_branch.items()},
-            "censored_first": t.censored_first, "censored_last": t.censored_last,
+            "escape": {str(k(j)): {"events": v[0], "sweeps": v[1], "rate": v[2]} for j, v in t.escape.items()},
+            "occupation": {str(kk): t.occupation[kk % nf] for kk in branch_range(nf)},
+            "event_measurements": t.events,
+            "dwells": {str(k(j)): v for j, v in t.dwells_by_branch.items()},
+            "censored_first": cens(t.censored_first), "censored_last": cens(t.censored_last),
             "exponential_fit": {"tau_mle": t.fit.tau_mle, "tau_mle_error": t.fit.tau_mle_error,
                                 "tau_interval": [t.fit.tau_low, t.fit.tau_high],
                                 "tau_hist": t.fit.tau_hist, "tau_hist_error": t.fit.tau_hist_error,
@@ -769,8 +782,11 @@ def _csv_rows(ra: RunAnalysis):
                    error=t.rate_per_volume_error)
         yield dict(run=run, section="tunnelling", name="dwell_tau_mle", value=t.fit.tau_mle,
                    error=t.fit.tau_mle_error, note="censored: sweeps / events")
-        for k, o in enumerate(t.occupation):
-            yield dict(run=run, section="tunnelling", name=f"occupation[{k}]", value=float(o))
+        from sigmasim.vacua import branch_range
+
+        nf = len(t.occupation)
+        for kk in branch_range(nf):  # the sigmasim.vacua branch numbers
+            yield dict(run=run, section="tunnelling", name=f"occupation[{kk}]", value=float(t.occupation[kk % nf]))
 
 
 def output_paths(run_path) -> tuple[Path, Path]:

@@ -475,7 +475,11 @@ class TunnellingResult:
                 f"{self.n_events} events / {self.total_time:.0f} sweeps)")
 
     def summary(self) -> str:
-        return (self.rate_text() + "; occupation " + " ".join(f"{o:.3f}" for o in self.occupation)
+        from sigmasim.vacua import branch_range
+
+        nf = len(self.occupation)
+        return (self.rate_text() + "; occupation " + " ".join(f"k={k}: {self.occupation[k % nf]:.3f}"
+                                                             for k in branch_range(nf))
                 + "; " + self.bimodality.summary())
 
 
