@@ -30,7 +30,6 @@ This is a research toy, not a physical prediction.
 from __future__ import annotations
 
 import argparse
-import dataclasses
 import json
 import math
 import time

@@ -273,8 +273,7 @@ def _save_sweep_checkpoint(path: Path, config, params, sim, next_step: int, ser:
     """Everything a resumed sweep needs, written atomically (temporary name, fsync, rename)."""
     import h5py
 
-    from sigmasim.chain import ChainState
-    from sigmasim.storage import atomic_output
+    from sigmasim.storage import atomic_output, write_state_group
 
     st = sim.state
 
@@ -284,13 +283,7 @@ def _save_sweep_checkpoint(path: Path, config, params, sim, next_step: int, ser:
             f.attrs["identity"] = _sweep_identity(config, params)
             f.attrs["next_step"] = next_step
             f.attrs["wall_seconds"] = wall
-            g = f.create_group("state")
-            g.create_dataset("re", data=st.re)
-            g.create_dataset("im", data=st.im)
-            for k in ChainState.SCALARS:
-                g.attrs[k] = getattr(st, k)
-            g.attrs["win_acc"] = st.win_acc
-            g.attrs["win_tried"] = st.win_tried
+            write_state_group(f.create_group("state"), st)
             h = f.create_group("series")
             for k, v in ser.items():
                 h.create_dataset(k, data=np.asarray(v, dtype=np.complex128 if k in ("omega_h", "det")
@@ -305,8 +298,7 @@ def _load_sweep_checkpoint(path: Path, config, params, last_sweep: int, n_plan: 
     """(state, next_step, series lists, wall seconds) of a checkpoint; one-line errors when damaged."""
     import h5py
 
-    from sigmasim.chain import ChainState
-    from sigmasim.storage import _check_state_ranges, _check_unitary
+    from sigmasim.storage import _check_state_ranges, _check_unitary, read_state_group
 
     try:
         with h5py.File(path, "r") as f:
@@ -317,19 +309,7 @@ def _load_sweep_checkpoint(path: Path, config, params, last_sweep: int, n_plan: 
                                    "restore that config")
             nxt = f.attrs["next_step"]
             wall = float(f.attrs["wall_seconds"])
-            g = f["state"]
-            st = ChainState(np.ascontiguousarray(g["re"][...], dtype=np.float64),
-                            np.ascontiguousarray(g["im"][...], dtype=np.float64))
-            for k in ChainState.SCALARS:
-                v = g.attrs[k]
-                if not isinstance(v, (int, float, np.integer, np.floating)) or isinstance(v, (bool, np.bool_)):
-                    raise TypeError(f"state attribute {k} is not a number")
-                setattr(st, k, type(getattr(st, k))(v))
-            for k in ("win_acc", "win_tried"):
-                v = g.attrs[k]
-                if not (isinstance(v, np.ndarray) and v.dtype.kind in "iu" and v.shape == (2,)):
-                    raise TypeError(f"state attribute {k} must be 2 integers")
-                setattr(st, k, np.asarray(v, dtype=np.int64).copy())
+            st = read_state_group(f["state"])
             ser = {k: list(f["series"][k][...]) for k in _SWEEP_KEYS}
     except RunFileError:
         raise
@@ -724,8 +704,7 @@ def _save_temper_checkpoint(path, config, params, sims, sinks, sweep, attempt, t
     """The whole protocol state, written atomically (temporary name, fsync, rename)."""
     import h5py
 
-    from sigmasim.chain import ChainState
-    from sigmasim.storage import atomic_output
+    from sigmasim.storage import atomic_output, write_state_group
 
     def write(tmp):
         with h5py.File(tmp, "w") as f:
@@ -742,13 +721,7 @@ def _save_temper_checkpoint(path, config, params, sims, sinks, sweep, attempt, t
             f.create_dataset("attempt_sweeps", data=np.array(attempt_sweeps, dtype=np.int64))
             for i, (sim, sk) in enumerate(zip(sims, sinks)):
                 g = f.create_group(f"slot{i}")
-                st = sim.state
-                g.create_dataset("re", data=st.re)
-                g.create_dataset("im", data=st.im)
-                for k in ChainState.SCALARS:
-                    g.attrs[k] = getattr(st, k)
-                g.attrs["win_acc"] = st.win_acc
-                g.attrs["win_tried"] = st.win_tried
+                write_state_group(g, sim.state)
                 recs = sk[0].records
                 g.attrs["n_records"] = len(recs)
                 r = g.create_group("records")
@@ -761,8 +734,7 @@ def _save_temper_checkpoint(path, config, params, sims, sinks, sweep, attempt, t
 def _load_temper_checkpoint(path, config, params, configs, total) -> dict:
     import h5py
 
-    from sigmasim.chain import ChainState
-    from sigmasim.storage import _check_state_ranges, _check_unitary
+    from sigmasim.storage import _check_state_ranges, _check_unitary, read_state_group
 
     def damaged(why=""):
         return RunFileError(f"{path} is a damaged tempering checkpoint{why}; remove it and the slot files "
@@ -787,18 +759,7 @@ def _load_temper_checkpoint(path, config, params, configs, total) -> dict:
                    "states": [], "records": []}
             for i in range(n_rep):
                 g = f[f"slot{i}"]
-                st = ChainState(np.ascontiguousarray(g["re"][...], dtype=np.float64),
-                                np.ascontiguousarray(g["im"][...], dtype=np.float64))
-                for k in ChainState.SCALARS:
-                    v = g.attrs[k]
-                    if not isinstance(v, (int, float, np.integer, np.floating)) or isinstance(v, (bool, np.bool_)):
-                        raise TypeError(f"state attribute {k} is not a number")
-                    setattr(st, k, type(getattr(st, k))(v))
-                for k in ("win_acc", "win_tried"):
-                    v = g.attrs[k]
-                    if not (isinstance(v, np.ndarray) and v.dtype.kind in "iu" and v.shape == (2,)):
-                        raise TypeError(f"state attribute {k} must be 2 integers")
-                    setattr(st, k, np.asarray(v, dtype=np.int64).copy())
+                st = read_state_group(g)
                 n = int(g.attrs["n_records"])
                 cols = {k.replace("%2F", "/"): d[...] for k, d in g["records"].items()}
                 if any(len(v) != n for v in cols.values()) or (n and not cols):

@@ -503,16 +503,7 @@ class RunWriter:
 
     def _write_state(self, f: h5py.File, sim) -> None:
         st: ChainState = sim.state
-        g = f["state"]
-        for name in ("re", "im"):
-            if name in g:
-                g[name][...] = getattr(st, name)
-            else:
-                g.create_dataset(name, data=getattr(st, name))
-        for k in ChainState.SCALARS:
-            g.attrs[k] = getattr(st, k)
-        g.attrs["win_acc"] = st.win_acc
-        g.attrs["win_tried"] = st.win_tried
+        write_state_group(f["state"], st)
         f.attrs["n_meas"] = st.n_meas
         f.attrs["sweep"] = st.sweep
 
@@ -613,6 +604,39 @@ def _strerror(exc: BaseException) -> str:
     return text
 
 
+def write_state_group(g, st: ChainState) -> None:
+    """Store a chain state in the HDF5 group ``g``: field datasets ``re``/``im`` (written in place
+    when they exist), the scalar counters and the tuning window as attributes."""
+    for name in ("re", "im"):
+        if name in g:
+            g[name][...] = getattr(st, name)
+        else:
+            g.create_dataset(name, data=getattr(st, name))
+    for k in ChainState.SCALARS:
+        g.attrs[k] = getattr(st, k)
+    g.attrs["win_acc"] = st.win_acc
+    g.attrs["win_tried"] = st.win_tried
+
+
+def read_state_group(g) -> ChainState:
+    """The chain state stored by :func:`write_state_group`; raises KeyError/TypeError/ValueError on
+    a damaged group (the callers turn them into one-line RunFileErrors).  Ranges are checked
+    separately (:func:`_check_state_ranges`)."""
+    st = ChainState(np.ascontiguousarray(g["re"][...], dtype=np.float64),
+                    np.ascontiguousarray(g["im"][...], dtype=np.float64))
+    for k in ChainState.SCALARS:
+        v = g.attrs[k]
+        if not isinstance(v, (int, float, np.integer, np.floating)) or isinstance(v, (bool, np.bool_)):
+            raise TypeError(f"state attribute {k} is {type(v).__name__}, not a number")
+        setattr(st, k, type(getattr(st, k))(v))
+    for k in ("win_acc", "win_tried"):
+        v = g.attrs[k]
+        if not (isinstance(v, np.ndarray) and v.dtype.kind in "iu" and v.shape == (2,)):
+            raise TypeError(f"state attribute {k} must be 2 integers")
+        setattr(st, k, np.asarray(v, dtype=np.int64).copy())
+    return st
+
+
 def read_state(path: Path, config: RunConfig) -> ChainState:
     """The chain state of a run file, after checking that it belongs to ``config``."""
     with _open_checked(Path(path)) as f:
@@ -624,18 +648,7 @@ def read_state(path: Path, config: RunConfig) -> ChainState:
             )
         _check_file(f, path, stored)
         try:
-            g = f["state"]
-            st = ChainState(np.ascontiguousarray(g["re"][...]), np.ascontiguousarray(g["im"][...]))
-            for k in ChainState.SCALARS:
-                v = g.attrs[k]
-                if not isinstance(v, (int, float, np.integer, np.floating)) or isinstance(v, (bool, np.bool_)):
-                    raise TypeError(f"state attribute {k} is {type(v).__name__}, not a number")
-                setattr(st, k, type(getattr(st, k))(v))
-            for k in ("win_acc", "win_tried"):
-                v = g.attrs[k]
-                if not (isinstance(v, np.ndarray) and v.dtype.kind in "iu" and v.shape == (2,)):
-                    raise TypeError(f"state attribute {k} must be 2 integers")
-                setattr(st, k, np.asarray(v, dtype=np.int64).copy())
+            st = read_state_group(f["state"])
         except (KeyError, ValueError, TypeError, OSError, OverflowError) as exc:
             raise RunFileError(f"{path} has a damaged checkpoint ({_one_line(exc)})") from None
         nf, v = config.nf, config.volume

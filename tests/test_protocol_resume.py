@@ -2,7 +2,6 @@
 files, a resume that asks for fewer measurements than the file holds, the linear model's nf range."""
 
 import os
-import shutil
 import signal
 import subprocess
 import sys
