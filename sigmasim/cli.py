@@ -228,6 +228,8 @@ def _branch_note(config, omega_h) -> str:
     if pot is None:
         return note + " (no tree-level potential for this model)"
     st = vacua.branch_status(pot, k)
+    if st.status == "flat":
+        return note + " (flat tree-level potential: no isolated vacuum)"
     g = ",".join(str(b) for b in st.global_branches)
     word = {"metastable": "METASTABLE", "no minimum": "not a tree-level minimum"}.get(st.status, st.status)
     return f"{note} {word}" + ("" if st.status.startswith("global") and len(st.global_branches) == 1

@@ -298,7 +298,9 @@ def branch_status(pot: "ChiralPotential", branch: int) -> BranchStatus:
     mins = _tree_minima(pot)
     glob = tuple(sorted({b for b, _, g in mins if g}))
     labels = {b for b, _, _ in mins}
-    if k in glob:
+    if not glob:  # h = kappa = 0 (or SU(Nf) at h = 0): the potential is flat
+        status = "flat"
+    elif k in glob:
         status = "global" if len(glob) == 1 else "global (degenerate)"
     elif k in labels:
         status = "metastable"

@@ -23,7 +23,7 @@ from sigmasim.cli import main
 from sigmasim.config import config_from_dict, read_toml
 from sigmasim.errors import RunFileError
 
-from runfiles import contents
+from runfiles import contents, subprocess_env
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -51,9 +51,6 @@ def _cfg(tmp_path, meas=20, nf=2, group="U", name="ho.toml"):
     p.write_text(CFG.format(meas=meas, nf=nf, group=group))
     return p
 
-
-def _env():
-    return {**os.environ, "NUMBA_NUM_THREADS": "1", "PYTHONPATH": str(ROOT)}
 
 
 def _one_line(err, limit=600):
@@ -100,7 +97,7 @@ def test_a_config_from_a_pipe_is_read_once(tmp_path):
     t = threading.Thread(target=feed, daemon=True)
     t.start()
     r = subprocess.run([sys.executable, "-m", "sigmasim", "run", str(fifo), "--smoke", "--quiet",
-                        "--output", str(tmp_path / "o")], capture_output=True, text=True, env=_env(),
+                        "--output", str(tmp_path / "o")], capture_output=True, text=True, env=subprocess_env(),
                        cwd=ROOT, timeout=300)
     if t.is_alive():  # unblock the feeder if the run never opened the pipe
         with open(fifo, "r") as fh:
@@ -263,7 +260,7 @@ def _signal_early(tmp_path, sig, delay):
     cfg = _cfg(tmp_path, meas=200, name=f"s{sig}-{delay}.toml")
     p = subprocess.Popen([sys.executable, "-m", "sigmasim", "run", str(cfg), "--quiet", "--output",
                           str(tmp_path / "o")], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
-                         env=_env(), cwd=ROOT)
+                         env=subprocess_env(), cwd=ROOT)
     time.sleep(delay)
     p.send_signal(sig)
     _, err = p.communicate(timeout=300)
@@ -315,11 +312,12 @@ def small_disk(tmp_path):
     mnt.mkdir()
     if os.geteuid() != 0:
         pytest.skip("mounting a small tmpfs needs root")
-    r = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=3m", "tmpfs", str(mnt)], capture_output=True)
+    r = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=3m", "tmpfs", str(mnt)], capture_output=True,
+                       env=subprocess_env())
     if r.returncode != 0:
         pytest.skip(f"cannot mount a tmpfs here: {r.stderr.decode().strip()}")
     yield mnt
-    subprocess.run(["umount", "-l", str(mnt)], capture_output=True)
+    subprocess.run(["umount", "-l", str(mnt)], capture_output=True, env=subprocess_env())
 
 
 def _fill(folder, leave):
@@ -341,7 +339,7 @@ def test_a_really_full_disk_during_checkpoints_never_crashes(stopped_run, small_
         (small_disk / "filler").unlink(missing_ok=True)
         _fill(small_disk, leave)
         r = subprocess.run([sys.executable, "-c", script, "run", str(stopped_run["toml"]), "--output", str(out),
-                            "--resume", "--quiet"], capture_output=True, text=True, env=_env(), cwd=ROOT,
+                            "--resume", "--quiet"], capture_output=True, text=True, env=subprocess_env(), cwd=ROOT,
                            timeout=300)
         codes.append(r.returncode)
         assert r.returncode in (0, 2), (leave, r.returncode, r.stderr[-2000:])
@@ -377,7 +375,7 @@ def test_a_scan_on_a_full_disk_ends_in_one_line_and_leaves_no_temporary_files(sm
                     + CFG.format(meas=20, nf=2, group="U").split("[lattice]", 1)[1].join(["[lattice]", ""]))
     _fill(small_disk, 12_000)
     r = subprocess.run([sys.executable, "-m", "sigmasim", "scan", str(scan), "--workers", "1", "--quiet"],
-                       capture_output=True, text=True, env=_env(), cwd=ROOT, timeout=600)
+                       capture_output=True, text=True, env=subprocess_env(), cwd=ROOT, timeout=600)
     assert r.returncode == 2, r.stderr[-2000:]
     assert "Traceback" not in r.stderr and "Traceback" not in r.stdout
     assert r.stderr.strip().splitlines()[-1].startswith("sigmasim: error:")
@@ -390,7 +388,8 @@ def test_outputs_on_a_read_only_file_system_end_in_one_line(tmp_path, capsys):
         pytest.skip("mounting a read-only tmpfs needs root")
     ro = tmp_path / "ro"
     ro.mkdir()
-    r = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=1m,ro", "tmpfs", str(ro)], capture_output=True)
+    r = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=1m,ro", "tmpfs", str(ro)], capture_output=True,
+                       env=subprocess_env())
     if r.returncode != 0:
         pytest.skip(f"cannot mount a tmpfs here: {r.stderr.decode().strip()}")
     try:
@@ -406,7 +405,7 @@ def test_outputs_on_a_read_only_file_system_end_in_one_line(tmp_path, capsys):
             _one_line(err)
             assert "Read-only file system" in err or "not writable" in err, err
     finally:
-        subprocess.run(["umount", "-l", str(ro)], capture_output=True)
+        subprocess.run(["umount", "-l", str(ro)], capture_output=True, env=subprocess_env())
 
 
 def test_a_scan_file_from_a_pipe_is_read_once(tmp_path):
@@ -423,7 +422,7 @@ def test_a_scan_file_from_a_pipe_is_read_once(tmp_path):
     t.start()
     # a second read of the pipe would wait for a writer that never comes: the timeout fails the test
     r = subprocess.run([sys.executable, "-m", "sigmasim", "scan", str(fifo), "--collect", "--quiet"],
-                       capture_output=True, text=True, env=_env(), cwd=ROOT, timeout=60)
+                       capture_output=True, text=True, env=subprocess_env(), cwd=ROOT, timeout=60)
     if t.is_alive():
         with open(fifo, "r") as fh:
             fh.read()

@@ -20,7 +20,7 @@ import pytest
 from sigmasim.cli import main
 from sigmasim.config import config_from_dict
 from sigmasim.storage import RunWriter, checkpoint_leftovers
-from runfiles import contents
+from runfiles import contents, subprocess_env
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -48,9 +48,6 @@ def lock_path(target):
     return target.with_name(target.name + ".lock")
 
 
-def _env():
-    return {**os.environ, "NUMBA_NUM_THREADS": "1", "PYTHONPATH": str(ROOT)}
-
 
 def _cmd(cfg, out, *extra):
     return [sys.executable, "-m", "sigmasim", "run", str(cfg), "--output", str(out), "--quiet", *extra]
@@ -75,7 +72,7 @@ def test_a_second_writer_of_a_run_file_is_refused_naming_the_holder(tmp_path, ca
     target = out / "lk" / "lk.h5"
     target.parent.mkdir(parents=True)
     holder = subprocess.Popen(_holder_script(lock_path(target)), stdout=subprocess.PIPE, text=True,
-                              env=_env(), cwd=ROOT)
+                              env=subprocess_env(), cwd=ROOT)
     try:
         assert holder.stdout.readline().strip() == "held"
         for extra in ([], ["--overwrite"], ["--resume"]):
@@ -101,19 +98,19 @@ def test_two_resumes_at_once_one_wins_and_the_file_equals_an_uninterrupted_run(t
     """The issue's repro: start, stop, then two --resume at the same moment."""
     cfg = tmp_path / "lk.toml"
     cfg.write_text(CFG.format(meas=60))
-    ref = subprocess.run(_cmd(cfg, tmp_path / "ref"), capture_output=True, text=True, env=_env(), cwd=ROOT,
+    ref = subprocess.run(_cmd(cfg, tmp_path / "ref"), capture_output=True, text=True, env=subprocess_env(), cwd=ROOT,
                          timeout=600)
     assert ref.returncode == 0, ref.stderr
     want = contents(tmp_path / "ref" / "lk" / "lk.h5")
     out = tmp_path / "o"
     target = out / "lk" / "lk.h5"
-    first = subprocess.Popen(_cmd(cfg, out), stderr=subprocess.PIPE, text=True, env=_env(), cwd=ROOT)
+    first = subprocess.Popen(_cmd(cfg, out), stderr=subprocess.PIPE, text=True, env=subprocess_env(), cwd=ROOT)
     while first.poll() is None and not target.exists():
         time.sleep(0.005)
     first.terminate()  # SIGTERM: checkpoint and stop
     first.communicate(timeout=120)
     assert first.returncode == 130
-    procs = [subprocess.Popen(_cmd(cfg, out, "--resume"), stderr=subprocess.PIPE, text=True, env=_env(),
+    procs = [subprocess.Popen(_cmd(cfg, out, "--resume"), stderr=subprocess.PIPE, text=True, env=subprocess_env(),
                               cwd=ROOT) for _ in range(2)]
     errs = [p.communicate(timeout=600)[1] for p in procs]
     codes = sorted(p.returncode for p in procs)
@@ -188,7 +185,7 @@ def test_a_stale_lock_file_of_a_killed_process_does_not_block(tmp_path, capsys):
     target = out / "lk" / "lk.h5"
     target.parent.mkdir(parents=True)
     dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True,
-                          text=True).stdout.strip()
+                          text=True, env=subprocess_env()).stdout.strip()
     lock_path(target).write_text(f"{socket.gethostname()} {dead}")
     assert main(["run", str(cfg), "--output", str(out), "--quiet"]) == 0, capsys.readouterr().err
     cfg_obj = config_from_dict({"name": "lk", "lattice": {"shape": [8, 4]}, "run": {"output": str(out)}})
@@ -208,7 +205,7 @@ def test_a_held_scan_lock_whose_file_is_still_empty_is_not_taken_over(tmp_path):
     script = ("import sys, time; from types import SimpleNamespace; from sigmasim.scan import _take_lock; "
               f"p = _take_lock(SimpleNamespace(output=__import__('pathlib').Path({str(tmp_path)!r}))); "
               "open(p, 'w').close(); print('held', flush=True); time.sleep(60)")
-    holder = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.PIPE, text=True, env=_env(),
+    holder = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.PIPE, text=True, env=subprocess_env(),
                               cwd=ROOT)
     try:
         assert holder.stdout.readline().strip() == "held"
@@ -230,7 +227,7 @@ def test_a_lock_file_naming_a_reused_pid_of_another_program_does_not_block(tmp_p
     out = tmp_path / "o"
     target = out / "lk" / "lk.h5"
     target.parent.mkdir(parents=True)
-    other = subprocess.Popen(["sleep", "60"])
+    other = subprocess.Popen(["sleep", "60"], env=subprocess_env())
     try:
         lock_path(target).write_text(f"{socket.gethostname()} {other.pid}")
         assert main(["run", str(cfg), "--output", str(out), "--quiet"]) == 0, capsys.readouterr().err

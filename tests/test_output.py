@@ -44,9 +44,9 @@ def test_run_table_keeps_long_names_apart_and_splits_acceptances(tmp_path, capsy
     cfg = _run_cfg(tmp_path, long, {"nf": 1, "beta": 0.5, "mass": 0.2, "theta": 1.0}, ["metropolis"])
     assert main(["run", str(cfg), "--quiet"]) == 0
     head, rows = _rows(capsys.readouterr().out)
-    assert head[-4:] == ["acc", "Metr", "acc", "phase"]
+    assert head[8:12] == ["acc", "Metr", "acc", "phase"] and head[12] == "branch"
     cells = rows[0].split()
-    assert cells[0] == long and len(cells) == 8  # name, theta, 4 means, 2 acceptances
+    assert cells[0] == long and cells[8] == "k"  # name, theta, 4 means, 2 acceptances, branch
     assert 0 < float(cells[6]) < 1 and cells[7] == "-"
 
 
@@ -54,7 +54,10 @@ def test_run_table_shows_no_acceptance_for_an_su2_heatbath(tmp_path, capsys):
     cfg = _run_cfg(tmp_path, "su2", {"nf": 2, "group": "SU", "beta": 0.5, "mass": 0.0})
     assert main(["run", str(cfg), "--quiet"]) == 0
     _, rows = _rows(capsys.readouterr().out)
-    assert rows[0].split()[-2:] == ["-", "-"]  # was 1.00
+    cells = rows[0].split()
+    assert cells[6:8] == ["-", "-"]  # was 1.00
+    # h = 0 in SU(2): no isolated tree-level vacuum, said in words (was "(global )")
+    assert "flat tree-level potential" in rows[0] and "global )" not in rows[0]
 
 
 def test_run_table_warns_when_im_omega_rests_on_few_independent_samples(tmp_path, capsys):

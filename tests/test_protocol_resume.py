@@ -1,7 +1,6 @@
 """Gaps a user hits: a sweep that resumes, outputs that are never silently replaced, read-only run
 files, a resume that asks for fewer measurements than the file holds, the linear model's nf range."""
 
-import os
 import signal
 import subprocess
 import sys
@@ -15,6 +14,7 @@ import pytest
 from sigmasim.cli import main
 from sigmasim.config import config_from_dict, read_toml
 from sigmasim.errors import ConfigError
+from runfiles import subprocess_env
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -41,9 +41,6 @@ thermalize_per_step = 2
 cycles = 1
 """
 
-
-def _env():
-    return {**os.environ, "NUMBA_NUM_THREADS": "1", "PYTHONPATH": str(ROOT)}
 
 
 def _one_line(err):
@@ -99,7 +96,7 @@ def test_a_sweep_killed_with_sigkill_resumes_bit_identically(sweep_ref, tmp_path
     out = tmp_path / "k.h5"
     ckpt = sweep_checkpoint_path(out)
     cmd = [sys.executable, "-m", "sigmasim", "sweep", str(cfg), "--out", str(out)]
-    p = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=_env(), cwd=ROOT)
+    p = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=subprocess_env(), cwd=ROOT)
     seen = 0
     deadline = time.monotonic() + 300
     while p.poll() is None and time.monotonic() < deadline:

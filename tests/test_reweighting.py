@@ -114,9 +114,11 @@ def _u3_branch_run(theta, k, seed, meas=1000):
 def test_reweighting_across_pi_into_an_unvisited_vacuum_is_refused():
     """U(3), 4^3, beta 3, h 0.3, kappa 3 (tree level, sigmasim.vacua: first-order point at pi,
     branch 0 global below, branch -1 above).  A run at theta = 3.0 sits in branch 0 throughout;
-    reweighted to 3.3 it gives Im omega_h > 0 with a Kish ESS above half the sample, while the
-    direct run at 3.3 in the global branch -1 has Im omega_h < 0 (measured: +0.61 with ESS 0.60
-    against -0.62).  The ESS cannot see this; the branch census does."""
+    reweighted to 3.3 it gives Im omega_h > 0 with a Kish ESS of hundreds of samples, while the
+    direct run at 3.3 in the global branch -1 has Im omega_h < 0 (measured: +0.52 with ESS fraction
+    0.30, i.e. 297 of 1000, against -0.63; +0.61 with 0.60 before the heatbath's random subgroup
+    order changed the chain).  An ESS fraction above about 0.1 is commonly read as a trustworthy
+    reweighting (common practice, no source).  The ESS cannot see this; the branch census does."""
     import warnings
 
     from sigmasim.analysis.reweighting import (UnvisitedVacuumError, UnvisitedVacuumWarning,
@@ -127,7 +129,7 @@ def test_reweighting_across_pi_into_an_unvisited_vacuum_is_refused():
     _, im = reweight_omega_h(s, cfg, 3.3, branch_check="off")
     d, _ = _u3_branch_run(3.3, -1, 2)
     direct = gamma_analysis(d["omega_h"].imag)
-    assert im.ess_fraction > 0.4                     # "healthy" ESS ...
+    assert im.ess_fraction > 0.2                     # "healthy" ESS (well above 0.1) ...
     assert im.value > 0 > direct.value + 4 * direct.error  # ... and the wrong sign
     with pytest.raises(UnvisitedVacuumError, match="branch -1"):
         reweight_omega_h(s, cfg, 3.3)

@@ -540,7 +540,9 @@ def _branch_line(ra: RunAnalysis) -> str | None:
     if b is None:
         return None
     line = f"branch k = {b['k']} ({b['fraction']:.0%} of the measurements after the cut)"
-    if b["tree_status"] is not None:
+    if b["tree_status"] == "flat":
+        line += ": the tree-level potential is flat (no isolated vacuum)"
+    elif b["tree_status"] is not None:
         g = ",".join(str(v) for v in b["tree_global"])
         word = "METASTABLE" if b["tree_status"] == "metastable" else b["tree_status"]
         line += f": {word} at tree level (global {g})"
