@@ -228,6 +228,33 @@ def test_gate_passes_two_separated_peaks_at_theta_pi():
     assert np.allclose(np.abs(order_parameter(om, np.pi, 3, b.midpoint)), np.abs(om.imag))
 
 
+def test_gate_refuses_two_phase_peaks_of_a_real_omega_fluctuating_about_zero():
+    """SU(2) at h = 0: Omega is real and fluctuates about 0, so its phase sits only at 0 and pi.
+    The phase histogram has two peaks and an empty midpoint (dip depth 1), but q is one Gaussian
+    (B = 3): no two vacua, no rate.  Before the cumulant was part of the gate this gave 'two
+    vacua' and about 0.47 events per sweep on a real SU(2) 8^2 run."""
+    n = 4000
+    om = (0.1 * ar1(n, 2.0, 11)).astype(np.complex128)
+    res = tunnelling_analysis(om, 0.0, 2)
+    b = res.bimodality
+    assert b.dip_depth > 0.9                       # the phase histogram alone is fooled ...
+    assert abs(b.binder - 3.0) < 4 * b.binder_error  # ... the cumulant is not
+    assert b.verdict == "no separated vacua" and not res.counted
+    assert not np.isfinite(res.rate) and res.n_events > 100
+    assert "branches 0/1" in b.summary() or "branches 1/0" in b.summary()
+
+
+def test_bimodality_summary_names_branches_in_the_vacua_convention():
+    """U(3) at theta = pi between branches 0 and -1: the summary says -1 (it said 2)."""
+    rng = np.random.default_rng(4)
+    n = 20000
+    k = -1 * (np.cumsum(rng.random(n) < 0.003) % 2)
+    om = 0.7 * np.exp(1j * ((np.pi + 2 * np.pi * k) / 3 + 0.12 * ar1(n, 5.0, 5)))
+    b = tunnelling_analysis(om, np.pi, 3).bimodality
+    assert b.verdict == "two vacua"
+    assert "branches 0/-1" in b.summary() or "branches -1/0" in b.summary()
+
+
 def test_binder_ratio_of_known_distributions():
     from sigmasim.analysis.tunnelling import binder_ratio
     rng = np.random.default_rng(8)

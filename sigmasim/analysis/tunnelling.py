@@ -62,7 +62,9 @@ most occupied branch ``k1`` and its more occupied neighbour ``k2``, the midpoint
   ``Im omega_h``): ``B = 1`` for two sharp symmetric peaks, ``B = 3`` for one Gaussian peak.
 
 The verdict is ``two vacua`` when both sides hold at least 1 % of the measurements and 20 counts in
-their peak bins and the dip depth is at least 0.5; ``one vacuum`` when one side is (nearly) empty and
+their peak bins, the dip depth is at least 0.5 and ``B`` lies clearly below 2 (``B + 2 err < 2``):
+the phase histogram alone is blind where ``|omega_h|`` is small, e.g. a real ``Omega`` fluctuating
+about 0 (SU(2) at h = 0) has its phase only at 0 and pi, an empty midpoint and ``B = 3``; ``one vacuum`` when one side is (nearly) empty and
 the occupied peak lies away from the midpoint; otherwise ``no separated vacua`` (a crossover, or a
 lattice too small or too hot for the branches to be distinct).  :func:`tunnelling_analysis` leaves
 the rates NaN (``counted = False``) unless the verdict is ``two vacua`` or ``one vacuum`` (then a
@@ -315,6 +317,7 @@ class Bimodality:
     counts: np.ndarray
     edges: np.ndarray
     n: int
+    nf: int = 0
 
     @property
     def separated(self) -> bool:
@@ -322,7 +325,9 @@ class Bimodality:
         return self.verdict in ("two vacua", "one vacuum")
 
     def summary(self) -> str:
-        k1, k2 = self.branches
+        from sigmasim.vacua import canonical_branch
+
+        k1, k2 = (canonical_branch(k, self.nf) for k in self.branches) if self.nf else self.branches
         depth = "-" if not np.isfinite(self.dip_depth) else f"{self.dip_depth:.2f}"
         return (f"{self.verdict} (branches {k1}/{k2}: fractions {self.fractions[0]:.3f}/"
                 f"{self.fractions[1]:.3f}, dip depth {depth}, <q^4>/<q^2>^2 = "
@@ -358,14 +363,16 @@ def order_parameter(values, theta, nf: int, midpoint: float) -> np.ndarray:
 
 
 def bimodality(values, theta, nf: int, *, bins: int = 40, min_depth: float = 0.5,
-               min_fraction: float = 0.01, min_peak: int = 20, bin_size: int | None = None) -> Bimodality:
+               min_fraction: float = 0.01, min_peak: int = 20, bin_size: int | None = None,
+               max_binder: float = 2.0) -> Bimodality:
     """Two-peak test of an ``omega_h`` series (see the module notes); ``values`` complex (n,)."""
     values = np.asarray(values, dtype=np.complex128).ravel()
     n = len(values)
     edges = np.linspace(-1.0, 1.0, bins + 1)
     nan = float("nan")
     if nf < 2 or n == 0:
-        return Bimodality("one vacuum", nan, nan, nan, (0, 0), nan, (1.0, 0.0), np.zeros(bins, int), edges, n)
+        return Bimodality("one vacuum", nan, nan, nan, (0, 0), nan, (1.0, 0.0), np.zeros(bins, int), edges, n,
+                          max(nf, 1))
     x = branch_coordinate(values, theta, nf)
     near = np.round(x).astype(np.int64) % nf
     occ = np.bincount(near, minlength=nf)
@@ -393,9 +400,11 @@ def bimodality(values, theta, nf: int, *, bins: int = 40, min_depth: float = 0.5
         depth = nan
     else:
         depth = float(1.0 - counts[pl:pr + 1].min() / min(hl, hr))
-        verdict = "two vacua" if depth >= min_depth else "no separated vacua"
+        # the cumulant must agree: two peaks in the phase with q Gaussian about 0 are no two vacua
+        two_peaked_q = np.isfinite(b) and b + 2.0 * (be if np.isfinite(be) else 0.0) < max_binder
+        verdict = "two vacua" if depth >= min_depth and two_peaked_q else "no separated vacua"
     fr = (left, right) if sgn < 0 else (right, left)
-    return Bimodality(verdict, depth, b, be, (k1, int(k2)), float(m), fr, counts, edges, n)
+    return Bimodality(verdict, depth, b, be, (k1, int(k2)), float(m), fr, counts, edges, n, nf)
 
 
 @dataclass
