@@ -52,12 +52,12 @@ Sweep file layout (HDF5, format ``sigmasim-sweep``, version 1; default
     /steps/<name>      one entry per theta step, in protocol order:
                        theta, cycle (int), direction (+1 up, -1 down), re_omega_h, re_omega_h_err,
                        im_omega_h, im_omega_h_err, action, action_err, ds_dtheta, ds_dtheta_err
-                       (<dS/dtheta>/V), branch (int, majority),
+                       (<dS/dtheta>/V), branch (int, majority, numbered as in sigmasim.vacua),
                        branch_fraction (fraction of measurements in the majority branch), n_meas (int),
                        tau_int_im (Gamma tau_int of Im omega_h)
     /series/<name>     one entry per measurement: sweep (int), step (int, index into /steps),
                        theta, omega_h (complex), det (complex), action, action_mass, action_det,
-                       ds_dtheta (dS/dtheta / V), branch (int, hysteresis index)
+                       ds_dtheta (dS/dtheta / V), branch (int, hysteresis index, numbered as in sigmasim.vacua)
     /tree/theta        (nt,) grid of the tree-level scan (sigmasim.vacua.scan_theta)
     /tree/im_omega_h   (nb, nt) Im e^{i theta_m} Omega of each tree-level branch (NaN where absent)
     /tree/spinodals    (ns, 2) theta and branch of each tree-level spinodal
@@ -414,6 +414,11 @@ def run_sweep(config: RunConfig, params: SweepParams, progress=None, checkpoint=
         steps["branch"][i] = int(np.argmax(counts))
         steps["branch_fraction"][i] = counts.max() / max(1, counts.sum())
         steps["n_meas"][i] = int(sel.sum())
+    # stored and reported in the branch numbers of sigmasim.vacua (counted from 0 modulo nf above)
+    from sigmasim.vacua import canonical_branch
+
+    series["branch"] = np.asarray(canonical_branch(series["branch"], cfg.nf), dtype=np.int64).reshape(-1)
+    steps["branch"] = np.asarray(canonical_branch(steps["branch"], cfg.nf), dtype=np.int64).reshape(-1)
     area, area_err, ju, jd = _loop_observables(steps, params.cycles)
     area_im, _, _, _ = _loop_observables(steps, params.cycles, "im_omega_h")
     return SweepResult(cfg, params, steps, series, area, area_err, ju, jd, wall_before + time.monotonic() - t0,

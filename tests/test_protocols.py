@@ -56,10 +56,10 @@ def test_u3_jumps_beyond_pi_before_spinodal_and_mirrored(u3_sweeps):
         # mirror about pi: (up + down) / 2 = pi within errors and the grid resolution
         err = math.hypot(s["jump_up_error"], s["jump_down_error"])
         assert abs(0.5 * (s["jump_up"] + s["jump_down"]) - math.pi) < 2 * err + res_err
-        # the branch reached past the jump is k = 2 (= -1): Im omega_h changes sign
+        # the branch reached past the jump is k = -1 (sigmasim.vacua numbering): Im omega_h changes sign
         st = res.steps
         up = (st["cycle"] == 0) & (st["direction"] == 1)
-        assert st["branch"][up][0] == 0 and st["branch"][up][-1] == 2
+        assert st["branch"][up][0] == 0 and st["branch"][up][-1] == -1
         assert st["im_omega_h"][up][0] == pytest.approx(0.0, abs=0.05)
 
 
