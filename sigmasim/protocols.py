@@ -1550,7 +1550,7 @@ def _finish_sweep(path, result, config, params, plot) -> None:
                f"{v:.4f}" + (f" +- {e:.2g}" if math.isfinite(e) else "")
                + f" ({n} of {s['cycles']} cycles; resolution {s['jump_resolution']:.3g})")
         print(f"jump {d:<5}{txt}")
-    stat = f" / {s['area_error_stat']:.2g} (stat)" if math.isfinite(s["area_error_stat"]) else ""
+    stat = f" +- {s['area_error_stat']:.2g} (stat)" if math.isfinite(s["area_error_stat"]) else ""
     cyc = f" +- {s['area_error_cycles']:.2g} (cycles)" if math.isfinite(s["area_error_cycles"]) else ""
     print(f"loop area = dissipated work per site, oint <dS/dtheta>/V dtheta: {s['area']:.4g}{cyc}{stat}")
     print(f"  (oint Im omega_h dtheta = {s['area_im_omega_h']:.4g}; equals the work / h for degenerate "
