@@ -260,7 +260,7 @@ def write_arrays(prefix, arrays: dict, entries: list[dict], fmt: str, sidecar: d
             if t.exists() or t.is_symlink():
                 raise RunFileError(f"refusing to overwrite {t}: it exists (use --overwrite to replace it)")
     entries = [dict(e) for e in entries]
-    from sigmasim.storage import atomic_output  # temporary names, then rename: never truncated
+    from sigmasim.storage import atomic_hdf5, atomic_output  # temporary names, then rename: never truncated
 
     def savez(tmp):
         with open(tmp, "wb") as fh:
@@ -271,19 +271,16 @@ def write_arrays(prefix, arrays: dict, entries: list[dict], fmt: str, sidecar: d
         for e in entries:
             e["file"] = targets[0].name
     elif fmt == "hdf5":
-        import h5py
+        def save_h5(f):
+            f.attrs["format"] = "sigmasim-export"
+            f.attrs["sidecar"] = side.name
+            for e, (k, a) in zip(entries, arrays.items()):
+                d = f.create_dataset(k, data=a)
+                d.attrs["description"] = e["description"]
+                d.attrs["convention"] = e["convention"]
+                e["file"] = targets[0].name
 
-        def save_h5(tmp):
-            with h5py.File(tmp, "w") as f:
-                f.attrs["format"] = "sigmasim-export"
-                f.attrs["sidecar"] = side.name
-                for e, (k, a) in zip(entries, arrays.items()):
-                    d = f.create_dataset(k, data=a)
-                    d.attrs["description"] = e["description"]
-                    d.attrs["convention"] = e["convention"]
-                    e["file"] = targets[0].name
-
-        atomic_output(targets[0], save_h5, what="export")
+        atomic_hdf5(targets[0], save_h5, what="export")
     else:
         for e, t, (k, a) in zip(entries, targets, arrays.items()):
             cols = column_names(k, a)

@@ -25,6 +25,7 @@ Nothing is ever unpickled: strings are JSON.
 from __future__ import annotations
 
 import datetime as _dt
+import io
 import json
 import os
 import platform
@@ -43,7 +44,8 @@ from sigmasim.config import RunConfig, config_from_dict
 from sigmasim.errors import ConfigError, RunFileError, SigmasimError, shown
 
 __all__ = ["RunWriter", "RunData", "open_run", "read_state", "FORMAT", "FORMAT_VERSION",
-           "check_writable", "take_lock", "release_lock", "lock_path", "free_bytes", "atomic_output"]
+           "check_writable", "take_lock", "release_lock", "lock_path", "free_bytes", "atomic_output",
+           "atomic_hdf5"]
 
 FORMAT = "sigmasim-run"
 FORMAT_VERSION = 1
@@ -233,6 +235,31 @@ def atomic_output(path: Path, write, what: str = "output") -> Path:
             pass
         raise
     return path
+
+
+def atomic_hdf5(path: Path, build, what: str = "output") -> Path:
+    """Write a small HDF5 file ``path`` whose content ``build(f)`` creates in an open ``h5py.File``.
+
+    The file is built in memory and its bytes go through :func:`atomic_output`, after a check that
+    the disk holds them: HDF5 writing straight to a full disk can take the process down while it
+    closes the file, a plain write fails with an ``OSError`` that becomes one line.
+    """
+    path = Path(path)
+    buf = io.BytesIO()
+    with h5py.File(buf, "w") as f:
+        build(f)
+    data = buf.getvalue()
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        free = free_bytes(path.parent)
+    except OSError as exc:
+        raise RunFileError(f"could not write the {what} {_p(path)} ({_strerror(exc)}); "
+                           "nothing was left behind") from None
+    need = len(data) + (16 << 10)  # slack for block rounding and the directory entry
+    if free < need:
+        raise RunFileError(f"could not write the {what} {_p(path)} (No space left on device: needs about "
+                           f"{_size(need)}, {_size(free)} free); nothing was left behind")
+    return atomic_output(path, lambda tmp: tmp.write_bytes(data), what=what)
 
 
 def check_writable(path: Path, need_bytes: int) -> None:
