@@ -73,6 +73,7 @@ Which truths a run gets
 from __future__ import annotations
 
 import datetime as _dt
+import io
 import json
 import math
 import platform
@@ -260,43 +261,56 @@ def write_arrays(prefix, arrays: dict, entries: list[dict], fmt: str, sidecar: d
             if t.exists() or t.is_symlink():
                 raise RunFileError(f"refusing to overwrite {t}: it exists (use --overwrite to replace it)")
     entries = [dict(e) for e in entries]
-    from sigmasim.storage import atomic_output  # temporary names, then rename: never truncated
+    from sigmasim.storage import atomic_output, check_space, hdf5_bytes
 
-    def savez(tmp):
-        with open(tmp, "wb") as fh:
-            np.savez(fh, **arrays)
-
+    # every file is rendered in memory first, so the free space is checked for the whole export
+    # before the first one is written
     if fmt == "npz":
-        atomic_output(targets[0], savez, what="export")
+        buf = io.BytesIO()
+        np.savez(buf, **arrays)
+        blobs = [buf.getvalue()]
         for e in entries:
             e["file"] = targets[0].name
     elif fmt == "hdf5":
-        import h5py
+        def save_h5(f):
+            f.attrs["format"] = "sigmasim-export"
+            f.attrs["sidecar"] = side.name
+            for e, (k, a) in zip(entries, arrays.items()):
+                d = f.create_dataset(k, data=a)
+                d.attrs["description"] = e["description"]
+                d.attrs["convention"] = e["convention"]
+                e["file"] = targets[0].name
 
-        def save_h5(tmp):
-            with h5py.File(tmp, "w") as f:
-                f.attrs["format"] = "sigmasim-export"
-                f.attrs["sidecar"] = side.name
-                for e, (k, a) in zip(entries, arrays.items()):
-                    d = f.create_dataset(k, data=a)
-                    d.attrs["description"] = e["description"]
-                    d.attrs["convention"] = e["convention"]
-                    e["file"] = targets[0].name
-
-        atomic_output(targets[0], save_h5, what="export")
+        blobs = [hdf5_bytes(save_h5)]
     else:
+        blobs = []
         for e, t, (k, a) in zip(entries, targets, arrays.items()):
             cols = column_names(k, a)
             mat = _csv_matrix(a)
             fmt_ = "%d" if np.issubdtype(mat.dtype, np.integer) else "%.17g"
-            atomic_output(t, lambda tmp: np.savetxt(tmp, mat, delimiter=",", header=",".join(cols),
-                                                    comments="", fmt=fmt_), what="export")
+            buf = io.StringIO()
+            np.savetxt(buf, mat, delimiter=",", header=",".join(cols), comments="", fmt=fmt_)
+            blobs.append(buf.getvalue().encode("latin1"))  # what np.savetxt writes to a file name
             e["file"] = t.name
             e["columns"] = cols
     doc = {"format": SIDECAR_FORMAT, "format_version": SIDECAR_VERSION, **sidecar,
            "data_format": fmt, "files": [t.name for t in targets], "arrays": entries}
     text = json.dumps(_clean(doc), indent=1, allow_nan=False) + "\n"
-    atomic_output(side, lambda tmp: tmp.write_text(text), what="export sidecar")
+    files = list(zip(targets, blobs)) + [(side, text.encode())]
+    check_space(targets[0], sum(len(d) + 4096 for _, d in files), what="export")
+    written = []
+    try:
+        for t, data in files:
+            atomic_output(t, lambda tmp, data=data: tmp.write_bytes(data),
+                          what="export sidecar" if t == side else "export")
+            written.append(t)
+    except BaseException:
+        for t in written:  # only the files this call wrote, so a failed export leaves nothing
+            try:
+                t.unlink()
+            except OSError:
+                pass
+        raise
     return targets + [side]
 
 

@@ -271,27 +271,24 @@ def _sweep_identity(config: RunConfig, params: SweepParams) -> str:
 
 def _save_sweep_checkpoint(path: Path, config, params, sim, next_step: int, ser: dict, wall: float) -> None:
     """Everything a resumed sweep needs, written atomically (temporary name, fsync, rename)."""
-    import h5py
-
-    from sigmasim.storage import atomic_output, write_state_group
+    from sigmasim.storage import atomic_hdf5, write_state_group
 
     st = sim.state
 
-    def write(tmp):
-        with h5py.File(tmp, "w") as f:
-            f.attrs["format"] = SWEEP_CHECKPOINT_FORMAT
-            f.attrs["identity"] = _sweep_identity(config, params)
-            f.attrs["next_step"] = next_step
-            f.attrs["wall_seconds"] = wall
-            write_state_group(f.create_group("state"), st)
-            h = f.create_group("series")
-            for k, v in ser.items():
-                h.create_dataset(k, data=np.asarray(v, dtype=np.complex128 if k in ("omega_h", "det")
-                                                    else np.float64 if k in ("theta", "action", "action_mass",
-                                                                             "action_det", "ds_dtheta")
-                                                    else np.int64))
+    def write(f):
+        f.attrs["format"] = SWEEP_CHECKPOINT_FORMAT
+        f.attrs["identity"] = _sweep_identity(config, params)
+        f.attrs["next_step"] = next_step
+        f.attrs["wall_seconds"] = wall
+        write_state_group(f.create_group("state"), st)
+        h = f.create_group("series")
+        for k, v in ser.items():
+            h.create_dataset(k, data=np.asarray(v, dtype=np.complex128 if k in ("omega_h", "det")
+                                                else np.float64 if k in ("theta", "action", "action_mass",
+                                                                         "action_det", "ds_dtheta")
+                                                else np.int64))
 
-    atomic_output(path, write, what="sweep checkpoint")
+    atomic_hdf5(path, write, what="sweep checkpoint")
 
 
 def _load_sweep_checkpoint(path: Path, config, params, last_sweep: int, n_plan: int):
@@ -707,33 +704,30 @@ def _temper_identity(config, params) -> str:
 def _save_temper_checkpoint(path, config, params, sims, sinks, sweep, attempt, tried, acc, labels,
                             history, measured, attempt_sweeps, wall) -> None:
     """The whole protocol state, written atomically (temporary name, fsync, rename)."""
-    import h5py
+    from sigmasim.storage import atomic_hdf5, write_state_group
 
-    from sigmasim.storage import atomic_output, write_state_group
+    def write(f):
+        f.attrs["format"] = TEMPER_CHECKPOINT_FORMAT
+        f.attrs["identity"] = _temper_identity(config, params)
+        f.attrs["sweep"] = sweep
+        f.attrs["attempt"] = attempt
+        f.attrs["wall_seconds"] = wall
+        f.create_dataset("tried", data=tried)
+        f.create_dataset("accepted", data=acc)
+        f.create_dataset("labels", data=labels)
+        f.create_dataset("history", data=np.array(history, dtype=np.int64))
+        f.create_dataset("measured", data=np.array(measured, dtype=np.int64).reshape(-1, len(sims)))
+        f.create_dataset("attempt_sweeps", data=np.array(attempt_sweeps, dtype=np.int64))
+        for i, (sim, sk) in enumerate(zip(sims, sinks)):
+            g = f.create_group(f"slot{i}")
+            write_state_group(g, sim.state)
+            recs = sk[0].records
+            g.attrs["n_records"] = len(recs)
+            r = g.create_group("records")
+            for k in (recs[0] if recs else {}):
+                r.create_dataset(k.replace("/", "%2F"), data=np.array([x[k] for x in recs]))
 
-    def write(tmp):
-        with h5py.File(tmp, "w") as f:
-            f.attrs["format"] = TEMPER_CHECKPOINT_FORMAT
-            f.attrs["identity"] = _temper_identity(config, params)
-            f.attrs["sweep"] = sweep
-            f.attrs["attempt"] = attempt
-            f.attrs["wall_seconds"] = wall
-            f.create_dataset("tried", data=tried)
-            f.create_dataset("accepted", data=acc)
-            f.create_dataset("labels", data=labels)
-            f.create_dataset("history", data=np.array(history, dtype=np.int64))
-            f.create_dataset("measured", data=np.array(measured, dtype=np.int64).reshape(-1, len(sims)))
-            f.create_dataset("attempt_sweeps", data=np.array(attempt_sweeps, dtype=np.int64))
-            for i, (sim, sk) in enumerate(zip(sims, sinks)):
-                g = f.create_group(f"slot{i}")
-                write_state_group(g, sim.state)
-                recs = sk[0].records
-                g.attrs["n_records"] = len(recs)
-                r = g.create_group("records")
-                for k in (recs[0] if recs else {}):
-                    r.create_dataset(k.replace("/", "%2F"), data=np.array([x[k] for x in recs]))
-
-    atomic_output(path, write, what="tempering checkpoint")
+    atomic_hdf5(path, write, what="tempering checkpoint")
 
 
 def _load_temper_checkpoint(path, config, params, configs, total) -> dict:
@@ -1363,50 +1357,47 @@ def write_sweep(path, result: SweepResult) -> Path:
     """Write the whole sweep protocol into one HDF5 file (atomically: temporary file, rename)."""
     import datetime as _dt
 
-    import h5py
-
     path = Path(path)
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise RunFileError(f"cannot create the output folder {path.parent}: {exc.strerror}") from None
-    from sigmasim.storage import atomic_output
+    from sigmasim.storage import atomic_hdf5
 
-    def write(tmp):
-        with h5py.File(tmp, "w") as f:
-            f.attrs["format"] = SWEEP_FORMAT
-            f.attrs["format_version"] = 1
-            f.attrs["config"] = json.dumps(result.config.to_dict(), sort_keys=True)
-            f.attrs["protocol"] = json.dumps(dataclasses.asdict(result.params), sort_keys=True)
-            f.attrs["summary"] = json.dumps(result.summary, sort_keys=True)
-            f.attrs["conventions"] = ("omega_h = e^{i theta_m} Omega; branch k: x = (nf arg omega_h - "
-                                      "theta)/(2 pi) nearest k with a hysteresis band; research toy")
-            p = f.create_group("provenance")
-            for k, v in _provenance().items():
-                p.attrs[k] = v
-            p.attrs["created"] = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
-            p.attrs["wall_seconds"] = result.wall_seconds
-            g = f.create_group("steps")
-            for k, v in result.steps.items():
-                g.create_dataset(k, data=v)
-            g = f.create_group("series")
-            for k, v in result.series.items():
-                g.create_dataset(k, data=v)
-            g = f.create_group("cycles")
-            g.create_dataset("area", data=result.area)
-            g.create_dataset("area_im_omega_h", data=result.area_im_omega_h)
-            g.create_dataset("area_stat_error", data=result.area_stat_error)
-            g.create_dataset("jump_up", data=result.jump_up)
-            g.create_dataset("jump_down", data=result.jump_down)
-            if result.tree:
-                g = f.create_group("tree")
-                g.create_dataset("theta", data=result.tree["theta"])
-                g.create_dataset("im_omega_h", data=result.tree["im_omega_h"])
-                g.create_dataset("spinodals", data=result.tree["spinodals"])
-                g.create_dataset("first_order", data=result.tree["first_order"])
+    def write(f):
+        f.attrs["format"] = SWEEP_FORMAT
+        f.attrs["format_version"] = 1
+        f.attrs["config"] = json.dumps(result.config.to_dict(), sort_keys=True)
+        f.attrs["protocol"] = json.dumps(dataclasses.asdict(result.params), sort_keys=True)
+        f.attrs["summary"] = json.dumps(result.summary, sort_keys=True)
+        f.attrs["conventions"] = ("omega_h = e^{i theta_m} Omega; branch k: x = (nf arg omega_h - "
+                                  "theta)/(2 pi) nearest k with a hysteresis band; research toy")
+        p = f.create_group("provenance")
+        for k, v in _provenance().items():
+            p.attrs[k] = v
+        p.attrs["created"] = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+        p.attrs["wall_seconds"] = result.wall_seconds
+        g = f.create_group("steps")
+        for k, v in result.steps.items():
+            g.create_dataset(k, data=v)
+        g = f.create_group("series")
+        for k, v in result.series.items():
+            g.create_dataset(k, data=v)
+        g = f.create_group("cycles")
+        g.create_dataset("area", data=result.area)
+        g.create_dataset("area_im_omega_h", data=result.area_im_omega_h)
+        g.create_dataset("area_stat_error", data=result.area_stat_error)
+        g.create_dataset("jump_up", data=result.jump_up)
+        g.create_dataset("jump_down", data=result.jump_down)
+        if result.tree:
+            g = f.create_group("tree")
+            g.create_dataset("theta", data=result.tree["theta"])
+            g.create_dataset("im_omega_h", data=result.tree["im_omega_h"])
+            g.create_dataset("spinodals", data=result.tree["spinodals"])
+            g.create_dataset("first_order", data=result.tree["first_order"])
 
     # temporary name unique to this process, fsync, rename: never a truncated sweep file
-    return atomic_output(path, write, what="sweep file")
+    return atomic_hdf5(path, write, what="sweep file")
 
 
 def read_sweep(path) -> dict:

@@ -730,26 +730,25 @@ def _write_h5(path: Path, columns, rows, spec: ScanSpec) -> None:
     import h5py
 
     text = h5py.string_dtype("utf-8")
-    from sigmasim.storage import atomic_output  # per-process temporary name; removed on failure
+    from sigmasim.storage import atomic_hdf5  # built in memory, then a per-process temporary name
 
-    def write(tmp):
-        with h5py.File(tmp, "w") as f:
-            f.attrs["format"] = INDEX_FORMAT
-            f.attrs["version"] = INDEX_VERSION
-            f.attrs["scan"] = json.dumps({"name": spec.name, "product": spec.product, "zip": spec.zipped})
-            f.attrs["base_config"] = json.dumps(spec.base)
-            f.attrs["note"] = "research toy, not a physical prediction"
-            g = f.create_group("index")
-            g.attrs["columns"] = json.dumps(columns)
-            for i, col in enumerate(columns):
-                vals = [r[i] for r in rows]
-                if all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in vals):
-                    g.create_dataset(col, data=np.asarray(vals, dtype=float if any(
-                        isinstance(v, float) for v in vals) else np.int64))
-                else:
-                    g.create_dataset(col, data=[_cell(v) for v in vals], dtype=text)
+    def write(f):
+        f.attrs["format"] = INDEX_FORMAT
+        f.attrs["version"] = INDEX_VERSION
+        f.attrs["scan"] = json.dumps({"name": spec.name, "product": spec.product, "zip": spec.zipped})
+        f.attrs["base_config"] = json.dumps(spec.base)
+        f.attrs["note"] = "research toy, not a physical prediction"
+        g = f.create_group("index")
+        g.attrs["columns"] = json.dumps(columns)
+        for i, col in enumerate(columns):
+            vals = [r[i] for r in rows]
+            if all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in vals):
+                g.create_dataset(col, data=np.asarray(vals, dtype=float if any(
+                    isinstance(v, float) for v in vals) else np.int64))
+            else:
+                g.create_dataset(col, data=[_cell(v) for v in vals], dtype=text)
 
-    atomic_output(path, write, what="scan index")
+    atomic_hdf5(path, write, what="scan index")
 
 
 def read_index(path) -> dict:

@@ -25,6 +25,7 @@ Nothing is ever unpickled: strings are JSON.
 from __future__ import annotations
 
 import datetime as _dt
+import io
 import json
 import os
 import platform
@@ -43,7 +44,8 @@ from sigmasim.config import RunConfig, config_from_dict
 from sigmasim.errors import ConfigError, RunFileError, SigmasimError, shown
 
 __all__ = ["RunWriter", "RunData", "open_run", "read_state", "FORMAT", "FORMAT_VERSION",
-           "check_writable", "take_lock", "release_lock", "lock_path", "free_bytes", "atomic_output"]
+           "check_writable", "take_lock", "release_lock", "lock_path", "free_bytes", "atomic_output",
+           "atomic_hdf5", "hdf5_bytes", "check_space"]
 
 FORMAT = "sigmasim-run"
 FORMAT_VERSION = 1
@@ -233,6 +235,41 @@ def atomic_output(path: Path, write, what: str = "output") -> Path:
             pass
         raise
     return path
+
+
+def hdf5_bytes(build) -> bytes:
+    """The bytes of an HDF5 file whose content ``build(f)`` creates in an open ``h5py.File`` (built
+    in memory: HDF5 writing straight to a full disk can take the process down while it closes the
+    file, a plain write of these bytes fails with an ``OSError`` that becomes one line)."""
+    buf = io.BytesIO()
+    with h5py.File(buf, "w") as f:
+        build(f)
+    return buf.getvalue()
+
+
+def check_space(path: Path, need_bytes: int, what: str = "output") -> None:
+    """Refuse (one line naming the full disk) when the folder of ``path`` has less than
+    ``need_bytes`` (plus slack for block rounding) free; creates the folder."""
+    path = Path(path)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        free = free_bytes(path.parent)
+    except OSError as exc:
+        raise RunFileError(f"could not write the {what} {_p(path)} ({_strerror(exc)}); "
+                           "nothing was left behind") from None
+    need = need_bytes + (16 << 10)
+    if free < need:
+        raise RunFileError(f"could not write the {what} {_p(path)} (No space left on device: needs about "
+                           f"{_size(need)}, {_size(free)} free); nothing was left behind")
+
+
+def atomic_hdf5(path: Path, build, what: str = "output") -> Path:
+    """Write a small HDF5 file ``path`` whose content ``build(f)`` creates in an open ``h5py.File``:
+    built in memory (:func:`hdf5_bytes`), checked against the free space, then written through
+    :func:`atomic_output`."""
+    data = hdf5_bytes(build)
+    check_space(path, len(data), what)
+    return atomic_output(path, lambda tmp: tmp.write_bytes(data), what=what)
 
 
 def check_writable(path: Path, need_bytes: int) -> None:
