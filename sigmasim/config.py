@@ -90,7 +90,7 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "checkpoint_every": ("int:1:1000000000", 1000, "sweeps between checkpoints"),
         "checkpoint_seconds": ("real>0", 60.0, "also checkpoint when this much time has passed"),
         "output": ("str", "runs", "folder that holds the run folders"),
-        "threads": ("int:0:1024", 0, "numba threads (0: auto, one below 2^14 sites per colour x nf^2, else the "
+        "threads": ("int:0:1024", 0, "numba threads (0: auto, one below 2^11 sites per colour x nf^2, else the "
                     "idle cores); results do not depend on it"),
     },
 }

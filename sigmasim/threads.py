@@ -5,8 +5,9 @@ The chain does not depend on the thread count (see ``rng.py``), so this only cha
 - below ``CROSSOVER_SITES`` sites per colour times nf^2 (the work of a colour update grows with
   the nf x nf matrices) one thread: a colour update then takes tens of microseconds, and waking
   a second thread costs about as much as it saves (``benchmarks/threads_crossover.py`` measures
-  this; U(1) 32^3 and U(3) 16^3, 2^14 and 2^11 x 9 site-components per colour, gain 1.8x on an
-  idle 2-core machine, see the README's performance section);
+  this: on an idle 2-core machine, default schedule, d = 3, U(1) 8^3 0.95x, 12^3 1.40x, 16^3
+  1.74x and above 1.5-1.8x; U(3) 4^3 and 6^3 0.95x, 8^3 1.20x, 12^3 1.49x, 16^3 1.69x; so one
+  thread below 2^11 site-components, where U(1) 8^3 and U(3) 6^3 lie and 2 threads lose);
 - above it every core that is idle, never more: the number of cores this process may use
   (``os.sched_getaffinity``) minus the one-minute load average (``os.getloadavg``), rounded,
   at least one.  A parallel region waits for its slowest thread, so a thread that shares a
@@ -23,7 +24,7 @@ __all__ = ["CROSSOVER_SITES", "usable_cores", "idle_cores", "auto_threads", "cho
 
 # Sites per colour (volume / 2) times nf^2 below which one thread is used.
 # See benchmarks/threads_crossover.py and DEVELOPERS.md ("Benchmarks").
-CROSSOVER_SITES = 2**14
+CROSSOVER_SITES = 2**11
 
 
 def usable_cores() -> int:

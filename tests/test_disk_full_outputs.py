@@ -17,6 +17,7 @@ import numpy as np
 import pytest
 
 from sigmasim.cli import main
+from runfiles import subprocess_env
 
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
@@ -187,11 +188,12 @@ def small_disk(tmp_path):
     mnt.mkdir()
     if os.geteuid() != 0:
         pytest.skip("mounting a small tmpfs needs root")
-    r = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=1m", "tmpfs", str(mnt)], capture_output=True)
+    r = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=1m", "tmpfs", str(mnt)], capture_output=True,
+                       env=subprocess_env())
     if r.returncode != 0:
         pytest.skip(f"cannot mount a tmpfs here: {r.stderr.decode().strip()}")
     yield mnt
-    subprocess.run(["umount", "-l", str(mnt)], capture_output=True)
+    subprocess.run(["umount", "-l", str(mnt)], capture_output=True, env=subprocess_env())
 
 
 def _fill(folder, leave):
@@ -201,9 +203,6 @@ def _fill(folder, leave):
     with open(folder / "filler", "wb") as fh:
         fh.write(b"\0" * max(0, free - leave))
 
-
-def _env():
-    return {**os.environ, "NUMBA_NUM_THREADS": "1", "PYTHONPATH": os.pathsep.join([str(ROOT), str(HERE)])}
 
 
 @pytest.mark.parametrize("which", sorted(WRITERS))
@@ -220,7 +219,7 @@ def test_a_small_hdf5_output_on_a_really_full_disk_never_crashes(which, small_di
         (small_disk / "filler").unlink(missing_ok=True)
         _fill(small_disk, leave)
         r = subprocess.run([sys.executable, "-c", script, which, str(out)], capture_output=True, text=True,
-                           env=_env(), cwd=small_disk.parent, timeout=120)
+                           env=subprocess_env(PYTHONPATH=os.pathsep.join([str(ROOT), str(HERE)])), cwd=small_disk.parent, timeout=120)
         assert r.returncode == 2, (leave, r.returncode, r.stderr[-2000:])
         _one_line(r.stderr)
         assert out.read_bytes() == b"previous"

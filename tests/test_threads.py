@@ -75,10 +75,12 @@ def test_run_threads_overrides_the_default(tmp_path, recorded):
 
 
 def test_the_threshold_counts_the_matrix_size():
-    # U(3) 16^3 (2048 sites per colour, 9 components): the benchmark lattice that gains 1.8x on 2 idle cores
-    assert threads.auto_threads(16**3 // 2, 3, load=0.0, cores=2) == 2
-    assert threads.auto_threads(16**3 // 2, 1, load=0.0, cores=2) == 1
-    assert threads.auto_threads(8**3 // 2, 3, load=0.0, cores=2) == 1
+    # measured on 2 idle cores (benchmarks/threads_crossover.py): U(3) 8^3 (256 sites per colour x 9)
+    # gains 1.2x, U(1) 8^3 (256 x 1) and U(3) 6^3 (108 x 9) lose (0.95x)
+    assert threads.auto_threads(8**3 // 2, 3, load=0.0, cores=2) == 2
+    assert threads.auto_threads(8**3 // 2, 1, load=0.0, cores=2) == 1
+    assert threads.auto_threads(6**3 // 2, 3, load=0.0, cores=2) == 1
+    assert threads.auto_threads(16**3 // 2, 1, load=0.0, cores=2) == 2
 
 
 def test_protocols_and_large_lattices_follow_the_same_rule(recorded):
