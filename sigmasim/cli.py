@@ -378,7 +378,14 @@ def cmd_demo(args) -> int:
         }
         cfg = config_from_dict(raw)
         if cfg.run_file.exists():
-            cfg.run_file.unlink()
+            # the demo replaces its own earlier file, but never one that a process is writing now
+            from sigmasim.storage import lock_path, release_lock, take_lock
+
+            lock = take_lock(lock_path(cfg.run_file), "sigmasim process", cfg.run_file)
+            try:
+                cfg.run_file.unlink(missing_ok=True)
+            finally:
+                release_lock(lock)
         try:
             paths.append(execute_run(cfg, quiet=args.quiet, label=f"theta={th:.3f}"))
         except Interrupted:

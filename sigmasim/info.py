@@ -65,17 +65,14 @@ def _indent(text: str) -> str:
     return "\n".join("  " + ln for ln in text.splitlines())
 
 
-def _run_file(path: Path, fmt_attrs: dict) -> str:
+def _run_file(path: Path) -> str:
     from sigmasim.storage import open_run
 
     d = open_run(path)
     cfg = d.config
     sweeps = cfg.thermalize + cfg.measurements * cfg.measure_every
     n = len(d)
-    try:
-        sweep = int(fmt_attrs.get("sweep", 0))
-    except (TypeError, ValueError):
-        sweep = "?"
+    sweep = "?" if d.sweep is None else d.sweep  # from the same open as the records
     if d.status == "done":
         status = f"status done, {n} measurements"
     elif d.status == "interrupted":
@@ -207,4 +204,4 @@ def info_text(path) -> str:
         except Exception:
             raise RunFileError(f"{path}: cannot read the exported arrays") from None
         return f"{path}: sigmasim export (HDF5): " + ", ".join(f"{k} {s}" for k, s in shapes.items())
-    return _run_file(path, attrs)  # a run file, or a one-line error naming what is wrong
+    return _run_file(path)  # a run file, or a one-line error naming what is wrong

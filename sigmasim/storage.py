@@ -765,6 +765,10 @@ class RunData:
             self.config = _stored_config(f, self.path)
             _check_file(f, self.path, self.config)
             self.status = _text(f.attrs.get("status", "unknown"))
+            try:  # the checkpoint's sweep, read in the same open as the records (a live run switches files)
+                self.sweep = int(f.attrs.get("sweep", 0))
+            except (TypeError, ValueError):
+                self.sweep = None
             self.provenance = {k: _plain(v) for k, v in f["provenance"].attrs.items()}
             layout = _layout(self.config)
             try:

@@ -3,7 +3,7 @@
 With the SU(2) subgroups always visited in the order (0, 1), (0, 2), (1, 2), flavour 1 (in the
 first and the last pair) had an integrated autocorrelation time of its condensate about twice
 that of flavours 0 and 2 at equal masses (U(3), beta = 1: 1.7 against 0.8 for Im condensate on
-4^3, 3000-10000 sweeps).  The subgroup order is now drawn per site and update
+4^3, 3000-10000 sweeps).  The subgroup order is now drawn once per colour update
 (:func:`sigmasim.kernels.general.flavour_order`).  The bound is 4 sigma of the Gamma-method
 errors of tau_int (Madras-Sokal approximation, Wolff, Comput. Phys. Commun. 156 (2004) 143).
 """

@@ -258,3 +258,23 @@ def test_checkpoint_copies_are_named_per_process_and_leftovers_go_at_resume(tmp_
     assert main(["run", str(cfg), "--output", str(out), "--quiet", "--resume"]) == 0
     assert checkpoint_leftovers(target) == []
     assert target.with_name("lk.h5.backup").read_bytes() == b"not ours"
+
+
+def test_the_demo_never_removes_a_run_file_that_a_process_is_writing(tmp_path, capsys):
+    """The demo replaces its own earlier files; it used to unlink them without the run lock."""
+    target = tmp_path / "demo-theta-2.600" / "demo-theta-2.600.h5"
+    target.parent.mkdir(parents=True)
+    target.write_bytes(b"being written")
+    holder = subprocess.Popen(_holder_script(lock_path(target)), stdout=subprocess.PIPE, text=True,
+                              env=subprocess_env(), cwd=ROOT)
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        rc = main(["demo", "--output", str(tmp_path), "--quiet"])
+        err = capsys.readouterr().err
+        assert rc == 2, err
+        _one_line(err)
+        assert f"pid {holder.pid}" in err
+        assert target.read_bytes() == b"being written"
+    finally:
+        holder.kill()
+        holder.wait()
