@@ -88,3 +88,11 @@ def assert_thread_independent(cfg) -> None:
     finally:
         numba.set_num_threads(old)
     assert_same_contents(one, two)
+
+
+def assert_one_line_error(err: str, limit: int | None = None) -> None:
+    """``err`` (a command's stderr) is exactly one ``sigmasim: error:`` line, no traceback, and at
+    most ``limit`` characters when given."""
+    assert err.count("\n") == 1 and err.startswith("sigmasim: error:") and "Traceback" not in err, err
+    if limit is not None:
+        assert len(err) <= limit, f"{len(err)} characters: {err[:300]}"

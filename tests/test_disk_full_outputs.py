@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 
 from sigmasim.cli import main
-from runfiles import subprocess_env
+from runfiles import assert_one_line_error, subprocess_env
 
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
@@ -133,7 +133,7 @@ def _call(which, path):
 
 
 def _one_line(err):
-    assert err.count("\n") == 1 and err.startswith("sigmasim: error:") and "Traceback" not in err, err
+    assert_one_line_error(err)
     assert "No space left on device" in err, err
 
 

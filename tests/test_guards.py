@@ -16,7 +16,7 @@ from sigmasim.errors import NumericalError
 from sigmasim.kernels.group import det as kernel_det
 from sigmasim.storage import checkpoint_leftovers, open_run
 
-from runfiles import subprocess_env
+from runfiles import assert_one_line_error, subprocess_env
 
 
 def _cfg(nf=3, group="U", shape=(4, 4, 4), schedule="heatbath", output="runs", **run):
@@ -254,7 +254,7 @@ checkpoint_every = 4
 
 
 def _one_line(err):
-    assert err.count("\n") == 1 and err.startswith("sigmasim: error:") and "Traceback" not in err, err
+    assert_one_line_error(err)
 
 
 def test_unwritable_output_folder_is_refused_before_the_run(tmp_path, capsys, monkeypatch):

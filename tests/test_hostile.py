@@ -23,7 +23,7 @@ from sigmasim.cli import main
 from sigmasim.config import config_from_dict, read_toml
 from sigmasim.errors import RunFileError
 
-from runfiles import contents, subprocess_env
+from runfiles import assert_one_line_error, contents, subprocess_env
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -54,8 +54,7 @@ def _cfg(tmp_path, meas=20, nf=2, group="U", name="ho.toml"):
 
 
 def _one_line(err, limit=600):
-    assert err.count("\n") == 1 and err.startswith("sigmasim: error:") and "Traceback" not in err, err
-    assert len(err) <= limit, f"{len(err)} characters: {err[:300]}"
+    assert_one_line_error(err, limit)
 
 
 # ---------------------------------------------------------------- 3. overrides

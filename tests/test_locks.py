@@ -20,7 +20,7 @@ import pytest
 from sigmasim.cli import main
 from sigmasim.config import config_from_dict
 from sigmasim.storage import RunWriter, checkpoint_leftovers
-from runfiles import contents, subprocess_env
+from runfiles import assert_one_line_error, contents, subprocess_env
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -54,7 +54,7 @@ def _cmd(cfg, out, *extra):
 
 
 def _one_line(err):
-    assert err.count("\n") == 1 and err.startswith("sigmasim: error:") and "Traceback" not in err, err
+    assert_one_line_error(err)
 
 
 def _holder_script(lock, seconds=60):

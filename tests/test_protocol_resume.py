@@ -14,7 +14,7 @@ import pytest
 from sigmasim.cli import main
 from sigmasim.config import config_from_dict, read_toml
 from sigmasim.errors import ConfigError
-from runfiles import subprocess_env
+from runfiles import assert_one_line_error, subprocess_env
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -44,7 +44,7 @@ cycles = 1
 
 
 def _one_line(err):
-    assert err.count("\n") == 1 and err.startswith("sigmasim: error:") and "Traceback" not in err, err
+    assert_one_line_error(err)
 
 
 def _same_sweep(a, b):
