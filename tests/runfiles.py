@@ -1,6 +1,9 @@
 """Shared helpers of the tests that write, interrupt, resume and compare run files."""
 
+import contextlib
 import os
+import shutil
+import subprocess
 from pathlib import Path
 
 import h5py
@@ -96,3 +99,31 @@ def assert_one_line_error(err: str, limit: int | None = None) -> None:
     assert err.count("\n") == 1 and err.startswith("sigmasim: error:") and "Traceback" not in err, err
     if limit is not None:
         assert len(err) <= limit, f"{len(err)} characters: {err[:300]}"
+
+
+@contextlib.contextmanager
+def small_tmpfs(folder, size: str, read_only: bool = False):
+    """Mount a tmpfs of ``size`` (e.g. "1m") on the new folder ``folder`` for the ``with`` block;
+    skips the test where this process may not mount (needs root and a permitting kernel)."""
+    import pytest
+
+    folder = Path(folder)
+    folder.mkdir()
+    if os.geteuid() != 0:
+        pytest.skip("mounting a small tmpfs needs root")
+    opts = f"size={size}" + (",ro" if read_only else "")
+    r = subprocess.run(["mount", "-t", "tmpfs", "-o", opts, "tmpfs", str(folder)], capture_output=True,
+                       env=subprocess_env())
+    if r.returncode != 0:
+        pytest.skip(f"cannot mount a tmpfs here: {r.stderr.decode().strip()}")
+    try:
+        yield folder
+    finally:
+        subprocess.run(["umount", "-l", str(folder)], capture_output=True, env=subprocess_env())
+
+
+def fill_disk(folder, leave: int) -> None:
+    """Fill the file system of ``folder`` (with ``folder/filler``) until ``leave`` bytes are free."""
+    free = shutil.disk_usage(folder).free
+    with open(Path(folder) / "filler", "wb") as fh:
+        fh.write(b"\0" * max(0, free - leave))

@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 
 from sigmasim.cli import main
-from runfiles import assert_one_line_error, subprocess_env
+from runfiles import assert_one_line_error, fill_disk, small_tmpfs, subprocess_env
 
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
@@ -184,24 +184,12 @@ def test_the_sweep_command_on_a_nearly_full_disk_exits_2_with_one_line(tmp_path,
 @pytest.fixture
 def small_disk(tmp_path):
     """A 1 MiB tmpfs (needs root and a kernel that lets this process mount)."""
-    mnt = tmp_path / "disk"
-    mnt.mkdir()
-    if os.geteuid() != 0:
-        pytest.skip("mounting a small tmpfs needs root")
-    r = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=1m", "tmpfs", str(mnt)], capture_output=True,
-                       env=subprocess_env())
-    if r.returncode != 0:
-        pytest.skip(f"cannot mount a tmpfs here: {r.stderr.decode().strip()}")
-    yield mnt
-    subprocess.run(["umount", "-l", str(mnt)], capture_output=True, env=subprocess_env())
+    with small_tmpfs(tmp_path / "disk", "1m") as mnt:
+        yield mnt
 
 
 def _fill(folder, leave):
-    import shutil
-
-    free = shutil.disk_usage(folder).free
-    with open(folder / "filler", "wb") as fh:
-        fh.write(b"\0" * max(0, free - leave))
+    fill_disk(folder, leave)
 
 
 

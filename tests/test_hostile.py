@@ -23,7 +23,7 @@ from sigmasim.cli import main
 from sigmasim.config import config_from_dict, read_toml
 from sigmasim.errors import RunFileError
 
-from runfiles import assert_one_line_error, contents, subprocess_env
+from runfiles import assert_one_line_error, contents, fill_disk, small_tmpfs, subprocess_env
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -307,23 +307,12 @@ def test_a_full_disk_before_a_checkpoint_is_one_line_and_the_last_checkpoint_sur
 @pytest.fixture
 def small_disk(tmp_path):
     """A 3 MiB tmpfs (needs root and a kernel that lets this process mount)."""
-    mnt = tmp_path / "disk"
-    mnt.mkdir()
-    if os.geteuid() != 0:
-        pytest.skip("mounting a small tmpfs needs root")
-    r = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=3m", "tmpfs", str(mnt)], capture_output=True,
-                       env=subprocess_env())
-    if r.returncode != 0:
-        pytest.skip(f"cannot mount a tmpfs here: {r.stderr.decode().strip()}")
-    yield mnt
-    subprocess.run(["umount", "-l", str(mnt)], capture_output=True, env=subprocess_env())
+    with small_tmpfs(tmp_path / "disk", "3m") as mnt:
+        yield mnt
 
 
 def _fill(folder, leave):
-    """Fill the file system of ``folder`` until ``leave`` bytes are free."""
-    free = shutil.disk_usage(folder).free
-    with open(folder / "filler", "wb") as fh:
-        fh.write(b"\0" * max(0, free - leave))
+    fill_disk(folder, leave)
 
 
 def test_a_really_full_disk_during_checkpoints_never_crashes(stopped_run, small_disk, tmp_path):
@@ -383,15 +372,7 @@ def test_a_scan_on_a_full_disk_ends_in_one_line_and_leaves_no_temporary_files(sm
 
 
 def test_outputs_on_a_read_only_file_system_end_in_one_line(tmp_path, capsys):
-    if os.geteuid() != 0:
-        pytest.skip("mounting a read-only tmpfs needs root")
-    ro = tmp_path / "ro"
-    ro.mkdir()
-    r = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=1m,ro", "tmpfs", str(ro)], capture_output=True,
-                       env=subprocess_env())
-    if r.returncode != 0:
-        pytest.skip(f"cannot mount a tmpfs here: {r.stderr.decode().strip()}")
-    try:
+    with small_tmpfs(tmp_path / "ro", "1m", read_only=True) as ro:
         cfg = _cfg(tmp_path, meas=2)
         sweep = tmp_path / "sw.toml"
         sweep.write_text(cfg.read_text() + "[sweep]\nstart = 0.0\nstop = 1.0\nstep = 0.5\nsweeps_per_step = 2\n")
@@ -403,8 +384,6 @@ def test_outputs_on_a_read_only_file_system_end_in_one_line(tmp_path, capsys):
             assert rc == 2, (argv, err)
             _one_line(err)
             assert "Read-only file system" in err or "not writable" in err, err
-    finally:
-        subprocess.run(["umount", "-l", str(ro)], capture_output=True, env=subprocess_env())
 
 
 def test_a_scan_file_from_a_pipe_is_read_once(tmp_path):
