@@ -109,7 +109,8 @@ class _Leftover:
         self.target = target
 
     def exists(self) -> bool:
-        return bool(checkpoint_leftovers(self.target))
+        # the copies of a checkpoint (.tmp); a first file is built as <name>.h5.<pid>.new instead
+        return any(p.name.endswith(".tmp") for p in checkpoint_leftovers(self.target))
 
 
 class _Watched:
@@ -254,7 +255,7 @@ def test_leftover_tmp_from_a_killed_checkpoint_is_harmless(reference, tmp_path):
     w.kill()
     target = out / "crash" / "crash.h5"
     assert target.exists()
-    w.tmp.write_bytes(b"garbage from a checkpoint that never finished")
+    target.with_name("crash.h5.999999.tmp").write_bytes(b"garbage from a checkpoint that never finished")
     r = _run(cfg, out)  # no --resume: must refuse, pointing at --resume, not at the .tmp
     assert r.returncode == 2 and "--resume" in r.stderr and "Traceback" not in r.stderr
     r = _run(cfg, out, "--resume")

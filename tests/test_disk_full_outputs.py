@@ -76,9 +76,13 @@ def write_sweep_cli(path: Path) -> int:
     import sigmasim.protocols as protocols
 
     toml = _toml(path.parent.parent)
+    saved = protocols.run_sweep, protocols.tree_level
     protocols.run_sweep = lambda config, params, **kw: _fake_sweep(toml)
     protocols.tree_level = lambda *a, **kw: {}
-    return main(["sweep", str(toml), "--out", str(path), "--overwrite", "--quiet"])
+    try:
+        return main(["sweep", str(toml), "--out", str(path), "--overwrite", "--quiet"])
+    finally:  # in-process callers run other tests afterwards: leave the module as it was
+        protocols.run_sweep, protocols.tree_level = saved
 
 
 def write_sweep_checkpoint(path: Path) -> None:
