@@ -12,7 +12,7 @@ from numba import njit
 
 from sigmasim.rng import uniform
 
-__all__ = ["load", "store", "det", "reunitarize_site", "sample_su2_x0", "von_mises_angle"]
+__all__ = ["load", "store", "det", "det_lu_in_place", "reunitarize_site", "sample_su2_x0", "von_mises_angle"]
 
 
 @njit(cache=True, inline="always")
@@ -52,6 +52,13 @@ def det(m, nf, work):
     for a in range(nf):
         for b in range(nf):
             work[a, b] = m[a, b]
+    return det_lu_in_place(work, nf)
+
+
+@njit(cache=True)
+def det_lu_in_place(work, nf):
+    """Determinant by LU with partial pivoting of the matrix held in ``work``, which it overwrites
+    (the nf > 3 branch of :func:`det`, for callers that load their matrix into scratch anyway)."""
     d = complex(1.0, 0.0)
     for k in range(nf):
         p = k

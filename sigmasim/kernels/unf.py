@@ -32,7 +32,7 @@ from numba import njit, prange
 
 from sigmasim.kernels import tables
 from sigmasim.kernels.general import flavour_order
-from sigmasim.kernels.group import sample_su2_x0, von_mises_angle
+from sigmasim.kernels.group import det, det_lu_in_place, sample_su2_x0, von_mises_angle
 from sigmasim.kernels.serial import total, zeros_bool, zeros_int
 from sigmasim.kernels.simd import exp_le0, lookup16, u01_from_bits
 from sigmasim.kernels.u3 import CHUNK_SITES, _det3, _fast_rows
@@ -147,33 +147,8 @@ def _det_site(U, nf, nc, s, work):
         for b in range(nf):
             work[a, b] = complex(U[a * nf + b, s], U[nc + a * nf + b, s])
     if nf == 3:
-        return (work[0, 0] * (work[1, 1] * work[2, 2] - work[1, 2] * work[2, 1])
-                - work[0, 1] * (work[1, 0] * work[2, 2] - work[1, 2] * work[2, 0])
-                + work[0, 2] * (work[1, 0] * work[2, 1] - work[1, 1] * work[2, 0]))
-    d = complex(1.0, 0.0)
-    for k in range(nf):
-        p = k
-        big = abs(work[k, k])
-        for r in range(k + 1, nf):
-            v = abs(work[r, k])
-            if v > big:
-                big = v
-                p = r
-        if big == 0.0:
-            return complex(0.0, 0.0)
-        if p != k:
-            for b in range(nf):
-                t = work[k, b]
-                work[k, b] = work[p, b]
-                work[p, b] = t
-            d = -d
-        piv = work[k, k]
-        d *= piv
-        for r in range(k + 1, nf):
-            f = work[r, k] / piv
-            for b in range(k + 1, nf):
-                work[r, b] -= f * work[k, b]
-    return d
+        return det(work, nf, work)  # the closed form only reads its matrix
+    return det_lu_in_place(work, nf)
 
 
 @njit(cache=True, inline="always")
