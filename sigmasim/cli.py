@@ -448,6 +448,91 @@ def cmd_score(args) -> int:
     return score_command(args.truth, args.estimates)
 
 
+def _fmt_complex(z) -> str:
+    return f"{z.real:+.5f}{z.imag:+.5f}i"
+
+
+def format_vacua(obj, step: int | None = None, theta: float | None = None) -> str:
+    """Plain-text table of tree-level vacua or of a branch scan (the ``vacua`` command's output).
+
+    Parameters
+    ----------
+    obj : list of sigmasim.vacua.Vacuum or sigmasim.vacua.BranchScan
+        What to tabulate.
+    step : int, optional
+        For a scan: print every ``step``-th grid point (default: about 17 rows).
+    theta : float, optional
+        For a list of vacua: the physical angle they belong to, to print their
+        branch numbers (:func:`sigmasim.vacua.branch_label`); ``?`` without it.
+
+    Returns
+    -------
+    str
+    """
+    import numpy as np
+
+    from sigmasim.vacua import BranchScan, branch_label, branch_range
+
+    lines = []
+    if isinstance(obj, BranchScan):
+        r = obj
+        lines.append(f"# {r.potential.describe()}, placement x={r.placement:g}; "
+                     "tree level, research toy")
+        nt = len(r.thetas)
+        step = step or max(1, (nt - 1) // 16)
+        lines.append("# k = branch number: arg e^{i theta_m} Omega nearest (theta + 2 pi k)/Nf, "
+                     f"k in {branch_range(r.potential.nf).start}..{branch_range(r.potential.nf).stop - 1}")
+        lines.append("# followed minima (columns E_#): " + "; ".join(
+            f"#{b}: k = {r.row_labels(b)}" for b in range(r.n_branches)))
+        glab = r.global_label
+        head = f"{'theta':>9} {'theta/pi':>9} {'k_glob':>6} {'E_glob':>13} {'n_meta':>6}"
+        head += "".join(f" {'E_#' + str(k):>12}" for k in range(r.n_branches))
+        lines.append(head)
+        for i in range(0, nt, step):
+            row = (f"{r.thetas[i]:9.5f} {r.thetas[i] / np.pi:9.4f} {glab[i]:6d} "
+                   f"{r.global_energy[i]:13.8f} {r.n_metastable[i]:6d}")
+            row += "".join(f" {r.energies[k, i]:12.6f}" if np.isfinite(r.energies[k, i])
+                           else f" {'-':>12}" for k in range(r.n_branches))
+            lines.append(row)
+        lab = r.labels
+        nfl = r.potential.nf
+
+        def k_at(b, t):
+            # branch number of row b at theta t (from the nearest grid point where it exists)
+            ok = np.flatnonzero(lab[b] != -999)
+            if not ok.size:
+                return "-"
+            j = ok[np.argmin(np.abs(r.thetas[ok] - t))]
+            ph = r.omega_rot[b, j]
+            return str(branch_label(ph, t, nfl)) if abs(r.thetas[j] - t) > 0 else str(lab[b, j])
+
+        lines.append("# first-order points (theta, theta/pi, k from -> to, E, method, rows #)")
+        for p in r.first_order:
+            lines.append(f"  {p.theta:.10f} {p.theta / np.pi:.8f} k {k_at(p.branch_from, p.theta)} -> "
+                         f"{k_at(p.branch_to, p.theta)} {p.energy:.8f} {p.method} "
+                         f"#{p.branch_from} -> #{p.branch_to}")
+        lines.append("# spinodal points (theta, theta/pi, k, kind, E, row #)")
+        for s in r.spinodals:
+            lines.append(f"  {s.theta:.10f} {s.theta / np.pi:.8f} k {k_at(s.branch, s.theta)} {s.kind} "
+                         f"{s.energy:.8f} #{s.branch}")
+        lines.append("# CP pairs at CP-invariant theta (theta/pi, k_a, k_b; the same: self-conjugate)")
+        for c in r.cp_pairs:
+            lines.append(f"  {c.theta / np.pi:.4f} {k_at(c.branch_a, c.theta)} {k_at(c.branch_b, c.theta)}")
+        return "\n".join(lines)
+    vac = list(obj)
+    lines.append(f"{'k':>3} {'energy':>14} {'Omega':>20} {'det U':>20} {'lam_min':>11} "
+                 f"{'flat':>4} {'status':>10}  phases/pi")
+    for v in vac:
+        lam = v.hessian_full[0] if v.hessian_full.size else float("nan")
+        ph = " ".join(f"{p / np.pi:+.4f}" for p in v.phases)
+        k = "?" if theta is None else str(branch_label(v.omega_rot, theta, len(v.phases)))
+        lines.append(f"{k:>3} {v.energy:14.8f} {_fmt_complex(v.omega):>20} {_fmt_complex(v.det):>20} "
+                     f"{lam:11.3e} {v.n_flat:4d} {'global' if v.is_global else 'metastable':>10}  {ph}")
+    if theta is not None:
+        lines.append("(k = branch number: arg e^{i theta_m} Omega nearest (theta + 2 pi k)/Nf)")
+    return "\n".join(lines)
+
+
 def cmd_vacua(args) -> int:
     import numpy as np
 
@@ -491,10 +576,10 @@ def cmd_vacua(args) -> int:
     finally:
         live.close()
     print(f"tree-level local minima at theta = {cfg.theta:.6g} (energies per site):")
-    print(vacua.format_table(minima, theta=pot.theta))
+    print(format_vacua(minima, theta=pot.theta))
     print()
     print("branches over theta in [0, 4 pi]:")
-    print(vacua.format_table(scan, step=max(1, args.points // 24)))
+    print(format_vacua(scan, step=max(1, args.points // 24)))
     print("(tree level: classical potential only; research toy, not a physical prediction)")
     if args.plot:
         import matplotlib

@@ -12,6 +12,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from sigmasim import vacua as V
+from sigmasim.cli import format_vacua
+from vacua_checks import full_hessian_numeric, minimize_unrestricted
 
 PI = np.pi
 
@@ -228,7 +230,7 @@ _RANDOM_SETS = [
 def test_unrestricted_matches_diagonal(h, kappa, theta, group, lk):
     pot = V.make_potential(h, kappa, theta, "split", group=group, large_kappa=lk)
     vac = V.find_local_minima(pot)
-    um = V.minimize_unrestricted(pot, n_starts=10, seed=5)
+    um = minimize_unrestricted(pot, n_starts=10, seed=5)
     assert um.energy == pytest.approx(vac[0].energy, abs=1e-8)
     # no start ever goes below the diagonal global minimum
     assert um.energies.min() >= vac[0].energy - 1e-10
@@ -251,7 +253,7 @@ def test_unrestricted_matches_diagonal(h, kappa, theta, group, lk):
 def test_unrestricted_degenerate_masses():
     pot = V.make_potential([0.8, 0.8, -0.8], 0.5, 1.3)
     vac = V.find_local_minima(pot)
-    um = V.minimize_unrestricted(pot, n_starts=10, seed=2)
+    um = minimize_unrestricted(pot, n_starts=10, seed=2)
     assert um.energy == pytest.approx(vac[0].energy, abs=1e-8)
 
 
@@ -266,14 +268,14 @@ def test_full_hessian_analytic_vs_numeric(group, lk):
     pot = V.make_potential([1.0, -0.6, 0.35], 0.8, 2.4, "split", group=group, large_kappa=lk)
     for v in V.find_local_minima(pot):
         ha = V.full_hessian(v.phases, pot)
-        hn = V.full_hessian_numeric(v.phases, pot, eps=1e-4)
+        hn = full_hessian_numeric(v.phases, pot, eps=1e-4)
         assert np.allclose(ha, hn, atol=1e-5)
         assert np.allclose(np.linalg.eigvalsh(ha), v.hessian_full, atol=1e-10)
     # also at a non-stationary point (the expansion is exact at second order)
     phi = np.array([0.3, -1.2, 0.9])
     if pot.constrained:
         phi[-1] = pot.constraint_sum - phi[:-1].sum()
-    assert np.allclose(V.full_hessian(phi, pot), V.full_hessian_numeric(phi, pot), atol=1e-5)
+    assert np.allclose(V.full_hessian(phi, pot), full_hessian_numeric(phi, pot), atol=1e-5)
 
 
 # Common practice, no source: two massless flavours leave a flat torus
@@ -351,9 +353,9 @@ def test_table_and_plot():
 
     matplotlib.use("Agg")
     res = V.scan_theta(1.0, nf=3, large_kappa=True, n_theta=41)
-    txt = V.format_table(res)
+    txt = format_vacua(res)
     assert "first-order" in txt and "spinodal" in txt and "research toy" in txt
-    assert isinstance(V.format_table(V.large_kappa_vacua(1.0, 0.0, nf=5)), str)
+    assert isinstance(format_vacua(V.large_kappa_vacua(1.0, 0.0, nf=5)), str)
     ax = V.plot_branches(res)
     assert ax.get_xlabel() == "theta"
     assert ax.get_ylabel() == "E / site (tree level)"
