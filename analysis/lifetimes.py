@@ -26,7 +26,8 @@ from pathlib import Path
 import numpy as np
 
 from sigmasim.config import config_from_dict
-from sigmasim.protocols import _lifetime_params, load_lifetimes, plot_escape_times, run_lifetimes
+from sigmasim.cli import format_lifetimes
+from sigmasim.protocols.lifetimes import _lifetime_params, load_lifetimes, plot_escape_times, run_lifetimes
 
 DEFAULT = {
     "name": "lifetimes-u3",
@@ -85,7 +86,7 @@ def main(argv=None) -> int:
     if a.workers:
         params["workers"] = a.workers
     res = run_lifetimes(config, params)
-    print(res.table())
+    print(format_lifetimes(res))
     print(f"{res.wall_seconds:.1f} s")
     out = Path(a.out)
     out.mkdir(parents=True, exist_ok=True)

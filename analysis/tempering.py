@@ -40,8 +40,8 @@ import numpy as np
 from sigmasim.analysis.tunnelling import branch_coordinate, branch_index
 from sigmasim.chain import simulate
 from sigmasim.config import config_from_dict
-from sigmasim.protocols import (TemperParams, _population_error, branch_census, branch_populations,
-                                run_tempering)
+from sigmasim.protocols.tempering import (TemperParams, _population_error, branch_census, branch_populations,
+                                          run_tempering)
 
 PI = math.pi
 BASE = {

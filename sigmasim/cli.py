@@ -1,9 +1,10 @@
-"""Command line: ``sigmasim run | scan | demo | info | analyze | sweep | temper | lifetimes | vacua | validate |
-config-reference``.
+"""Command line: ``sigmasim run | scan | demo | info | analyze | hysteresis | temper | lifetimes | vacua | validate |
+config-reference`` (``sweep``: the old name of ``hysteresis``, for one more release).
 
 This is the error boundary: every :class:`SigmasimError` becomes one line on
 stderr and exit status 2; an interrupted run exits with 130 after writing its
-checkpoint.
+checkpoint.  It also holds all the printing: the tables of ``vacua``, ``hysteresis``,
+``temper`` and ``lifetimes`` are formatted here from the results their modules return.
 """
 
 from __future__ import annotations
@@ -16,7 +17,8 @@ from pathlib import Path
 
 from sigmasim.errors import RunFileError, SigmasimError
 
-__all__ = ["main"]
+__all__ = ["main", "format_vacua", "format_lifetimes", "hysteresis_command", "temper_command",
+           "lifetimes_command"]
 
 
 class _Parser(argparse.ArgumentParser):
@@ -236,7 +238,9 @@ def _branch_note(config, omega_h) -> str:
                                  else f" (global {g})")
 
 
-PROTOCOL_TABLES = {"sweep": "sweep", "tempering": "temper", "lifetimes": "lifetimes", "scan": "scan"}
+# [sweep] is the old name of [hysteresis], read for one more release
+PROTOCOL_TABLES = {"hysteresis": "hysteresis", "sweep": "hysteresis", "tempering": "temper", "lifetimes": "lifetimes",
+                   "scan": "scan"}
 
 
 def _refuse_protocol_tables(path, raw=None) -> None:
@@ -409,22 +413,176 @@ def cmd_analyze(args) -> int:
     return analyze_command(args.files, plot=args.plot, out_dir=args.out, quiet=args.quiet, band=args.band)
 
 
-def cmd_sweep(args) -> int:
-    from sigmasim.protocols import sweep_command
+def _renamed(old: list, new: list) -> None:
+    """One line on stderr for names kept as aliases for one release."""
+    if old:
+        sys.stderr.write(f"sigmasim: note: {' and '.join(old)} {'is' if len(old) == 1 else 'are'} now "
+                         f"{' and '.join(new)}; the old name{'s' if len(old) > 1 else ''} work"
+                         f"{'s' if len(old) == 1 else ''} until the next release\n")
 
-    return sweep_command(args.config, plot=args.plot, out=args.out, overwrite=args.overwrite,
-                         quiet=args.quiet)
+
+def _jump_line(s: dict, d: str) -> str:
+    import math
+
+    from sigmasim.protocols.hysteresis import _jump_text
+
+    v, e = s[f"jump_{d}"], s[f"jump_{d}_error"]
+    n = sum(math.isfinite(x) for x in s[f"jump_{d}_per_cycle"])
+    txt = (_jump_text(v) if not math.isfinite(v) else
+           f"{v:.4f}" + (f" +- {e:.2g}" if math.isfinite(e) else "")
+           + f" ({n} of {s['cycles']} cycles; resolution {s['jump_resolution']:.3g})")
+    return f"jump {d:<5}{txt}"
+
+
+def hysteresis_command(config_path: str, plot: bool = False, out: str | None = None, overwrite: bool = False,
+                       quiet: bool = False, command: str = "hysteresis") -> int:
+    """``sigmasim hysteresis CONFIG [--plot] [--out FILE] [--overwrite] [--quiet]``: run a hysteresis
+    protocol, write its sweep file, print the jumps and the loop area (``command``: the name it was
+    called by; the old name ``sweep`` gets a note).
+
+    The protocol keeps a checkpoint beside its file (``<file>.checkpoint``) and continues it when run
+    again after a crash; an existing sweep file is replaced only with ``--overwrite``.
+    """
+    import math
+
+    from sigmasim.progress import Steps
+    from sigmasim.protocols import hysteresis
+
+    config, params, table = hysteresis.load_hysteresis(config_path)
+    old, new = [], []
+    if command != "hysteresis":
+        old, new = [f"'sigmasim {command}'"], ["'sigmasim hysteresis'"]
+    if table != "hysteresis":
+        old, new = old + [f"the [{table}] table"], new + ["[hysteresis]"]
+    _renamed(old, new)
+    path = Path(out) if out else hysteresis.default_path(config)
+    with Steps("hysteresis", quiet, "theta step") as progress:
+        result = hysteresis.execute(config, params, path, overwrite=overwrite, progress=progress)
+    s = result.summary
+    print(f"wrote {path}")
+    for d in ("up", "down"):
+        print(_jump_line(s, d))
+    stat = f" +- {s['area_error_stat']:.2g} (stat)" if math.isfinite(s["area_error_stat"]) else ""
+    cyc = f" +- {s['area_error_cycles']:.2g} (cycles)" if math.isfinite(s["area_error_cycles"]) else ""
+    print(f"loop area = dissipated work per site, oint <dS/dtheta>/V dtheta: {s['area']:.4g}{cyc}{stat}")
+    print(f"  (oint Im omega_h dtheta = {s['area_im_omega_h']:.4g}; equals the work / h for degenerate "
+          f"masses h)")
+    if plot:
+        png = hysteresis.plot_sweep(result, path.with_suffix(".png"))
+        print(f"wrote {png}")
+    return 0
+
+
+def cmd_hysteresis(args) -> int:
+    return hysteresis_command(args.config, plot=args.plot, out=args.out, overwrite=args.overwrite,
+                              quiet=args.quiet, command=args.command)
+
+
+def temper_command(config_path: str, out: str | None = None, quiet: bool = False) -> int:
+    """``sigmasim temper CONFIG [--out FOLDER] [--quiet]``: replica exchange over the [tempering] ladder.
+
+    Writes ``<out or run.output>/<name>/<name>-t<i>/<name>-t<i>.h5`` (ordinary run files, one per
+    slot) and prints swap acceptances, round trips, the replicas' branch census (how often it
+    changed, where replicas tunnelled) and the branch populations of every slot.
+    """
+    import dataclasses
+
+    import numpy as np
+
+    from sigmasim.progress import Steps
+    from sigmasim.protocols import tempering
+    from sigmasim.vacua import branch_range
+
+    config, params = tempering.load_tempering(config_path)
+    if out:
+        config = dataclasses.replace(config, output=str(out))
+    with Steps("temper", quiet, "sweep") as progress:
+        res = tempering.execute(config, params, progress=progress)
+    for f in res.files:
+        print(f"wrote {f}")
+    scales = res.mass_scales
+    print("pair  theta_i  theta_j  scale_i  scale_j  acceptance")
+    for i, a in enumerate(res.acceptance):
+        print(f"{i:4d}  {res.thetas[i]:7.4f}  {res.thetas[i + 1]:7.4f}  {scales[i]:7.4f}  "
+              f"{scales[i + 1]:7.4f}  {a:.3f}")
+    rt = res.round_trips
+    print(f"round trips: {len(rt)}" + (f", mean {np.mean(rt):.1f} sweeps" if rt else ""))
+    census = tempering.branch_census(res, config.nf, params.band)
+    print(f"branch census of the replicas changed {census.changes} times; in-slot branch changes per slot: "
+          + " ".join(str(int(c)) for c in census.slot_changes))
+    for i, (t, (occ, err)) in enumerate(zip(res.thetas, tempering.branch_populations(res, config.nf,
+                                                                                     params.band))):
+        # branch numbers of sigmasim.vacua (the populations count k modulo nf from 0)
+        print(f"slot {i:2d} theta {t:7.4f} scale {scales[i]:.4f}  branch occupation "
+              + "  ".join(f"k={kk}: {occ[kk % config.nf]:.3f}+-{err[kk % config.nf]:.3f}"
+                          for kk in branch_range(config.nf)))
+    if config.nf > 1 and census.changes < tempering.CENSUS_MIN_CHANGES:
+        print(f"warning: the branch census changed only {census.changes} times (< {tempering.CENSUS_MIN_CHANGES}): "
+              "the populations are fixed by the starting branches and their errors are not trustworthy; "
+              "a ladder in theta alone cannot fix this at a first-order point (add mass_scales down to 0)")
+    return 0
 
 
 def cmd_temper(args) -> int:
-    from sigmasim.protocols import temper_command
-
     return temper_command(args.config, out=args.out, quiet=args.quiet)
 
 
-def cmd_lifetimes(args) -> int:
-    from sigmasim.protocols import lifetimes_command
+def format_lifetimes(res) -> str:
+    """The ``lifetimes`` table of a :class:`sigmasim.protocols.LifetimeResult`: per size the dead time, tau
+    with its bootstrap error and exact interval, the mean escape time, std/mean, KS p-values; then
+    both fits of ln tau."""
+    lines = ["   L      V  starts  escaped  dead time(err)      tau(err)   68% interval       "
+             "mean escape(err)  std/mean  KS p shifted/exp"]
+    for i, L in enumerate(res.sizes):
+        f = res.escape.get(L, {})
+        iv = f.get("tau_interval", [float("nan")] * 2)
+        lines.append(f"{L:4d} {L ** res.d:6d} {len(res.times[L]):7d} {res.n_escaped[i]:8d} "
+                     f"{f.get('dead_time', float('nan')):8.4g}({f.get('dead_time_error', float('nan')):.2g}) "
+                     f"{res.tau[i]:8.4g}({res.tau_error[i]:.2g}) [{iv[0]:.3g}, {iv[1]:.3g}]  "
+                     f"{f.get('mean_escape', float('nan')):9.4g}({f.get('mean_escape_error', float('nan')):.2g})"
+                     f"  {f.get('cv', float('nan')):8.2f}  {f.get('ks_shifted', float('nan')):.2f}/"
+                     f"{f.get('ks_exponential', float('nan')):.2f}")
+    lines.append("tau: mean escape time after the dead time (shifted exponential); errors: bootstrap over "
+                 "starts; fits use ln tau with its bootstrap error")
+    for name, f in res.fits.items():
+        if f["dof"] > 0:
+            quality = f"chi2/dof = {f['chi2']:.3g}/{f['dof']}"
+        else:  # two sizes: the line goes through both points, chi2 is rounding noise
+            quality = "no chi2 test (0 dof: the line passes through the points; use >= 3 sizes)"
+        lines.append(f"ln tau = a + b L^{f['power']} ({name}): b = {f['slope']:.4g} +- {f['slope_error']:.2g}, "
+                     f"a = {f['intercept']:.4g} +- {f['intercept_error']:.2g}, {quality}")
+    return "\n".join(lines)
 
+
+def lifetimes_command(config_path: str, out: str | None = None, workers: int = 0, quiet: bool = False) -> int:
+    """``sigmasim lifetimes CONFIG [--out FILE.json] [--workers N] [--quiet]``: escape times per volume and fits.
+
+    Prints :func:`format_lifetimes` and writes it as JSON to ``--out`` (default
+    ``<run.output>/<name>/<name>-lifetimes.json``; an existing file there is replaced only if this
+    command wrote it) with the escape-time distributions against the fitted laws as a PNG beside it
+    (needs matplotlib).
+    """
+    from sigmasim.progress import Steps
+    from sigmasim.protocols import lifetimes
+
+    config, params = lifetimes.load_lifetimes(config_path)
+    if workers:
+        params["workers"] = int(workers)
+    out = lifetimes.check_output(out if out is not None else lifetimes.default_path(config))
+    with Steps("lifetimes", quiet, "start") as progress:
+        res = lifetimes.run_lifetimes(config, params, progress=progress)
+    print(format_lifetimes(res))
+    lifetimes.write_lifetimes(out, res, config, params)
+    print(f"wrote {out}")
+    try:
+        png = lifetimes.plot_escape_times(res, out.with_suffix(".png"))
+        print(f"wrote {png} (escape-time distributions against the fitted laws)")
+    except ImportError:
+        print("matplotlib is not installed: no escape-time figure (install the plot extra)")
+    return 0
+
+
+def cmd_lifetimes(args) -> int:
     return lifetimes_command(args.config, out=args.out, workers=args.workers, quiet=args.quiet)
 
 
@@ -673,15 +831,16 @@ def build_parser() -> argparse.ArgumentParser:
                    help="hysteresis band of the vacuum index, in [0, 1) (default 0.5)")
     a.add_argument("--quiet", action="store_true")
     a.set_defaults(func=cmd_analyze)
-    sw = sub.add_parser("sweep", help="hysteresis: move theta up and down without re-thermalising")
-    sw.add_argument("config", help="run TOML with a [sweep] table")
+    sw = sub.add_parser("hysteresis", aliases=["sweep"],
+                        help="move theta up and down one chain without re-thermalising (old name: sweep)")
+    sw.add_argument("config", help="run TOML with a [hysteresis] table (old name: [sweep])")
     sw.add_argument("--plot", action="store_true", help="draw the loop(s) with the tree-level branches")
     sw.add_argument("--out", default=None, help="sweep file (default <output>/<name>/<name>-sweep.h5)")
     sw.add_argument("--overwrite", action="store_true",
                     help="replace an existing sweep file (an unfinished sweep resumes by itself)")
     sw.add_argument("--quiet", action="store_true", help="no progress bar")
-    sw.protocol_table = "sweep"
-    sw.set_defaults(func=cmd_sweep)
+    sw.protocol_table = "hysteresis"
+    sw.set_defaults(func=cmd_hysteresis)
     te = sub.add_parser("temper", help="replica exchange over a ladder of theta values")
     te.add_argument("config", help="run TOML with a [tempering] table")
     te.add_argument("--out", default=None, help="output folder (default: run.output)")

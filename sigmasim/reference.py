@@ -1,6 +1,6 @@
 """The config reference: every key of a run config and of the protocol tables.
 
-``sigmasim config-reference`` prints :func:`reference_text`; ``--help`` of ``sweep``, ``temper``,
+``sigmasim config-reference`` prints :func:`reference_text`; ``--help`` of ``hysteresis``, ``temper``,
 ``lifetimes`` and ``scan`` ends with :func:`table_help` of its table; the README's tables are this
 text.  The meanings live beside the code that checks them (``config.SCHEMA``,
 ``protocols.SWEEP_SCHEMA``/``TEMPER_SCHEMA``/``LIFETIME_SCHEMA``, ``scan._SCAN_KEYS`` with
@@ -11,11 +11,13 @@ from __future__ import annotations
 
 import json
 
-__all__ = ["PROTOCOL_TABLES", "SCAN_MEANINGS", "protocol_schema", "table_markdown", "table_help",
-           "reference_text"]
+__all__ = ["PROTOCOL_TABLES", "TABLE_ALIASES", "SCAN_MEANINGS", "protocol_schema", "table_markdown",
+           "table_help", "reference_text"]
 
 #: table -> the command that runs a config with it
-PROTOCOL_TABLES = {"sweep": "sweep", "tempering": "temper", "lifetimes": "lifetimes", "scan": "scan"}
+PROTOCOL_TABLES = {"hysteresis": "hysteresis", "tempering": "temper", "lifetimes": "lifetimes", "scan": "scan"}
+#: old table name -> its table (read for one more release)
+TABLE_ALIASES = {"sweep": "hysteresis"}
 
 SCAN_MEANINGS = {
     "base": "run config the points start from (relative to the scan file); empty: the scan file's "
@@ -42,7 +44,8 @@ def protocol_schema(table: str) -> dict:
         return {k: (t.__name__, {} if d is None else d, SCAN_MEANINGS[k]) for k, (t, d) in _SCAN_KEYS.items()}
     from sigmasim import protocols
 
-    return {"sweep": protocols.SWEEP_SCHEMA, "tempering": protocols.TEMPER_SCHEMA,
+    table = TABLE_ALIASES.get(table, table)
+    return {"hysteresis": protocols.SWEEP_SCHEMA, "tempering": protocols.TEMPER_SCHEMA,
             "lifetimes": protocols.LIFETIME_SCHEMA}[table]
 
 

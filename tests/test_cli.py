@@ -157,7 +157,7 @@ def test_sigterm_stops_cleanly_and_resume_matches(tmp_path):
 
 
 EXAMPLES = sorted((ROOT / "runs").glob("*.toml"))
-PLAIN = [p for p in EXAMPLES if not any(f"[{t}]" in p.read_text() for t in ("sweep", "tempering", "lifetimes", "scan"))]
+PLAIN = [p for p in EXAMPLES if not any(f"[{t}]" in p.read_text() for t in ("hysteresis", "sweep", "tempering", "lifetimes", "scan"))]
 PROTOCOL = [p for p in EXAMPLES if p not in PLAIN]
 
 
@@ -176,7 +176,7 @@ def test_protocol_configs_are_sent_to_their_command(tmp_path, example, capsys):
 
 def test_example_sweep_runs(tmp_path, capsys):
     out = tmp_path / "s.h5"
-    assert main(["sweep", str(ROOT / "runs" / "sweep-u3.toml"), "--out", str(out)]) == 0
+    assert main(["hysteresis", str(ROOT / "runs" / "sweep-u3.toml"), "--out", str(out)]) == 0
     assert out.exists()
 
 

@@ -37,7 +37,7 @@ kappa = 0.2
 thermalize = 1
 measurements = 2
 threads = 1
-[sweep]
+[hysteresis]
 start = 0.0
 stop = 1.0
 step = 0.5
@@ -56,7 +56,7 @@ def _toml(folder: Path) -> Path:
 def _fake_sweep(toml):
     from sigmasim.protocols import SWEEP_SCHEMA, SweepParams, SweepResult, load_protocol
 
-    cfg, raw = load_protocol(toml, "sweep", SWEEP_SCHEMA)
+    cfg, raw = load_protocol(toml, "hysteresis", SWEEP_SCHEMA)
     r = np.random.default_rng(0)
     return SweepResult(config=cfg, params=SweepParams(**raw), steps={"theta": r.random(N)},
                        series={"theta": r.random(N), "omega_h": r.random(N) + 1j * r.random(N)},
@@ -72,31 +72,33 @@ def _state():
 
 
 def write_sweep_cli(path: Path) -> int:
-    """``sigmasim sweep`` with the simulation replaced by made-up results."""
-    import sigmasim.protocols as protocols
+    """``sigmasim hysteresis`` with the simulation replaced by made-up results."""
+    import sigmasim.protocols.hysteresis as protocols
 
     toml = _toml(path.parent.parent)
     saved = protocols.run_sweep, protocols.tree_level
     protocols.run_sweep = lambda config, params, **kw: _fake_sweep(toml)
     protocols.tree_level = lambda *a, **kw: {}
     try:
-        return main(["sweep", str(toml), "--out", str(path), "--overwrite", "--quiet"])
+        return main(["hysteresis", str(toml), "--out", str(path), "--overwrite", "--quiet"])
     finally:  # in-process callers run other tests afterwards: leave the module as it was
         protocols.run_sweep, protocols.tree_level = saved
 
 
 def write_sweep_checkpoint(path: Path) -> None:
-    from sigmasim.protocols import SWEEP_SCHEMA, SweepParams, _save_sweep_checkpoint, load_protocol
+    from sigmasim.protocols import SWEEP_SCHEMA, SweepParams, load_protocol
+    from sigmasim.protocols.hysteresis import _save_sweep_checkpoint
 
-    cfg, raw = load_protocol(_toml(path.parent.parent), "sweep", SWEEP_SCHEMA)
+    cfg, raw = load_protocol(_toml(path.parent.parent), "hysteresis", SWEEP_SCHEMA)
     ser = {"theta": np.zeros(N), "omega_h": np.zeros(N, complex), "sweep": np.arange(N)}
     _save_sweep_checkpoint(path, cfg, SweepParams(**raw), SimpleNamespace(state=_state()), 1, ser, 1.0)
 
 
 def write_temper_checkpoint(path: Path) -> None:
-    from sigmasim.protocols import SWEEP_SCHEMA, SweepParams, _save_temper_checkpoint, load_protocol
+    from sigmasim.protocols import SWEEP_SCHEMA, SweepParams, load_protocol
+    from sigmasim.protocols.tempering import _save_temper_checkpoint
 
-    cfg, _ = load_protocol(_toml(path.parent.parent), "sweep", SWEEP_SCHEMA)
+    cfg, _ = load_protocol(_toml(path.parent.parent), "hysteresis", SWEEP_SCHEMA)
     recs = [{"action": float(i), "slices/x": np.zeros(4)} for i in range(N // 8)]
     sink = (SimpleNamespace(records=recs),)
     _save_temper_checkpoint(path, cfg, SweepParams(), [SimpleNamespace(state=_state())] * 2,

@@ -375,9 +375,9 @@ def test_outputs_on_a_read_only_file_system_end_in_one_line(tmp_path, capsys):
     with small_tmpfs(tmp_path / "ro", "1m", read_only=True) as ro:
         cfg = _cfg(tmp_path, meas=2)
         sweep = tmp_path / "sw.toml"
-        sweep.write_text(cfg.read_text() + "[sweep]\nstart = 0.0\nstop = 1.0\nstep = 0.5\nsweeps_per_step = 2\n")
-        for argv in (["sweep", str(sweep), "--out", str(ro / "s.h5")],
-                     ["sweep", str(sweep), "--out", str(ro / "sub" / "s.h5")],
+        sweep.write_text(cfg.read_text() + "[hysteresis]\nstart = 0.0\nstop = 1.0\nstep = 0.5\nsweeps_per_step = 2\n")
+        for argv in (["hysteresis", str(sweep), "--out", str(ro / "s.h5")],
+                     ["hysteresis", str(sweep), "--out", str(ro / "sub" / "s.h5")],
                      ["run", str(cfg), "--output", str(ro), "--quiet"]):
             rc = main(argv)
             err = capsys.readouterr().err

@@ -297,7 +297,8 @@ def test_hopping_form_is_the_same_action():
 def test_protocol_commands_run_the_linear_model(tmp_path):
     # the hysteresis sweep and analyze work on linear runs like on chiral ones
     from sigmasim.analysis.report import analyze_data
-    from sigmasim.protocols import read_sweep, sweep_command
+    from sigmasim.cli import hysteresis_command
+    from sigmasim.protocols import read_sweep
 
     cfg = tmp_path / "lin.toml"
     cfg.write_text(f"""
@@ -316,7 +317,7 @@ mass = 0.1
 thermalize = 10
 threads = 1
 output = "{tmp_path}"
-[sweep]
+[hysteresis]
 start = 2.5
 stop = 3.7
 step = 0.6
@@ -324,7 +325,7 @@ sweeps_per_step = 10
 cycles = 1
 """)
     out = tmp_path / "s.h5"
-    assert sweep_command(str(cfg), plot=False, out=str(out)) == 0
+    assert hysteresis_command(str(cfg), plot=False, out=str(out)) == 0
     assert read_sweep(out)["config"]["model"]["kind"] == "linear"
     run = _cfg(shape=(8, 4), nf=2, mu2=-1.0, lambda1=0.1, lambda2=0.1, c=0.2, mass=0.1,
                run={"thermalize": 20, "measurements": 200})

@@ -7,6 +7,7 @@ from sigmasim.analysis.report import analyze_data, format_table, summarise_serie
 from sigmasim.chain import simulate
 from sigmasim.cli import main
 from sigmasim.config import config_from_dict
+from sigmasim.cli import format_lifetimes
 from sigmasim.protocols import LifetimeResult, fit_log_lifetimes
 
 
@@ -77,13 +78,13 @@ def test_lifetimes_table_says_no_chi2_test_with_zero_dof():
     fits = fit_log_lifetimes((4, 6), np.array([5.0, 20.0]), np.array([1.0, 4.0]), 3)
     res = LifetimeResult((4, 6), 3, {4: np.ones(2), 6: np.ones(2)}, {4: np.ones(2, bool), 6: np.ones(2, bool)},
                          np.array([5.0, 20.0]), np.array([1.0, 4.0]), np.array([2, 2]), fits)
-    text = res.table()
+    text = format_lifetimes(res)
     assert "chi2/dof" not in text and "0 dof" in text
     fits3 = fit_log_lifetimes((4, 6, 8), np.array([5.0, 20.0, 70.0]), np.array([1.0, 4.0, 9.0]), 3)
     res3 = LifetimeResult((4, 6, 8), 3, {L: np.ones(2) for L in (4, 6, 8)}, {L: np.ones(2, bool) for L in (4, 6, 8)},
                           np.array([5.0, 20.0, 70.0]), np.array([1.0, 4.0, 9.0]),
                           np.array([2, 2, 2]), fits3)
-    assert "chi2/dof = " in res3.table() and "/1" in res3.table()
+    assert "chi2/dof = " in format_lifetimes(res3) and "/1" in format_lifetimes(res3)
 
 
 def test_tau_int_below_one_half_is_capped_and_flagged():

@@ -25,7 +25,7 @@ start = "{start}"
 """
 
 TABLES = {
-    "sweep": "[sweep]\nstart = 0.0\nstop = 1.0\nstep = 0.5\nsweeps_per_step = 5\n",
+    "hysteresis": "[hysteresis]\nstart = 0.0\nstop = 1.0\nstep = 0.5\nsweeps_per_step = 5\n",
     "temper": "[tempering]\nthetas = [0.5, 1.0]\n",
     "lifetimes": "[lifetimes]\nsizes = [4]\nstarts = 2\nmax_sweeps = 20\nstay = 2\nworkers = 1\n",
 }
@@ -52,7 +52,7 @@ def _command(tmp_path, kind):
     return [kind, str(cfg)]
 
 
-@pytest.mark.parametrize("kind", ["sweep", "temper", "lifetimes", "analyze"])
+@pytest.mark.parametrize("kind", ["hysteresis", "temper", "lifetimes", "analyze"])
 @pytest.mark.parametrize("where", ["terminal", "pipe", "quiet"])
 def test_progress_only_on_a_terminal(tmp_path, monkeypatch, capsys, kind, where):
     args = _command(tmp_path, kind)

@@ -32,7 +32,7 @@ kappa = 0.6
 thermalize = 10
 checkpoint_every = 1
 threads = 1
-[sweep]
+[hysteresis]
 start = 0.0
 stop = 6.0
 step = 0.5
@@ -64,7 +64,7 @@ def sweep_ref(tmp_path_factory):
     cfg = base / "sw.toml"
     cfg.write_text(SWEEP.format(per_step=6))
     ref = base / "ref.h5"
-    assert main(["sweep", str(cfg), "--out", str(ref)]) == 0
+    assert main(["hysteresis", str(cfg), "--out", str(ref)]) == 0
     return cfg, ref
 
 
@@ -73,7 +73,7 @@ def test_an_interrupted_sweep_continues_bit_identically(sweep_ref, tmp_path, mon
 
     cfg, ref = sweep_ref
     out = tmp_path / "s.h5"
-    config, raw = load_protocol(cfg, "sweep", __import__("sigmasim.protocols").protocols.SWEEP_SCHEMA)
+    config, raw = load_protocol(cfg, "hysteresis", __import__("sigmasim.protocols").protocols.SWEEP_SCHEMA)
     params = SweepParams(**raw)
 
     def stop(i, n):
@@ -84,7 +84,7 @@ def test_an_interrupted_sweep_continues_bit_identically(sweep_ref, tmp_path, mon
         run_sweep(config, params, progress=stop, checkpoint=sweep_checkpoint_path(out))
     with h5py.File(sweep_checkpoint_path(out), "r") as f:
         assert int(f.attrs["next_step"]) == 7
-    assert main(["sweep", str(cfg), "--out", str(out)]) == 0  # continues the checkpoint
+    assert main(["hysteresis", str(cfg), "--out", str(out)]) == 0  # continues the checkpoint
     assert not sweep_checkpoint_path(out).exists()
     _same_sweep(out, ref)
 
@@ -95,7 +95,7 @@ def test_a_sweep_killed_with_sigkill_resumes_bit_identically(sweep_ref, tmp_path
     cfg, ref = sweep_ref
     out = tmp_path / "k.h5"
     ckpt = sweep_checkpoint_path(out)
-    cmd = [sys.executable, "-m", "sigmasim", "sweep", str(cfg), "--out", str(out)]
+    cmd = [sys.executable, "-m", "sigmasim", "hysteresis", str(cfg), "--out", str(out)]
     p = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=subprocess_env(), cwd=ROOT)
     seen = 0
     deadline = time.monotonic() + 300
@@ -112,7 +112,7 @@ def test_a_sweep_killed_with_sigkill_resumes_bit_identically(sweep_ref, tmp_path
     p.communicate(timeout=60)
     assert seen >= 5, "the sweep kept no checkpoint"
     assert not out.exists()
-    assert main(["sweep", str(cfg), "--out", str(out)]) == 0
+    assert main(["hysteresis", str(cfg), "--out", str(out)]) == 0
     _same_sweep(out, ref)
 
 
@@ -127,17 +127,17 @@ def test_a_checkpoint_of_another_protocol_is_refused(sweep_ref, tmp_path, capsys
     import sigmasim.protocols as pr
     from sigmasim.protocols import SweepParams, load_protocol, run_sweep
 
-    config, raw = load_protocol(other, "sweep", pr.SWEEP_SCHEMA)
+    config, raw = load_protocol(other, "hysteresis", pr.SWEEP_SCHEMA)
     with pytest.raises(KeyboardInterrupt):
         run_sweep(config, SweepParams(**raw), checkpoint=ckpt,
                   progress=lambda i, n: (_ for _ in ()).throw(KeyboardInterrupt) if i == 2 else None)
-    assert main(["sweep", str(cfg), "--out", str(out)]) == 2
+    assert main(["hysteresis", str(cfg), "--out", str(out)]) == 2
     err = capsys.readouterr().err
     _one_line(err)
     assert "another config" in err
     with h5py.File(ckpt, "a") as f:  # damage it: a clear refusal, never the kernels
         f["state/re"][0, 0] = 7.0
-    assert main(["sweep", str(other), "--out", str(out)]) == 2
+    assert main(["hysteresis", str(other), "--out", str(out)]) == 2
     err = capsys.readouterr().err
     _one_line(err)
     assert "damaged checkpoint" in err
@@ -147,13 +147,13 @@ def test_sweep_and_export_out_never_replace_a_file_without_overwrite(sweep_ref, 
     cfg, ref = sweep_ref
     victim = tmp_path / "precious.h5"
     victim.write_bytes(b"another run's results")
-    assert main(["sweep", str(cfg), "--out", str(victim)]) == 2
+    assert main(["hysteresis", str(cfg), "--out", str(victim)]) == 2
     err = capsys.readouterr().err
     _one_line(err)
     assert "--overwrite" in err and victim.read_bytes() == b"another run's results"
     # export: a run file to export, and an existing file in the way
     run_cfg = tmp_path / "r.toml"
-    run_cfg.write_text(SWEEP.format(per_step=2).split("[sweep]")[0] + "measurements = 4\n")
+    run_cfg.write_text(SWEEP.format(per_step=2).split("[hysteresis]")[0] + "measurements = 4\n")
     assert main(["run", str(run_cfg), "--output", str(tmp_path / "o"), "--quiet"]) == 0
     run = tmp_path / "o" / "sw" / "sw.h5"
     for fmt, target in (("hdf5", victim), ("npz", tmp_path / "x.npz")):
@@ -167,7 +167,7 @@ def test_sweep_and_export_out_never_replace_a_file_without_overwrite(sweep_ref, 
         assert main(["export", str(run), "--format", fmt, "--out", str(prefix), "--overwrite"]) == 0
         assert target.read_bytes() != b"another run's results"
     capsys.readouterr()
-    assert main(["sweep", str(cfg), "--out", str(victim), "--overwrite"]) == 0
+    assert main(["hysteresis", str(cfg), "--out", str(victim), "--overwrite"]) == 0
     _same_sweep(victim, ref)
 
 
@@ -280,11 +280,12 @@ def _printed(capsys):
 
 @pytest.mark.parametrize("where", ["swap", "slot file"])
 def test_an_interrupted_tempering_continues_bit_identically(tmp_path, capsys, monkeypatch, where):
-    import sigmasim.protocols as pr
+    import sigmasim.protocols.tempering as pr
     import sigmasim.storage as storage
     from runfiles import contents
 
-    from sigmasim.protocols import temper_command, temper_checkpoint_path
+    from sigmasim.cli import temper_command
+    from sigmasim.protocols import temper_checkpoint_path
 
     assert temper_command(str(_temper(tmp_path, "ref"))) == 0
     want_out = _printed(capsys)
@@ -314,8 +315,10 @@ def test_an_interrupted_tempering_continues_bit_identically(tmp_path, capsys, mo
         with pytest.raises(KeyboardInterrupt):
             temper_command(str(_temper(tmp_path, "cut")))
     cfg = _temper(tmp_path, "cut")
-    ck = temper_checkpoint_path(pr.config_from_dict({k: v for k, v in read_toml(cfg).items()
-                                                     if k != "tempering"}))
+    from sigmasim.config import config_from_dict
+
+    ck = temper_checkpoint_path(config_from_dict({k: v for k, v in read_toml(cfg).items()
+                                                  if k != "tempering"}))
     assert ck.exists()
     capsys.readouterr()
     assert temper_command(str(cfg)) == 0  # continues; no slot file has to be removed

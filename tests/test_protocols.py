@@ -6,10 +6,11 @@ import numba
 import numpy as np
 import pytest
 
+from sigmasim.cli import hysteresis_command, lifetimes_command, temper_command
 from sigmasim.config import config_from_dict
 from sigmasim.errors import ConfigError, RunFileError
 from sigmasim.protocols import (SweepParams, load_protocol, read_sweep, run_sweep, split_protocol,
-                                SWEEP_SCHEMA, sweep_command, tree_level, write_sweep)
+                                SWEEP_SCHEMA, tree_level, write_sweep)
 
 
 @pytest.fixture(autouse=True, scope="module")
@@ -101,34 +102,68 @@ def test_protocol_config_errors(tmp_path):
         split_protocol({"sweep": {"cycles": 1.5}}, "sweep", SWEEP_SCHEMA)
     with pytest.raises(ConfigError, match="no \\[sweep\\] table"):
         split_protocol({"model": {}}, "sweep", SWEEP_SCHEMA)
-    with pytest.raises(ConfigError, match="sweep.stop must be > sweep.start"):
+    with pytest.raises(ConfigError, match="hysteresis.stop must be > hysteresis.start"):
         SweepParams(start=1.0, stop=0.5)
-    with pytest.raises(ConfigError, match="sweep.band"):
+    with pytest.raises(ConfigError, match="hysteresis.band"):
         SweepParams(band=1.5)
     cfg = tmp_path / "c.toml"
-    cfg.write_text('name = "t"\n[model]\nnf = 3\n[sweep]\nstep = 0.5\ncycles = 2\n[run]\noutput = "%s"\n'
+    cfg.write_text('name = "t"\n[model]\nnf = 3\n[hysteresis]\nstep = 0.5\ncycles = 2\n[run]\noutput = "%s"\n'
                    % tmp_path)
-    config, params = load_protocol(cfg, "sweep", SWEEP_SCHEMA)
+    config, params = load_protocol(cfg, "hysteresis", SWEEP_SCHEMA)
     assert config.nf == 3 and params["step"] == 0.5 and params["cycles"] == 2
     bad = tmp_path / "b.toml"
-    bad.write_text('[model]\nnf = 3\nbogus = 1\n[sweep]\n')
+    bad.write_text('[model]\nnf = 3\nbogus = 1\n[hysteresis]\n')
     with pytest.raises(ConfigError, match="unknown key 'model.bogus'"):
-        load_protocol(bad, "sweep", SWEEP_SCHEMA)
+        load_protocol(bad, "hysteresis", SWEEP_SCHEMA)
     with pytest.raises(ConfigError, match="does not exist"):
-        sweep_command(str(tmp_path / "nope.toml"), False, None)
+        hysteresis_command(str(tmp_path / "nope.toml"), False, None)
 
 
-def test_sweep_command_end_to_end(tmp_path, capsys):
+def test_hysteresis_command_end_to_end(tmp_path, capsys):
     cfg = tmp_path / "c.toml"
     cfg.write_text(f'name = "t"\n[lattice]\nshape = [2, 2]\n[model]\nnf = 2\nmass = 0.3\nkappa = 1.0\n'
                    f'[run]\nthermalize = 5\noutput = "{tmp_path}"\n'
-                   f'[sweep]\nstart = 0.0\nstop = 1.0\nstep = 0.5\nsweeps_per_step = 10\n')
-    assert sweep_command(str(cfg), False, None) == 0
+                   f'[hysteresis]\nstart = 0.0\nstop = 1.0\nstep = 0.5\nsweeps_per_step = 10\n')
+    assert hysteresis_command(str(cfg), False, None) == 0
     assert (tmp_path / "t" / "t-sweep.h5").exists()
     out = capsys.readouterr().out
     assert "loop area = dissipated work per site" in out
     # two steps from 0 to 1 at U(2): no branch change up, said in words, never "nan +- nan"
     assert "jump up   no jump" in out and "nan" not in out
+
+
+def test_sweep_is_an_alias_of_hysteresis_for_one_release(tmp_path, capsys):
+    # the command and its table were renamed (two meanings of "sweep"); the old names still run the
+    # same protocol, bit for bit, with one line on stderr, and the new names print no note
+    from sigmasim.cli import main
+
+    body = (f'name = "t"\nseed = 4\n[lattice]\nshape = [2, 2]\n[model]\nnf = 2\nmass = 0.3\nkappa = 1.0\n'
+            f'[run]\nthermalize = 5\noutput = "{tmp_path}"\n')
+    table = 'start = 0.0\nstop = 1.0\nstep = 0.5\nsweeps_per_step = 4\n'
+    new, old = tmp_path / "new.toml", tmp_path / "old.toml"
+    new.write_text(body + "[hysteresis]\n" + table)
+    old.write_text(body + "[sweep]\n" + table)
+    assert main(["hysteresis", str(new), "--out", str(tmp_path / "new.h5"), "--quiet"]) == 0
+    captured = capsys.readouterr()
+    assert captured.err == ""
+    assert main(["sweep", str(old), "--out", str(tmp_path / "old.h5"), "--quiet"]) == 0
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "'sigmasim sweep' and the [sweep] table are now" in err, err
+    assert main(["hysteresis", str(old), "--out", str(tmp_path / "old2.h5"), "--quiet"]) == 0
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "the [sweep] table is now [hysteresis]" in err, err
+    a, b = read_sweep(tmp_path / "new.h5"), read_sweep(tmp_path / "old.h5")
+    assert a["protocol"] == b["protocol"]
+    for g in ("steps", "series", "cycles"):
+        for k in a[g]:
+            np.testing.assert_array_equal(a[g][k], b[g][k], err_msg=f"{g}/{k}")
+    both = tmp_path / "both.toml"
+    both.write_text(body + "[sweep]\n" + table + "[hysteresis]\n" + table)
+    assert main(["hysteresis", str(both), "--quiet"]) == 2
+    assert "keep [hysteresis]" in capsys.readouterr().err
+    for cfg in (new, old):  # a protocol config given to 'run' names the new command
+        assert main(["run", str(cfg), "--quiet"]) == 2
+        assert "run it with 'sigmasim hysteresis" in capsys.readouterr().err
 
 
 @pytest.mark.parametrize("placement", ["mass", "anomaly", "split"])
@@ -213,7 +248,7 @@ from sigmasim.analysis.gamma import gamma_analysis  # noqa: E402
 from sigmasim.analysis.tunnelling import tunnelling_analysis  # noqa: E402
 from sigmasim.exact import one_site_u  # noqa: E402
 from sigmasim.protocols import (CENSUS_MIN_CHANGES, TemperParams, branch_census, branch_populations,  # noqa: E402
-                                run_tempering, temper_command)
+                                run_tempering)
 from sigmasim.storage import open_run  # noqa: E402
 
 
@@ -287,7 +322,8 @@ def test_slot_action_is_the_action_difference_between_slots():
     # the swap rule needs S_i(A) - S_j(A) for slots that differ in theta and masses; compare the slot
     # action with full-action differences (Simulation.measure) for every model and placement
     from sigmasim.chain import make_simulation
-    from sigmasim.protocols import _slot_action, replica_configs
+    from sigmasim.protocols import replica_configs
+    from sigmasim.protocols.tempering import _slot_action
 
     cases = [
         {"model": {"nf": 3, "beta": 0.7, "mass": [0.5, 0.3, 0.2], "kappa": 1.5, "theta_placement": "mass"}},
@@ -389,8 +425,8 @@ def test_mass_ladder_reaches_both_vacua_where_plain_chain_and_theta_ladder_stay_
 
 
 # ---------------------------------------------------------------- lifetimes
-from sigmasim.protocols import (_lifetime_params, fit_log_lifetimes, lifetime_estimate,  # noqa: E402
-                                lifetimes_command, run_lifetimes)
+from sigmasim.protocols import fit_log_lifetimes, lifetime_estimate, run_lifetimes  # noqa: E402
+from sigmasim.protocols.lifetimes import _lifetime_params  # noqa: E402
 
 
 def test_lifetime_fits_recover_exact_lines():
@@ -479,8 +515,6 @@ def test_escape_time_fit_bias_and_coverage(t0, cap):
 
 
 def test_lifetimes_command_writes_escape_figure(tmp_path, capsys):
-    from sigmasim.protocols import lifetimes_command
-
     cfg = tmp_path / "l.toml"
     cfg.write_text('name = "l"\nseed = 3\n[lattice]\nshape = [4, 4]\n'
                    '[model]\nnf = 3\nbeta = 0.6\nmass = 0.5\nkappa = 2.0\ntheta = 4.5\n'

@@ -30,7 +30,8 @@ def test_readme_has_the_same_protocol_tables():
         assert table_markdown(table) in readme, f"README.md: regenerate the [{table}] table"
 
 
-@pytest.mark.parametrize("command, table", [("sweep", "sweep"), ("temper", "tempering"),
+@pytest.mark.parametrize("command, table", [("hysteresis", "hysteresis"), ("sweep", "hysteresis"),
+                                            ("temper", "tempering"),
                                             ("lifetimes", "lifetimes"), ("scan", "scan")])
 def test_help_of_protocol_commands_lists_their_keys(command, table, capsys):
     with pytest.raises(SystemExit):
@@ -100,7 +101,7 @@ def test_info_reads_every_file_the_tool_writes(tmp_path, capsys):
     sweep = tmp_path / "s.toml"
     sweep.write_text(base.read_text().replace("sweeps_per_step = 20", "sweeps_per_step = 2")
                      .replace("thermalize = 100", "thermalize = 2").replace("step = 0.2", "step = 2.0"))
-    assert main(["sweep", str(sweep), "--out", str(tmp_path / "s.h5"), "--quiet"]) == 0
+    assert main(["hysteresis", str(sweep), "--out", str(tmp_path / "s.h5"), "--quiet"]) == 0
     run = tmp_path / "r.toml"
     run.write_text("\n".join(['name = "r"', "seed = 2", "[lattice]", "shape = [4, 4]", "[run]",
                               "thermalize = 2", "measurements = 30", f'output = "{tmp_path}"']))

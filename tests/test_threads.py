@@ -84,7 +84,7 @@ def test_the_threshold_counts_the_matrix_size():
 
 
 def test_protocols_and_large_lattices_follow_the_same_rule(recorded):
-    from sigmasim.protocols import _set_threads
+    from sigmasim.protocols.common import _set_threads
 
     raw = {"lattice": {"shape": [256, 256]}, "model": {"nf": 1}}  # 32768 sites per colour
     _set_threads(config_from_dict(raw))
