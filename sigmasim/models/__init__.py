@@ -23,6 +23,13 @@ The contract: a model module defines
     ``VERSION1_DROPPED``: version-1 records that are no longer written.
 ``CONVENTIONS``
     one paragraph: the action and the sign conventions (stored in run files and exports).
+``CONFIG_KEYS``
+    the ``section.key`` config keys of the model-dependent part of the schema that this model
+    reads (``sigmasim info`` shows only these of them).
+``ANOMALY``
+    the config attribute of the determinant coupling (``kappa``, ``c``).
+``CHIRAL_POTENTIAL``
+    whether the tree-level chiral potential of :mod:`sigmasim.vacua` describes the model.
 ``UNITARY``
     whether the field must be unitary (a checkpoint's field is checked before a kernel sees it).
 ``STEP_MAX``
@@ -44,7 +51,7 @@ from __future__ import annotations
 import importlib
 from types import ModuleType
 
-__all__ = ["get", "kinds"]
+__all__ = ["get", "kinds", "model_dependent_keys"]
 
 _MODULES = {
     "chiral": "sigmasim.models.chiral",
@@ -64,3 +71,9 @@ def get(kind: str) -> ModuleType:
     except KeyError:
         raise ValueError(f"unknown model kind {kind!r}; known: {', '.join(_MODULES)}") from None
     return importlib.import_module(name)
+
+
+def model_dependent_keys() -> frozenset:
+    """The config keys (``section.key``) that some model reads and another does not."""
+    sets = [frozenset(get(k).CONFIG_KEYS) for k in kinds()]
+    return frozenset().union(*sets) - frozenset.intersection(*sets)

@@ -51,6 +51,10 @@ CONVENTIONS = (
     "- kappa sum_x 2 Re(e^{i theta_a} det U_x), H = e^{i theta_m} diag(h), "
     "theta = nf theta_m - theta_a; time is lattice direction 0"
 )
+CONFIG_KEYS = ("model.group", "model.nf", "model.beta", "model.mass", "model.kappa", "model.theta",
+               "model.theta_placement")
+ANOMALY = "kappa"
+CHIRAL_POTENTIAL = True
 UNITARY = True
 STEP_MAX = math.pi  # a rotation angle
 

@@ -82,6 +82,11 @@ CONVENTIONS = (
     "- c (e^{i theta_a} det Phi + c.c.) - Re Tr(H Phi) ], H = e^{i theta_m} diag(h), "
     "theta = nf theta_m - theta_a; time is lattice direction 0"
 )
+CONFIG_KEYS = ("model.kind", "model.group", "model.nf", "model.mass", "model.theta", "model.theta_placement",
+               "model.kinetic", "model.mu2", "model.lambda1", "model.lambda2", "model.c", "model.lambda_s",
+               "model.stab_power", "updates.proposal_mu2")
+ANOMALY = "c"
+CHIRAL_POTENTIAL = False
 UNITARY = False
 STEP_MAX = 1e3  # Metropolis box half-width cap
 
