@@ -3,7 +3,7 @@
 Scenario (our own): degenerate nf = 3 linear model, d = 3, k = 1, mu2 = -2, lambda1 = 0.02,
 lambda2 = 0.1, h = 0.1, theta = pi - delta and pi + delta (delta = 0.3 and 0.1),
 c = 0, 0.002, 0.005, 0.02, 0.1.  Every run starts in its own tree-level vacuum
-(:func:`sigmasim.linear.tree_level_minimum`, constant field) and measures
+(:func:`sigmasim.models.linear.tree_level_minimum`, constant field) and measures
 Im omega_h = Im(e^{i theta_m} Tr Phi / nf).  CP (theta -> 2 pi - theta, Phi -> Phi^*) maps the
 two angles onto each other with Im omega_h -> -Im omega_h, so the jump across pi is
 
@@ -60,7 +60,7 @@ def make_config(c, theta, shape, n_meas, seed, thermalize=100):
 
 
 def tree_im_omega_h(cfg):
-    from sigmasim.linear import tree_level_minimum
+    from sigmasim.models.linear import tree_level_minimum
 
     phi, _ = tree_level_minimum(cfg)
     return phi, float((np.exp(1j * cfg.theta_angles[0]) * np.trace(phi) / cfg.nf).imag)
@@ -70,11 +70,11 @@ def run_point(c, theta, shape=(8, 8, 8), n_meas=600, seed=21, thermalize=100):
     """One run started in its tree-level vacuum; returns a dict of Gamma-method results."""
     from sigmasim.analysis.gamma import gamma_analysis
     from sigmasim.chain import MemorySink, run_chain
-    from sigmasim.linear import LinearSimulation
+    from sigmasim.chain import Simulation
 
     cfg = make_config(c, theta, shape, n_meas, seed, thermalize)
     phi, tree = tree_im_omega_h(cfg)
-    sim = LinearSimulation(cfg)
+    sim = Simulation(cfg)
     sim.state.re[:] = phi.real.ravel()[:, None]
     sim.state.im[:] = phi.imag.ravel()[:, None]
     sink = MemorySink()

@@ -3,7 +3,7 @@
 
     python benchmarks/bench_linear.py [--quick] [--threads N]
 
-Measures, through the public path (config_from_dict + LinearSimulation.sweep, after
+Measures, through the public path (config_from_dict + Simulation.sweep, after
 thermalisation and Metropolis step tuning), site-hits per second of
 
   linear model, nf = 3, d = 3, L = 16, k = 1, mu2 = -5, lambda1 = 0.05, lambda2 = 0.25, c = 0.3,
@@ -86,9 +86,9 @@ def main(argv=None) -> int:
     print(f"foreign load now: {foreign_load(1.0):.2f} (busy fraction of all cores)")
     # warm the JIT cache so that no compile lands in a timed run
     for algo in ("metropolis", "heatbath", "overrelax"):
-        from sigmasim.linear import LinearSimulation
+        from sigmasim.chain import Simulation
 
-        sim = LinearSimulation(config(algo, 0))
+        sim = Simulation(config(algo, 0))
         sim.sweep()
         sim.measure()
     res = {}

@@ -6,7 +6,7 @@
 The grid is small U(3) runs (d = 3, L^3, heatbath + overrelaxation, theta and seed varied). It is run
 three times from scratch, in this order, in one benchmark run:
 
-  serial    every point's config through `execute_run`, one after another in this process
+  serial    every point's config through `sigmasim.run.execute_run`, one after another in this process
             (kernels already compiled and loaded: the best case for a loop over configs);
   1 worker  `sigmasim scan` on an embedded LocalCluster with one worker (2 numba threads per run on
             2 cores, as the scan sets workers x threads = cores);
@@ -68,7 +68,7 @@ def scan_file(work: Path, tag: str, points: int, meas: int, L: int) -> Path:
 def serial(path: Path, threads: int) -> float:
     import numba
 
-    from sigmasim.cli import execute_run
+    from sigmasim.run import execute_run
     from sigmasim.config import config_from_dict
     from sigmasim.scan import expand_points, load_scan
 

@@ -125,12 +125,16 @@ SRC_GAMMA = ("this run's own mean, Gamma-method error (U. Wolff, Comput. Phys. C
              "143)")
 SRC_TRIVIAL = "identity (common practice, no source)"
 
-RUN_CONVENTIONS = (
-    "S = -beta sum_{x,mu} Re Tr(U_x^+ U_{x+mu}) - sum_x Re Tr(H U_x) "
-    "- kappa sum_x 2 Re(e^{i theta_a} det U_x), H = e^{i theta_m} diag(h), "
-    "theta = nf theta_m - theta_a; time is lattice direction 0; axis 0 of every array "
-    "is the measurement (configuration) index"
-)
+AXIS_NOTE = "axis 0 of every array is the measurement (configuration) index"
+
+
+def run_conventions(config) -> str:
+    """The sidecar's ``conventions`` of a run export: the model's action and sign conventions
+    (:mod:`sigmasim.models`) and the array axes."""
+    from sigmasim import models
+
+    return f"{models.get(config.kind).CONVENTIONS}; {AXIS_NOTE}"
+
 RUN_UNITS = "lattice units (lattice spacing a = 1); actions are per site; slice sums are plain sums"
 
 
@@ -338,11 +342,12 @@ def read_sidecar(path) -> dict:
 
 def run_arrays(data) -> tuple[dict, list[dict]]:
     """The run's arrays (name -> ndarray) and their :func:`array_entry` descriptions."""
-    from sigmasim.chain import SERIES, SLICES
+    from sigmasim import models
 
+    model = models.get(data.config.kind)
     arrays, entries = {}, []
     for k, a in data.series.items():
-        desc = SERIES.get(k, ("", k))[1]
+        desc = model.SERIES.get(k, ("", k))[1]
         arrays[k] = np.asarray(a)
         conv = "axis 1: flavour f" if arrays[k].ndim == 2 else ""
         unit = "sweeps" if k == "sweep" else ("fraction" if k.startswith("accept") else
@@ -351,9 +356,9 @@ def run_arrays(data) -> tuple[dict, list[dict]]:
     for k, a in data.slices.items():
         name = "slice_" + k
         arrays[name] = np.asarray(a)
-        desc = SLICES.get(k, ("", k))[1]
-        conv = ("axes: (configuration, t, a, b): sum over the sites of time slice t of (U_x)_ab"
-                if k == "U" else "axes: (configuration, t)")
+        desc = model.SLICES.get(k, ("", k))[1]
+        conv = (f"axes: (configuration, t, a, b): sum over the sites of time slice t of ({k}_x)_ab"
+                if k == model.FIELD_SLICE else "axes: (configuration, t)")
         entries.append(array_entry(name, arrays[name], desc, conv, "plain sum over a time slice"))
     return arrays, entries
 
@@ -542,7 +547,7 @@ def export_run(run_path, fmt: str = "npz", out=None, reference: bool = False,
                      f"{cfg.measurements} measurements")
     prov = provenance(run_file=str(run_path), run_status=data.status,
                       run_provenance=data.provenance)
-    side = {"kind": "run export", "conventions": RUN_CONVENTIONS, "units": RUN_UNITS,
+    side = {"kind": "run export", "conventions": run_conventions(cfg), "units": RUN_UNITS,
             "config": cfg.to_dict(), "seed": cfg.seed, "provenance": prov, "truth": truth,
             "notes": notes}
     prefix = _prefix(out) if out else run_path.with_name(run_path.stem + "_export")

@@ -18,17 +18,15 @@ _METROPOLIS_KEYS = ("metropolis_hits", "target_acceptance", "initial_step", "tun
 
 
 def _applies(section: str, key: str, d: dict) -> bool:
-    from sigmasim.config import SCHEMA
+    from sigmasim import models
 
     model, updates, run = d.get("model", {}), d.get("updates", {}), d.get("run", {})
-    linear = model.get("kind", "chiral") == "linear"
-    meaning = SCHEMA.get(section, {}).get(key, (None, None, ""))[2]
-    if meaning.startswith("linear model") and not linear:
-        return False
-    if linear and section == "model" and key in ("beta", "kappa"):
-        return False
-    if section == "model" and key == "kind" and not linear:
-        return False
+    name = f"{section}.{key}"
+    if name in models.model_dependent_keys():
+        try:
+            return name in models.get(model.get("kind", "chiral")).CONFIG_KEYS
+        except ValueError:  # not a model: show the key
+            return True
     if section == "updates" and key in _METROPOLIS_KEYS:
         return any(s.get("update") == "metropolis" for s in updates.get("schedule", []))
     if section == "run" and key == "start_branch":

@@ -380,7 +380,7 @@ def run_point(raw: dict, threads: int, stop_file: str) -> dict:
     import numba
 
     from sigmasim.chain import Interrupted
-    from sigmasim.cli import execute_run
+    from sigmasim.run import execute_run
 
     t0 = time.perf_counter()
     if os.path.exists(stop_file):  # the scan is stopping: leave a point that has not started alone

@@ -1,19 +1,25 @@
 """The run file: HDF5 layout, crash-safe writer and reader (the only h5py import).
 
-Layout of ``<output>/<name>/<name>.h5`` (format ``sigmasim-run``, version 1)::
+Layout of ``<output>/<name>/<name>.h5`` (format ``sigmasim-run``, version 2)::
 
     /                    attrs: format, format_version, config (JSON), physics_hash,
-                                status (running|interrupted|complete), n_meas, sweep
+                                status (running|interrupted|complete), n_meas, sweep, conventions
     /provenance          attrs: sigmasim, git_commit, python, numpy, numba, h5py,
                                 seed, created, updated, wall_seconds
     /series/<name>       (n,) float64 | complex128 | int64, or (n, nf) complex128;
-                         attrs: description, convention
-    /slices/U            (n, T, nf, nf) complex128: per-time-slice sums of U_x
-    /slices/det          (n, T) complex128: per-time-slice sums of det U_x
+                         attrs: description
+    /slices/<name>       (n, T, nf, nf) complex128 (the field matrix: U for the chiral model,
+                         Phi for the linear one), (n, T) complex128 or float64: per-time-slice sums
     /state/re, /state/im (nf*nf, V) float64: the field at the last checkpoint
                          (checkerboard site order, component a*nf + b)
     /state               attrs: step, sweep, n_meas, step_size, ... (ChainState scalars),
                          win_acc, win_tried
+
+The series and slices are those of the config's model (:mod:`sigmasim.models`: ``SERIES``,
+``SLICES``, ``CONVENTIONS``).  Version 1 differs only in the linear model's names
+(``slices/U`` for ``slices/Phi``, plus ``series/action_beta``, a copy of ``action_kinetic``);
+version-1 files are read under the current names, and a resume rewrites them as version 2 at its
+first checkpoint.
 
 Time series are chunked and resizable along the first axis.  Records stay in
 memory between checkpoints; a checkpoint copies the file, appends to the copy,
@@ -38,8 +44,8 @@ from pathlib import Path
 import h5py
 import numpy as np
 
-from sigmasim import __version__
-from sigmasim.chain import SERIES, SLICES, ChainState
+from sigmasim import __version__, models
+from sigmasim.chain import ChainState
 from sigmasim.config import RunConfig, config_from_dict
 from sigmasim.errors import ConfigError, RunFileError, SigmasimError, shown
 
@@ -48,7 +54,8 @@ __all__ = ["RunWriter", "RunData", "open_run", "read_state", "FORMAT", "FORMAT_V
            "atomic_hdf5", "hdf5_bytes", "check_space"]
 
 FORMAT = "sigmasim-run"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
+READABLE_VERSIONS = (1, 2)
 
 
 def _now() -> str:
@@ -312,10 +319,10 @@ def _open_checked(path: Path, mode: str = "r") -> h5py.File:
             raise RunFileError(f"{path} is not a sigmasim run file")
         v = f.attrs.get("format_version")
         if not (isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_))
-                and int(v) == FORMAT_VERSION):
+                and int(v) in READABLE_VERSIONS):
             shown = v if isinstance(v, (int, np.integer, float, str, bytes)) else type(v).__name__
-            raise RunFileError(f"{path} has format version {shown!r}; this sigmasim reads version "
-                               f"{FORMAT_VERSION}")
+            raise RunFileError(f"{path} has format version {shown!r}; this sigmasim reads versions "
+                               f"{', '.join(map(str, READABLE_VERSIONS))}")
     except RunFileError:
         f.close()
         raise
@@ -338,25 +345,39 @@ def _stored_config(f: h5py.File, path) -> RunConfig:
         raise RunFileError(f"{path} holds no valid config ({_one_line(exc)})") from None
 
 
+_SLICE_DTYPES = {"matrix": np.complex128, "complex": np.complex128, "real": np.float64}
+
+
 def record_kinds(cfg: RunConfig) -> tuple[dict, dict]:
     """The model's records: (series name -> (kind, description), slice name -> (dtype, shape, description)).
 
-    The chiral model records :data:`chain.SERIES` and :data:`chain.SLICES`; the
-    linear model adds its radial terms (``sigmasim.linear.LINEAR_EXTRA``).
+    From the model's ``SERIES`` and ``SLICES`` (:mod:`sigmasim.models`).
     """
+    model = models.get(cfg.kind)
     nf, t = cfg.nf, cfg.shape[0]
-    series = dict(SERIES)
-    slices = {"U": (np.complex128, (t, nf, nf), SLICES["U"][1]),
-              "det": (np.complex128, (t,), SLICES["det"][1])}
-    if getattr(cfg, "kind", "chiral") == "linear":
-        from sigmasim.linear import LINEAR_EXTRA
+    slices = {name: (_SLICE_DTYPES[kind], (t, nf, nf) if kind == "matrix" else (t,), desc)
+              for name, (kind, desc) in model.SLICES.items()}
+    return dict(model.SERIES), slices
 
-        for name, (kind, desc) in LINEAR_EXTRA.items():
-            if name.startswith("slices/"):
-                slices[name[7:]] = (np.float64, (t,), desc)
-            else:
-                series[name] = (kind, desc)
-    return series, slices
+
+def _names_in_file(f: h5py.File, cfg: RunConfig) -> dict:
+    """Current dataset name -> its name in the open file ``f`` (they differ in version-1 files)."""
+    if int(f.attrs["format_version"]) >= 2:
+        return {}
+    return {new: old for old, new in models.get(cfg.kind).VERSION1_NAMES.items()}
+
+
+def _upgrade_version1(f: h5py.File, cfg: RunConfig) -> None:
+    """Rename a version-1 file's records (open for writing) to the current layout."""
+    model = models.get(cfg.kind)
+    for old, new in model.VERSION1_NAMES.items():
+        if old in f and new not in f:
+            f.move(old, new)
+    for old in model.VERSION1_DROPPED:
+        if old in f:
+            del f[old]
+    f.attrs["format_version"] = FORMAT_VERSION
+    f.attrs["conventions"] = model.CONVENTIONS
 
 
 def _series_dtype(kind):
@@ -404,8 +425,9 @@ def _check_file(f: h5py.File, path, cfg: RunConfig) -> int:
         raise RunFileError(f"{path} is damaged: bad root attributes ({_one_line(exc)})") from None
     if not isinstance(f.get("provenance"), h5py.Group):
         raise RunFileError(f"{path} is damaged: /provenance is missing")
+    names = _names_in_file(f, cfg)
     for key, (dtype, per_record) in _layout(cfg).items():
-        d = _dataset(f, key, path, dtype)
+        d = _dataset(f, names.get(key, key), path, dtype)
         if d.ndim != 1 + len(per_record) or tuple(d.shape[1:]) != per_record:
             raise RunFileError(f"{path} is damaged: /{key} has shape {d.shape}, expected "
                                f"(n,) + {per_record}")
@@ -500,19 +522,7 @@ class RunWriter:
             f.attrs["status"] = "running"
             f.attrs["n_meas"] = 0
             f.attrs["sweep"] = 0
-            if getattr(cfg, "kind", "chiral") == "linear":
-                f.attrs["conventions"] = (
-                    "S = sum_x [ (k/2) sum_mu Tr|Phi_{x+mu} - Phi_x|^2 + (mu2/2) Tr Phi^+Phi "
-                    "+ lambda1 (Tr Phi^+Phi)^2 + lambda2 Tr (Phi^+Phi)^2 + lambda_s (Tr Phi^+Phi)^p "
-                    "- c (e^{i theta_a} det Phi + c.c.) - Re Tr(H Phi) ], H = e^{i theta_m} diag(h), "
-                    "theta = nf theta_m - theta_a; time is lattice direction 0"
-                )
-            else:
-                f.attrs["conventions"] = (
-                    "S = -beta sum_{x,mu} Re Tr(U_x^+ U_{x+mu}) - sum_x Re Tr(H U_x) "
-                    "- kappa sum_x 2 Re(e^{i theta_a} det U_x), H = e^{i theta_m} diag(h), "
-                    "theta = nf theta_m - theta_a; time is lattice direction 0"
-                )
+            f.attrs["conventions"] = models.get(cfg.kind).CONVENTIONS
             p = f.create_group("provenance")
             for k, v in _provenance(cfg).items():
                 p.attrs[k] = v
@@ -571,6 +581,8 @@ class RunWriter:
         try:
             shutil.copyfile(self.path, self.tmp)
             f = h5py.File(self.tmp, "a")
+            if int(f.attrs["format_version"]) < FORMAT_VERSION:  # a resumed version-1 file
+                _upgrade_version1(f, self.config)
             series, slices = record_kinds(self.config)
             # the records on disk (equal to the n_meas attribute, except in a file just rebuilt
             # around a state with records still to append)
@@ -699,7 +711,7 @@ def read_state(path: Path, config: RunConfig) -> ChainState:
         _check_state_ranges(st, stored, path)
         if not (np.isfinite(st.re).all() and np.isfinite(st.im).all()):
             raise RunFileError(f"{path} has a damaged checkpoint (non-finite field)")
-        if getattr(stored, "kind", "chiral") != "linear":
+        if models.get(stored.kind).UNITARY:
             _check_unitary(st, stored, path)
     return st
 
@@ -771,11 +783,12 @@ class RunData:
                 self.sweep = None
             self.provenance = {k: _plain(v) for k, v in f["provenance"].attrs.items()}
             layout = _layout(self.config)
+            names = _names_in_file(f, self.config)  # read a version-1 file under the current names
             try:
                 # only the datasets of the layout, each checked numeric before it is read
-                self.series = {k[7:]: _dataset(f, k, self.path, dt)[...]
+                self.series = {k[7:]: _dataset(f, names.get(k, k), self.path, dt)[...]
                                for k, (dt, _) in layout.items() if k.startswith("series/")}
-                self.slices = {k[7:]: _dataset(f, k, self.path, dt)[...]
+                self.slices = {k[7:]: _dataset(f, names.get(k, k), self.path, dt)[...]
                                for k, (dt, _) in layout.items() if k.startswith("slices/")}
             except (KeyError, OSError) as exc:
                 raise RunFileError(f"{self.path}: damaged data ({_one_line(exc)})") from None

@@ -149,7 +149,7 @@ def free_field(nf=2, mu2=0.5, shape=(8, 4, 4), n_meas=3000, seed=14) -> list[Che
     })
     data = simulate(cfg)
     n, t_ext = len(data["sweep"]), shape[0]
-    s = data["slices/U"].reshape(n, t_ext, nf * nf)
+    s = data["slices/Phi"].reshape(n, t_ext, nf * nf)
     comps = np.concatenate([s.real, s.imag], axis=2)
     vs = int(np.prod(shape[1:]))
     ref = exact.free_scalar_correlator(shape, mu2)

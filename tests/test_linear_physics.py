@@ -53,7 +53,8 @@ from sigmasim.analysis.resampling import jackknife_covariance
 from sigmasim.analysis.gamma import gamma_analysis
 from sigmasim.chain import MemorySink, run_chain, simulate
 from sigmasim.config import config_from_dict
-from sigmasim.linear import LinearSimulation, tree_level_minimum, tree_level_potential
+from sigmasim.chain import Simulation
+from sigmasim.models.linear import tree_level_minimum, tree_level_potential
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -76,7 +77,7 @@ def _linear(shape, seed, schedule, run, **model):
 
 def _run_from(cfg, phi):
     """Run ``cfg`` in memory from the constant field ``phi``."""
-    sim = LinearSimulation(cfg)
+    sim = Simulation(cfg)
     sim.state.re[:] = phi.real.ravel()[:, None]
     sim.state.im[:] = phi.imag.ravel()[:, None]
     sink = MemorySink()
@@ -276,8 +277,8 @@ def _groups(m2, rtol=1e-3):
 
 
 def _mode_slices(r, vec, cols):
-    """(N, T, len(cols)) slice sums of the modes: e . (Re, Im) of slices/U."""
-    su = r["slices/U"]
+    """(N, T, len(cols)) slice sums of the modes: e . (Re, Im) of slices/Phi."""
+    su = r["slices/Phi"]
     n, t = su.shape[:2]
     x = np.concatenate([su.real.reshape(n, t, -1), su.imag.reshape(n, t, -1)], axis=2)
     return x @ vec[:, cols]

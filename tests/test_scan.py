@@ -14,7 +14,8 @@ import numpy as np
 import pytest
 
 from runfiles import assert_same_contents, contents, subprocess_env
-from sigmasim.cli import execute_run, main
+from sigmasim.cli import main
+from sigmasim.run import execute_run
 from sigmasim.config import config_from_dict
 from sigmasim.scan import config_key, expand_points, load_scan, read_index
 

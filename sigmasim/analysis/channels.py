@@ -1,6 +1,6 @@
 """Meson channels from the stored time-slice sums, and their correlators.
 
-Input are the run file's ``/slices/U`` (``(N, T, nf, nf)`` complex: per time
+Input are the run file's ``/slices/U`` (``/slices/Phi`` of a linear run; ``(N, T, nf, nf)`` complex: per time
 slice sum of ``U_x``) and ``/slices/det`` (``(N, T)`` complex: per time slice
 sum of ``det U_x``), e.g. ``RunData.slices`` or the ``slices/U``,
 ``slices/det`` arrays of :func:`sigmasim.chain.simulate`.

@@ -385,14 +385,17 @@ def analyze_data(series: dict, slices: dict, config, *, status: str = "complete"
                  band: float = 0.5) -> RunAnalysis:
     """Analyse in-memory data (``RunData.series``/``.slices`` or :func:`sigmasim.chain.simulate`).
 
-    ``slices`` holds ``"U"`` and ``"det"`` (for ``simulate`` output pass
+    ``slices`` holds the model's field slice (``"U"``, or ``"Phi"`` for the linear model: the
+    model's ``FIELD_SLICE``) and ``"det"`` (for ``simulate`` output pass
     ``{"U": d["slices/U"], "det": d["slices/det"]}``, or the dict itself: keys
-    ``slices/U``, ``slices/det`` are recognised).
+    ``slices/<name>`` are recognised).
     """
-    from sigmasim.chain import SERIES
+    from sigmasim import models
 
+    model = models.get(config.kind)
+    field = model.FIELD_SLICE
     series = {k: v for k, v in series.items() if not k.startswith("slices/")}
-    if "slices/U" in slices or "slices/det" in slices:
+    if any(k.startswith("slices/") for k in slices):
         slices = {k.split("/", 1)[1]: v for k, v in slices.items() if k.startswith("slices/")}
     n = int(len(series.get("sweep", series.get("action", ()))))
     ra = RunAnalysis(Path(path) if path else None, name or config.name, config, status, n)
@@ -400,7 +403,7 @@ def analyze_data(series: dict, slices: dict, config, *, status: str = "complete"
         ra.warnings.append(
             f"run status is '{status}': the file is still being written or was stopped; "
             f"results use the {n} records of the last checkpoint")
-    missing = [k for k in SERIES if k not in series]
+    missing = [k for k in model.SERIES if k not in series]
     if missing:
         ra.warnings.append(f"missing series: {', '.join(missing)}")
     if n == 0:
@@ -443,10 +446,10 @@ def analyze_data(series: dict, slices: dict, config, *, status: str = "complete"
     }
     if not masses:
         return ra
-    if "U" not in slices or "det" not in slices:
-        ra.warnings.append("missing slices/U or slices/det: no correlators or masses")
+    if field not in slices or "det" not in slices:
+        ra.warnings.append(f"missing slices/{field} or slices/det: no correlators or masses")
         return ra
-    su, sd = np.asarray(slices["U"])[cut:], np.asarray(slices["det"])[cut:]
+    su, sd = np.asarray(slices[field])[cut:], np.asarray(slices["det"])[cut:]
     degenerate = len(set(config.mass)) == 1 and config.mass[0] > 0 and config.theta == 0.0
     tree = {}
     if degenerate and config.beta > 0:
