@@ -822,3 +822,51 @@ def open_run(path) -> RunData:
         raise
     except Exception as exc:  # h5py raises many kinds on damaged files
         raise RunFileError(f"{path}: cannot read ({type(exc).__name__}: {_one_line(exc)})") from None
+
+
+# ---------------------------------------------------------------- protocol files
+# The hysteresis sweep file and the hysteresis and tempering checkpoints are trees of groups,
+# attributes and datasets that their protocol modules lay out; this reader/writer pair is all the
+# HDF5 code they need, so that this module stays the only h5py import.
+def write_tree(path, tree: dict, what: str = "output") -> Path:
+    """Write ``tree`` to the HDF5 file ``path`` atomically (:func:`atomic_hdf5`).
+
+    In ``tree`` (and every dict below it) the key ``"@attrs"`` holds the group's attributes and
+    ``"@state"`` a :class:`ChainState` stored in that group (:func:`write_state_group`); any other
+    dict is a subgroup and anything else a dataset.  Groups, attributes and datasets are created
+    in the order of the keys.
+    """
+    def fill(g, node):
+        for k, v in node.items():
+            if k == "@attrs":
+                for a, x in v.items():
+                    g.attrs[a] = x
+            elif k == "@state":
+                write_state_group(g, v)
+            elif isinstance(v, dict):
+                fill(g.create_group(k), v)
+            else:
+                g.create_dataset(k, data=v)
+
+    return atomic_hdf5(Path(path), lambda f: fill(f, tree), what=what)
+
+
+def read_tree(path, states=()) -> dict:
+    """Everything in the HDF5 file ``path`` as the tree :func:`write_tree` takes: attributes under
+    ``"@attrs"``, datasets as arrays, and for the groups named in ``states`` (e.g. ``"state"``,
+    ``"slot0"``) their :class:`ChainState` under ``"@state"``.
+
+    Raises OSError (not an HDF5 file), KeyError, TypeError or ValueError (a damaged state group);
+    the protocol modules turn them into one-line errors.
+    """
+    def walk(g, name):
+        node = {"@attrs": dict(g.attrs)}
+        if name in states:
+            node["@state"] = read_state_group(g)
+        for k, v in g.items():
+            key = f"{name}/{k}" if name else k
+            node[k] = walk(v, key) if isinstance(v, h5py.Group) else v[...]
+        return node
+
+    with h5py.File(Path(path), "r") as f:
+        return walk(f, "")

@@ -529,3 +529,50 @@ def test_lifetimes_command_writes_escape_figure(tmp_path, capsys):
     doc = json.loads(out.read_text())
     assert set(doc["escape"]) == {"2", "4"} and "dead_time" in doc["escape"]["4"]
     assert (tmp_path / "lt.png").stat().st_size > 5000
+
+
+# ---------------------------------------------------------------- non-finite fields never reach a file
+def _poison_at(monkeypatch, sweep, slot_seed=None):
+    """Simulation.sweep that puts a NaN into the field after ``sweep`` (of the chain with seed
+    ``slot_seed``, or of every chain)."""
+    from sigmasim.chain import Simulation
+
+    real = Simulation.sweep
+
+    def bad(self):
+        real(self)
+        if self.state.sweep == sweep and slot_seed in (None, self.config.seed):
+            self.state.re[0, 3] = np.nan
+
+    monkeypatch.setattr(Simulation, "sweep", bad)
+
+
+def test_hysteresis_stops_on_a_non_finite_field_before_its_checkpoint(tmp_path, monkeypatch):
+    from sigmasim.errors import NumericalError
+    from sigmasim.protocols import sweep_checkpoint_path
+
+    cfg = config_from_dict({"seed": 2, "lattice": {"shape": [4, 4]}, "model": {"nf": 2, "mass": 0.3, "kappa": 1.0},
+                            "run": {"thermalize": 3, "threads": 1}})
+    ckpt = sweep_checkpoint_path(tmp_path / "s.h5")
+    _poison_at(monkeypatch, 3)  # the last thermalisation sweep: the protocol checkpoints right after it
+    with pytest.raises(NumericalError, match="non-finite field after sweep 3 at site 3"):
+        run_sweep(cfg, SweepParams(start=0.0, stop=1.0, step=0.5, sweeps_per_step=4), checkpoint=ckpt)
+    assert not ckpt.exists()
+
+
+def test_tempering_stops_on_a_non_finite_field_before_its_checkpoint(tmp_path, monkeypatch):
+    from sigmasim.errors import NumericalError
+    from sigmasim.protocols import temper_checkpoint_path
+    from sigmasim.storage import read_tree
+
+    cfg = config_from_dict({"name": "nan", "seed": 2, "lattice": {"shape": [4, 4]},
+                            "model": {"nf": 2, "mass": 0.3, "kappa": 1.0},
+                            "run": {"thermalize": 10, "measurements": 5, "checkpoint_every": 4,
+                                    "checkpoint_seconds": 1e6, "threads": 1, "output": str(tmp_path)}})
+    ckpt = temper_checkpoint_path(cfg)
+    _poison_at(monkeypatch, 8, slot_seed=2 * 1000 + 1)  # slot 1, at its second checkpoint, unmeasured
+    with pytest.raises(NumericalError, match="non-finite field after sweep 8 at site 3"):
+        run_tempering(cfg, TemperParams(thetas=(0.5, 1.0)), checkpoint=ckpt)
+    saved = read_tree(ckpt, states=("slot0", "slot1"))  # the one of sweep 4 stays, finite
+    assert int(saved["@attrs"]["sweep"]) == 4
+    assert all(np.isfinite(saved[s]["re"]).all() for s in ("slot0", "slot1"))

@@ -62,3 +62,23 @@ def _set_threads(config: RunConfig) -> None:
     from sigmasim.threads import set_threads
 
     set_threads(config.threads, config.volume // 2, config.nf)
+
+
+def _never(sweep: int) -> bool:
+    return False
+
+
+def sweeps(sim, n: int, measure_due=_never):
+    """``n`` more sweeps of ``sim`` through :func:`sigmasim.chain.iterate`, yielding the records.
+
+    ``measure_due(sweep)`` says whether to measure after that sweep (``sim.state.sweep``); the
+    records taken are yielded in order.  iterate checks the field for NaN/inf before every sweep
+    and when the ``n`` sweeps are done, so a protocol never stores a non-finite field; a protocol
+    writes its checkpoints between calls (iterate flags none here).
+    """
+    from sigmasim.chain import iterate
+
+    for step in iterate(sim, until=sim.state.sweep + n, measure_due=measure_due,
+                        checkpoint_every=1 << 62, checkpoint_seconds=float("inf")):
+        if step.record is not None:
+            yield step.record

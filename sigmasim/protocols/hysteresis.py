@@ -45,7 +45,8 @@ Sweep file layout (HDF5, format ``sigmasim-sweep``, version 1; default
 
     /                  attrs: format, format_version, config (JSON of the run config at start),
                               protocol (JSON of [hysteresis]), summary (JSON: jumps, areas), conventions
-    /provenance        attrs: sigmasim, python, numpy, numba, h5py versions, created, wall_seconds
+    /provenance        attrs: sigmasim, git_commit, python, numpy, numba, h5py, seed (as a run file), created,
+                       wall_seconds
     /steps/<name>      one entry per theta step, in protocol order:
                        theta, cycle (int), direction (+1 up, -1 down), re_omega_h, re_omega_h_err,
                        im_omega_h, im_omega_h_err, action, action_err, ds_dtheta, ds_dtheta_err
@@ -78,7 +79,8 @@ import numpy as np
 
 from sigmasim.config import RunConfig
 from sigmasim.errors import ConfigError, RunFileError
-from sigmasim.protocols.common import _mean_err, split_protocol
+from sigmasim import models
+from sigmasim.protocols.common import _mean_err, split_protocol, sweeps
 
 __all__ = ["SWEEP_FORMAT", "SWEEP_SCHEMA", "SweepParams", "SweepResult", "run_sweep", "theta_derivative",
            "tree_level", "write_sweep", "read_sweep", "plot_sweep", "sweep_checkpoint_path", "load_hysteresis",
@@ -195,43 +197,35 @@ def _sweep_identity(config: RunConfig, params: SweepParams) -> str:
 
 def _save_sweep_checkpoint(path: Path, config, params, sim, next_step: int, ser: dict, wall: float) -> None:
     """Everything a resumed sweep needs, written atomically (temporary name, fsync, rename)."""
-    from sigmasim.storage import atomic_hdf5, write_state_group
+    from sigmasim.storage import write_tree
 
-    st = sim.state
+    def column(k, v):
+        return np.asarray(v, dtype=np.complex128 if k in ("omega_h", "det")
+                          else np.float64 if k in ("theta", "action", "action_mass", "action_det", "ds_dtheta")
+                          else np.int64)
 
-    def write(f):
-        f.attrs["format"] = SWEEP_CHECKPOINT_FORMAT
-        f.attrs["identity"] = _sweep_identity(config, params)
-        f.attrs["next_step"] = next_step
-        f.attrs["wall_seconds"] = wall
-        write_state_group(f.create_group("state"), st)
-        h = f.create_group("series")
-        for k, v in ser.items():
-            h.create_dataset(k, data=np.asarray(v, dtype=np.complex128 if k in ("omega_h", "det")
-                                                else np.float64 if k in ("theta", "action", "action_mass",
-                                                                         "action_det", "ds_dtheta")
-                                                else np.int64))
-
-    atomic_hdf5(path, write, what="sweep checkpoint")
+    write_tree(path, {"@attrs": {"format": SWEEP_CHECKPOINT_FORMAT, "identity": _sweep_identity(config, params),
+                                 "next_step": next_step, "wall_seconds": wall},
+                      "state": {"@state": sim.state},
+                      "series": {k: column(k, v) for k, v in ser.items()}}, what="sweep checkpoint")
 
 
 def _load_sweep_checkpoint(path: Path, config, params, last_sweep: int, n_plan: int):
     """(state, next_step, series lists, wall seconds) of a checkpoint; one-line errors when damaged."""
-    import h5py
-
-    from sigmasim.storage import _check_state_ranges, _check_unitary, read_state_group
+    from sigmasim.storage import _check_state_ranges, _check_unitary, read_tree
 
     try:
-        with h5py.File(path, "r") as f:
-            if f.attrs.get("format") != SWEEP_CHECKPOINT_FORMAT:
-                raise RunFileError(f"{path} is not a sweep checkpoint; remove it")
-            if f.attrs.get("identity") != _sweep_identity(config, params):
-                raise RunFileError(f"{path} belongs to another config or [hysteresis] table; remove it or "
-                                   "restore that config")
-            nxt = f.attrs["next_step"]
-            wall = float(f.attrs["wall_seconds"])
-            st = read_state_group(f["state"])
-            ser = {k: list(f["series"][k][...]) for k in _SWEEP_KEYS}
+        f = read_tree(path, states=("state",))
+        attrs = f["@attrs"]
+        if attrs.get("format") != SWEEP_CHECKPOINT_FORMAT:
+            raise RunFileError(f"{path} is not a sweep checkpoint; remove it")
+        if attrs.get("identity") != _sweep_identity(config, params):
+            raise RunFileError(f"{path} belongs to another config or [hysteresis] table; remove it or "
+                               "restore that config")
+        nxt = attrs["next_step"]
+        wall = float(attrs["wall_seconds"])
+        st = f["state"]["@state"]
+        ser = {k: list(f["series"][k]) for k in _SWEEP_KEYS}
     except RunFileError:
         raise
     except (OSError, KeyError, TypeError, ValueError, OverflowError) as exc:
@@ -243,7 +237,7 @@ def _load_sweep_checkpoint(path: Path, config, params, last_sweep: int, n_plan: 
             np.isfinite(st.re).all() and np.isfinite(st.im).all()) or len({len(x) for x in ser.values()}) != 1:
         raise RunFileError(f"{path} is a damaged sweep checkpoint; remove it to start the sweep again")
     _check_state_ranges(st, config, path, last_sweep=last_sweep)
-    if getattr(config, "kind", "chiral") != "linear":
+    if models.get(config.kind).UNITARY:
         _check_unitary(st, config, path)
     return st, int(nxt), ser, wall
 
@@ -257,7 +251,7 @@ def run_sweep(config: RunConfig, params: SweepParams, progress=None, checkpoint=
     is continued, and the result equals that of an uninterrupted sweep bit for bit.
     """
     from sigmasim.analysis.tunnelling import branch_coordinate, branch_index
-    from sigmasim.chain import make_simulation
+    from sigmasim.chain import Simulation
 
     t0 = time.monotonic()
     grid = params.grid()
@@ -273,11 +267,11 @@ def run_sweep(config: RunConfig, params: SweepParams, progress=None, checkpoint=
     if checkpoint is not None and checkpoint.exists():
         state, first, ser, wall_before = _load_sweep_checkpoint(checkpoint, config, params, last_sweep,
                                                                 len(plan))
-        sim = make_simulation(cfg, state)
+        sim = Simulation(cfg, state)
     else:
-        sim = make_simulation(cfg)
-        for _ in range(cfg.thermalize):
-            sim.sweep()
+        sim = Simulation(cfg)
+        for _ in sweeps(sim, cfg.thermalize):
+            pass
     saved = [sim.state.sweep, time.monotonic()]
 
     def save(next_step, force=False):
@@ -296,18 +290,16 @@ def run_sweep(config: RunConfig, params: SweepParams, progress=None, checkpoint=
         if i < first:
             continue
         sim.set_theta(th)
-        for _ in range(params.thermalize_per_step):
-            sim.sweep()
-        for s in range(params.sweeps_per_step):
-            sim.sweep()
-            if (s + 1) % every == 0:
-                r = sim.measure()
-                ser["sweep"].append(r["sweep"])
-                ser["step"].append(i)
-                ser["theta"].append(th)
-                for k in ("omega_h", "det", "action", "action_mass", "action_det"):
-                    ser[k].append(r[k])
-                ser["ds_dtheta"].append(theta_derivative(sim.config, r))
+        for _ in sweeps(sim, params.thermalize_per_step):
+            pass
+        begin = sim.state.sweep
+        for r in sweeps(sim, params.sweeps_per_step, lambda sweep: (sweep - begin) % every == 0):
+            ser["sweep"].append(r["sweep"])
+            ser["step"].append(i)
+            ser["theta"].append(th)
+            for k in ("omega_h", "det", "action", "action_mass", "action_det"):
+                ser[k].append(r[k])
+            ser["ds_dtheta"].append(theta_derivative(sim.config, r))
         save(i + 1)
         if progress is not None:
             progress(i + 1, len(plan))
@@ -360,7 +352,7 @@ def theta_derivative(config: RunConfig, rec: dict) -> float:
     cond = np.asarray(rec["condensate"], dtype=np.complex128).ravel()
     out = cm * float(np.sum(h * (np.exp(1j * tm) * cond).imag))
     if ca:
-        k = config.c if getattr(config, "kind", "chiral") == "linear" else config.kappa
+        k = getattr(config, models.get(config.kind).ANOMALY)  # kappa (chiral), c (linear)
         out -= 2.0 * k * ca * float((np.exp(1j * ta) * complex(rec["det"])).imag)
     return out
 
@@ -413,81 +405,54 @@ def tree_level(config: RunConfig, lo: float, hi: float, n: int = 241) -> dict:
 
 
 # ---------------------------------------------------------------- file and plot
-def _provenance() -> dict:
-    import platform
-
-    import h5py
-    import numba
-
-    from sigmasim import __version__
-
-    return {"sigmasim": __version__, "python": platform.python_version(), "numpy": np.__version__,
-            "numba": numba.__version__, "h5py": h5py.__version__}
-
-
 def write_sweep(path, result: SweepResult) -> Path:
     """Write the whole sweep protocol into one HDF5 file (atomically: temporary file, rename)."""
     import datetime as _dt
+
+    from sigmasim.storage import _provenance, write_tree
 
     path = Path(path)
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise RunFileError(f"cannot create the output folder {path.parent}: {exc.strerror}") from None
-    from sigmasim.storage import atomic_hdf5
-
-    def write(f):
-        f.attrs["format"] = SWEEP_FORMAT
-        f.attrs["format_version"] = 1
-        f.attrs["config"] = json.dumps(result.config.to_dict(), sort_keys=True)
-        f.attrs["protocol"] = json.dumps(dataclasses.asdict(result.params), sort_keys=True)
-        f.attrs["summary"] = json.dumps(result.summary, sort_keys=True)
-        f.attrs["conventions"] = ("omega_h = e^{i theta_m} Omega; branch k: x = (nf arg omega_h - "
-                                  "theta)/(2 pi) nearest k with a hysteresis band; research toy")
-        p = f.create_group("provenance")
-        for k, v in _provenance().items():
-            p.attrs[k] = v
-        p.attrs["created"] = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
-        p.attrs["wall_seconds"] = result.wall_seconds
-        g = f.create_group("steps")
-        for k, v in result.steps.items():
-            g.create_dataset(k, data=v)
-        g = f.create_group("series")
-        for k, v in result.series.items():
-            g.create_dataset(k, data=v)
-        g = f.create_group("cycles")
-        g.create_dataset("area", data=result.area)
-        g.create_dataset("area_im_omega_h", data=result.area_im_omega_h)
-        g.create_dataset("area_stat_error", data=result.area_stat_error)
-        g.create_dataset("jump_up", data=result.jump_up)
-        g.create_dataset("jump_down", data=result.jump_down)
-        if result.tree:
-            g = f.create_group("tree")
-            g.create_dataset("theta", data=result.tree["theta"])
-            g.create_dataset("im_omega_h", data=result.tree["im_omega_h"])
-            g.create_dataset("spinodals", data=result.tree["spinodals"])
-            g.create_dataset("first_order", data=result.tree["first_order"])
-
+    prov = dict(_provenance(result.config))
+    prov["created"] = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+    prov["wall_seconds"] = result.wall_seconds
+    tree = {"@attrs": {"format": SWEEP_FORMAT, "format_version": 1,
+                       "config": json.dumps(result.config.to_dict(), sort_keys=True),
+                       "protocol": json.dumps(dataclasses.asdict(result.params), sort_keys=True),
+                       "summary": json.dumps(result.summary, sort_keys=True),
+                       "conventions": ("omega_h = e^{i theta_m} Omega; branch k: x = (nf arg omega_h - "
+                                       "theta)/(2 pi) nearest k with a hysteresis band; research toy")},
+            "provenance": {"@attrs": prov},
+            "steps": dict(result.steps),
+            "series": dict(result.series),
+            "cycles": {"area": result.area, "area_im_omega_h": result.area_im_omega_h,
+                       "area_stat_error": result.area_stat_error, "jump_up": result.jump_up,
+                       "jump_down": result.jump_down}}
+    if result.tree:
+        tree["tree"] = {k: result.tree[k] for k in ("theta", "im_omega_h", "spinodals", "first_order")}
     # temporary name unique to this process, fsync, rename: never a truncated sweep file
-    return atomic_hdf5(path, write, what="sweep file")
+    return write_tree(path, tree, what="sweep file")
 
 
 def read_sweep(path) -> dict:
     """Read a sweep file: {'config', 'protocol', 'summary', 'steps', 'series', 'cycles', 'tree'}."""
-    import h5py
+    from sigmasim.storage import read_tree
 
     path = Path(path)
     if not path.exists():
         raise RunFileError(f"{path} does not exist")
     try:
-        with h5py.File(path, "r") as f:
-            if f.attrs.get("format") != SWEEP_FORMAT:
-                raise RunFileError(f"{path} is not a sigmasim sweep file")
-            out = {k: json.loads(f.attrs[k]) for k in ("config", "protocol", "summary")}
-            for g in ("steps", "series", "cycles", "tree"):
-                out[g] = {k: f[g][k][...] for k in f[g]} if g in f else {}
+        f = read_tree(path)
     except OSError:
         raise RunFileError(f"{path} is not a readable HDF5 file") from None
+    if f["@attrs"].get("format") != SWEEP_FORMAT:
+        raise RunFileError(f"{path} is not a sigmasim sweep file")
+    out = {k: json.loads(f["@attrs"][k]) for k in ("config", "protocol", "summary")}
+    for g in ("steps", "series", "cycles", "tree"):
+        out[g] = {k: v for k, v in f[g].items() if k != "@attrs"} if g in f else {}
     return out
 
 
@@ -605,7 +570,7 @@ def execute(config: RunConfig, params: SweepParams, path, overwrite: bool = Fals
         try:
             # the tree-level branches of sigmasim.vacua are those of the chiral potential only
             result.tree = (tree_level(config, float(grid[0]), float(grid[-1]))
-                           if getattr(config, "kind", "chiral") == "chiral" else {})
+                           if models.get(config.kind).CHIRAL_POTENTIAL else {})
         except Exception:  # tree-level scan is decoration only
             result.tree = {}
         write_sweep(path, result)

@@ -25,7 +25,7 @@ import numpy as np
 
 from sigmasim.config import RunConfig, config_from_dict, read_toml
 from sigmasim.errors import ConfigError, RunFileError
-from sigmasim.protocols.common import split_protocol
+from sigmasim.protocols.common import split_protocol, sweeps
 
 __all__ = ["LIFETIME_SCHEMA", "LifetimeResult", "run_lifetimes", "lifetime_estimate", "escape_time_fit",
            "plot_escape_times", "fit_log_lifetimes", "load_lifetimes", "default_path", "check_output",
@@ -70,22 +70,21 @@ def _escape_time(config_dict: dict, max_sweeps: int, stay: int, band: float) -> 
     import numba
 
     from sigmasim.analysis.tunnelling import branch_coordinate
-    from sigmasim.chain import make_simulation
+    from sigmasim.chain import Simulation
 
     numba.set_num_threads(1)
     cfg = config_from_dict(config_dict)
-    sim = make_simulation(cfg)
+    sim = Simulation(cfg)
     nf = cfg.nf
     k0 = cfg.start_branch % nf
     k = k0
     left_at = None
     thr = 0.5 * (1.0 + band)
     every = cfg.measure_every
-    for sweep in range(1, max_sweeps + 1):
-        sim.sweep()
-        if sweep % every:
-            continue
-        om = sim.measure()["omega_h"]
+    # run.thermalize is not used: the escape time counts from the branch start
+    for rec in sweeps(sim, max_sweeps, lambda sweep: sweep % every == 0):
+        sweep = int(rec["sweep"])
+        om = rec["omega_h"]
         x = float(branch_coordinate(np.array([om]), cfg.theta, nf)[0])
         d = x - k
         if abs(d - nf * round(d / nf)) > thr:

@@ -45,7 +45,8 @@ import numpy as np
 
 from sigmasim.config import RunConfig
 from sigmasim.errors import ConfigError, RunFileError
-from sigmasim.protocols.common import _mean_err, split_protocol
+from sigmasim import models
+from sigmasim.protocols.common import _mean_err, split_protocol, sweeps
 
 __all__ = ["TEMPER_SCHEMA", "CENSUS_MIN_CHANGES", "TemperParams", "TemperResult", "run_tempering",
            "replica_configs", "branch_populations", "branch_census", "BranchCensus", "temper_checkpoint_path",
@@ -167,7 +168,7 @@ def _slot_action(sim, cfg) -> float:
     u = (st.re + 1j * st.im).reshape(nf, nf, v)
     cond = np.einsum("aax->a", u)                      # sum_x U_ff
     det = np.linalg.det(np.moveaxis(u, -1, 0)).sum() if nf > 1 else u[0, 0].sum()
-    c = cfg.c if getattr(cfg, "kind", "chiral") == "linear" else cfg.kappa
+    c = getattr(cfg, models.get(cfg.kind).ANOMALY)  # kappa (chiral), c (linear)
     return float(-(cond @ cfg.hdiag).real - 2.0 * c * (cfg.eta * det).real)
 
 
@@ -266,36 +267,24 @@ def _temper_identity(config, params) -> str:
 def _save_temper_checkpoint(path, config, params, sims, sinks, sweep, attempt, tried, acc, labels,
                             history, measured, attempt_sweeps, wall) -> None:
     """The whole protocol state, written atomically (temporary name, fsync, rename)."""
-    from sigmasim.storage import atomic_hdf5, write_state_group
+    from sigmasim.storage import write_tree
 
-    def write(f):
-        f.attrs["format"] = TEMPER_CHECKPOINT_FORMAT
-        f.attrs["identity"] = _temper_identity(config, params)
-        f.attrs["sweep"] = sweep
-        f.attrs["attempt"] = attempt
-        f.attrs["wall_seconds"] = wall
-        f.create_dataset("tried", data=tried)
-        f.create_dataset("accepted", data=acc)
-        f.create_dataset("labels", data=labels)
-        f.create_dataset("history", data=np.array(history, dtype=np.int64))
-        f.create_dataset("measured", data=np.array(measured, dtype=np.int64).reshape(-1, len(sims)))
-        f.create_dataset("attempt_sweeps", data=np.array(attempt_sweeps, dtype=np.int64))
-        for i, (sim, sk) in enumerate(zip(sims, sinks)):
-            g = f.create_group(f"slot{i}")
-            write_state_group(g, sim.state)
-            recs = sk[0].records
-            g.attrs["n_records"] = len(recs)
-            r = g.create_group("records")
-            for k in (recs[0] if recs else {}):
-                r.create_dataset(k.replace("/", "%2F"), data=np.array([x[k] for x in recs]))
-
-    atomic_hdf5(path, write, what="tempering checkpoint")
+    tree = {"@attrs": {"format": TEMPER_CHECKPOINT_FORMAT, "identity": _temper_identity(config, params),
+                       "sweep": sweep, "attempt": attempt, "wall_seconds": wall},
+            "tried": tried, "accepted": acc, "labels": labels,
+            "history": np.array(history, dtype=np.int64),
+            "measured": np.array(measured, dtype=np.int64).reshape(-1, len(sims)),
+            "attempt_sweeps": np.array(attempt_sweeps, dtype=np.int64)}
+    for i, (sim, sk) in enumerate(zip(sims, sinks)):
+        recs = sk[0].records
+        tree[f"slot{i}"] = {"@state": sim.state, "@attrs": {"n_records": len(recs)},
+                            "records": {k.replace("/", "%2F"): np.array([x[k] for x in recs])
+                                        for k in (recs[0] if recs else {})}}
+    write_tree(path, tree, what="tempering checkpoint")
 
 
 def _load_temper_checkpoint(path, config, params, configs, total) -> dict:
-    import h5py
-
-    from sigmasim.storage import _check_state_ranges, _check_unitary, read_state_group
+    from sigmasim.storage import _check_state_ranges, _check_unitary, read_tree
 
     def damaged(why=""):
         return RunFileError(f"{path} is a damaged tempering checkpoint{why}; remove it and the slot files "
@@ -303,30 +292,31 @@ def _load_temper_checkpoint(path, config, params, configs, total) -> dict:
 
     n_rep = len(configs)
     try:
-        with h5py.File(path, "r") as f:
-            if f.attrs.get("format") != TEMPER_CHECKPOINT_FORMAT:
-                raise RunFileError(f"{path} is not a tempering checkpoint; remove it")
-            if f.attrs.get("identity") != _temper_identity(config, params):
-                raise RunFileError(f"{path} belongs to another config or [tempering] table; remove it "
-                                   "(and the slot files) or restore that config")
-            out = {"sweep": int(f.attrs["sweep"]), "attempt": int(f.attrs["attempt"]),
-                   "wall": float(f.attrs["wall_seconds"]),
-                   "tried": np.asarray(f["tried"][...], dtype=np.int64),
-                   "acc": np.asarray(f["accepted"][...], dtype=np.int64),
-                   "labels": np.asarray(f["labels"][...], dtype=np.int64),
-                   "history": [np.asarray(h, dtype=np.int64) for h in f["history"][...]],
-                   "measured": [np.asarray(m, dtype=np.int64) for m in f["measured"][...]],
-                   "attempt_sweeps": [int(x) for x in f["attempt_sweeps"][...]],
-                   "states": [], "records": []}
-            for i in range(n_rep):
-                g = f[f"slot{i}"]
-                st = read_state_group(g)
-                n = int(g.attrs["n_records"])
-                cols = {k.replace("%2F", "/"): d[...] for k, d in g["records"].items()}
-                if any(len(v) != n for v in cols.values()) or (n and not cols):
-                    raise ValueError("records of unequal length")
-                out["states"].append(st)
-                out["records"].append([{k: cols[k][j] for k in cols} for j in range(n)])
+        f = read_tree(path, states=tuple(f"slot{i}" for i in range(n_rep)))
+        attrs = f["@attrs"]
+        if attrs.get("format") != TEMPER_CHECKPOINT_FORMAT:
+            raise RunFileError(f"{path} is not a tempering checkpoint; remove it")
+        if attrs.get("identity") != _temper_identity(config, params):
+            raise RunFileError(f"{path} belongs to another config or [tempering] table; remove it "
+                               "(and the slot files) or restore that config")
+        out = {"sweep": int(attrs["sweep"]), "attempt": int(attrs["attempt"]),
+               "wall": float(attrs["wall_seconds"]),
+               "tried": np.asarray(f["tried"], dtype=np.int64),
+               "acc": np.asarray(f["accepted"], dtype=np.int64),
+               "labels": np.asarray(f["labels"], dtype=np.int64),
+               "history": [np.asarray(h, dtype=np.int64) for h in f["history"]],
+               "measured": [np.asarray(m, dtype=np.int64) for m in f["measured"]],
+               "attempt_sweeps": [int(x) for x in f["attempt_sweeps"]],
+               "states": [], "records": []}
+        for i in range(n_rep):
+            g = f[f"slot{i}"]
+            st = g["@state"]
+            n = int(g["@attrs"]["n_records"])
+            cols = {k.replace("%2F", "/"): d for k, d in g["records"].items() if k != "@attrs"}
+            if any(len(v) != n for v in cols.values()) or (n and not cols):
+                raise ValueError("records of unequal length")
+            out["states"].append(st)
+            out["records"].append([{k: cols[k][j] for k in cols} for j in range(n)])
     except RunFileError:
         raise
     except (OSError, KeyError, TypeError, ValueError, OverflowError) as exc:
@@ -343,7 +333,7 @@ def _load_temper_checkpoint(path, config, params, configs, total) -> dict:
                 np.isfinite(st.re).all() and np.isfinite(st.im).all()):
             raise damaged()
         _check_state_ranges(st, c, path, last_sweep=total)
-        if getattr(c, "kind", "chiral") != "linear":
+        if models.get(c.kind).UNITARY:
             _check_unitary(st, c, path)
     return out
 
@@ -369,12 +359,12 @@ def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = 
     just before the slot files are committed; when the checkpoint exists the protocol continues from
     it (the slot files are rebuilt from it) and ends bit-identical to an uninterrupted one.
     """
-    from sigmasim.chain import MemorySink, make_simulation
+    from sigmasim.chain import MemorySink, Simulation
 
     t0 = time.monotonic()
     write = (params.write == "yes") if write is None else write
     configs = replica_configs(config, params.thetas, params.mass_scales)
-    sims = [make_simulation(c) for c in configs]
+    sims = [Simulation(c) for c in configs]
     sinks = []
     files = []
     checkpoint = Path(checkpoint) if (checkpoint is not None and write) else None
@@ -383,7 +373,7 @@ def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = 
     resumed = None
     if checkpoint is not None and checkpoint.exists():
         resumed = _load_temper_checkpoint(checkpoint, config, params, configs, total)
-        sims = [make_simulation(c, st) for c, st in zip(configs, resumed["states"])]
+        sims = [Simulation(c, st) for c, st in zip(configs, resumed["states"])]
     for i, (c, sim) in enumerate(zip(configs, sims)):
         mem = MemorySink()
         sk = [mem]
@@ -422,14 +412,19 @@ def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = 
         attempt_sweeps, attempt = resumed["attempt_sweeps"], resumed["attempt"]
         first = resumed["sweep"]  # its sweeps are done; its swap step is not
         t0 -= resumed["wall"]
+    therm, m_every = config.thermalize, config.measure_every
+
+    def measure_due(sweep):  # every slot measures after the same sweeps
+        past = sweep - therm
+        return past > 0 and past % m_every == 0
+
     last_saved = time.monotonic()
     for sweep in range(first, total + 1):
         if resumed is None or sweep > first:
             for sim, sk in zip(sims, sinks):
-                sim.sweep()
-                past = sim.state.sweep - sim.config.thermalize
-                if past > 0 and past % sim.config.measure_every == 0:
-                    rec = sim.measure()
+                # one sweep of each slot through chain.iterate: its field is checked finite before
+                # and after, so neither a checkpoint nor a slot file ever holds a non-finite field
+                for rec in sweeps(sim, 1, measure_due):
                     for s in sk:
                         s.record(sim, rec)
             if (sweep % config.checkpoint_every == 0
@@ -469,10 +464,10 @@ def run_tempering(config: RunConfig, params: TemperParams, write: bool | None = 
     if checkpoint is not None:
         checkpoint.unlink(missing_ok=True)
     replica_at = np.array(history)
-    sweeps = np.array(attempt_sweeps)
+    at_sweeps = np.array(attempt_sweeps)
     scales = np.ones(n_rep) if params.mass_scales is None else np.array(params.mass_scales)
     return TemperResult(np.array(params.thetas), [sk[0].arrays() for sk in sinks], tried, acc,
-                        replica_at, sweeps, _round_trips(replica_at, sweeps), files,
+                        replica_at, at_sweeps, _round_trips(replica_at, at_sweeps), files,
                         time.monotonic() - t0, np.array(measured, dtype=np.int64).reshape(-1, n_rep),
                         scales)
 

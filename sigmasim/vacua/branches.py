@@ -112,7 +112,9 @@ def measured_branch(omega_h, theta, nf: int) -> tuple:
 
 def potential_of_config(config) -> "ChiralPotential | None":
     """Tree-level potential of a run config (None for models without one, e.g. linear)."""
-    if getattr(config, "kind", "chiral") != "chiral":
+    from sigmasim import models
+
+    if not models.get(config.kind).CHIRAL_POTENTIAL:
         return None
     theta_m, theta_a = config.theta_angles
     return make_potential(list(config.mass), config.kappa, theta_m=theta_m, theta_a=theta_a,
