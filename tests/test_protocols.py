@@ -576,3 +576,31 @@ def test_tempering_stops_on_a_non_finite_field_before_its_checkpoint(tmp_path, m
     saved = read_tree(ckpt, states=("slot0", "slot1"))  # the one of sweep 4 stays, finite
     assert int(saved["@attrs"]["sweep"]) == 4
     assert all(np.isfinite(saved[s]["re"]).all() for s in ("slot0", "slot1"))
+
+
+def test_lifetimes_file_is_replaced_atomically(tmp_path, capsys, monkeypatch):
+    # a write that fails half-way (disk full) leaves the previous lifetimes file as it was
+    import errno
+    import pathlib
+
+    cfg = tmp_path / "l.toml"
+    cfg.write_text('name = "l"\nseed = 3\n[lattice]\nshape = [4, 4]\n'
+                   '[model]\nnf = 3\nbeta = 0.6\nmass = 0.5\nkappa = 2.0\ntheta = 4.5\n'
+                   '[updates]\nschedule = [{update = "heatbath", repeat = 1}]\n'
+                   '[run]\nstart = "branch"\nstart_branch = 0\nthermalize = 0\n'
+                   '[lifetimes]\nsizes = [2]\nstarts = 2\nmax_sweeps = 20\nstay = 3\nworkers = 1\n')
+    out = tmp_path / "lt.json"
+    assert lifetimes_command(str(cfg), str(out)) == 0
+    before = out.read_bytes()
+    real = pathlib.Path.write_text
+
+    def half(self, text, *a, **kw):
+        real(self, text[:20], *a, **kw)
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(pathlib.Path, "write_text", half)
+    with pytest.raises(RunFileError):
+        lifetimes_command(str(cfg), str(out))
+    monkeypatch.undo()
+    assert out.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["l.toml", "lt.json", "lt.png"]

@@ -506,10 +506,12 @@ def plot_sweep(result: SweepResult, path) -> Path:
         "research toy"
     fig.text(0.01, 0.01, cap, fontsize=7, wrap=True)
     fig.tight_layout(rect=(0, 0.05, 1, 1))
-    path = Path(path)
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-    return path
+    from sigmasim.storage import atomic_output
+
+    try:  # temporary name, fsync, rename: never a truncated figure
+        return atomic_output(Path(path), lambda tmp: fig.savefig(tmp, dpi=110, format="png"), what="figure")
+    finally:
+        plt.close(fig)
 
 
 def _jump_text(v) -> str:

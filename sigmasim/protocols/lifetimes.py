@@ -319,10 +319,12 @@ def plot_escape_times(result: LifetimeResult, path) -> Path:
     axes[0][0].set_ylabel("fraction not yet escaped")
     fig.text(0.01, 0.01, "escape-time distributions against the fitted laws. research toy", fontsize=7)
     fig.tight_layout(rect=(0, 0.05, 1, 1))
-    path = Path(path)
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-    return path
+    from sigmasim.storage import atomic_output
+
+    try:  # temporary name, fsync, rename: never a truncated figure
+        return atomic_output(Path(path), lambda tmp: fig.savefig(tmp, dpi=110, format="png"), what="figure")
+    finally:
+        plt.close(fig)
 
 
 def load_lifetimes(config_path) -> tuple[RunConfig, dict]:
@@ -369,9 +371,8 @@ def write_lifetimes(out, result: LifetimeResult, config: RunConfig, params: dict
             "times": {str(L): v.tolist() for L, v in res.times.items()},
             "escaped": {str(L): v.tolist() for L, v in res.escaped.items()},
             "config": config.to_dict(), "protocol": params}
-    try:
-        Path(out).parent.mkdir(parents=True, exist_ok=True)
-        Path(out).write_text(json.dumps(blob, indent=1, default=list))
-    except OSError as exc:
-        raise RunFileError(f"cannot write {out}: {exc.strerror}") from None
-    return Path(out)
+    from sigmasim.storage import atomic_output
+
+    text = json.dumps(blob, indent=1, default=list)
+    # temporary name, fsync, rename: a crash never leaves half a table (nor destroys the previous one)
+    return atomic_output(Path(out), lambda tmp: tmp.write_text(text), what="lifetimes file")
