@@ -320,7 +320,8 @@ def _open_checked(path: Path, mode: str = "r") -> h5py.File:
         v = f.attrs.get("format_version")
         if not (isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_))
                 and int(v) in READABLE_VERSIONS):
-            shown = v if isinstance(v, (int, np.integer, float, str, bytes)) else type(v).__name__
+            shown = (int(v) if isinstance(v, np.integer) else v if isinstance(v, (int, float, str, bytes))
+                     else type(v).__name__)
             raise RunFileError(f"{path} has format version {shown!r}; this sigmasim reads versions "
                                f"{', '.join(map(str, READABLE_VERSIONS))}")
     except RunFileError:

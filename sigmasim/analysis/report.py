@@ -216,11 +216,9 @@ def run_label(config, name: str | None = None) -> str:
     lat = "x".join(str(n) for n in c.shape)
     nm = f"{name}: " if name else ""
     hs = h if isinstance(h, str) else f"{h:g}"
-    if getattr(c, "kind", "chiral") == "linear":
-        return (f"{nm}linear {c.nf}x{c.nf} mu2={c.mu2:g} lambda1={c.lambda1:g} lambda2={c.lambda2:g} "
-                f"c={c.c:g} h={hs} theta={c.theta:.4g} lattice {lat}")
-    return (f"{nm}{c.group}({c.nf}) beta={c.beta:g} h={hs} "
-            f"kappa={c.kappa:g} theta={c.theta:.4g} lattice {lat}")
+    from sigmasim import models
+
+    return f"{nm}{models.get(c.kind).describe(c, hs)} lattice {lat}"
 
 
 # ----------------------------------------------------------------------------
