@@ -128,7 +128,7 @@ def _title(fig, ra, what):
 def _save(fig, out: Path, stem: str, name: str) -> list[Path]:
     paths = []
     for ext in ("png", "pdf"):
-        from sigmasim.storage import atomic_output  # temporary name, then rename: never truncated
+        from sigmasim.files import atomic_output  # temporary name, then rename: never truncated
 
         p = out / f"{stem}.{name}.{ext}"
         atomic_output(p, lambda tmp: fig.savefig(tmp, format=ext, dpi=120 if ext == "png" else None),
