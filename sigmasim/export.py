@@ -72,18 +72,15 @@ Which truths a run gets
 
 from __future__ import annotations
 
-import datetime as _dt
 import io
 import json
-import math
-import platform
-import subprocess
 from pathlib import Path
 
 import numpy as np
 
-from sigmasim import __version__
 from sigmasim.errors import ConfigError, RunFileError
+from sigmasim import files
+from sigmasim.files import json_text, provenance
 
 __all__ = [
     "SIDECAR_FORMAT",
@@ -135,53 +132,13 @@ def run_conventions(config) -> str:
 
     return f"{models.get(config.kind).CONVENTIONS}; {AXIS_NOTE}"
 
+
 RUN_UNITS = "lattice units (lattice spacing a = 1); actions are per site; slice sums are plain sums"
 
 
 # --------------------------------------------------------------------------
 # sidecar pieces
 # --------------------------------------------------------------------------
-
-
-def _git_commit() -> str:
-    here = Path(__file__).resolve().parent
-    try:
-        out = subprocess.run(["git", "rev-parse", "HEAD"], cwd=here, capture_output=True,
-                             text=True, timeout=5)
-    except (OSError, subprocess.SubprocessError):
-        return "unknown"
-    return out.stdout.strip() if out.returncode == 0 else "unknown"
-
-
-def provenance(**extra) -> dict:
-    """Versions, commit and time of the process writing a sidecar."""
-    d = {
-        "sigmasim": __version__,
-        "git_commit": _git_commit(),
-        "python": platform.python_version(),
-        "numpy": np.__version__,
-        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
-    }
-    d.update(extra)
-    return d
-
-
-def _clean(x):
-    """JSON-safe copy (numpy scalars and arrays to Python, non-finite floats to None)."""
-    if isinstance(x, dict):
-        return {str(k): _clean(v) for k, v in x.items()}
-    if isinstance(x, (list, tuple)):
-        return [_clean(v) for v in x]
-    if isinstance(x, np.ndarray):
-        return _clean(x.tolist())
-    if isinstance(x, (np.integer,)):
-        return int(x)
-    if isinstance(x, (float, np.floating)):
-        x = float(x)
-        return x if math.isfinite(x) else None
-    if isinstance(x, (np.bool_,)):
-        return bool(x)
-    return x
 
 
 def truth_entry(value, how: str, source: str, description: str, error=None) -> dict:
@@ -265,7 +222,7 @@ def write_arrays(prefix, arrays: dict, entries: list[dict], fmt: str, sidecar: d
             if t.exists() or t.is_symlink():
                 raise RunFileError(f"refusing to overwrite {t}: it exists (use --overwrite to replace it)")
     entries = [dict(e) for e in entries]
-    from sigmasim.storage import atomic_output, check_space, hdf5_bytes
+    from sigmasim.storage import hdf5_bytes
 
     # every file is rendered in memory first, so the free space is checked for the whole export
     # before the first one is written
@@ -299,14 +256,14 @@ def write_arrays(prefix, arrays: dict, entries: list[dict], fmt: str, sidecar: d
             e["columns"] = cols
     doc = {"format": SIDECAR_FORMAT, "format_version": SIDECAR_VERSION, **sidecar,
            "data_format": fmt, "files": [t.name for t in targets], "arrays": entries}
-    text = json.dumps(_clean(doc), indent=1, allow_nan=False) + "\n"
-    files = list(zip(targets, blobs)) + [(side, text.encode())]
-    check_space(targets[0], sum(len(d) + 4096 for _, d in files), what="export")
+    text = json_text(doc)
+    outputs = list(zip(targets, blobs)) + [(side, text.encode())]
+    files.check_space(targets[0], sum(len(d) + 4096 for _, d in outputs), what="export")
     written = []
     try:
-        for t, data in files:
-            atomic_output(t, lambda tmp, data=data: tmp.write_bytes(data),
-                          what="export sidecar" if t == side else "export")
+        for t, data in outputs:
+            files.atomic_output(t, lambda tmp, data=data: tmp.write_bytes(data),
+                                what="export sidecar" if t == side else "export")
             written.append(t)
     except BaseException:
         for t in written:  # only the files this call wrote, so a failed export leaves nothing

@@ -172,24 +172,14 @@ def info_text(path) -> str:
         except (OSError, ValueError) as exc:
             raise RunFileError(f"{path}: cannot read as npz ({type(exc).__name__})") from None
         return f"{path}: npz arrays: " + ", ".join(f"{k} {list(s)}" for k, s in arrays.items())
-    import h5py
-
     from sigmasim.protocols import SWEEP_FORMAT
     from sigmasim.scan import INDEX_FORMAT
+    from sigmasim.storage import hdf5_datasets, hdf5_root_attrs
 
-    attrs = {}
-    try:
-        with h5py.File(path, "r") as f:
-            for k in ("format", "sweep", "scan", "base_config"):  # only these, and only plain values
-                v = f.attrs.get(k)
-                if isinstance(v, bytes):
-                    v = v.decode("utf-8", "replace")
-                if isinstance(v, (str, int, float)) or getattr(v, "shape", None) == ():
-                    attrs[k] = v
+    try:  # only these, and only plain values
+        attrs = hdf5_root_attrs(path, ("format", "sweep", "scan", "base_config"))
     except OSError:
         raise RunFileError(f"{path} is not a readable HDF5, JSON, CSV or npz file") from None
-    except Exception:  # a damaged attribute: the run-file reader below names the problem
-        attrs = {}
     fmt = attrs.get("format")
     if fmt == SWEEP_FORMAT:
         return _sweep_file(path)
@@ -197,8 +187,7 @@ def info_text(path) -> str:
         return _index_h5(path, attrs)
     if fmt == "sigmasim-export":
         try:
-            with h5py.File(path, "r") as f:
-                shapes = {k: list(f[k].shape) for k in f if isinstance(f[k], h5py.Dataset)}
+            shapes = hdf5_datasets(path)
         except Exception:
             raise RunFileError(f"{path}: cannot read the exported arrays") from None
         return f"{path}: sigmasim export (HDF5): " + ", ".join(f"{k} {s}" for k, s in shapes.items())

@@ -465,9 +465,9 @@ def _read_failures(spec: ScanSpec) -> dict:
 
 
 def _atomic_write(path: Path, text: str) -> None:
-    from sigmasim.storage import atomic_output  # per-process temporary name; removed on failure
+    from sigmasim.files import atomic_text  # per-process temporary name; removed on failure
 
-    atomic_output(path, lambda tmp: tmp.write_text(text), what="scan file")
+    atomic_text(path, text, what="scan file")
 
 
 class _Display:
@@ -714,7 +714,7 @@ def _cell(v) -> str:
 
 
 def _write_csv(path: Path, columns, rows) -> None:
-    from sigmasim.storage import atomic_output  # per-process temporary name; removed on failure
+    from sigmasim.files import atomic_output  # per-process temporary name; removed on failure
 
     def write(tmp):
         with open(tmp, "w", newline="") as fh:
@@ -727,9 +727,7 @@ def _write_csv(path: Path, columns, rows) -> None:
 
 
 def _write_h5(path: Path, columns, rows, spec: ScanSpec) -> None:
-    import h5py
-
-    text = h5py.string_dtype("utf-8")
+    from sigmasim.storage import TEXT_DTYPE as text
     from sigmasim.storage import atomic_hdf5  # built in memory, then a per-process temporary name
 
     def write(f):
@@ -753,19 +751,9 @@ def _write_h5(path: Path, columns, rows, spec: ScanSpec) -> None:
 
 def read_index(path) -> dict:
     """The columns of an ``index.h5`` as a dict of numpy arrays (one-line error on a foreign file)."""
-    import h5py
+    from sigmasim.storage import read_columns
 
-    try:
-        with h5py.File(path, "r") as f:
-            if f.attrs.get("format") != INDEX_FORMAT:
-                raise RunFileError(f"{path} is not a sigmasim scan index")
-            g = f["index"]
-            cols = json.loads(g.attrs["columns"])
-            return {c: (g[c].asstr()[...] if g[c].dtype.kind == "O" else g[c][...]) for c in cols}
-    except SigmasimError:
-        raise
-    except Exception as exc:
-        raise RunFileError(f"{path}: cannot read ({type(exc).__name__})") from None
+    return read_columns(path, INDEX_FORMAT, "index", "sigmasim scan index")
 
 
 def format_index(spec: ScanSpec, points: list[Point]) -> str:

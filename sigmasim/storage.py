@@ -30,27 +30,27 @@ Nothing is ever unpickled: strings are JSON.
 
 from __future__ import annotations
 
-import datetime as _dt
 import io
 import json
 import os
-import platform
 import re
 import shutil
-import subprocess
 import time
 from pathlib import Path
 
 import h5py
 import numpy as np
 
-from sigmasim import __version__, models
+from sigmasim import files, models
 from sigmasim.chain import ChainState
 from sigmasim.config import RunConfig, config_from_dict
-from sigmasim.errors import ConfigError, RunFileError, SigmasimError, shown
+from sigmasim.errors import ConfigError, RunFileError, SigmasimError
+from sigmasim.files import atomic_output, check_space, now as _now, shown_path as _p, size_text as _size
+from sigmasim.files import strerror as _strerror
 
+# atomic_output and check_space live in sigmasim.files (re-exported here for the protocol writers)
 __all__ = ["RunWriter", "RunData", "open_run", "read_state", "FORMAT", "FORMAT_VERSION",
-           "check_writable", "take_lock", "release_lock", "lock_path", "free_bytes", "atomic_output",
+           "check_writable", "take_lock", "release_lock", "lock_path", "atomic_output",
            "atomic_hdf5", "hdf5_bytes", "check_space"]
 
 FORMAT = "sigmasim-run"
@@ -58,47 +58,10 @@ FORMAT_VERSION = 2
 READABLE_VERSIONS = (1, 2)
 
 
-def _now() -> str:
-    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
-
-
-def _git_commit() -> str:
-    here = Path(__file__).resolve().parent
-    try:
-        out = subprocess.run(["git", "rev-parse", "HEAD"], cwd=here, capture_output=True, text=True,
-                             timeout=5)
-    except (OSError, subprocess.SubprocessError):
-        return "unknown"
-    return out.stdout.strip() if out.returncode == 0 else "unknown"
-
-
 def _provenance(config: RunConfig) -> dict:
     import numba
 
-    return {
-        "sigmasim": __version__,
-        "git_commit": _git_commit(),
-        "python": platform.python_version(),
-        "numpy": np.__version__,
-        "numba": numba.__version__,
-        "h5py": h5py.__version__,
-        "seed": config.seed,
-    }
-
-
-def _p(path) -> str:
-    """A path for an error line: as is when short, cut to about 200 characters when long."""
-    text = str(path)
-    return text if len(text) <= 200 and text.isprintable() else shown(text)
-
-
-def _size(n: int) -> str:
-    return f"{n / 2**20:.1f} MiB" if n >= 2**20 else f"{n / 2**10:.0f} KiB"
-
-
-def free_bytes(folder: Path) -> int:
-    """Free bytes on the file system holding ``folder`` (tests replace this probe)."""
-    return shutil.disk_usage(folder).free
+    return files.provenance(created=False, numba=numba.__version__, h5py=h5py.__version__, seed=config.seed)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -213,37 +176,6 @@ def release_lock(lock: Path) -> None:
     os.close(fd)
 
 
-def atomic_output(path: Path, write, what: str = "output") -> Path:
-    """Write ``path`` through ``write(tmp_path)`` into a temporary name, then rename it into place.
-
-    A failure leaves no truncated file at ``path`` (the previous one, if any, stays) and becomes one
-    line naming the problem.
-    """
-    path = Path(path)
-    tmp = path.with_name(f".{path.name[:120]}.{os.getpid()}.tmp")  # unique to this process
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        write(tmp)
-        with open(tmp, "rb+") as fh:
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except (OSError, RuntimeError) as exc:  # h5py reports some write failures as RuntimeError
-        try:
-            tmp.unlink(missing_ok=True)
-        except OSError:
-            pass
-        why = _strerror(exc)
-        raise RunFileError(f"could not write the {what} {_p(path)} ({why}); "
-                           "nothing was left behind") from None
-    except BaseException:
-        try:
-            tmp.unlink(missing_ok=True)
-        except OSError:
-            pass
-        raise
-    return path
-
-
 def hdf5_bytes(build) -> bytes:
     """The bytes of an HDF5 file whose content ``build(f)`` creates in an open ``h5py.File`` (built
     in memory: HDF5 writing straight to a full disk can take the process down while it closes the
@@ -254,29 +186,56 @@ def hdf5_bytes(build) -> bytes:
     return buf.getvalue()
 
 
-def check_space(path: Path, need_bytes: int, what: str = "output") -> None:
-    """Refuse (one line naming the full disk) when the folder of ``path`` has less than
-    ``need_bytes`` (plus slack for block rounding) free; creates the folder."""
-    path = Path(path)
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        free = free_bytes(path.parent)
-    except OSError as exc:
-        raise RunFileError(f"could not write the {what} {_p(path)} ({_strerror(exc)}); "
-                           "nothing was left behind") from None
-    need = need_bytes + (16 << 10)
-    if free < need:
-        raise RunFileError(f"could not write the {what} {_p(path)} (No space left on device: needs about "
-                           f"{_size(need)}, {_size(free)} free); nothing was left behind")
-
-
 def atomic_hdf5(path: Path, build, what: str = "output") -> Path:
     """Write a small HDF5 file ``path`` whose content ``build(f)`` creates in an open ``h5py.File``:
     built in memory (:func:`hdf5_bytes`), checked against the free space, then written through
     :func:`atomic_output`."""
     data = hdf5_bytes(build)
-    check_space(path, len(data), what)
-    return atomic_output(path, lambda tmp: tmp.write_bytes(data), what=what)
+    files.check_space(path, len(data), what)
+    return files.atomic_output(path, lambda tmp: tmp.write_bytes(data), what=what)
+
+
+def hdf5_root_attrs(path, keys) -> dict:
+    """The root attributes ``keys`` of an HDF5 file that are plain strings or numbers (bytes
+    decoded); raises OSError when ``path`` is not a readable HDF5 file, gives {} when an attribute
+    is damaged (a reader that knows the format names the problem)."""
+    out = {}
+    with h5py.File(path, "r") as f:
+        try:
+            for k in keys:
+                v = f.attrs.get(k)
+                if isinstance(v, bytes):
+                    v = v.decode("utf-8", "replace")
+                if isinstance(v, (str, int, float)) or getattr(v, "shape", None) == ():
+                    out[k] = v
+        except Exception:  # a damaged attribute
+            return {}
+    return out
+
+
+TEXT_DTYPE = h5py.string_dtype("utf-8")  # variable-length UTF-8 strings (scan index columns)
+
+
+def read_columns(path, fmt: str, group: str, what: str) -> dict:
+    """The columns of table ``group`` of an HDF5 file whose ``format`` attribute is ``fmt`` (column
+    names in the group's JSON ``columns`` attribute; strings decoded); one-line errors."""
+    try:
+        with h5py.File(path, "r") as f:
+            if f.attrs.get("format") != fmt:
+                raise RunFileError(f"{path} is not a {what}")
+            g = f[group]
+            cols = json.loads(g.attrs["columns"])
+            return {c: (g[c].asstr()[...] if g[c].dtype.kind == "O" else g[c][...]) for c in cols}
+    except SigmasimError:
+        raise
+    except Exception as exc:
+        raise RunFileError(f"{path}: cannot read ({type(exc).__name__})") from None
+
+
+def hdf5_datasets(path) -> dict:
+    """Name -> shape (list) of the datasets at the root of an HDF5 file."""
+    with h5py.File(path, "r") as f:
+        return {k: list(f[k].shape) for k in f if isinstance(f[k], h5py.Dataset)}
 
 
 def check_writable(path: Path, need_bytes: int) -> None:
@@ -289,7 +248,7 @@ def check_writable(path: Path, need_bytes: int) -> None:
     if not os.access(folder, os.W_OK | os.X_OK):
         raise RunFileError(f"the output folder {_p(folder)} is not writable")
     try:
-        free = free_bytes(folder)
+        free = files.free_bytes(folder)
     except OSError as exc:
         raise RunFileError(f"cannot use the output folder {_p(folder)}: {_strerror(exc)}") from None
     if free < need_bytes:
@@ -320,7 +279,8 @@ def _open_checked(path: Path, mode: str = "r") -> h5py.File:
         v = f.attrs.get("format_version")
         if not (isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_))
                 and int(v) in READABLE_VERSIONS):
-            shown = v if isinstance(v, (int, np.integer, float, str, bytes)) else type(v).__name__
+            shown = (int(v) if isinstance(v, np.integer) else v if isinstance(v, (int, float, str, bytes))
+                     else type(v).__name__)
             raise RunFileError(f"{path} has format version {shown!r}; this sigmasim reads versions "
                                f"{', '.join(map(str, READABLE_VERSIONS))}")
     except RunFileError:
@@ -567,7 +527,7 @@ class RunWriter:
     def _commit(self, sim, status: str) -> None:
         need = self._need_bytes()
         try:
-            free = free_bytes(self.path.parent)
+            free = files.free_bytes(self.path.parent)
         except OSError:
             free = need
         if free < need:
@@ -644,13 +604,6 @@ def _close_quietly(f) -> None:
         f.close()
     except Exception:  # the close of a file whose write failed can fail again; nothing to save
         pass
-
-
-def _strerror(exc: BaseException) -> str:
-    text = " ".join(str(getattr(exc, "strerror", None) or exc).split()) or type(exc).__name__
-    if getattr(exc, "errno", None) == 28 or "errno = 28" in text:  # HDF5 wraps ENOSPC in a long text
-        return "No space left on device"
-    return text
 
 
 def write_state_group(g, st: ChainState) -> None:

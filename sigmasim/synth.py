@@ -59,7 +59,8 @@ import numpy as np
 import scipy.signal
 
 from sigmasim.errors import ConfigError
-from sigmasim.export import array_entry, provenance, truth_entry, write_arrays
+from sigmasim.export import array_entry, truth_entry, write_arrays
+from sigmasim.files import provenance
 
 __all__ = [
     "KINDS",

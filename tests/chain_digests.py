@@ -143,6 +143,9 @@ def as_version1(digests: dict) -> dict:
 
 def run_digests(names=None, folder=None) -> dict:
     """Run the configs through ``sigmasim run`` and return name -> file digests."""
+    import contextlib
+    import io
+
     from sigmasim.cli import main
 
     names = list(CONFIGS) if names is None else names
@@ -154,11 +157,12 @@ def run_digests(names=None, folder=None) -> dict:
             raw = {"name": name, **raw, "run": {**raw["run"], "output": str(tmp / "runs"), "threads": 1}}
             cfg = tmp / f"{name}.toml"
             cfg.write_text(_toml(raw))
-            assert main(["run", str(cfg), "--quiet"]) == 0, name
-            if extend is not None:
-                raw["run"]["measurements"] += extend
-                cfg.write_text(_toml(raw))
-                assert main(["run", str(cfg), "--quiet", "--resume"]) == 0, name
+            with contextlib.redirect_stdout(io.StringIO()):  # the summary tables
+                assert main(["run", str(cfg), "--quiet"]) == 0, name
+                if extend is not None:
+                    raw["run"]["measurements"] += extend
+                    cfg.write_text(_toml(raw))
+                    assert main(["run", str(cfg), "--quiet", "--resume"]) == 0, name
             d = file_digests(tmp / "runs" / name / f"{name}.h5")
             if raw["model"].get("kind") == "linear":
                 d = as_version1(d)

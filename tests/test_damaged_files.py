@@ -85,7 +85,7 @@ TAMPER = {
     "no format attribute": (_del_attr("format"), False),
     "other format": (_attr("format", "other-program"), False),
     "format is a number": (_attr("format", 7), False),
-    "format version 2": (_attr("format_version", 2), False),
+    "format version 3": (_attr("format_version", 3), False),
     "format version as text": (_attr("format_version", "1"), False),
     "format version array": (_attr("format_version", np.array([1, 1])), False),
     "no format version": (_del_attr("format_version"), False),

@@ -150,12 +150,12 @@ def _snapshot(folder: Path) -> dict:
 # --------------------------------------------------------------- the free-space probe says full
 @pytest.mark.parametrize("which", sorted(WRITERS))
 def test_a_small_hdf5_output_on_a_nearly_full_disk_is_refused_in_one_line(which, tmp_path, capsys, monkeypatch):
-    import sigmasim.storage as storage
+    import sigmasim.files as files
 
     out = tmp_path / "o" / "out.h5"
     out.parent.mkdir(parents=True)
     out.write_bytes(b"previous")
-    monkeypatch.setattr(storage, "free_bytes", lambda folder: 100 << 10)
+    monkeypatch.setattr(files, "free_bytes", lambda folder: 100 << 10)
     rc = _call(which, out)
     err = capsys.readouterr().err
     assert rc == 2, err
@@ -165,12 +165,12 @@ def test_a_small_hdf5_output_on_a_nearly_full_disk_is_refused_in_one_line(which,
 
 
 def test_the_sweep_command_on_a_nearly_full_disk_exits_2_with_one_line(tmp_path, capsys, monkeypatch):
-    import sigmasim.storage as storage
+    import sigmasim.files as files
 
     out = tmp_path / "full" / "sw.h5"
     out.parent.mkdir()
     out.write_bytes(b"previous")
-    monkeypatch.setattr(storage, "free_bytes", lambda folder: 100 << 10)
+    monkeypatch.setattr(files, "free_bytes", lambda folder: 100 << 10)
     assert write_sweep_cli(out) == 2
     err = capsys.readouterr().err
     _one_line(err)
@@ -206,7 +206,7 @@ def test_a_small_hdf5_output_on_a_really_full_disk_never_crashes(which, small_di
     out = small_disk / "o" / "out.h5"
     out.parent.mkdir()
     out.write_bytes(b"previous")
-    script = ("import sys; import sigmasim.storage as s; s.free_bytes = lambda folder: 1 << 40; "
+    script = ("import sys; import sigmasim.files as s; s.free_bytes = lambda folder: 1 << 40; "
               "import test_disk_full_outputs as t; from pathlib import Path; "
               "sys.exit(t._call(sys.argv[1], Path(sys.argv[2])))")
     for leave in (8 << 10, 40 << 10, 100 << 10):  # ENOSPC in different places of the file
@@ -230,13 +230,13 @@ def _csv_arrays():
 
 
 def test_a_csv_export_checks_the_free_space_for_all_its_files_first(tmp_path, monkeypatch):
-    import sigmasim.storage as storage
+    import sigmasim.files as files
     from sigmasim.errors import RunFileError
     from sigmasim.export import write_arrays
 
     arrays, entries = _csv_arrays()
     one = len(",".join(f"{x:.17g}" for x in arrays["a"][0])) * len(arrays["a"])
-    monkeypatch.setattr(storage, "free_bytes", lambda folder: int(2.5 * one))  # room for two files
+    monkeypatch.setattr(files, "free_bytes", lambda folder: int(2.5 * one))  # room for two files
     (tmp_path / "keep.csv").write_text("not ours\n")
     with pytest.raises(RunFileError, match="No space left on device"):
         write_arrays(tmp_path / "x", arrays, entries, "csv", {})
@@ -246,14 +246,14 @@ def test_a_csv_export_checks_the_free_space_for_all_its_files_first(tmp_path, mo
 def test_a_csv_export_that_fails_on_a_later_file_removes_the_files_it_wrote(tmp_path, monkeypatch, capsys):
     import errno
 
-    import sigmasim.storage as storage
+    import sigmasim.files as files
     from sigmasim.errors import RunFileError
     from sigmasim.export import write_arrays
 
     arrays, entries = _csv_arrays()
     (tmp_path / "keep.csv").write_text("not ours\n")
     (tmp_path / "x_d.csv").write_text("an older export, replaced only by a complete one\n")
-    real = storage.atomic_output
+    real = files.atomic_output
     calls = []
 
     def flaky(path, write, what="output"):  # the disk fills up while the third file is written
@@ -263,7 +263,7 @@ def test_a_csv_export_that_fails_on_a_later_file_removes_the_files_it_wrote(tmp_
             raise OSError(errno.ENOSPC, "No space left on device")
         return real(path, failing if len(calls) == 3 else write, what)
 
-    monkeypatch.setattr(storage, "atomic_output", flaky)
+    monkeypatch.setattr(files, "atomic_output", flaky)
     with pytest.raises(RunFileError, match="No space left on device.*nothing was left behind"):
         write_arrays(tmp_path / "x", arrays, entries, "csv", {})
     assert len(calls) == 3

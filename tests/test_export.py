@@ -184,3 +184,37 @@ def test_bad_input_is_one_line(runs, tmp_path, capsys):
     assert runs["u2"].read_bytes() == before
     assert export_command(str(runs["u2"]), "npz", str(tmp_path / "ok")) == 0
     assert "sidecar" in capsys.readouterr().out
+
+
+def _linear_run(tmp_path):
+    from sigmasim.chain import make_simulation
+
+    cfg = config_from_dict({
+        "name": "lin", "seed": 5, "lattice": {"shape": [4, 2]},
+        "model": {"kind": "linear", "nf": 2, "mu2": 0.5, "lambda1": 0.2, "c": 0.1, "theta": 1.0},
+        "updates": {"schedule": [{"update": "heatbath"}]},
+        "run": {"thermalize": 2, "measurements": 6, "output": str(tmp_path)},
+    })
+    cfg.run_dir.mkdir(parents=True, exist_ok=True)
+    run_chain(make_simulation(cfg), (RunWriter(cfg, cfg.run_file),))
+    return cfg.run_file
+
+
+def test_linear_export_carries_the_linear_action(tmp_path):
+    """The sidecar of a linear run states the linear model's action, not the chiral one."""
+    paths, side = _truth(_linear_run(tmp_path))
+    conv = side["conventions"]
+    assert "Tr|Phi_{x+mu} - Phi_x|^2" in conv and "lambda1" in conv
+    assert "beta" not in conv and "U_x" not in conv
+    assert "axis 0 of every array is the measurement" in conv
+    with np.load(paths[0]) as z:
+        names = set(z.files)
+    assert "slice_Phi" in names and "slice_U" not in names and "action_beta" not in names
+    entries = {e["name"]: e for e in side["arrays"]}
+    assert "Phi" in entries["omega"]["description"] and "Phi" in entries["slice_Phi"]["convention"]
+
+
+def test_chiral_export_keeps_the_chiral_action(runs):
+    _, side = _truth(runs["tree"])
+    assert side["conventions"].startswith("S = -beta sum_{x,mu} Re Tr(U_x^+ U_{x+mu})")
+    assert "Phi" not in side["conventions"]

@@ -282,12 +282,12 @@ def test_a_signal_at_start_up_exits_130_without_a_traceback(tmp_path, sig):
 # ---------------------------------------------------------------- 2. full disks
 def test_a_full_disk_before_a_checkpoint_is_one_line_and_the_last_checkpoint_survives(
         stopped_run, tmp_path, capsys, monkeypatch):
-    import sigmasim.storage as storage
+    import sigmasim.files as files
 
     out = tmp_path / "o"
     shutil.copytree(stopped_run["cfg"].run_dir, out / "ho")
     before = contents(out / "ho" / "ho.h5")
-    monkeypatch.setattr(storage, "free_bytes", lambda folder: 200_000)
+    monkeypatch.setattr(files, "free_bytes", lambda folder: 200_000)
     rc = main(["run", str(stopped_run["toml"]), "--output", str(out), "--resume", "--quiet"])
     err = capsys.readouterr().err
     assert rc == 2
@@ -320,7 +320,7 @@ def test_a_really_full_disk_during_checkpoints_never_crashes(stopped_run, small_
     out = small_disk / "o"
     shutil.copytree(stopped_run["cfg"].run_dir, out / "ho")
     size = (out / "ho" / "ho.h5").stat().st_size
-    script = ("import sys; import sigmasim.storage as s; s.free_bytes = lambda folder: 1 << 40; "
+    script = ("import sys; import sigmasim.files as s; s.free_bytes = lambda folder: 1 << 40; "
               "from sigmasim.cli import main; sys.exit(main(sys.argv[1:]))")
     codes = []
     for leave in (size // 2, size + 2_000, size + 30_000):

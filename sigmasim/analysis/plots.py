@@ -114,8 +114,11 @@ def legend_outside(ax, **kw):
     return ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0, **kw)
 
 
-def _is_linear(config) -> bool:
-    return getattr(config, "kind", "chiral") == "linear"
+def _field_tex(config) -> str:
+    """The field's symbol of the config's model (U_x, Phi_x)."""
+    from sigmasim import models
+
+    return models.get(config.kind).FIELD_TEX
 
 
 def _title(fig, ra, what):
@@ -125,7 +128,7 @@ def _title(fig, ra, what):
 def _save(fig, out: Path, stem: str, name: str) -> list[Path]:
     paths = []
     for ext in ("png", "pdf"):
-        from sigmasim.storage import atomic_output  # temporary name, then rename: never truncated
+        from sigmasim.files import atomic_output  # temporary name, then rename: never truncated
 
         p = out / f"{stem}.{name}.{ext}"
         atomic_output(p, lambda tmp: fig.savefig(tmp, format=ext, dpi=120 if ext == "png" else None),
@@ -161,7 +164,7 @@ def plot_phase_history(ra, ax=None):
     ax.set_xlabel("sweep")
     if t is not None and fig is not None:
         ax.set_xlabel("")
-    field = r"\Phi_x" if _is_linear(c) else "U_x"
+    field = _field_tex(c)
     ax.set_ylabel(rf"arg $\Omega_h$,  $\Omega_h = e^{{i\theta_m}}\sum_x \mathrm{{Tr}}\,{field}/(N_f V)$")
     legend_outside(ax)
     b = getattr(ra, "branch", None)
@@ -266,7 +269,7 @@ def plot_omega_plane(ra, ax=None):
     az.set_title("zoom on the measurements", fontsize=8)
     cb = fig.colorbar(h[3], ax=az, shrink=0.8)
     cb.set_label("measurements per bin")
-    field = r"\Phi_x" if _is_linear(c) else "U_x"
+    field = _field_tex(c)
     fig.suptitle(rf"$\Omega_h = e^{{i\theta_m}}\sum_x \mathrm{{Tr}}\,{field}\,/\,(N_f V)$, after the "
                  f"thermalisation cut\n{ra.label} -- {_TOY}", fontsize=9)
     return fig

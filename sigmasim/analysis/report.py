@@ -216,11 +216,9 @@ def run_label(config, name: str | None = None) -> str:
     lat = "x".join(str(n) for n in c.shape)
     nm = f"{name}: " if name else ""
     hs = h if isinstance(h, str) else f"{h:g}"
-    if getattr(c, "kind", "chiral") == "linear":
-        return (f"{nm}linear {c.nf}x{c.nf} mu2={c.mu2:g} lambda1={c.lambda1:g} lambda2={c.lambda2:g} "
-                f"c={c.c:g} h={hs} theta={c.theta:.4g} lattice {lat}")
-    return (f"{nm}{c.group}({c.nf}) beta={c.beta:g} h={hs} "
-            f"kappa={c.kappa:g} theta={c.theta:.4g} lattice {lat}")
+    from sigmasim import models
+
+    return f"{nm}{models.get(c.kind).describe(c, hs)} lattice {lat}"
 
 
 # ----------------------------------------------------------------------------
@@ -809,9 +807,7 @@ def write_outputs(ra: RunAnalysis, json_path=None, csv_path=None) -> tuple[Path,
         dj, dc = output_paths(ra.path)
         json_path, csv_path = json_path or dj, csv_path or dc
     json_path, csv_path = Path(json_path), Path(csv_path)
-    from sigmasim.storage import atomic_output  # temporary name, fsync, rename: never truncated
-
-    text = json.dumps(analysis_dict(ra), indent=1, allow_nan=False) + "\n"
+    from sigmasim.files import atomic_output, write_json  # temporary name, fsync, rename: never truncated
 
     def write_csv(tmp):
         with open(tmp, "w", newline="") as fh:
@@ -822,7 +818,7 @@ def write_outputs(ra: RunAnalysis, json_path=None, csv_path=None) -> tuple[Path,
                                 else (f"{v:.10g}" if isinstance(v, float) else v))
                             for k, v in row.items()})
 
-    atomic_output(json_path, lambda tmp: tmp.write_text(text), what="analysis")
+    write_json(json_path, analysis_dict(ra), what="analysis")
     atomic_output(csv_path, write_csv, what="analysis")
     return json_path, csv_path
 

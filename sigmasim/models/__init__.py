@@ -18,6 +18,10 @@ The contract: a model module defines
     as ``slices/<name>``.
 ``FIELD_SLICE``
     the name in SLICES of the per-slice sums of the field matrix (correlators are built from it).
+``FIELD_TEX``
+    the field's symbol in figure labels (matplotlib mathtext).
+``describe(config, h) -> str``
+    the model and its couplings in one line (``h``: the masses, formatted).
 ``VERSION1_NAMES``
     run-file format version 1 name -> current name of a record (``series/...``, ``slices/...``);
     ``VERSION1_DROPPED``: version-1 records that are no longer written.

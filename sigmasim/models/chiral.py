@@ -43,6 +43,7 @@ SLICES = {
     "det": ("complex", "sum over the sites of time slice t of det U_x"),
 }
 FIELD_SLICE = "U"
+FIELD_TEX = "U_x"  # the field in figure labels (matplotlib mathtext)
 VERSION1_NAMES: dict = {}
 VERSION1_DROPPED: tuple = ()
 
@@ -57,6 +58,12 @@ ANOMALY = "kappa"
 CHIRAL_POTENTIAL = True
 UNITARY = True
 STEP_MAX = math.pi  # a rotation angle
+
+
+def describe(config, h: str) -> str:
+    """The model and its couplings in one line (``h``: the masses, formatted)."""
+    c = config
+    return f"{c.group}({c.nf}) beta={c.beta:g} h={h} kappa={c.kappa:g} theta={c.theta:.4g}"
 
 
 def _update(name):

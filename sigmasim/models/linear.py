@@ -73,6 +73,7 @@ SLICES = {
     "phi2": ("real", "sum over the sites of time slice t of Tr(Phi^+Phi)"),
 }
 FIELD_SLICE = "Phi"
+FIELD_TEX = r"\Phi_x"  # the field in figure labels (matplotlib mathtext)
 VERSION1_NAMES = {"slices/U": "slices/Phi"}
 VERSION1_DROPPED = ("series/action_beta",)  # a copy of action_kinetic
 
@@ -89,6 +90,13 @@ ANOMALY = "c"
 CHIRAL_POTENTIAL = False
 UNITARY = False
 STEP_MAX = 1e3  # Metropolis box half-width cap
+
+
+def describe(config, h: str) -> str:
+    """The model and its couplings in one line (``h``: the masses, formatted)."""
+    c = config
+    return (f"linear {c.nf}x{c.nf} mu2={c.mu2:g} lambda1={c.lambda1:g} lambda2={c.lambda2:g} "
+            f"c={c.c:g} h={h} theta={c.theta:.4g}")
 
 
 def _couplings(cfg):
