@@ -506,7 +506,7 @@ def plot_sweep(result: SweepResult, path) -> Path:
         "research toy"
     fig.text(0.01, 0.01, cap, fontsize=7, wrap=True)
     fig.tight_layout(rect=(0, 0.05, 1, 1))
-    from sigmasim.storage import atomic_output
+    from sigmasim.files import atomic_output
 
     try:  # temporary name, fsync, rename: never a truncated figure
         return atomic_output(Path(path), lambda tmp: fig.savefig(tmp, dpi=110, format="png"), what="figure")

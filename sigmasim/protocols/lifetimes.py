@@ -319,7 +319,7 @@ def plot_escape_times(result: LifetimeResult, path) -> Path:
     axes[0][0].set_ylabel("fraction not yet escaped")
     fig.text(0.01, 0.01, "escape-time distributions against the fitted laws. research toy", fontsize=7)
     fig.tight_layout(rect=(0, 0.05, 1, 1))
-    from sigmasim.storage import atomic_output
+    from sigmasim.files import atomic_output
 
     try:  # temporary name, fsync, rename: never a truncated figure
         return atomic_output(Path(path), lambda tmp: fig.savefig(tmp, dpi=110, format="png"), what="figure")
@@ -371,8 +371,7 @@ def write_lifetimes(out, result: LifetimeResult, config: RunConfig, params: dict
             "times": {str(L): v.tolist() for L, v in res.times.items()},
             "escaped": {str(L): v.tolist() for L, v in res.escaped.items()},
             "config": config.to_dict(), "protocol": params}
-    from sigmasim.storage import atomic_output
+    from sigmasim.files import atomic_text
 
-    text = json.dumps(blob, indent=1, default=list)
     # temporary name, fsync, rename: a crash never leaves half a table (nor destroys the previous one)
-    return atomic_output(Path(out), lambda tmp: tmp.write_text(text), what="lifetimes file")
+    return atomic_text(Path(out), json.dumps(blob, indent=1, default=list), what="lifetimes file")
