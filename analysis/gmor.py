@@ -3,7 +3,7 @@
 Scenario (our own): U(2), beta = 12, kappa = 0.24, theta = 0, lattice 16 x 6^2,
 h = 0.12, 0.24, 0.48, 0.96; heatbath + 3 overrelaxation sweeps.  At leading
 order in 1/beta the lattice pion obeys cosh E = 1 + M^2 / 2 with M^2 = h / beta
-(derivation in tests/test_masses.py), so M^2 = 4 sinh^2(E/2) should be a line
+(derivation in tests/test_analysis_masses.py), so M^2 = 4 sinh^2(E/2) should be a line
 through the origin; its slope times beta is 1 + O(1/beta).
 
 Writes into analysis/output/ (ignored by git: the folder carries its own

@@ -127,3 +127,15 @@ def fill_disk(folder, leave: int) -> None:
     free = shutil.disk_usage(folder).free
     with open(Path(folder) / "filler", "wb") as fh:
         fh.write(b"\0" * max(0, free - leave))
+
+
+def tiny_config_dict(kind: str = "chiral", nf: int = 2, shape=(4, 4), **run) -> dict:
+    """A run config of a few seconds for the model ``kind``, as the dict config_from_dict takes;
+    ``run`` keys go into ``[run]`` (one thread unless given)."""
+    model = {"kind": kind, "nf": nf, "mass": 0.3, "theta": 1.0}
+    if kind == "chiral":
+        model.update(beta=0.5, kappa=0.4)
+    else:  # the linear model: a bounded potential with broken symmetry (mu2 < 0)
+        model.update(mu2=-1.0, lambda1=0.1, lambda2=0.1, c=0.2)
+    return {"name": f"tiny-{kind}", "seed": 7, "lattice": {"shape": list(shape)}, "model": model,
+            "run": {"thermalize": 4, "measurements": 10, "threads": 1, **run}}

@@ -3,18 +3,12 @@ digests were stored before the models package and the one chain loop existed (te
 
 import json
 
-import numba
 import pytest
 
 import chain_digests
 
 
-@pytest.fixture(autouse=True)
-def one_thread():
-    old = numba.get_num_threads()
-    numba.set_num_threads(1)
-    yield
-    numba.set_num_threads(old)
+pytestmark = pytest.mark.usefixtures("one_thread")  # conftest: one numba thread
 
 
 def test_run_files_are_bit_identical_to_the_stored_digests(tmp_path):

@@ -21,14 +21,7 @@ ROOT = Path(__file__).resolve().parents[1]
 DATA = Path(__file__).with_name("data")
 
 
-@pytest.fixture(autouse=True)
-def one_thread():
-    import numba
-
-    old = numba.get_num_threads()
-    numba.set_num_threads(1)
-    yield
-    numba.set_num_threads(old)
+pytestmark = pytest.mark.usefixtures("one_thread")  # conftest: one numba thread
 
 
 def test_registry_lists_every_schema_kind():

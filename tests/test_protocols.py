@@ -2,7 +2,6 @@
 
 import math
 
-import numba
 import numpy as np
 import pytest
 
@@ -13,13 +12,7 @@ from sigmasim.protocols import (SweepParams, load_protocol, read_sweep, run_swee
                                 SWEEP_SCHEMA, tree_level, write_sweep)
 
 
-@pytest.fixture(autouse=True, scope="module")
-def one_thread():
-    # small lattices: threading overhead dominates, and results do not depend on the thread count
-    old = numba.get_num_threads()
-    numba.set_num_threads(1)
-    yield
-    numba.set_num_threads(old)
+pytestmark = pytest.mark.usefixtures("one_thread")  # conftest: one numba thread
 
 
 def u3_config(nf=3, seed=1):

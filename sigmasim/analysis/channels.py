@@ -39,7 +39,7 @@ Correlators (module :mod:`sigmasim.analysis.correlators` for the definitions):
 jackknife bin (leave-one-bin-out, :func:`sigmasim.analysis.resampling.jackknife`).
 
 Tree level (``phi = sum_a phi_a T_a``, ``T_0 = 1/sqrt(2 nf)`` for U(nf); see
-``tests/test_masses.py`` for the derivation): the quadratic action is
+``tests/test_analysis_masses.py`` for the derivation): the quadratic action is
 ``beta/4 sum_a [sum_mu (Delta_mu phi_a)^2 + m_a^2 phi_a^2]`` with
 ``m_pi^2 = h / beta`` and ``m_eta'^2 = (h + 2 kappa nf) / beta`` (degenerate
 ``h``, theta = 0), so ``C_pi(t) = C_free(t; m_pi^2) / (2 beta)`` and

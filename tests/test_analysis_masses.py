@@ -72,15 +72,7 @@ GMOR_H = (0.24, 0.48, 0.96)
 GMOR_KAPPA = 0.24
 
 
-@pytest.fixture(scope="module", autouse=True)
-def one_thread():
-    """One numba thread: robust timing on a shared machine (results do not depend on it)."""
-    import numba
-
-    old = numba.get_num_threads()
-    numba.set_num_threads(1)
-    yield
-    numba.set_num_threads(old)
+pytestmark = pytest.mark.usefixtures("one_thread")  # conftest: one numba thread
 
 
 @functools.lru_cache(maxsize=None)

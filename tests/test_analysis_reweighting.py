@@ -2,7 +2,6 @@
 
 import math
 
-import numba
 import numpy as np
 import pytest
 
@@ -14,12 +13,7 @@ from sigmasim.config import config_from_dict
 from sigmasim.exact import one_site_u
 
 
-@pytest.fixture(autouse=True, scope="module")
-def one_thread():
-    old = numba.get_num_threads()
-    numba.set_num_threads(1)
-    yield
-    numba.set_num_threads(old)
+pytestmark = pytest.mark.usefixtures("one_thread")  # conftest: one numba thread
 
 
 def run(theta, seed, shape, beta, meas, placement="mass", mass=0.5, kappa=0.5, nf=2):

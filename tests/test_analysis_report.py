@@ -35,15 +35,7 @@ from sigmasim.errors import RunFileError, SigmasimError
 from sigmasim.storage import RunWriter
 
 
-@pytest.fixture(scope="module", autouse=True)
-def one_thread():
-    """One numba thread: robust timing on a shared machine (results do not depend on it)."""
-    import numba
-
-    old = numba.get_num_threads()
-    numba.set_num_threads(1)
-    yield
-    numba.set_num_threads(old)
+pytestmark = pytest.mark.usefixtures("one_thread")  # conftest: one numba thread
 
 
 def write_run(folder, name="small", n_meas=400, nf=2, group="U", theta=0.0, kappa=0.2,

@@ -43,7 +43,6 @@ from __future__ import annotations
 import importlib.util
 from pathlib import Path
 
-import numba
 import numpy as np
 import pytest
 
@@ -59,13 +58,7 @@ from sigmasim.models.linear import tree_level_minimum, tree_level_potential
 ROOT = Path(__file__).resolve().parent.parent
 
 
-@pytest.fixture(autouse=True)
-def one_thread():
-    """Small lattices run faster on one thread (results do not depend on it)."""
-    old = numba.get_num_threads()
-    numba.set_num_threads(1)
-    yield
-    numba.set_num_threads(old)
+pytestmark = pytest.mark.usefixtures("one_thread")  # conftest: one numba thread
 
 
 def _linear(shape, seed, schedule, run, **model):

@@ -207,7 +207,7 @@ def test_a_small_hdf5_output_on_a_really_full_disk_never_crashes(which, small_di
     out.parent.mkdir()
     out.write_bytes(b"previous")
     script = ("import sys; import sigmasim.files as s; s.free_bytes = lambda folder: 1 << 40; "
-              "import test_disk_full_outputs as t; from pathlib import Path; "
+              "import test_storage_disk_full as t; from pathlib import Path; "
               "sys.exit(t._call(sys.argv[1], Path(sys.argv[2])))")
     for leave in (8 << 10, 40 << 10, 100 << 10):  # ENOSPC in different places of the file
         (small_disk / "filler").unlink(missing_ok=True)
