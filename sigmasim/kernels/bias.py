@@ -254,6 +254,7 @@ def biased_sweeps(re, im, nbr, nf, special, beta, hdiag, kappa, eta, nhits, n_or
     for sw in range(nsweeps):
         for colour in range(2):
             start = colour * half
+            stop = half if colour == 0 else vol  # V = 1 (a one-site check): colour 1 is the site
             key = step_key_nb(seed_hash, step, 0)
             tkey = step_key_nb(seed_hash, step, SALT_TABLE)
             if nf == 1:
@@ -264,18 +265,19 @@ def biased_sweeps(re, im, nbr, nf, special, beta, hdiag, kappa, eta, nhits, n_or
             else:
                 rotation_table(nf, special, step_size, tkey, table, tdet)
             xsum = variable_sum(re, im, nf, mode, cvar)
-            na, xsum = _metropolis_colour(re, im, nbr, start, start + half, nf, beta, hdiag, kappa, eta,
+            na, xsum = _metropolis_colour(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta,
                                           table, tdet, nhits, key, mode, cvar, vol, xsum, lo, dx, wtab,
                                           wall, scratch)
             counts[0] += na
-            counts[1] += half * nhits
+            counts[1] += (stop - start) * nhits
             step += 1
         for rep in range(n_or):
             for colour in range(2):
                 start = colour * half
+                stop = half if colour == 0 else vol
                 key = step_key_nb(seed_hash, step, 0)
                 xsum = variable_sum(re, im, nf, mode, cvar)
-                na, tried, xsum = _overrelax_colour(re, im, nbr, start, start + half, nf, special, beta,
+                na, tried, xsum = _overrelax_colour(re, im, nbr, start, stop, nf, special, beta,
                                                     hdiag, kappa, eta, key, mode, cvar, vol, xsum, lo, dx,
                                                     wtab, wall, perm, scratch)
                 counts[2] += na
