@@ -352,3 +352,251 @@ def round_trips(x, left: float, right: float) -> tuple[int, np.ndarray]:
                 done.append(i)
         state = r
     return len(done), np.asarray(done, dtype=np.int64)
+
+
+# ---------------------------------------------------------------------------
+# the protocol: [multicanonical] table, weight building, production, analysis
+# ---------------------------------------------------------------------------
+
+#: key -> (kind, default, meaning) of the [multicanonical] table
+MUCA_SCHEMA = {
+    "variable": ("choice", "im_omega_h", "collective variable: im_omega_h (Im omega_h, the per-site mean of "
+                 "Im(e^{i theta_m} Tr U) / nf) or im_det (per-site mean of Im(e^{i theta_a} det U), U(nf) only)"),
+    "range": ("range", [-0.6, 0.6], "[lo, hi] of the weight's histogram grid in the variable"),
+    "bins": ("int:2:100000", 24, "bins of the grid"),
+    "wall": ("real>=0", 10.0, "slope of the weight outside the grid, per bin width (a steep finite wall)"),
+    "wl_iterations": ("int:0:64", 8, "Wang-Landau iterations building the weight (0: W = 0, a plain run)"),
+    "wl_sweeps": ("int:1:1000000000", 500, "sweeps per Wang-Landau iteration"),
+    "wl_start": ("real>0", 0.5, "Wang-Landau increment of the first iteration, halved after each"),
+    "overrelax": ("int:0:100", 1, "overrelaxation passes per sweep (after the Metropolis pass)"),
+    "regions": ("regions", None, "optional [left, right]: a round trip goes x <= left -> x >= right -> "
+                "x <= left (default: the outer quarters of the grid)"),
+}
+
+
+def _num(v) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+
+
+def muca_params(sub: dict) -> dict:
+    """Validate a ``[multicanonical]`` table; returns every key with its default filled in.
+
+    Raises :class:`ConfigError` with one line naming the key and what is wrong.
+    """
+    if not isinstance(sub, dict):
+        raise ConfigError("[multicanonical] must be a table")
+    unknown = sorted(set(sub) - set(MUCA_SCHEMA))
+    if unknown:
+        raise ConfigError(f"unknown key multicanonical.{unknown[0]}; valid keys: {', '.join(MUCA_SCHEMA)}")
+    out = {}
+    for key, (kind, default, _) in MUCA_SCHEMA.items():
+        v = sub.get(key, default)
+        where = f"multicanonical.{key}"
+        if kind == "choice":
+            if v not in VARIABLES:
+                raise ConfigError(f"{where} must be one of {', '.join(VARIABLES)}, got {v!r}")
+        elif kind in ("range", "regions"):
+            if v is None and kind == "regions":
+                out[key] = None
+                continue
+            if not (isinstance(v, list) and len(v) == 2 and all(_num(t) for t in v) and v[0] < v[1]):
+                raise ConfigError(f"{where} must be two numbers [low, high] with low < high, got {v!r}")
+            v = [float(v[0]), float(v[1])]
+        elif kind.startswith("int:"):
+            lo, hi = (int(t) for t in kind[4:].split(":"))
+            if not (isinstance(v, int) and not isinstance(v, bool) and lo <= v <= hi):
+                raise ConfigError(f"{where} must be an integer in [{lo}, {hi}], got {v!r}")
+        elif kind in ("real>0", "real>=0"):
+            ok = _num(v) and (v > 0 if kind == "real>0" else v >= 0)
+            if not ok:
+                raise ConfigError(f"{where} must be a finite number {kind[4:]}, got {v!r}")
+            v = float(v)
+        out[key] = v
+    lo, hi = out["range"]
+    if out["regions"] is not None and not (lo <= out["regions"][0] and out["regions"][1] <= hi):
+        raise ConfigError(f"multicanonical.regions {out['regions']} must lie inside multicanonical.range {out['range']}")
+    if out["variable"] == "im_omega_h" and (lo < -1.0 or hi > 1.0):
+        raise ConfigError(f"multicanonical.range {out['range']} must lie inside [-1, 1] (|Im omega_h| <= 1)")
+    return out
+
+
+def check_config(config: RunConfig, params: dict) -> None:
+    """Refuse configs the multicanonical chain cannot run (one line)."""
+    if config.kind != "chiral":
+        raise ConfigError("multicanonical sampling supports the chiral model only (model.kind = 'chiral')")
+    if params["variable"] == "im_det" and config.special:
+        raise ConfigError("multicanonical.variable = 'im_det' needs model.group = 'U' (det U = 1 for SU(nf))")
+
+
+@dataclass
+class MucaResult:
+    """What :func:`run_multicanonical` returns (see :func:`multicanonical_command` for the file)."""
+
+    config: RunConfig
+    params: dict
+    weight: Weight
+    wl: list
+    run: BiasedRun
+    profile: dict
+    averages: dict
+    round_trips: int
+    regions: tuple
+    seconds: dict
+
+    @property
+    def round_trip_sweeps(self) -> float:
+        """Production sweeps per completed round trip (inf without one)."""
+        sweeps = self.run.x.size * self.config.measure_every
+        return sweeps / self.round_trips if self.round_trips else float("inf")
+
+    @property
+    def round_trip_seconds(self) -> float:
+        return self.run.seconds / self.round_trips if self.round_trips else float("inf")
+
+    def summary(self) -> str:
+        c, p = self.config, self.params
+        lines = [f"multicanonical {c.name}: U({c.nf})" if not c.special else f"multicanonical {c.name}: SU({c.nf})",
+                 f"  lattice {list(c.shape)}, beta {c.beta}, theta {c.theta:.6g}; variable {p['variable']} on "
+                 f"{p['range']} in {p['bins']} bins",
+                 f"  Wang-Landau: {len(self.wl)} iterations x {p['wl_sweeps']} sweeps, last flatness "
+                 + (f"{self.wl[-1]['flatness']:.2f}" if self.wl else "n/a"),
+                 f"  production: {self.run.x.size} measurements every {c.measure_every} sweeps, acceptance "
+                 f"Metropolis {self.run.acceptance['metropolis']:.3f}, overrelaxation "
+                 f"{self.run.acceptance['overrelax']:.3f}",
+                 f"  round trips between x <= {self.regions[0]:.4g} and x >= {self.regions[1]:.4g}: "
+                 f"{self.round_trips} ({self.round_trip_sweeps:.4g} sweeps, {self.round_trip_seconds:.4g} CPU s each)",
+                 "  canonical averages (reweighted, Gamma-method errors):"]
+        for k, (v, e, tau) in self.averages.items():
+            lines.append(f"    {k:22s} {v: .6f} +- {e:.6f}  (tau_int {tau:.3g})")
+        lines.append("  (a research toy, not a physical prediction)")
+        return "\n".join(lines)
+
+
+def _average_observables(run: BiasedRun) -> dict:
+    s = run.series
+    obs = {
+        "x": run.x,
+        "abs_x": np.abs(run.x),
+        "x_squared": run.x ** 2,
+        "action": s["action"],
+        "re_omega_h": s["omega_h"].real,
+        "im_omega_h": s["omega_h"].imag,
+    }
+    return {k: reweighted_mean(v, run.w) for k, v in obs.items()}
+
+
+def run_multicanonical(config: RunConfig, params: dict, progress=None) -> MucaResult:
+    """The protocol: thermalise (W = 0, step tuned), Wang-Landau, frozen production, analysis.
+
+    ``progress(stage: str)`` is called at each stage when given.
+    """
+    check_config(config, params)
+    lo, hi = params["range"]
+    weight0 = Weight.flat(lo, hi, params["bins"], params["wall"])
+    chain = BiasedChain(config, weight0, params["variable"], params["overrelax"])
+    t0 = time.process_time()
+    if progress:
+        progress("thermalisation")
+    for _ in range(config.thermalize):
+        chain.sweeps(1)
+        if chain.state.sweep % config.tune_every == 0:
+            chain.tune()
+    t1 = time.process_time()
+    if progress:
+        progress("Wang-Landau")
+    wl = wang_landau(chain, params["wl_iterations"], params["wl_sweeps"], params["wl_start"])
+    weight = chain.frozen_weight()
+    t2 = time.process_time()
+    if progress:
+        progress("production")
+    run = run_biased(config, weight, config.measurements * config.measure_every,
+                     measure_every=config.measure_every, variable=params["variable"],
+                     overrelax=params["overrelax"], state=chain.state)
+    if progress:
+        progress("analysis")
+    regions = tuple(params["regions"]) if params["regions"] else (lo + 0.25 * (hi - lo), hi - 0.25 * (hi - lo))
+    n_rt, _ = round_trips(run.x, *regions)
+    prof = profile(run.x, run.w, weight.edges)
+    averages = _average_observables(run)
+    seconds = {"thermalisation": t1 - t0, "wang_landau": t2 - t1, "production": run.seconds}
+    return MucaResult(config, params, weight, wl, run, prof, averages, n_rt, regions, seconds)
+
+
+def load_multicanonical(config_path) -> tuple[RunConfig, dict]:
+    """Read a ``[multicanonical]`` protocol TOML: (run config, validated params)."""
+    from sigmasim.config import config_from_dict, read_toml
+
+    raw = read_toml(config_path)
+    if not isinstance(raw.get("multicanonical"), dict):
+        raise ConfigError(f"{config_path} has no [multicanonical] table")
+    rest = dict(raw)
+    params = muca_params(rest.pop("multicanonical"))
+    config = config_from_dict(rest)
+    check_config(config, params)
+    return config, params
+
+
+def result_blob(res: MucaResult) -> tuple[dict, dict]:
+    """(datasets, attributes) of the multicanonical output file (see :func:`multicanonical_command`)."""
+    import json
+
+    data = {
+        "weight/values": res.weight.values,
+        "weight/edges": res.weight.edges,
+        "wang_landau/f": np.array([w["f"] for w in res.wl], dtype=np.float64),
+        "wang_landau/flatness": np.array([w["flatness"] for w in res.wl], dtype=np.float64),
+        "wang_landau/hist": (np.array([w["hist"] for w in res.wl], dtype=np.int64) if res.wl
+                             else np.zeros((0, res.weight.bins), dtype=np.int64)),
+        "production/x": res.run.x,
+        "production/w": res.run.w,
+        "profile/centres": res.profile["centres"],
+        "profile/minus_ln_p": res.profile["minus_ln_p"],
+        "profile/error": res.profile["error"],
+        "profile/counts": res.profile["counts"],
+    }
+    for k, v in res.run.series.items():
+        data[f"production/{k}"] = v
+    attrs = {
+        "config": json.dumps(res.config.to_dict()),
+        "protocol": json.dumps(res.params),
+        "round_trips": int(res.round_trips),
+        "round_trip_sweeps": float(res.round_trip_sweeps),
+        "round_trip_seconds": float(res.round_trip_seconds),
+        "regions": np.asarray(res.regions, dtype=np.float64),
+        "wall": float(res.weight.wall),
+        "averages": json.dumps({k: list(v) for k, v in res.averages.items()}),
+        "acceptance": json.dumps({k: float(v) for k, v in res.run.acceptance.items()}),
+        "seconds": json.dumps(res.seconds),
+    }
+    return data, attrs
+
+
+def multicanonical_command(config_path: str, out: str | None = None, quiet: bool = False) -> int:
+    """``sigmasim multicanonical CONFIG [--out FILE.h5] [--quiet]``.
+
+    Runs the protocol, prints the summary and writes ``<run.output>/<name>/<name>-multicanonical.h5``
+    (or ``--out``): the frozen weight and its edges, the Wang-Landau histograms, the production
+    series (x, W(x) and every run series), the profile -ln P(x) with errors, and the averages,
+    round trips and timings as attributes.  A file there that this command did not write is never
+    replaced.
+    """
+    from pathlib import Path
+
+    from sigmasim import storage
+
+    config, params = load_multicanonical(config_path)
+    if out is not None and not str(out).endswith(".h5"):
+        raise ConfigError(f"--out must end in .h5, got {out}")
+    path = Path(out) if out is not None else config.run_dir / f"{config.name}-multicanonical.h5"
+    storage.check_multicanonical_target(path)
+
+    def stage(name):
+        if not quiet:
+            print(f"[{name}]", flush=True)
+
+    res = run_multicanonical(config, params, progress=stage)
+    print(res.summary())
+    data, attrs = result_blob(res)
+    storage.write_multicanonical(path, data, attrs)
+    print(f"wrote {path}")
+    return 0
