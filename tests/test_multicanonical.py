@@ -201,3 +201,128 @@ def test_resume_continues_the_chain_exactly():
     assert np.array_equal(one.series["action"], np.concatenate([a.series["action"], b.series["action"]]))
     # x is Im omega_h of the run's own measurement
     assert np.allclose(one.x, one.series["omega_h"].imag, atol=1e-12)
+
+
+# ---------------------------------------------------------------------------
+# the protocol: plain vs multicanonical, command, file
+# ---------------------------------------------------------------------------
+
+STUDY = {  # the couplings of the study: U(3), d = 3, h 0.5, kappa 2, theta pi, beta 0.76, L = 4
+    "name": "muca-l4", "seed": 4, "lattice": {"shape": [4, 4, 4]},
+    "model": {"group": "U", "nf": 3, "beta": 0.76, "mass": 0.5, "kappa": 2.0, "theta": float(np.pi)},
+    "updates": {"schedule": [{"update": "metropolis", "repeat": 1}, {"update": "overrelax", "repeat": 1}]},
+    "run": {"start": "hot", "thermalize": 200, "measurements": 3000, "threads": 1},
+}
+MUCA = {"range": [-0.45, 0.45], "bins": 18, "wl_iterations": 6, "wl_sweeps": 300, "wl_start": 0.5}
+
+
+def test_plain_and_multicanonical_agree_at_l4():
+    """At L = 4 the plain chain tunnels (~0.04 per sweep): its <|Im omega_h|>, <Im omega_h^2> and
+    <S/V> agree with the reweighted multicanonical ones within 4 combined sigma (Gamma method)."""
+    from sigmasim.analysis.gamma import gamma_analysis
+    from sigmasim.chain import simulate
+    from sigmasim.multicanonical import muca_params, run_multicanonical
+
+    plain = simulate(config_from_dict(STUDY))
+    x = plain["omega_h"].imag
+    res = run_multicanonical(config_from_dict({**STUDY, "seed": 5}), muca_params(MUCA))
+    for key, series in (("abs_x", np.abs(x)), ("x_squared", x ** 2), ("action", plain["action"])):
+        g = gamma_analysis(series)
+        v, e, _ = res.averages[key]
+        assert abs(v - g.value) < 4.0 * np.hypot(e, g.error), (key, v, e, g.value, g.error)
+    assert res.round_trips >= 3
+    assert np.allclose(res.run.x, res.run.series["omega_h"].imag, atol=1e-12)
+
+
+def _toml(v) -> str:
+    import json
+
+    if isinstance(v, str):
+        return json.dumps(v)
+    if isinstance(v, dict):
+        return "{" + ", ".join(f"{k} = {_toml(x)}" for k, x in v.items()) + "}"
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_toml(x) for x in v) + "]"
+    return repr(v)
+
+
+def _write(tmp_path, raw, name="m.toml"):
+    lines = [f"{k} = {_toml(v)}" for k, v in raw.items() if not isinstance(v, dict)]
+    for section, keys in raw.items():
+        if isinstance(keys, dict):
+            lines += [f"[{section}]"] + [f"{k} = {_toml(v)}" for k, v in keys.items()]
+    p = tmp_path / name
+    p.write_text("\n".join(lines) + "\n")
+    return p
+
+
+def _small(tmp_path, **muca):
+    raw = {**STUDY, "lattice": {"shape": [4, 4]}, "run": {**STUDY["run"], "thermalize": 20, "measurements": 200,
+                                                         "output": str(tmp_path / "out")},
+           "multicanonical": {**MUCA, "wl_iterations": 2, "wl_sweeps": 50, **muca}}
+    return raw
+
+
+def test_command_writes_a_readable_file_and_refuses_foreign_ones(tmp_path, capsys):
+    from sigmasim.cli import main
+    from sigmasim.storage import read_multicanonical
+
+    cfg = _write(tmp_path, _small(tmp_path))
+    out = tmp_path / "m.h5"
+    assert main(["multicanonical", str(cfg), "--out", str(out), "--quiet"]) == 0
+    text = capsys.readouterr().out
+    assert "round trips" in text and "research toy" in text
+    data, attrs = read_multicanonical(out)
+    assert data["weight/values"].shape == (18,) and data["weight/edges"].shape == (19,)
+    assert data["production/x"].shape == (200,) and data["production/omega_h"].shape == (200,)
+    assert np.allclose(data["production/x"], data["production/omega_h"].imag, atol=1e-12)
+    assert data["wang_landau/hist"].shape == (2, 18)
+    assert attrs["format"] == "sigmasim-multicanonical" and "abs_x" in attrs["averages"]
+    # same config + seed = same numbers
+    out2 = tmp_path / "m2.h5"
+    assert main(["multicanonical", str(cfg), "--out", str(out2), "--quiet"]) == 0
+    assert np.array_equal(read_multicanonical(out2)[0]["production/x"], data["production/x"])
+    # a file the command did not write is never replaced
+    foreign = tmp_path / "foreign.h5"
+    foreign.write_bytes(b"not hdf5")
+    assert main(["multicanonical", str(cfg), "--out", str(foreign), "--quiet"]) == 2
+    assert foreign.read_bytes() == b"not hdf5"
+    assert "refusing to overwrite" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("table,message", [
+    ({"variable": "phase"}, "multicanonical.variable must be one of"),
+    ({"range": [0.5, -0.5]}, "multicanonical.range must be two numbers"),
+    ({"range": [-1.5, 0.5]}, "must lie inside [-1, 1]"),
+    ({"bins": 1}, "multicanonical.bins must be an integer in [2, 100000]"),
+    ({"wl_start": 0}, "multicanonical.wl_start must be a finite number >0"),
+    ({"binz": 3}, "unknown key multicanonical.binz"),
+    ({"regions": [-0.9, 0.1]}, "must lie inside multicanonical.range"),
+])
+def test_bad_tables_give_one_line(tmp_path, capsys, table, message):
+    from sigmasim.cli import main
+
+    cfg = _write(tmp_path, _small(tmp_path, **table))
+    assert main(["multicanonical", str(cfg), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert message in err and err.count("\n") == 1 and "Traceback" not in err
+
+
+def test_run_refuses_the_table_and_reference_lists_it(tmp_path, capsys):
+    from sigmasim.cli import main
+    from sigmasim.reference import reference_text
+
+    cfg = _write(tmp_path, _small(tmp_path))
+    assert main(["run", str(cfg), "--quiet"]) == 2
+    assert "sigmasim multicanonical" in capsys.readouterr().err
+    text = reference_text()
+    assert "`multicanonical.wl_iterations`" in text and "`multicanonical.variable`" in text
+
+
+def test_im_det_needs_group_u(tmp_path, capsys):
+    from sigmasim.cli import main
+
+    raw = _small(tmp_path, variable="im_det")
+    raw["model"] = {**raw["model"], "group": "SU", "kappa": 0.0}
+    assert main(["multicanonical", str(_write(tmp_path, raw)), "--quiet"]) == 2
+    assert "needs model.group = 'U'" in capsys.readouterr().err
