@@ -326,3 +326,20 @@ def test_im_det_needs_group_u(tmp_path, capsys):
     raw["model"] = {**raw["model"], "group": "SU", "kappa": 0.0}
     assert main(["multicanonical", str(_write(tmp_path, raw)), "--quiet"]) == 2
     assert "needs model.group = 'U'" in capsys.readouterr().err
+
+
+def test_roundtrip_benchmark_smoke(capsys):
+    """benchmarks/multicanonical_roundtrip.py runs end to end on a tiny case and prints its row."""
+    import importlib.util
+    from pathlib import Path
+
+    path = Path(__file__).resolve().parent.parent / "benchmarks" / "multicanonical_roundtrip.py"
+    spec = importlib.util.spec_from_file_location("muca_bench", path)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    a, b = mod.plain_rate_fit()
+    assert 0.05 < b < 0.15 and 0.0 < a < 1.0
+    mod.main(["--sizes", "4", "--thermalize", "10", "--wl-iterations", "2", "--wl-sweeps", "50",
+              "--production", "200", "--plain-sweeps", "5"])
+    rows = [ln.split() for ln in capsys.readouterr().out.splitlines() if ln.strip().startswith("4 ")]
+    assert len(rows) == 1 and float(rows[0][1]) > 0
