@@ -171,6 +171,33 @@ def test_reweighted_mean_bias_and_coverage():
     assert np.isfinite(v) and e > 0
 
 
+def test_profile_bias_and_coverage():
+    """Synthetic biased samples with a known canonical density: x ~ N(0, 1) canonical, sampled
+    with W(x) = x^2 / 4 (density N(0, 2/3)); each bin's reweighted probability covers the exact
+    one within 1 sigma in about 68 % of 100 replicas (all bins pooled), with no bias beyond 4
+    sigma of the replica scatter; an empty bin comes out NaN, a bin with everything in it 1."""
+    from scipy import stats
+
+    edges = np.linspace(-2.0, 2.0, 9)
+    exact_p = np.diff(stats.norm.cdf(edges))
+    rng = np.random.default_rng(11)
+    covered, total, est = 0, 0, []
+    for _ in range(100):
+        x = rng.normal(0.0, np.sqrt(2.0 / 3.0), size=2000)
+        prof = profile(x, x ** 2 / 4.0, edges)
+        p = prof["p"] * np.diff(edges)
+        e = prof["p_error"] * np.diff(edges)
+        covered += int(np.sum(np.abs(p - exact_p) < e))
+        total += p.size
+        est.append(p)
+    est = np.array(est)
+    assert 0.60 < covered / total < 0.76
+    assert np.all(np.abs(est.mean(axis=0) - exact_p) < 4 * est.std(axis=0) / np.sqrt(len(est)))
+    few = profile(np.array([0.1, 0.2, 0.15, 0.12, 0.3, 0.25, 0.11, 0.13, 0.14, 0.2]), np.zeros(10),
+                  [-1.0, 0.0, 1.0])
+    assert np.isnan(few["p"][0]) and few["p"][1] == 1.0 and few["minus_ln_p"][1] == 0.0
+
+
 def test_round_trips_counts_full_cycles_only():
     x = np.array([0, -1, 0, 1, 0, -1, -1, 1, 1, -1, 0.5])
     n, at = round_trips(x, -0.5, 0.5)
