@@ -106,6 +106,18 @@ def _accept(d, u):
     return d <= 0.0 or u < np.exp(-d)
 
 
+@njit(cache=True, inline="always")
+def _rotated_variable(R, U, dnew, nf, mode, cvar):
+    """x_s of R U without forming it: Tr(R U) = sum R[a, c] U[c, a]; det(R U) = ``dnew``."""
+    if mode == 0:
+        t = complex(0.0, 0.0)
+        for a in range(nf):
+            for c in range(nf):
+                t += R[a, c] * U[c, a]
+        return (cvar * t).imag / nf
+    return (cvar * dnew).imag
+
+
 @njit(cache=True)
 def _metropolis_colour(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, table, tdet, nhits, key,
                        mode, cvar, vol, xsum, lo, dx, wtab, wall, scratch):
@@ -127,10 +139,10 @@ def _metropolis_colour(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, ta
             n += np.uint64(2)
             R = table[idx]
             dS, dnew = rotation_action_change(W, trw, R, tdet[idx], d, nf, kappa, eta)
-            _matmul(R, U, nf, T)
-            xnew = site_variable(T, nf, mode, cvar, work)
+            xnew = _rotated_variable(R, U, dnew, nf, mode, cvar)
             wnew = weight_value((xsum + xnew - xs) / vol, lo, dx, wtab, wall)
             if _accept(dS + (wnew - wcur), u):
+                _matmul(R, U, nf, T)
                 U[:, :] = T
                 _matmul(R, W, nf, T)
                 W[:, :] = T
