@@ -254,20 +254,28 @@ def run_biased(config: RunConfig, weight: Weight, sweeps: int, *, measure_every:
     return BiasedRun(xs, weight(xs), series, weight, chain.state, acc, time.process_time() - t0)
 
 
-def wang_landau(chain: BiasedChain, iterations: int, sweeps: int, f0: float = 1.0) -> list[dict]:
+def wang_landau(chain: BiasedChain, iterations: int, sweeps: int, f0: float = 1.0, flatness: float = 0.0,
+                chunks: int = 1) -> list[dict]:
     """Wang-Landau building of the chain's weight table in place (Wang & Landau, PRL 86 (2001) 2050).
 
-    Iteration k runs ``sweeps`` sweeps adding ``f0 / 2^k`` to W at the bin of x after every
-    sweep.  Returns per iteration: f, the histogram and its flatness (min / mean over the bins).
-    After the last iteration the table is shifted to min 0.
+    Iteration k adds ``f0 / 2^k`` to W at the bin of x after every sweep; it runs ``sweeps``
+    sweeps at a time until the histogram's flatness (min / mean over the bins) reaches
+    ``flatness``, at most ``chunks`` times (``flatness = 0``: one chunk, a fixed schedule).
+    Returns per iteration: f, the histogram, its flatness and the sweeps run.  After the last
+    iteration the table is shifted to min 0.
     """
     out = []
     for k in range(int(iterations)):
         f = float(f0) / 2.0 ** k
         hist = np.zeros(chain.values.size, dtype=np.int64)
-        chain.sweeps(int(sweeps), wl_f=f, hist=hist)
-        mean = hist.mean()
-        out.append({"f": f, "hist": hist, "flatness": float(hist.min() / mean) if mean > 0 else 0.0})
+        flat = 0.0
+        for c in range(max(1, int(chunks))):
+            chain.sweeps(int(sweeps), wl_f=f, hist=hist)
+            mean = hist.mean()
+            flat = float(hist.min() / mean) if mean > 0 else 0.0
+            if flat >= flatness:
+                break
+        out.append({"f": f, "hist": hist, "flatness": flat, "sweeps": (c + 1) * int(sweeps)})
     chain.values -= chain.values.min()
     return out
 
@@ -368,6 +376,9 @@ MUCA_SCHEMA = {
     "wl_iterations": ("int:0:64", 8, "Wang-Landau iterations building the weight (0: W = 0, a plain run)"),
     "wl_sweeps": ("int:1:1000000000", 500, "sweeps per Wang-Landau iteration"),
     "wl_start": ("real>0", 0.5, "Wang-Landau increment of the first iteration, halved after each"),
+    "wl_flatness": ("real:0:1", 0.0, "an iteration repeats its wl_sweeps until the histogram's min / mean "
+                    "reaches this (0: a fixed schedule of one chunk per iteration)"),
+    "wl_chunks": ("int:1:1000000", 1, "at most this many chunks of wl_sweeps per iteration"),
     "overrelax": ("int:0:100", 1, "overrelaxation passes per sweep (after the Metropolis pass)"),
     "regions": ("regions", None, "optional [left, right]: a round trip goes x <= left -> x >= right -> "
                 "x <= left (default: the outer quarters of the grid)"),
@@ -406,6 +417,10 @@ def muca_params(sub: dict) -> dict:
             lo, hi = (int(t) for t in kind[4:].split(":"))
             if not (isinstance(v, int) and not isinstance(v, bool) and lo <= v <= hi):
                 raise ConfigError(f"{where} must be an integer in [{lo}, {hi}], got {v!r}")
+        elif kind == "real:0:1":
+            if not (_num(v) and 0.0 <= v < 1.0):
+                raise ConfigError(f"{where} must be a number in [0, 1), got {v!r}")
+            v = float(v)
         elif kind in ("real>0", "real>=0"):
             ok = _num(v) and (v > 0 if kind == "real>0" else v >= 0)
             if not ok:
@@ -458,7 +473,7 @@ class MucaResult:
         lines = [f"multicanonical {c.name}: U({c.nf})" if not c.special else f"multicanonical {c.name}: SU({c.nf})",
                  f"  lattice {list(c.shape)}, beta {c.beta}, theta {c.theta:.6g}; variable {p['variable']} on "
                  f"{p['range']} in {p['bins']} bins",
-                 f"  Wang-Landau: {len(self.wl)} iterations x {p['wl_sweeps']} sweeps, last flatness "
+                 f"  Wang-Landau: {len(self.wl)} iterations, {sum(w['sweeps'] for w in self.wl)} sweeps, last flatness "
                  + (f"{self.wl[-1]['flatness']:.2f}" if self.wl else "n/a"),
                  f"  production: {self.run.x.size} measurements every {c.measure_every} sweeps, acceptance "
                  f"Metropolis {self.run.acceptance['metropolis']:.3f}, overrelaxation "
@@ -504,7 +519,8 @@ def run_multicanonical(config: RunConfig, params: dict, progress=None) -> MucaRe
     t1 = time.process_time()
     if progress:
         progress("Wang-Landau")
-    wl = wang_landau(chain, params["wl_iterations"], params["wl_sweeps"], params["wl_start"])
+    wl = wang_landau(chain, params["wl_iterations"], params["wl_sweeps"], params["wl_start"],
+                     params["wl_flatness"], params["wl_chunks"])
     weight = chain.frozen_weight()
     t2 = time.process_time()
     if progress:
@@ -545,6 +561,7 @@ def result_blob(res: MucaResult) -> tuple[dict, dict]:
         "weight/edges": res.weight.edges,
         "wang_landau/f": np.array([w["f"] for w in res.wl], dtype=np.float64),
         "wang_landau/flatness": np.array([w["flatness"] for w in res.wl], dtype=np.float64),
+        "wang_landau/sweeps": np.array([w["sweeps"] for w in res.wl], dtype=np.int64),
         "wang_landau/hist": (np.array([w["hist"] for w in res.wl], dtype=np.int64) if res.wl
                              else np.zeros((0, res.weight.bins), dtype=np.int64)),
         "production/x": res.run.x,

@@ -324,6 +324,8 @@ def test_command_writes_a_readable_file_and_refuses_foreign_ones(tmp_path, capsy
     ({"bins": 1}, "multicanonical.bins must be an integer in [2, 100000]"),
     ({"wl_start": 0}, "multicanonical.wl_start must be a finite number >0"),
     ({"binz": 3}, "unknown key multicanonical.binz"),
+    ({"wl_flatness": 1.0}, "multicanonical.wl_flatness must be a number in [0, 1)"),
+    ({"wl_chunks": 0}, "multicanonical.wl_chunks must be an integer in [1, 1000000]"),
     ({"regions": [-0.9, 0.1]}, "must lie inside multicanonical.range"),
 ])
 def test_bad_tables_give_one_line(tmp_path, capsys, table, message):
@@ -333,6 +335,17 @@ def test_bad_tables_give_one_line(tmp_path, capsys, table, message):
     assert main(["multicanonical", str(cfg), "--quiet"]) == 2
     err = capsys.readouterr().err
     assert message in err and err.count("\n") == 1 and "Traceback" not in err
+
+
+def test_wang_landau_repeats_until_flat_or_the_cap():
+    cfg = _cfg(1, "U", shape=(4, 4), beta=0.5, seed=2)
+    from sigmasim.multicanonical import BiasedChain, wang_landau
+
+    strict = wang_landau(BiasedChain(cfg, Weight.flat(-0.9, 0.9, 12)), 2, 20, 0.5, flatness=0.99, chunks=3)
+    assert [w["sweeps"] for w in strict] == [60, 60] and all(w["flatness"] < 0.99 for w in strict)
+    loose = wang_landau(BiasedChain(cfg, Weight.flat(-0.9, 0.9, 12)), 2, 20, 0.5, flatness=0.0, chunks=3)
+    assert [w["sweeps"] for w in loose] == [20, 20]
+    assert [w["f"] for w in loose] == [0.5, 0.25]
 
 
 def test_run_refuses_the_table_and_reference_lists_it(tmp_path, capsys):
