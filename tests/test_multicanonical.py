@@ -102,6 +102,18 @@ def test_one_site_biased_chain_reweights_to_the_exact_distribution(nf, h, kappa,
     assert np.max(np.abs(sampled / (p_exact / p_exact.sum()) - 1.0)) > 0.4
 
 
+@pytest.mark.parametrize("nf,variable,key", [(1, "im_omega_h", "im_tr_thetam_u"), (3, "im_omega_h", "im_tr_thetam_u"),
+                                          (3, "im_det", "im_thetaa_det_u")])
+def test_one_site_zero_weight_gives_the_exact_mean(nf, variable, key):
+    """W = 0 on one site (beta = 0): <x> is the exact one-site value (Bessel sums) within 4 sigma."""
+    from sigmasim.analysis.gamma import gamma_analysis
+
+    xs, _ = _one_site_chain(nf, 0.5, 2.0, 0.4, 0.3, Weight.flat(-1.0, 1.0, 4), variable, 20000, seed=8)
+    g = gamma_analysis(xs)
+    ref = exact.one_site_u(nf, 0.5, kappa=2.0, theta_m=0.4, theta_a=0.3)[key]
+    assert abs(g.value - ref) < 4.0 * g.error, (g.value, g.error, ref)
+
+
 def test_one_site_sign_of_the_weight_matters():
     """A weight of the wrong sign (exp(+W) sampled) fails the same comparison: the test can fail."""
     lo, hi, bins = -0.8, 0.8, 16
