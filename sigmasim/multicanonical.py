@@ -429,7 +429,8 @@ def muca_params(sub: dict) -> dict:
         out[key] = v
     lo, hi = out["range"]
     if out["regions"] is not None and not (lo <= out["regions"][0] and out["regions"][1] <= hi):
-        raise ConfigError(f"multicanonical.regions {out['regions']} must lie inside multicanonical.range {out['range']}")
+        raise ConfigError(f"multicanonical.regions {out['regions']} must lie inside "
+                          f"multicanonical.range {out['range']}")
     if out["variable"] == "im_omega_h" and (lo < -1.0 or hi > 1.0):
         raise ConfigError(f"multicanonical.range {out['range']} must lie inside [-1, 1] (|Im omega_h| <= 1)")
     return out
