@@ -69,6 +69,8 @@ def main(argv=None):
     ap.add_argument("--wl-iterations", type=int, default=8)
     ap.add_argument("--wl-sweeps", type=int, default=2000)
     ap.add_argument("--wl-start", type=float, default=1.0)
+    ap.add_argument("--wl-flatness", type=float, default=0.0, help="repeat an iteration until min/mean reaches it")
+    ap.add_argument("--wl-chunks", type=int, default=1, help="at most this many chunks per iteration")
     ap.add_argument("--production", type=int, default=20000)
     ap.add_argument("--plain-sweeps", type=int, default=50)
     args = ap.parse_args(argv)
@@ -86,7 +88,8 @@ def main(argv=None):
             chain.sweeps(1)
             if chain.state.sweep % cfg.tune_every == 0:
                 chain.tune()
-        wang_landau(chain, args.wl_iterations, args.wl_sweeps, args.wl_start)
+        wl = wang_landau(chain, args.wl_iterations, args.wl_sweeps, args.wl_start, args.wl_flatness,
+                         args.wl_chunks)
         wl_seconds = time.process_time() - t
         run = run_biased(cfg, chain.frozen_weight(), args.production, state=chain.state)
         n, _ = round_trips(run.x, -args.cut, args.cut)
@@ -96,6 +99,8 @@ def main(argv=None):
         print(f"{L:3d} {plain:13.4g} {plain_rt:18.4g} {muca_sweep:12.4g} {wl_seconds:7.1f} {n:11d} "
               f"{muca_rt:17.4g} {plain_rt / muca_rt:9.3g} {tau:13.4g}", flush=True)
         hist = np.histogram(run.x, bins=args.bins, range=tuple(args.range))[0]
+        print(f"    Wang-Landau sweeps {[w['sweeps'] for w in wl]}, flatness "
+              f"{[round(w['flatness'], 2) for w in wl]}")
         print(f"    production histogram of x over {args.range}: {hist.tolist()}")
 
 
