@@ -37,7 +37,7 @@ import numpy as np
 from sigmasim.chain import SERIES, ChainState, Simulation
 from sigmasim.config import RunConfig
 from sigmasim.errors import ConfigError
-from sigmasim.kernels.bias import MODES, biased_sweeps, variable_sum
+from sigmasim.kernels.bias import MODES, biased_sweeps, collective, variable_sum
 from sigmasim.kernels.measure import reunitarize, reunitarize3, reunitarize_u1
 from sigmasim.rng import mix64_int
 
@@ -49,6 +49,7 @@ __all__ = ["Weight", "BiasedChain", "BiasedRun", "run_biased", "wang_landau", "r
 VARIABLES = {
     "im_omega_h": "Im omega_h = Im(e^{i theta_m} sum_x Tr U_x) / (nf V)",
     "im_det": "Im(e^{i theta_a} sum_x det U_x) / V (U(nf) only)",
+    "arg_omega_h": "arg omega_h in (-pi, pi], the phase of omega_h (the branch angle)",
 }
 
 
@@ -117,7 +118,7 @@ def _variable_constant(config: RunConfig, variable: str) -> tuple[int, complex]:
     theta_m, theta_a = config.theta_angles
     if variable == "im_det" and config.special:
         raise ConfigError("variable 'im_det' needs group U (det U = 1 for SU(nf))")
-    return MODES[variable], complex(np.exp(1j * (theta_m if variable == "im_omega_h" else theta_a)))
+    return MODES[variable], complex(np.exp(1j * (theta_a if variable == "im_det" else theta_m)))
 
 
 class BiasedChain:
@@ -148,7 +149,8 @@ class BiasedChain:
 
     def x(self) -> float:
         st = self.sim.state
-        return variable_sum(st.re, st.im, self.config.nf, self.mode, self.cvar) / st.re.shape[1]
+        return float(collective(variable_sum(st.re, st.im, self.config.nf, self.mode, self.cvar), st.re.shape[1],
+                                self.mode))
 
     def frozen_weight(self) -> Weight:
         return Weight(self.weight.lo, self.weight.hi, self.values.copy(), self.weight.wall)
@@ -369,7 +371,8 @@ def round_trips(x, left: float, right: float) -> tuple[int, np.ndarray]:
 #: key -> (kind, default, meaning) of the [multicanonical] table
 MUCA_SCHEMA = {
     "variable": ("choice", "im_omega_h", "collective variable: im_omega_h (Im omega_h, the per-site mean of "
-                 "Im(e^{i theta_m} Tr U) / nf) or im_det (per-site mean of Im(e^{i theta_a} det U), U(nf) only)"),
+                 "Im(e^{i theta_m} Tr U) / nf), im_det (per-site mean of Im(e^{i theta_a} det U), U(nf) "
+                 "only) or arg_omega_h (the phase of omega_h in (-pi, pi], the branch angle)"),
     "range": ("range", [-0.6, 0.6], "[lo, hi] of the weight's histogram grid in the variable"),
     "bins": ("int:2:100000", 24, "bins of the grid"),
     "wall": ("real>=0", 10.0, "slope of the weight outside the grid, per bin width (a steep finite wall)"),
@@ -431,8 +434,10 @@ def muca_params(sub: dict) -> dict:
     if out["regions"] is not None and not (lo <= out["regions"][0] and out["regions"][1] <= hi):
         raise ConfigError(f"multicanonical.regions {out['regions']} must lie inside "
                           f"multicanonical.range {out['range']}")
-    if out["variable"] == "im_omega_h" and (lo < -1.0 or hi > 1.0):
-        raise ConfigError(f"multicanonical.range {out['range']} must lie inside [-1, 1] (|Im omega_h| <= 1)")
+    if out["variable"] != "arg_omega_h" and (lo < -1.0 or hi > 1.0):
+        raise ConfigError(f"multicanonical.range {out['range']} must lie inside [-1, 1] (|x| <= 1)")
+    if out["variable"] == "arg_omega_h" and (lo < -math.pi or hi > math.pi):
+        raise ConfigError(f"multicanonical.range {out['range']} must lie inside [-pi, pi] (a phase)")
     return out
 
 

@@ -26,8 +26,9 @@ def _cfg(nf=3, group="U", shape=(4, 4), beta=0.7, h=0.5, kappa=0.3, theta=2.0, s
         "run": {"start": "hot", "thermalize": 0, "measurements": 1, "threads": 1, **run}})
 
 
+@pytest.mark.parametrize("mode", [0, 1, 2])
 @pytest.mark.parametrize("nf,group", [(3, "U"), (1, "U"), (2, "SU"), (2, "U")])
-def test_zero_weight_is_the_plain_chain_bit_for_bit(nf, group):
+def test_zero_weight_is_the_plain_chain_bit_for_bit(nf, group, mode):
     """W = 0: the biased sweep is the plain Metropolis + overrelaxation kernels, same keys, same bits."""
     cfg = _cfg(nf, group)
     sim = Simulation(cfg)
@@ -48,8 +49,8 @@ def test_zero_weight_is_the_plain_chain_bit_for_bit(nf, group):
     xs = np.zeros(3)
     counts = np.zeros(4, np.int64)
     end = biased_sweeps(re1, im1, lat.neighbours, nf, cfg.special, cfg.beta, sim.hdiag, cfg.kappa, cfg.eta, hits,
-                        1, eps, np.uint64(mix64_int(cfg.seed)), 0, 3, 0, complex(np.exp(1j * cfg.theta_angles[0])),
-                        -1.0, 0.2, np.zeros(10), 10.0, 0.0, np.zeros(10, np.int64), xs, counts)
+                        1, eps, np.uint64(mix64_int(cfg.seed)), 0, 3, mode, complex(np.exp(1j * cfg.theta_angles[0])),
+                        -1.0, 0.2, np.zeros(10), 0.0, 0.0, np.zeros(10, np.int64), xs, counts)
     assert end == step
     assert np.array_equal(re0, re1) and np.array_equal(im0, im1)
     assert counts[0] > 0 and counts[1] == 3 * lat.volume * hits
@@ -57,8 +58,10 @@ def test_zero_weight_is_the_plain_chain_bit_for_bit(nf, group):
 
 def _one_site_chain(nf, h, kappa, theta_m, theta_a, weight, variable, sweeps, seed=3, eps=1.0):
     """The biased kernel on a single site (beta = 0): x after every sweep."""
-    mode = {"im_omega_h": 0, "im_det": 1}[variable]
-    cvar = complex(np.exp(1j * (theta_m if mode == 0 else theta_a)))
+    from sigmasim.kernels.bias import MODES
+
+    mode = MODES[variable]
+    cvar = complex(np.exp(1j * (theta_a if variable == "im_det" else theta_m)))
     re = np.zeros((nf * nf, 1))
     im = np.zeros((nf * nf, 1))
     re[np.arange(nf) * (nf + 1), 0] = 1.0
@@ -112,6 +115,28 @@ def test_one_site_zero_weight_gives_the_exact_mean(nf, variable, key):
     g = gamma_analysis(xs)
     ref = exact.one_site_u(nf, 0.5, kappa=2.0, theta_m=0.4, theta_a=0.3)[key]
     assert abs(g.value - ref) < 4.0 * g.error, (g.value, g.error, ref)
+
+
+def test_one_site_phase_variable_reweights_to_the_exact_distribution():
+    """arg omega_h (not a site sum: the kernel tracks the complex sum) on one U(1) site at beta = 0:
+    x = phi + theta_m has the density exp(h cos x + 2 kappa cos(x - theta)) / (2 pi I_0(|c|))
+    (theta = theta_m - theta_a); sampled with W = 2 ln P and reweighted, every bin within 4 sigma."""
+    from scipy import integrate, special
+
+    h, kappa, theta_m, theta_a = 0.5, 2.0, 0.4, 0.3
+    theta = theta_m - theta_a
+    norm = 2 * np.pi * special.i0(abs(h + 2 * kappa * np.exp(1j * theta)))
+    edges = np.linspace(-np.pi, np.pi, 17)
+    p_exact = np.array([integrate.quad(lambda x: np.exp(h * np.cos(x) + 2 * kappa * np.cos(x - theta)), a, b)[0]
+                        for a, b in zip(edges[:-1], edges[1:])]) / norm
+    assert abs(p_exact.sum() - 1.0) < 1e-10
+    weight = Weight(-np.pi, np.pi, 2.0 * np.log(p_exact / p_exact.max()), wall=5.0)
+    xs, _ = _one_site_chain(1, h, kappa, theta_m, theta_a, weight, "arg_omega_h", 40000)
+    prof = profile(xs, weight(xs), edges)
+    pulls = (prof["p"] * np.diff(edges) - p_exact) / (prof["p_error"] * np.diff(edges))
+    assert np.all(np.isfinite(pulls)) and np.max(np.abs(pulls)) < 4.0, pulls
+    sampled = prof["counts"] / prof["counts"].sum()
+    assert np.max(np.abs(sampled / p_exact - 1.0)) > 0.4
 
 
 def test_one_site_sign_of_the_weight_matters():
@@ -238,8 +263,10 @@ def test_resume_continues_the_chain_exactly():
     b = run_biased(cfg, w, 20, state=a.state)
     assert np.array_equal(np.concatenate([a.x, b.x]), one.x)
     assert np.array_equal(one.series["action"], np.concatenate([a.series["action"], b.series["action"]]))
-    # x is Im omega_h of the run's own measurement
+    # x is Im omega_h of the run's own measurement; arg_omega_h is its phase
     assert np.allclose(one.x, one.series["omega_h"].imag, atol=1e-12)
+    ph = run_biased(cfg, Weight.flat(-np.pi, np.pi, 12), 10, variable="arg_omega_h")
+    assert np.allclose(ph.x, np.angle(ph.series["omega_h"]), atol=1e-12)
 
 
 # ---------------------------------------------------------------------------
@@ -333,6 +360,7 @@ def test_command_writes_a_readable_file_and_refuses_foreign_ones(tmp_path, capsy
     ({"variable": "phase"}, "multicanonical.variable must be one of"),
     ({"range": [0.5, -0.5]}, "multicanonical.range must be two numbers"),
     ({"range": [-1.5, 0.5]}, "must lie inside [-1, 1]"),
+    ({"variable": "arg_omega_h", "range": [-4.0, 0.5]}, "must lie inside [-pi, pi]"),
     ({"bins": 1}, "multicanonical.bins must be an integer in [2, 100000]"),
     ({"wl_start": 0}, "multicanonical.wl_start must be a finite number >0"),
     ({"binz": 3}, "unknown key multicanonical.binz"),
