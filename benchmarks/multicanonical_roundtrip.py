@@ -8,13 +8,14 @@ U(3), d = 3, h 0.5, kappa 2, theta pi, beta 0.76 (the tunnelling study's couplin
   at L = 4, 6, 8 (b = 0.098; these rates are quoted from the tunnelling study, not re-measured
   here);
 * multicanonical: Wang-Landau weight building, then a frozen production run of exp(-S - W(x)) in
-  x = Im omega_h; CPU seconds of the production run per completed round trip x <= -c -> x >= c ->
-  x <= -c (c = --cut).
+  x = Im omega_h (or, --variable arg_omega_h, the phase of omega_h); CPU seconds of the
+  production run per completed round trip x <= -c -> x >= c -> x <= -c (c = --cut).
 
 Prints one table row per L.  Single thread; run it on an idle machine for clean numbers:
 
     NUMBA_NUM_THREADS=1 python benchmarks/multicanonical_roundtrip.py --sizes 8 --production 20000
-    NUMBA_NUM_THREADS=1 python benchmarks/multicanonical_roundtrip.py --sizes 12 --wl-sweeps 4000 --production 100000
+    NUMBA_NUM_THREADS=1 python benchmarks/multicanonical_roundtrip.py --sizes 8 --variable arg_omega_h \
+        --range -3.14159 3.14159 --bins 36 --wl-flatness 0.3 --wl-chunks 3 --wl-sweeps 1000 --cut 0.5
 
 Research toy numbers, not physical predictions.
 """
@@ -62,6 +63,7 @@ def plain_seconds_per_sweep(cfg, sweeps):
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sizes", type=int, nargs="+", default=[8])
+    ap.add_argument("--variable", default="im_omega_h", choices=["im_omega_h", "arg_omega_h"])
     ap.add_argument("--range", type=float, nargs=2, default=[-0.6, 0.6])
     ap.add_argument("--bins", type=int, default=40)
     ap.add_argument("--cut", type=float, default=0.2, help="round-trip regions x <= -cut and x >= cut")
@@ -82,7 +84,7 @@ def main(argv=None):
         cfg = config(L)
         plain = plain_seconds_per_sweep(cfg, args.plain_sweeps)
         plain_rt = plain * 2.0 / (a * math.exp(-b * L * L))
-        chain = BiasedChain(cfg, Weight.flat(*args.range, args.bins), overrelax=1)
+        chain = BiasedChain(cfg, Weight.flat(*args.range, args.bins), variable=args.variable, overrelax=1)
         t = time.process_time()
         for _ in range(args.thermalize):
             chain.sweeps(1)
@@ -91,7 +93,7 @@ def main(argv=None):
         wl = wang_landau(chain, args.wl_iterations, args.wl_sweeps, args.wl_start, args.wl_flatness,
                          args.wl_chunks)
         wl_seconds = time.process_time() - t
-        run = run_biased(cfg, chain.frozen_weight(), args.production, state=chain.state)
+        run = run_biased(cfg, chain.frozen_weight(), args.production, variable=args.variable, state=chain.state)
         n, _ = round_trips(run.x, -args.cut, args.cut)
         muca_sweep = run.seconds / args.production
         muca_rt = run.seconds / n if n else float("inf")
