@@ -15,7 +15,8 @@ __all__ = ["PROTOCOL_TABLES", "TABLE_ALIASES", "SCAN_MEANINGS", "protocol_schema
            "table_help", "reference_text"]
 
 #: table -> the command that runs a config with it
-PROTOCOL_TABLES = {"hysteresis": "hysteresis", "tempering": "temper", "lifetimes": "lifetimes", "scan": "scan"}
+PROTOCOL_TABLES = {"hysteresis": "hysteresis", "tempering": "temper", "lifetimes": "lifetimes", "scan": "scan",
+                   "multicanonical": "multicanonical"}
 #: old table name -> its table (read for one more release)
 TABLE_ALIASES = {"sweep": "hysteresis"}
 
@@ -42,6 +43,10 @@ def protocol_schema(table: str) -> dict:
         from sigmasim.scan import _SCAN_KEYS
 
         return {k: (t.__name__, {} if d is None else d, SCAN_MEANINGS[k]) for k, (t, d) in _SCAN_KEYS.items()}
+    if table == "multicanonical":
+        from sigmasim.protocols.multicanonical import MUCA_SCHEMA
+
+        return MUCA_SCHEMA
     from sigmasim import protocols
 
     table = TABLE_ALIASES.get(table, table)
