@@ -35,7 +35,7 @@ from sigmasim.kernels.general import flavour_order
 from sigmasim.kernels.group import det, det_lu_in_place, sample_su2_x0, von_mises_angle
 from sigmasim.kernels.serial import total, zeros_bool, zeros_int
 from sigmasim.kernels.simd import exp_le0, lookup16, u01_from_bits
-from sigmasim.kernels.u3 import CHUNK_SITES, _det3, _fast_rows
+from sigmasim.kernels.u3 import CHUNK_SITES, _det3
 from sigmasim.rng import SITE_STRIDE, bits, uniform
 
 __all__ = ["local_unf", "local_unf_update", "metropolis_u2", "metropolis_u2_update", "pack_table2", "MAX_SUB",
@@ -57,6 +57,38 @@ def _add_run(M, nc, dst, re, im, src, n, c):
         p = d + np.uint64(i)
         M[c, p] += re[c, q]
         M[nc + c, p] += im[c, q]
+
+
+@njit(cache=True, inline="always")
+def _set_run(M, nc, dst, re, im, src, n, c):
+    """M[(c, nc + c), dst + i] = 0 + (re, im)[c, src + i]: :func:`_add_run` on zeroed rows, in one pass."""
+    s = np.uint64(src)
+    d = np.uint64(dst)
+    for i in range(n):
+        q = s + np.uint64(i)
+        p = d + np.uint64(i)
+        M[c, p] = 0.0 + re[c, q]
+        M[nc + c, p] = 0.0 + im[c, q]
+
+
+@njit(cache=True, inline="always")
+def _fast_rows_scaled(Mc, Tc, X, x, src, m, h, fo, ff, fl, beta):
+    """Tc = ((Mc + plus) + minus) * beta: :func:`u3._fast_rows` and the scaling in one pass."""
+    us = np.uint64(src)
+    uh = np.uint64(h)
+    for i in range(m):
+        X[uh + np.uint64(i)] = x[us + np.uint64(i)]
+    for i in range(m):
+        k = uh + np.uint64(i)
+        xc = X[k]
+        xp = X[k + np.uint64(1)]
+        xpw = X[k + np.uint64(1) - uh]
+        xm = X[k - np.uint64(1)]
+        xmw = X[k - np.uint64(1) + uh]
+        a = xpw if fl[i] else xp
+        b = xmw if ff[i] else xm
+        o = fo[i]
+        Tc[i] = ((Mc[i] + (a if o else xc)) + (xc if o else b)) * beta
 
 
 @njit(cache=True, inline="always")
@@ -157,9 +189,10 @@ def _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, h
     """M[:, :m] = beta N + diag(conj hdiag) of the chunk's sites (rows r0..r1, sites j0..j0+w of
     each), components a nf + b (real) and nf^2 + a nf + b (imaginary); R, X, fo: scratch."""
     nc = nf * nf
-    for comp in range(2 * nc):
-        for j in range(m):
-            R[comp, j] = 0.0
+    if rnbr.shape[0] == 0:
+        for comp in range(2 * nc):
+            for j in range(m):
+                R[comp, j] = 0.0
     for k in range(rnbr.shape[0]):
         g = r0
         while g < r1:
@@ -167,7 +200,10 @@ def _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, h
             while g2 < r1 and rnbr[k, g2] == rnbr[k, g2 - 1] + 1:
                 g2 += 1
             for c in range(nc):
-                _add_run(R, nc, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, (g2 - g) * w, c)
+                if k == 0:  # the runs of one direction cover the chunk once: the first sets R = 0 + N_0
+                    _set_run(R, nc, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, (g2 - g) * w, c)
+                else:
+                    _add_run(R, nc, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, (g2 - g) * w, c)
             g = g2
     if rows > 0:
         for g in range(r0, r1):
@@ -177,17 +213,14 @@ def _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, h
                 fo[b + j] = o
         src = other + r0 * h
         for comp in range(nc):
-            _fast_rows(R[comp], M[comp], X, re[comp], src, m, h, fo, ff, fl)
-            _fast_rows(R[nc + comp], M[nc + comp], X, im[comp], src, m, h, fo, ff, fl)
+            _fast_rows_scaled(R[comp], M[comp], X, re[comp], src, m, h, fo, ff, fl, beta)
+            _fast_rows_scaled(R[nc + comp], M[nc + comp], X, im[comp], src, m, h, fo, ff, fl, beta)
     else:
         for g in range(r0, r1):
             _fast_row(R, nc, (g - r0) * w, re, im, other + g * h, h, (colour + rpar[g]) % 2, j0, w)
         for comp in range(2 * nc):
             for j in range(m):
-                M[comp, j] = R[comp, j]
-    for comp in range(2 * nc):
-        for j in range(m):
-            M[comp, j] *= beta
+                M[comp, j] = R[comp, j] * beta
     for a in range(nf):
         hr = hdiag[a].real
         hi = -hdiag[a].imag
