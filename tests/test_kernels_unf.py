@@ -126,3 +126,28 @@ def test_metropolis_u2_chunking_and_blocks_do_not_change_the_numbers(shape):
         np.testing.assert_array_equal(im, out[0][1])
         assert acc == out[0][2]
     assert 0 < sum(out[0][2]) < 3 * 4 * lat.half
+
+
+@pytest.mark.parametrize("special", [False, True])
+@pytest.mark.parametrize("hb", [True, False])
+@pytest.mark.parametrize("shape, rows", [((4, 6, 4), None), ((2, 260), None), ((6, 4, 2), 0)])
+def test_nf2_fast_path_has_the_generic_numbers(shape, rows, hb, special):
+    # the nf = 2 site update (unf._chunk_u2: one subgroup read in flavour order by selects, flat
+    # scratch) must give the generic kernel's bits, for both flavour orders (the keys below
+    # draw both), U(2) and SU(2), whole-row chunks and row segments, weak and strong fields
+    lat = make_lattice(shape)
+    hdiag = 0.25 * np.exp(1j * np.arange(2))
+    g = rows_per_chunk3(lat.row_len_half) if rows is None else rows
+    out = []
+    for generic in (False, True):
+        re, im = _random_field(lat, 2, 8)
+        acc = 0
+        for step in range(8):
+            beta = 0.4 if step < 4 else 3.0
+            acc += local_unf(re, im, lat.row_neighbours, lat.row_parity, lat.row_len_half, step % 2, 2, beta,
+                             hdiag, 0.3, -0.2, special, hb, np.uint64(31 + step), g, 2, generic)
+        out.append((re, im, acc))
+    np.testing.assert_array_equal(out[0][0], out[1][0])
+    np.testing.assert_array_equal(out[0][1], out[1][1])
+    assert out[0][2] == out[1][2]
+    assert np.abs(out[0][0] - _random_field(lat, 2, 8)[0]).max() > 0.1

@@ -35,7 +35,7 @@ from sigmasim.kernels.general import flavour_order
 from sigmasim.kernels.group import det, det_lu_in_place, sample_su2_x0, von_mises_angle
 from sigmasim.kernels.serial import total, zeros_bool, zeros_int
 from sigmasim.kernels.simd import exp_le0, lookup16, u01_from_bits
-from sigmasim.kernels.u3 import CHUNK_SITES, _det3, _fast_rows
+from sigmasim.kernels.u3 import CHUNK_SITES, _det3
 from sigmasim.rng import SITE_STRIDE, bits, uniform
 
 __all__ = ["local_unf", "local_unf_update", "metropolis_u2", "metropolis_u2_update", "pack_table2", "MAX_SUB",
@@ -57,6 +57,38 @@ def _add_run(M, nc, dst, re, im, src, n, c):
         p = d + np.uint64(i)
         M[c, p] += re[c, q]
         M[nc + c, p] += im[c, q]
+
+
+@njit(cache=True, inline="always")
+def _set_run(M, nc, dst, re, im, src, n, c):
+    """M[(c, nc + c), dst + i] = 0 + (re, im)[c, src + i]: :func:`_add_run` on zeroed rows, in one pass."""
+    s = np.uint64(src)
+    d = np.uint64(dst)
+    for i in range(n):
+        q = s + np.uint64(i)
+        p = d + np.uint64(i)
+        M[c, p] = 0.0 + re[c, q]
+        M[nc + c, p] = 0.0 + im[c, q]
+
+
+@njit(cache=True, inline="always")
+def _fast_rows_scaled(Mc, Tc, X, x, src, m, h, fo, ff, fl, beta):
+    """Tc = ((Mc + plus) + minus) * beta: :func:`u3._fast_rows` and the scaling in one pass."""
+    us = np.uint64(src)
+    uh = np.uint64(h)
+    for i in range(m):
+        X[uh + np.uint64(i)] = x[us + np.uint64(i)]
+    for i in range(m):
+        k = uh + np.uint64(i)
+        xc = X[k]
+        xp = X[k + np.uint64(1)]
+        xpw = X[k + np.uint64(1) - uh]
+        xm = X[k - np.uint64(1)]
+        xmw = X[k - np.uint64(1) + uh]
+        a = xpw if fl[i] else xp
+        b = xmw if ff[i] else xm
+        o = fo[i]
+        Tc[i] = ((Mc[i] + (a if o else xc)) + (xc if o else b)) * beta
 
 
 @njit(cache=True, inline="always")
@@ -157,9 +189,10 @@ def _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, h
     """M[:, :m] = beta N + diag(conj hdiag) of the chunk's sites (rows r0..r1, sites j0..j0+w of
     each), components a nf + b (real) and nf^2 + a nf + b (imaginary); R, X, fo: scratch."""
     nc = nf * nf
-    for comp in range(2 * nc):
-        for j in range(m):
-            R[comp, j] = 0.0
+    if rnbr.shape[0] == 0:
+        for comp in range(2 * nc):
+            for j in range(m):
+                R[comp, j] = 0.0
     for k in range(rnbr.shape[0]):
         g = r0
         while g < r1:
@@ -167,7 +200,10 @@ def _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, h
             while g2 < r1 and rnbr[k, g2] == rnbr[k, g2 - 1] + 1:
                 g2 += 1
             for c in range(nc):
-                _add_run(R, nc, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, (g2 - g) * w, c)
+                if k == 0:  # the runs of one direction cover the chunk once: the first sets R = 0 + N_0
+                    _set_run(R, nc, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, (g2 - g) * w, c)
+                else:
+                    _add_run(R, nc, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, (g2 - g) * w, c)
             g = g2
     if rows > 0:
         for g in range(r0, r1):
@@ -177,17 +213,14 @@ def _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, h
                 fo[b + j] = o
         src = other + r0 * h
         for comp in range(nc):
-            _fast_rows(R[comp], M[comp], X, re[comp], src, m, h, fo, ff, fl)
-            _fast_rows(R[nc + comp], M[nc + comp], X, im[comp], src, m, h, fo, ff, fl)
+            _fast_rows_scaled(R[comp], M[comp], X, re[comp], src, m, h, fo, ff, fl, beta)
+            _fast_rows_scaled(R[nc + comp], M[nc + comp], X, im[comp], src, m, h, fo, ff, fl, beta)
     else:
         for g in range(r0, r1):
             _fast_row(R, nc, (g - r0) * w, re, im, other + g * h, h, (colour + rpar[g]) % 2, j0, w)
         for comp in range(2 * nc):
             for j in range(m):
-                M[comp, j] = R[comp, j]
-    for comp in range(2 * nc):
-        for j in range(m):
-            M[comp, j] *= beta
+                M[comp, j] = R[comp, j] * beta
     for a in range(nf):
         hr = hdiag[a].real
         hi = -hdiag[a].imag
@@ -196,13 +229,274 @@ def _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, h
             M[nc + a * nf + a, j] += hi
 
 
+# ----------------------------------------------------------------------------- nf = 2 fast path
+# The nf = 2 site update keeps everything of a chunk in one flat scratch array S with rows
+# ("slots") of CHUNK_SITES: distinct slots are a compile-time constant distance apart, so LLVM
+# sees that the long branch-free loops over the sites carry no dependence and vectorises them
+# (with separate 2-d scratch arrays it would need a run-time overlap check for every pair of
+# rows and gives up).  Slots: M (re 0..3, im 4..7), U in flavour order (re 8..11, im 12..15),
+# the heatbath's W of the subgroup (16..23), direction and x0 (24..29), von Mises angle (30, 31).
+S2_M = 0
+S2_U = 8
+S2_W = 16
+S2_V = 24
+S2_Q = 30
+S2_SLOTS = 32
+
+
+@njit(cache=True, inline="always")
+def _ld(S, slot, us):
+    return S[np.uint64(slot * CHUNK_SITES) + us]
+
+
+@njit(cache=True, inline="always")
+def _st(S, slot, us, v):
+    S[np.uint64(slot * CHUNK_SITES) + us] = v
+
+
+@njit(cache=True, inline="always")
+def _w2(xr0, xi0, xr1, xi1, mr0, mi0, mr1, mi1):
+    """W_ae = sum_c U_ac conj(M_ec) for row x of U and row m of M (nf = 2, the generic kernel's order)."""
+    wr = (0.0 + (xr0 * mr0 + xi0 * mi0)) + (xr1 * mr1 + xi1 * mi1)
+    wi = (0.0 + (xi0 * mr0 - xr0 * mi0)) + (xi1 * mr1 - xr1 * mi1)
+    return wr, wi
+
+
+@njit(cache=True, inline="always")
+def _phase2(er, ei, ur0, ui0, ur1, ui1, ur2, ui2, ur3, ui3, k2r, k2i):
+    """-dS of the phase step U -> e U for nf = 2 (det from the rows in flavour order)."""
+    e2r = er * er - ei * ei
+    e2i = er * ei + ei * er
+    dr = (ur0 * ur3 - ui0 * ui3) - (ur1 * ur2 - ui1 * ui2)
+    di = (ur0 * ui3 + ui0 * ur3) - (ur1 * ui2 + ui1 * ur2)
+    ddr = (e2r * dr - e2i * di) - dr
+    ddi = (e2r * di + e2i * dr) - di
+    return k2r * ddr - k2i * ddi
+
+
+@njit(cache=True, inline="always")
+def _rows_ij(S, base, us, sw):
+    """Rows i, j (i = 1 when ``sw``) of the 2x2 matrix in slots base.. (re 0..3, im 4..7)."""
+    r00 = _ld(S, base, us); r01 = _ld(S, base + 1, us); r10 = _ld(S, base + 2, us); r11 = _ld(S, base + 3, us)
+    i00 = _ld(S, base + 4, us); i01 = _ld(S, base + 5, us); i10 = _ld(S, base + 6, us)
+    i11 = _ld(S, base + 7, us)
+    return (r10 if sw else r00, i10 if sw else i00, r11 if sw else r01, i11 if sw else i01,
+            r00 if sw else r10, i00 if sw else i10, r01 if sw else r11, i01 if sw else i11)
+
+
+@njit(cache=True, inline="always")
+def _rot2(r0r, r0i, r1r, r1i, x0r, x0i, x1r, x1i, y0r, y0i, y1r, y1i):
+    """Rows x, y -> r (rows x, y), r = [[r0, r1], [-conj r1, conj r0]] (as :func:`_rot_rows`)."""
+    n0r = (r0r * x0r - r0i * x0i) + (r1r * y0r - r1i * y0i)
+    n0i = (r0r * x0i + r0i * x0r) + (r1r * y0i + r1i * y0r)
+    n1r = (r0r * x1r - r0i * x1i) + (r1r * y1r - r1i * y1i)
+    n1i = (r0r * x1i + r0i * x1r) + (r1r * y1i + r1i * y1r)
+    p0r = (r0r * y0r + r0i * y0i) - (r1r * x0r + r1i * x0i)
+    p0i = (r0r * y0i - r0i * y0r) + (r1i * x0r - r1r * x0i)
+    p1r = (r0r * y1r + r0i * y1i) - (r1r * x1r + r1i * x1i)
+    p1i = (r0r * y1i - r0i * y1r) + (r1i * x1r - r1r * x1i)
+    return n0r, n0i, n1r, n1i, p0r, p0i, p1r, p1i
+
+
+@njit(cache=True, inline="always")
+def _trace_rot2(r0r, r0i, r1r, r1i, wiir, wiii, wijr, wiji, wjir, wjii, wjjr, wjji, sw):
+    """Tr(r W) from the (i, j) block of W, summed in flavour order as the generic kernel does."""
+    tir = (r0r * wiir - r0i * wiii) + (r1r * wjir - r1i * wjii)
+    tii = (r0r * wiii + r0i * wiir) + (r1r * wjii + r1i * wjir)
+    tjr = (r0r * wjjr + r0i * wjji) - (r1r * wijr + r1i * wiji)
+    tji = (r0r * wjji - r0i * wjjr) + (r1i * wijr - r1r * wiji)
+    zr = (0.0 + (tjr if sw else tir)) + (tir if sw else tjr)
+    zi = (0.0 + (tji if sw else tii)) + (tii if sw else tji)
+    return zr, zi
+
+
+@njit(cache=True, inline="always")
+def _store_rows2(S, us, sw, n0r, n0i, n1r, n1i, p0r, p0i, p1r, p1i):
+    """Rows i, j back to the U slots in flavour order."""
+    _st(S, S2_U, us, p0r if sw else n0r); _st(S, S2_U + 1, us, p1r if sw else n1r)
+    _st(S, S2_U + 2, us, n0r if sw else p0r); _st(S, S2_U + 3, us, n1r if sw else p1r)
+    _st(S, S2_U + 4, us, p0i if sw else n0i); _st(S, S2_U + 5, us, p1i if sw else n1i)
+    _st(S, S2_U + 6, us, n0i if sw else p0i); _st(S, S2_U + 7, us, n1i if sw else p1i)
+
+
+@njit(cache=True, error_model="numpy")
+def _chunk_u2(S, re, im, uc0, m, i, hb, special, k2r, k2i, key, phase_base):
+    """The whole site update of one chunk for nf = 2 (the numbers of the generic path).
+
+    ``S``: the slots above, M filled in.  The one subgroup is (i, 1 - i) of the flavour order;
+    rows are read in that order by branch-free selects, and the trace and the determinant take
+    them back in flavour order, so every sum has the generic kernel's order.  Overrelaxation is
+    one vector loop over the sites; the heatbath runs the x0 and von Mises rejection loops
+    site by site between its vector loops.  Returns the accepted phase steps.
+    """
+    sw = i == 1
+    na = 0
+    for c in range(4):
+        for s in range(m):
+            q = uc0 + np.uint64(s)
+            S[(S2_U + c) * CHUNK_SITES + s] = re[c, q]
+            S[(S2_U + 4 + c) * CHUNK_SITES + s] = im[c, q]
+    if not hb:
+        for s in range(m):
+            us = np.uint64(s)
+            x0r, x0i, x1r, x1i, y0r, y0i, y1r, y1i = _rows_ij(S, S2_U, us, sw)
+            a0r, a0i, a1r, a1i, b0r, b0i, b1r, b1i = _rows_ij(S, S2_M, us, sw)
+            wiir, wiii = _w2(x0r, x0i, x1r, x1i, a0r, a0i, a1r, a1i)
+            wijr, wiji = _w2(x0r, x0i, x1r, x1i, b0r, b0i, b1r, b1i)
+            wjir, wjii = _w2(y0r, y0i, y1r, y1i, a0r, a0i, a1r, a1i)
+            wjjr, wjji = _w2(y0r, y0i, y1r, y1i, b0r, b0i, b1r, b1i)
+            ar = 0.5 * (wiir + wjjr)
+            ai = 0.5 * (wiii - wjji)
+            br = 0.5 * (wijr - wjir)
+            bi = 0.5 * (wiji + wjii)
+            k2 = ar * ar + ai * ai + br * br + bi * bi
+            tiny = k2 < 1e-300
+            f = 0.0 if tiny else (ar + ar) / k2
+            r0r = 1.0 if tiny else f * ar - 1.0
+            r0i = -f * ai
+            r1r = -f * br
+            r1i = -f * bi
+            n0r, n0i, n1r, n1i, p0r, p0i, p1r, p1i = _rot2(r0r, r0i, r1r, r1i, x0r, x0i, x1r, x1i, y0r, y0i,
+                                                           y1r, y1i)
+            if not special:
+                zr, zi = _trace_rot2(r0r, r0i, r1r, r1i, wiir, wiii, wijr, wiji, wjir, wjii, wjjr, wjji, sw)
+                kz = np.sqrt(zr * zr + zi * zi)
+                big = kz > 1e-300
+                ik = 1.0 / kz if big else 0.0
+                cr = zr * ik
+                ci = -zi * ik
+                er = cr * cr - ci * ci if big else 1.0
+                ei = 2.0 * cr * ci if big else 0.0
+                mds = _phase2(er, ei, p0r if sw else n0r, p0i if sw else n0i, p1r if sw else n1r,
+                              p1i if sw else n1i, n0r if sw else p0r, n0i if sw else p0i, n1r if sw else p1r,
+                              n1i if sw else p1i, k2r, k2i)
+                uacc = uniform(key, (uc0 + us) * SITE_STRIDE)
+                ok = (uacc < exp_le0(min(mds, 0.0))) & big
+                na += np.int64(ok)
+                fr = er if ok else 1.0
+                fi = ei if ok else 0.0
+                t0r = fr * n0r - fi * n0i; n0i = fr * n0i + fi * n0r; n0r = t0r
+                t1r = fr * n1r - fi * n1i; n1i = fr * n1i + fi * n1r; n1r = t1r
+                t2r = fr * p0r - fi * p0i; p0i = fr * p0i + fi * p0r; p0r = t2r
+                t3r = fr * p1r - fi * p1i; p1i = fr * p1i + fi * p1r; p1r = t3r
+            _store_rows2(S, us, sw, n0r, n0i, n1r, n1i, p0r, p0i, p1r, p1i)
+    else:
+        # ---- W and the subgroup direction
+        for s in range(m):
+            us = np.uint64(s)
+            x0r, x0i, x1r, x1i, y0r, y0i, y1r, y1i = _rows_ij(S, S2_U, us, sw)
+            a0r, a0i, a1r, a1i, b0r, b0i, b1r, b1i = _rows_ij(S, S2_M, us, sw)
+            wiir, wiii = _w2(x0r, x0i, x1r, x1i, a0r, a0i, a1r, a1i)
+            wijr, wiji = _w2(x0r, x0i, x1r, x1i, b0r, b0i, b1r, b1i)
+            wjir, wjii = _w2(y0r, y0i, y1r, y1i, a0r, a0i, a1r, a1i)
+            wjjr, wjji = _w2(y0r, y0i, y1r, y1i, b0r, b0i, b1r, b1i)
+            _st(S, S2_W, us, wiir); _st(S, S2_W + 1, us, wiii); _st(S, S2_W + 2, us, wijr)
+            _st(S, S2_W + 3, us, wiji); _st(S, S2_W + 4, us, wjir); _st(S, S2_W + 5, us, wjii)
+            _st(S, S2_W + 6, us, wjjr); _st(S, S2_W + 7, us, wjji)
+            ar = 0.5 * (wiir + wjjr)
+            ai = 0.5 * (wiii - wjji)
+            br = 0.5 * (wijr - wjir)
+            bi = 0.5 * (wiji + wjii)
+            k = np.sqrt(ar * ar + ai * ai + br * br + bi * bi)
+            ik = 1.0 / k
+            _st(S, S2_V, us, ar * ik)
+            _st(S, S2_V + 1, us, ai * ik)
+            _st(S, S2_V + 2, us, br * ik)
+            _st(S, S2_V + 3, us, bi * ik)
+            _st(S, S2_V + 4, us, 2.0 * k)
+        # ---- x0, site by site
+        for s in range(m):
+            us = np.uint64(s)
+            alpha = _ld(S, S2_V + 4, us)
+            if alpha < 2e-300:
+                x0 = 2.0  # no field in this subgroup: r = 1 below
+            else:
+                x0, _ = sample_su2_x0(alpha, key, (uc0 + us) * SITE_STRIDE + _TWO)
+            _st(S, S2_V + 5, us, x0)
+        # ---- the point on the sphere, r = X V^dagger, the rotated rows and Tr W
+        for s in range(m):
+            us = np.uint64(s)
+            n = (uc0 + us) * SITE_STRIDE
+            u = uniform(key, n)
+            v = uniform(key, n + _ONE)
+            x0 = _ld(S, S2_V + 5, us)
+            one = x0 > 1.5
+            x0 = 1.0 if one else x0
+            rr2 = max(0.0, 1.0 - x0 * x0)
+            rr = np.sqrt(rr2)
+            c3 = 2.0 * u - 1.0
+            rs = rr * np.sqrt(max(0.0, 1.0 - c3 * c3))
+            ph = np.pi * (2.0 * v - 1.0)
+            x1 = rs * np.cos(ph)
+            x2 = rs * np.sin(ph)
+            x3 = rr * c3
+            Ar = 1.0 if one else _ld(S, S2_V, us)
+            Ai = 0.0 if one else _ld(S, S2_V + 1, us)
+            Br = 0.0 if one else _ld(S, S2_V + 2, us)
+            Bi = 0.0 if one else _ld(S, S2_V + 3, us)
+            r0r = (x0 * Ar + x3 * Ai) + (x2 * Br + x1 * Bi)
+            r0i = (x3 * Ar - x0 * Ai) + (x1 * Br - x2 * Bi)
+            r1r = (x2 * Ar - x1 * Ai) + (x3 * Bi - x0 * Br)
+            r1i = (x2 * Ai + x1 * Ar) - (x0 * Bi + x3 * Br)
+            x0r, x0i, x1r, x1i, y0r, y0i, y1r, y1i = _rows_ij(S, S2_U, us, sw)
+            n0r, n0i, n1r, n1i, p0r, p0i, p1r, p1i = _rot2(r0r, r0i, r1r, r1i, x0r, x0i, x1r, x1i, y0r, y0i,
+                                                           y1r, y1i)
+            _store_rows2(S, us, sw, n0r, n0i, n1r, n1i, p0r, p0i, p1r, p1i)
+            zr, zi = _trace_rot2(r0r, r0i, r1r, r1i, _ld(S, S2_W, us), _ld(S, S2_W + 1, us), _ld(S, S2_W + 2, us),
+                                 _ld(S, S2_W + 3, us), _ld(S, S2_W + 4, us), _ld(S, S2_W + 5, us),
+                                 _ld(S, S2_W + 6, us), _ld(S, S2_W + 7, us), sw)
+            _st(S, S2_V, us, zr)
+            _st(S, S2_V + 1, us, zi)
+            _st(S, S2_V + 2, us, np.sqrt(zr * zr + zi * zi))
+        if not special:
+            # ---- the von Mises angle, site by site
+            for s in range(m):
+                us = np.uint64(s)
+                c, sn, _ = von_mises_angle(_ld(S, S2_V + 2, us), key, (uc0 + us) * SITE_STRIDE + phase_base + _ONE)
+                _st(S, S2_Q, us, c)
+                _st(S, S2_Q + 1, us, sn)
+            # ---- the phase step
+            for s in range(m):
+                us = np.uint64(s)
+                kz = _ld(S, S2_V + 2, us)
+                big = kz > 1e-300
+                ik = 1.0 / kz if big else 0.0
+                cr = _ld(S, S2_V, us) * ik
+                ci = -_ld(S, S2_V + 1, us) * ik
+                c = _ld(S, S2_Q, us)
+                sn = _ld(S, S2_Q + 1, us)
+                er = c * cr - sn * ci if big else c
+                ei = c * ci + sn * cr if big else sn
+                u0r = _ld(S, S2_U, us); u1r = _ld(S, S2_U + 1, us); u2r = _ld(S, S2_U + 2, us)
+                u3r = _ld(S, S2_U + 3, us); u0i = _ld(S, S2_U + 4, us); u1i = _ld(S, S2_U + 5, us)
+                u2i = _ld(S, S2_U + 6, us); u3i = _ld(S, S2_U + 7, us)
+                mds = _phase2(er, ei, u0r, u0i, u1r, u1i, u2r, u2i, u3r, u3i, k2r, k2i)
+                uacc = uniform(key, (uc0 + us) * SITE_STRIDE + phase_base)
+                ok = uacc < exp_le0(min(mds, 0.0))
+                na += np.int64(ok)
+                fr = er if ok else 1.0
+                fi = ei if ok else 0.0
+                _st(S, S2_U, us, fr * u0r - fi * u0i); _st(S, S2_U + 4, us, fr * u0i + fi * u0r)
+                _st(S, S2_U + 1, us, fr * u1r - fi * u1i); _st(S, S2_U + 5, us, fr * u1i + fi * u1r)
+                _st(S, S2_U + 2, us, fr * u2r - fi * u2i); _st(S, S2_U + 6, us, fr * u2i + fi * u2r)
+                _st(S, S2_U + 3, us, fr * u3r - fi * u3i); _st(S, S2_U + 7, us, fr * u3i + fi * u3r)
+    for c in range(4):
+        for s in range(m):
+            q = uc0 + np.uint64(s)
+            re[c, q] = S[(S2_U + c) * CHUNK_SITES + s]
+            im[c, q] = S[(S2_U + 4 + c) * CHUNK_SITES + s]
+    return na
+
+
 @njit(cache=True, parallel=True, error_model="numpy")
-def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special, hb, key, rows, nblk=0):
+def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special, hb, key, rows, nblk=0,
+              generic=False):
     """One heatbath (``hb``) or overrelaxation update of every site of ``colour``, nf >= 2.
 
     ``rnbr``, ``rpar``, ``h``: the lattice's row tables; ``hdiag`` complex (nf,);
     ``k2r + i k2i = 2 kappa eta``; ``rows``/``nblk`` as in :func:`u3.metropolis_u3`
     (the numbers depend on neither).  Returns the accepted phase steps (0 for SU(nf)).
+    nf = 2 takes :func:`_chunk_u2` (the same numbers) unless ``generic`` (for the tests).
     """
     nc = nf * nf
     half = re.shape[1] // 2
@@ -228,7 +522,8 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
             fl[g * h + h - 1] = True
     phase_base = np.uint64(MAX_SUB) * SUB_STRIDE
     for blk in prange(nblk):
-        M = np.empty((2 * nc, CHUNK_SITES))
+        S = np.empty(max(2 * nc, S2_SLOTS) * CHUNK_SITES)  # the nf = 2 slots; M its first 2 nc rows
+        M = S[: 2 * nc * CHUNK_SITES].reshape((2 * nc, CHUNK_SITES))
         R = np.empty((2 * nc, CHUNK_SITES))
         U = np.empty((2 * nc, CHUNK_SITES))
         W = np.empty((2 * nc, CHUNK_SITES))
@@ -255,6 +550,9 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
             # ---- neighbour sums -> M = beta N + diag(conj h)
             _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, hdiag, rows, r0, r1,
                          j0, w, m, other)
+            if nf == 2 and not generic:
+                acc[ch] = _chunk_u2(S, re, im, uc0, m, perm[0], hb, special, k2r, k2i, key, phase_base)
+                continue
             # ---- U and W = U A = U M^dagger
             for comp in range(nc):
                 for j in range(m):
