@@ -95,8 +95,25 @@ def _sweep_file(path: Path) -> str:
     summ = ", ".join(f"{k} {v:.4g}" if isinstance(v, float) else f"{k} {v}" for k, v in s["summary"].items()
                      if not isinstance(v, list))
     return "\n".join([f"{path}: sigmasim sweep file, {n} theta steps", f"summary: {summ}",
-                      "protocol:", _indent(config_block({"sweep": s["protocol"]})),
+                      "protocol:", _indent(config_block({"hysteresis": s["protocol"]})),
                       "config:", _indent(config_block(s["config"]))])
+
+
+def _multicanonical_file(path: Path) -> str:
+    from sigmasim.storage import read_multicanonical
+
+    data, attrs = read_multicanonical(path)
+    protocol = json.loads(attrs.get("protocol", "{}"))
+    averages = json.loads(attrs.get("averages", "{}"))
+    n = len(data.get("production/x", ()))
+    lines = [f"{path}: sigmasim multicanonical file, variable {protocol.get('variable', '?')}, "
+             f"{len(data.get('weight/values', ()))} bins, {n} production measurements, "
+             f"{attrs.get('round_trips', '?')} round trips"]
+    for k, v in averages.items():
+        lines.append(f"  {k}: {v[0]:.6g} +- {v[1]:.2g} (reweighted)")
+    lines += ["protocol:", _indent(config_block({"multicanonical": protocol})),
+              "config:", _indent(config_block(json.loads(attrs.get("config", "{}"))))]
+    return "\n".join(lines)
 
 
 def _index_h5(path: Path, attrs: dict) -> str:
@@ -174,7 +191,7 @@ def info_text(path) -> str:
         return f"{path}: npz arrays: " + ", ".join(f"{k} {list(s)}" for k, s in arrays.items())
     from sigmasim.protocols import SWEEP_FORMAT
     from sigmasim.scan import INDEX_FORMAT
-    from sigmasim.storage import hdf5_datasets, hdf5_root_attrs
+    from sigmasim.storage import MUCA_FORMAT, hdf5_datasets, hdf5_root_attrs
 
     try:  # only these, and only plain values
         attrs = hdf5_root_attrs(path, ("format", "sweep", "scan", "base_config"))
@@ -185,6 +202,8 @@ def info_text(path) -> str:
         return _sweep_file(path)
     if fmt == INDEX_FORMAT:
         return _index_h5(path, attrs)
+    if fmt == MUCA_FORMAT:
+        return _multicanonical_file(path)
     if fmt == "sigmasim-export":
         try:
             shapes = hdf5_datasets(path)

@@ -195,7 +195,7 @@ def load_scan(path, raw: dict | None = None) -> ScanSpec:
             raise ConfigError(f"scan.base {bpath} is itself a scan file")
     else:
         base = rest
-    for table in ("sweep", "tempering", "lifetimes"):
+    for table in ("hysteresis", "sweep", "tempering", "lifetimes", "multicanonical"):
         if table in base:
             raise ConfigError(f"the base config has a [{table}] table: a scan runs plain runs only")
     base_cfg = config_from_dict(base)  # the base must be valid on its own

@@ -344,6 +344,11 @@ def test_command_writes_a_readable_file_and_refuses_foreign_ones(tmp_path, capsy
     assert np.allclose(data["production/x"], data["production/omega_h"].imag, atol=1e-12)
     assert data["wang_landau/hist"].shape == (2, 18)
     assert attrs["format"] == "sigmasim-multicanonical" and "abs_x" in attrs["averages"]
+    # `sigmasim info` reads it back
+    assert main(["info", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "sigmasim multicanonical file, variable im_omega_h" in text and "abs_x" in text
+    assert "[multicanonical]" in text
     # same config + seed = same numbers
     out2 = tmp_path / "m2.h5"
     assert main(["multicanonical", str(cfg), "--out", str(out2), "--quiet"]) == 0

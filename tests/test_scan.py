@@ -141,6 +141,16 @@ def test_run_refuses_a_scan_file_and_scan_refuses_run_flags(tmp_path, capsys):
     assert "--workers must be >= 1" in capsys.readouterr().err
 
 
+@pytest.mark.parametrize("table", ["hysteresis", "sweep", "tempering", "lifetimes", "multicanonical"])
+def test_base_with_a_protocol_table_is_refused(tmp_path, table):
+    base = tmp_path / "base.toml"
+    base.write_text(BASE.replace("MEAS", "10").replace("EVERY", "5") + f"\n[{table}]\n")
+    s = tmp_path / "s.toml"
+    s.write_text('[scan]\nbase = "base.toml"\n[scan.product]\nseed = [1, 2]\n')
+    with pytest.raises(ConfigError, match=rf"base config has a \[{table}\] table: a scan runs plain runs only"):
+        load_scan(s)
+
+
 def test_base_file_and_ranges(tmp_path):
     base = tmp_path / "base.toml"
     base.write_text(BASE.replace("MEAS", "10").replace("EVERY", "5"))
