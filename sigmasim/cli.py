@@ -236,7 +236,8 @@ def _branch_note(config, omega_h) -> str:
                                  else f" (global {g})")
 
 
-PROTOCOL_TABLES = {"sweep": "sweep", "tempering": "temper", "lifetimes": "lifetimes", "scan": "scan"}
+PROTOCOL_TABLES = {"sweep": "sweep", "tempering": "temper", "lifetimes": "lifetimes", "scan": "scan",
+                   "multicanonical": "multicanonical"}
 
 
 def _refuse_protocol_tables(path, raw=None) -> None:
@@ -428,6 +429,12 @@ def cmd_lifetimes(args) -> int:
     return lifetimes_command(args.config, out=args.out, workers=args.workers, quiet=args.quiet)
 
 
+def cmd_multicanonical(args) -> int:
+    from sigmasim.multicanonical import multicanonical_command
+
+    return multicanonical_command(args.config, out=args.out, quiet=args.quiet)
+
+
 def cmd_export(args) -> int:
     from sigmasim.export import export_command
 
@@ -612,6 +619,13 @@ def build_parser() -> argparse.ArgumentParser:
     lt.add_argument("--quiet", action="store_true", help="no progress bar")
     lt.protocol_table = "lifetimes"
     lt.set_defaults(func=cmd_lifetimes)
+    mu = sub.add_parser("multicanonical", help="multicanonical sampling across the barrier in Im omega_h "
+                                               "(weight building, production, -ln P(x), round trips)")
+    mu.add_argument("config", help="run TOML with a [multicanonical] table")
+    mu.add_argument("--out", default=None, help="HDF5 output (default <output>/<name>/<name>-multicanonical.h5)")
+    mu.add_argument("--quiet", action="store_true", help="no stage lines")
+    mu.protocol_table = "multicanonical"
+    mu.set_defaults(func=cmd_multicanonical)
     ex = sub.add_parser("export", help="a run's arrays as npz/csv/hdf5 plus a JSON sidecar with known answers")
     ex.add_argument("run", help="run file (.h5)")
     ex.add_argument("--format", choices=["npz", "csv", "hdf5"], default="npz")

@@ -15,7 +15,8 @@ __all__ = ["PROTOCOL_TABLES", "SCAN_MEANINGS", "protocol_schema", "table_markdow
            "reference_text"]
 
 #: table -> the command that runs a config with it
-PROTOCOL_TABLES = {"sweep": "sweep", "tempering": "temper", "lifetimes": "lifetimes", "scan": "scan"}
+PROTOCOL_TABLES = {"sweep": "sweep", "tempering": "temper", "lifetimes": "lifetimes", "scan": "scan",
+                   "multicanonical": "multicanonical"}
 
 SCAN_MEANINGS = {
     "base": "run config the points start from (relative to the scan file); empty: the scan file's "
@@ -40,6 +41,10 @@ def protocol_schema(table: str) -> dict:
         from sigmasim.scan import _SCAN_KEYS
 
         return {k: (t.__name__, {} if d is None else d, SCAN_MEANINGS[k]) for k, (t, d) in _SCAN_KEYS.items()}
+    if table == "multicanonical":
+        from sigmasim.multicanonical import MUCA_SCHEMA
+
+        return MUCA_SCHEMA
     from sigmasim import protocols
 
     return {"sweep": protocols.SWEEP_SCHEMA, "tempering": protocols.TEMPER_SCHEMA,

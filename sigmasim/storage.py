@@ -809,3 +809,61 @@ def open_run(path) -> RunData:
         raise
     except Exception as exc:  # h5py raises many kinds on damaged files
         raise RunFileError(f"{path}: cannot read ({type(exc).__name__}: {_one_line(exc)})") from None
+
+
+# ---------------------------------------------------------------------------
+# multicanonical output (sigmasim multicanonical)
+# ---------------------------------------------------------------------------
+
+MUCA_FORMAT = "sigmasim-multicanonical"
+
+
+def check_multicanonical_target(path) -> None:
+    """Refuse (one line) to replace a file at ``path`` that is not a multicanonical file of sigmasim."""
+    path = Path(path)
+    if not path.exists():
+        return
+    try:
+        with h5py.File(path, "r") as f:
+            ours = _text(f.attrs.get("format")) == MUCA_FORMAT
+    except Exception:
+        ours = False
+    if not ours:
+        raise RunFileError(f"refusing to overwrite {_p(path)}: it is not a multicanonical file of sigmasim")
+
+
+def write_multicanonical(path, data: dict, attrs: dict) -> Path:
+    """Write the multicanonical output: ``data`` name -> array (``group/name`` makes groups),
+    ``attrs`` name -> attribute; atomically (nothing left behind on failure)."""
+    check_multicanonical_target(path)
+
+    def build(f):
+        f.attrs["format"] = MUCA_FORMAT
+        f.attrs["format_version"] = 1
+        for k, v in attrs.items():
+            f.attrs[k] = v
+        for k, v in data.items():
+            f.create_dataset(k, data=np.asarray(v))
+
+    return atomic_hdf5(Path(path), build, what="multicanonical file")
+
+
+def read_multicanonical(path) -> tuple[dict, dict]:
+    """(datasets, attributes) of a file written by :func:`write_multicanonical`; one-line
+    :class:`RunFileError` on a missing, foreign or damaged file."""
+    path = Path(path)
+    if not path.is_file():
+        raise RunFileError(f"{_p(path)} does not exist or is not a file")
+    try:
+        with h5py.File(path, "r") as f:
+            if _text(f.attrs.get("format")) != MUCA_FORMAT:
+                raise RunFileError(f"{_p(path)} is not a multicanonical file of sigmasim")
+            data = {}
+            f.visititems(lambda name, obj: data.__setitem__(name, obj[...])
+                         if isinstance(obj, h5py.Dataset) else None)
+            attrs = {k: _plain(v) for k, v in f.attrs.items()}
+    except RunFileError:
+        raise
+    except Exception as exc:
+        raise RunFileError(f"{_p(path)}: cannot read ({type(exc).__name__}: {_one_line(exc)})") from None
+    return data, attrs
