@@ -525,6 +525,9 @@ class BarrierResult:
              f"{v['asymmetry']:.4g} +- {e['asymmetry']:.2g}")
         if not self.refined:
             s += " [an extremum fell outside its fitting window: bin values used]"
+        if self.failed_replicas:
+            s += (f" [{self.failed_replicas} bootstrap replicas left a side of the split without a visited"
+                  " bin: errors NaN, more statistics needed]")
         return s + f" ({_TOY})"
 
 
