@@ -37,7 +37,7 @@ import numpy as np
 from sigmasim.chain import SERIES, ChainState, Simulation
 from sigmasim.config import RunConfig
 from sigmasim.errors import ConfigError
-from sigmasim.kernels.bias import MODES, biased_sweeps, variable_sum
+from sigmasim.kernels.bias import MODES, biased_sweeps, collective, variable_sum
 from sigmasim.kernels.measure import reunitarize, reunitarize3, reunitarize_u1
 from sigmasim.rng import mix64_int
 
@@ -49,6 +49,7 @@ __all__ = ["Weight", "BiasedChain", "BiasedRun", "run_biased", "wang_landau", "r
 VARIABLES = {
     "im_omega_h": "Im omega_h = Im(e^{i theta_m} sum_x Tr U_x) / (nf V)",
     "im_det": "Im(e^{i theta_a} sum_x det U_x) / V (U(nf) only)",
+    "arg_omega_h": "arg omega_h in (-pi, pi], the phase of omega_h (the branch angle)",
 }
 
 
@@ -117,7 +118,7 @@ def _variable_constant(config: RunConfig, variable: str) -> tuple[int, complex]:
     theta_m, theta_a = config.theta_angles
     if variable == "im_det" and config.special:
         raise ConfigError("variable 'im_det' needs group U (det U = 1 for SU(nf))")
-    return MODES[variable], complex(np.exp(1j * (theta_m if variable == "im_omega_h" else theta_a)))
+    return MODES[variable], complex(np.exp(1j * (theta_a if variable == "im_det" else theta_m)))
 
 
 class BiasedChain:
@@ -148,7 +149,8 @@ class BiasedChain:
 
     def x(self) -> float:
         st = self.sim.state
-        return variable_sum(st.re, st.im, self.config.nf, self.mode, self.cvar) / st.re.shape[1]
+        return float(collective(variable_sum(st.re, st.im, self.config.nf, self.mode, self.cvar), st.re.shape[1],
+                                self.mode))
 
     def frozen_weight(self) -> Weight:
         return Weight(self.weight.lo, self.weight.hi, self.values.copy(), self.weight.wall)
@@ -254,20 +256,28 @@ def run_biased(config: RunConfig, weight: Weight, sweeps: int, *, measure_every:
     return BiasedRun(xs, weight(xs), series, weight, chain.state, acc, time.process_time() - t0)
 
 
-def wang_landau(chain: BiasedChain, iterations: int, sweeps: int, f0: float = 1.0) -> list[dict]:
+def wang_landau(chain: BiasedChain, iterations: int, sweeps: int, f0: float = 1.0, flatness: float = 0.0,
+                chunks: int = 1) -> list[dict]:
     """Wang-Landau building of the chain's weight table in place (Wang & Landau, PRL 86 (2001) 2050).
 
-    Iteration k runs ``sweeps`` sweeps adding ``f0 / 2^k`` to W at the bin of x after every
-    sweep.  Returns per iteration: f, the histogram and its flatness (min / mean over the bins).
-    After the last iteration the table is shifted to min 0.
+    Iteration k adds ``f0 / 2^k`` to W at the bin of x after every sweep; it runs ``sweeps``
+    sweeps at a time until the histogram's flatness (min / mean over the bins) reaches
+    ``flatness``, at most ``chunks`` times (``flatness = 0``: one chunk, a fixed schedule).
+    Returns per iteration: f, the histogram, its flatness and the sweeps run.  After the last
+    iteration the table is shifted to min 0.
     """
     out = []
     for k in range(int(iterations)):
         f = float(f0) / 2.0 ** k
         hist = np.zeros(chain.values.size, dtype=np.int64)
-        chain.sweeps(int(sweeps), wl_f=f, hist=hist)
-        mean = hist.mean()
-        out.append({"f": f, "hist": hist, "flatness": float(hist.min() / mean) if mean > 0 else 0.0})
+        flat = 0.0
+        for c in range(max(1, int(chunks))):
+            chain.sweeps(int(sweeps), wl_f=f, hist=hist)
+            mean = hist.mean()
+            flat = float(hist.min() / mean) if mean > 0 else 0.0
+            if flat >= flatness:
+                break
+        out.append({"f": f, "hist": hist, "flatness": flat, "sweeps": (c + 1) * int(sweeps)})
     chain.values -= chain.values.min()
     return out
 
@@ -361,13 +371,17 @@ def round_trips(x, left: float, right: float) -> tuple[int, np.ndarray]:
 #: key -> (kind, default, meaning) of the [multicanonical] table
 MUCA_SCHEMA = {
     "variable": ("choice", "im_omega_h", "collective variable: im_omega_h (Im omega_h, the per-site mean of "
-                 "Im(e^{i theta_m} Tr U) / nf) or im_det (per-site mean of Im(e^{i theta_a} det U), U(nf) only)"),
+                 "Im(e^{i theta_m} Tr U) / nf), im_det (per-site mean of Im(e^{i theta_a} det U), U(nf) "
+                 "only) or arg_omega_h (the phase of omega_h in (-pi, pi], the branch angle)"),
     "range": ("range", [-0.6, 0.6], "[lo, hi] of the weight's histogram grid in the variable"),
     "bins": ("int:2:100000", 24, "bins of the grid"),
     "wall": ("real>=0", 10.0, "slope of the weight outside the grid, per bin width (a steep finite wall)"),
     "wl_iterations": ("int:0:64", 8, "Wang-Landau iterations building the weight (0: W = 0, a plain run)"),
     "wl_sweeps": ("int:1:1000000000", 500, "sweeps per Wang-Landau iteration"),
     "wl_start": ("real>0", 0.5, "Wang-Landau increment of the first iteration, halved after each"),
+    "wl_flatness": ("real:0:1", 0.0, "an iteration repeats its wl_sweeps until the histogram's min / mean "
+                    "reaches this (0: a fixed schedule of one chunk per iteration)"),
+    "wl_chunks": ("int:1:1000000", 1, "at most this many chunks of wl_sweeps per iteration"),
     "overrelax": ("int:0:100", 1, "overrelaxation passes per sweep (after the Metropolis pass)"),
     "regions": ("regions", None, "optional [left, right]: a round trip goes x <= left -> x >= right -> "
                 "x <= left (default: the outer quarters of the grid)"),
@@ -406,6 +420,10 @@ def muca_params(sub: dict) -> dict:
             lo, hi = (int(t) for t in kind[4:].split(":"))
             if not (isinstance(v, int) and not isinstance(v, bool) and lo <= v <= hi):
                 raise ConfigError(f"{where} must be an integer in [{lo}, {hi}], got {v!r}")
+        elif kind == "real:0:1":
+            if not (_num(v) and 0.0 <= v < 1.0):
+                raise ConfigError(f"{where} must be a number in [0, 1), got {v!r}")
+            v = float(v)
         elif kind in ("real>0", "real>=0"):
             ok = _num(v) and (v > 0 if kind == "real>0" else v >= 0)
             if not ok:
@@ -414,9 +432,12 @@ def muca_params(sub: dict) -> dict:
         out[key] = v
     lo, hi = out["range"]
     if out["regions"] is not None and not (lo <= out["regions"][0] and out["regions"][1] <= hi):
-        raise ConfigError(f"multicanonical.regions {out['regions']} must lie inside multicanonical.range {out['range']}")
-    if out["variable"] == "im_omega_h" and (lo < -1.0 or hi > 1.0):
-        raise ConfigError(f"multicanonical.range {out['range']} must lie inside [-1, 1] (|Im omega_h| <= 1)")
+        raise ConfigError(f"multicanonical.regions {out['regions']} must lie inside "
+                          f"multicanonical.range {out['range']}")
+    if out["variable"] != "arg_omega_h" and (lo < -1.0 or hi > 1.0):
+        raise ConfigError(f"multicanonical.range {out['range']} must lie inside [-1, 1] (|x| <= 1)")
+    if out["variable"] == "arg_omega_h" and (lo < -math.pi or hi > math.pi):
+        raise ConfigError(f"multicanonical.range {out['range']} must lie inside [-pi, pi] (a phase)")
     return out
 
 
@@ -458,7 +479,7 @@ class MucaResult:
         lines = [f"multicanonical {c.name}: U({c.nf})" if not c.special else f"multicanonical {c.name}: SU({c.nf})",
                  f"  lattice {list(c.shape)}, beta {c.beta}, theta {c.theta:.6g}; variable {p['variable']} on "
                  f"{p['range']} in {p['bins']} bins",
-                 f"  Wang-Landau: {len(self.wl)} iterations x {p['wl_sweeps']} sweeps, last flatness "
+                 f"  Wang-Landau: {len(self.wl)} iterations, {sum(w['sweeps'] for w in self.wl)} sweeps, last flatness "
                  + (f"{self.wl[-1]['flatness']:.2f}" if self.wl else "n/a"),
                  f"  production: {self.run.x.size} measurements every {c.measure_every} sweeps, acceptance "
                  f"Metropolis {self.run.acceptance['metropolis']:.3f}, overrelaxation "
@@ -504,7 +525,8 @@ def run_multicanonical(config: RunConfig, params: dict, progress=None) -> MucaRe
     t1 = time.process_time()
     if progress:
         progress("Wang-Landau")
-    wl = wang_landau(chain, params["wl_iterations"], params["wl_sweeps"], params["wl_start"])
+    wl = wang_landau(chain, params["wl_iterations"], params["wl_sweeps"], params["wl_start"],
+                     params["wl_flatness"], params["wl_chunks"])
     weight = chain.frozen_weight()
     t2 = time.process_time()
     if progress:
@@ -545,6 +567,7 @@ def result_blob(res: MucaResult) -> tuple[dict, dict]:
         "weight/edges": res.weight.edges,
         "wang_landau/f": np.array([w["f"] for w in res.wl], dtype=np.float64),
         "wang_landau/flatness": np.array([w["flatness"] for w in res.wl], dtype=np.float64),
+        "wang_landau/sweeps": np.array([w["sweeps"] for w in res.wl], dtype=np.int64),
         "wang_landau/hist": (np.array([w["hist"] for w in res.wl], dtype=np.int64) if res.wl
                              else np.zeros((0, res.weight.bins), dtype=np.int64)),
         "production/x": res.run.x,

@@ -157,7 +157,8 @@ def test_sigterm_stops_cleanly_and_resume_matches(tmp_path):
 
 
 EXAMPLES = sorted((ROOT / "runs").glob("*.toml"))
-PLAIN = [p for p in EXAMPLES if not any(f"[{t}]" in p.read_text() for t in ("sweep", "tempering", "lifetimes", "scan"))]
+PLAIN = [p for p in EXAMPLES if not any(f"[{t}]" in p.read_text() for t in ("sweep", "tempering", "lifetimes", "scan",
+                                                                             "multicanonical"))]
 PROTOCOL = [p for p in EXAMPLES if p not in PLAIN]
 
 

@@ -6,7 +6,11 @@
 mode 0 (``im_omega_h``)
     ``x_s = Im(e^{i theta_m} Tr U_s) / nf``, so ``x = Im omega_h`` of :data:`sigmasim.chain.SERIES`;
 mode 1 (``im_det``)
-    ``x_s = Im(e^{i theta_a} det U_s)``, the anomaly term's phase direction.
+    ``x_s = Im(e^{i theta_a} det U_s)``, the anomaly term's phase direction;
+mode 2 (``arg_omega_h``)
+    not a sum: ``x = arg Z`` with ``Z = sum_s e^{i theta_m} Tr U_s / nf`` (the phase of omega_h,
+    the branch angle), in (-pi, pi].  The kernels keep the complex running sum Z for every mode
+    (``x = Im Z / V`` for modes 0 and 1), so the weight change of a move is exact here too.
 
 ``W`` is tabulated at the centres of ``nb`` bins of width ``dx`` starting at
 ``lo`` and interpolated linearly between them (constant in the outer half
@@ -51,31 +55,40 @@ from sigmasim.kernels.group import det, load, store
 from sigmasim.kernels.tables import phase_table, rotation_table, step_key_nb
 from sigmasim.rng import SITE_STRIDE, bits, uniform
 
-__all__ = ["site_variable", "variable_sum", "weight_value", "biased_sweeps", "MODES"]
+__all__ = ["site_variable", "variable_sum", "collective", "weight_value", "biased_sweeps", "MODES"]
 
-MODES = {"im_omega_h": 0, "im_det": 1}
+MODES = {"im_omega_h": 0, "im_det": 1, "arg_omega_h": 2}
 _ONE = np.uint64(1)
 SALT_TABLE = 0x5EED  # the Metropolis table salt of sigmasim.updates (same tables as the plain chain)
 
 
 @njit(cache=True, inline="always")
 def site_variable(U, nf, mode, cvar, work):
-    """x_s of the matrix ``U`` (see the module notes); ``cvar`` = e^{i theta_m} or e^{i theta_a}."""
-    if mode == 0:
+    """z_s of the matrix ``U``: ``cvar Tr U / nf`` (modes 0, 2) or ``cvar det U`` (mode 1), complex;
+    ``cvar`` = e^{i theta_m} or e^{i theta_a}."""
+    if mode != 1:
         t = complex(0.0, 0.0)
         for a in range(nf):
             t += U[a, a]
-        return (cvar * t).imag / nf
-    return (cvar * det(U, nf, work)).imag
+        return cvar * t / nf
+    return cvar * det(U, nf, work)
+
+
+@njit(cache=True, inline="always")
+def collective(zsum, vol, mode):
+    """x from the complex sum Z = sum_s z_s: Im Z / V (modes 0, 1) or arg Z in (-pi, pi] (mode 2)."""
+    if mode == 2:
+        return np.arctan2(zsum.imag, zsum.real)
+    return zsum.imag / vol
 
 
 @njit(cache=True)
 def variable_sum(re, im, nf, mode, cvar):
-    """X = sum_s x_s over all sites, in site order (float64)."""
+    """Z = sum_s z_s over all sites, in site order (complex128)."""
     v = re.shape[1]
     U = np.empty((nf, nf), dtype=np.complex128)
     work = np.empty((nf, nf), dtype=np.complex128)
-    xs = 0.0
+    xs = complex(0.0, 0.0)
     for s in range(v):
         load(re, im, s, nf, U)
         xs += site_variable(U, nf, mode, cvar, work)
@@ -106,13 +119,25 @@ def _accept(d, u):
     return d <= 0.0 or u < np.exp(-d)
 
 
+@njit(cache=True, inline="always")
+def _rotated_variable(R, U, dnew, nf, mode, cvar):
+    """z_s of R U without forming it: Tr(R U) = sum R[a, c] U[c, a]; det(R U) = ``dnew``."""
+    if mode != 1:
+        t = complex(0.0, 0.0)
+        for a in range(nf):
+            for c in range(nf):
+                t += R[a, c] * U[c, a]
+        return cvar * t / nf
+    return cvar * dnew
+
+
 @njit(cache=True)
 def _metropolis_colour(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, table, tdet, nhits, key,
                        mode, cvar, vol, xsum, lo, dx, wtab, wall, scratch):
     U, A, W, T, work = scratch[0], scratch[1], scratch[2], scratch[3], scratch[4]
     nt = table.shape[0]
     na = 0
-    wcur = weight_value(xsum / vol, lo, dx, wtab, wall)
+    wcur = weight_value(collective(xsum, vol, mode), lo, dx, wtab, wall)
     for s in range(start, stop):
         load(re, im, s, nf, U)
         local_field(re, im, nbr, s, nf, beta, hdiag, A)
@@ -127,10 +152,10 @@ def _metropolis_colour(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, ta
             n += np.uint64(2)
             R = table[idx]
             dS, dnew = rotation_action_change(W, trw, R, tdet[idx], d, nf, kappa, eta)
-            _matmul(R, U, nf, T)
-            xnew = site_variable(T, nf, mode, cvar, work)
-            wnew = weight_value((xsum + xnew - xs) / vol, lo, dx, wtab, wall)
+            xnew = _rotated_variable(R, U, dnew, nf, mode, cvar)
+            wnew = weight_value(collective(xsum + xnew - xs, vol, mode), lo, dx, wtab, wall)
             if _accept(dS + (wnew - wcur), u):
+                _matmul(R, U, nf, T)
                 U[:, :] = T
                 _matmul(R, W, nf, T)
                 W[:, :] = T
@@ -151,7 +176,7 @@ def _overrelax_colour(re, im, nbr, start, stop, nf, special, beta, hdiag, kappa,
     flavour_order(key, nf, perm)
     na = 0
     tried = 0
-    wcur = weight_value(xsum / vol, lo, dx, wtab, wall)
+    wcur = weight_value(collective(xsum, vol, mode), lo, dx, wtab, wall)
     for s in range(start, stop):
         load(re, im, s, nf, U)
         local_field(re, im, nbr, s, nf, beta, hdiag, A)
@@ -176,7 +201,7 @@ def _overrelax_colour(re, im, nbr, start, stop, nf, special, beta, hdiag, kappa,
                 T[:, :] = U
                 _rotate_rows(T, i, j, r00, r01, r10, r11, nf)
                 xnew = site_variable(T, nf, mode, cvar, work)
-                wnew = weight_value((xsum + xnew - xs) / vol, lo, dx, wtab, wall)
+                wnew = weight_value(collective(xsum + xnew - xs, vol, mode), lo, dx, wtab, wall)
                 n += _ONE
                 tried += 1
                 if _accept(wnew - wcur, uniform(key, n)):
@@ -200,7 +225,7 @@ def _overrelax_colour(re, im, nbr, start, stop, nf, special, beta, hdiag, kappa,
                     for b in range(nf):
                         T[a, b] = U[a, b] * e
                 xnew = site_variable(T, nf, mode, cvar, work)
-                wnew = weight_value((xsum + xnew - xs) / vol, lo, dx, wtab, wall)
+                wnew = weight_value(collective(xsum + xnew - xs, vol, mode), lo, dx, wtab, wall)
                 tried += 1
                 # counter s * SITE_STRIDE: the plain kernel's phase-reflection draw
                 if _accept(dS + (wnew - wcur), uniform(key, np.uint64(s) * SITE_STRIDE)):
@@ -283,7 +308,7 @@ def biased_sweeps(re, im, nbr, nf, special, beta, hdiag, kappa, eta, nhits, n_or
                 counts[2] += na
                 counts[3] += tried
                 step += 1
-        x = variable_sum(re, im, nf, mode, cvar) / vol
+        x = collective(variable_sum(re, im, nf, mode, cvar), vol, mode)
         xs_out[sw] = x
         t = (x - lo) / dx
         if 0.0 <= t < nb:
