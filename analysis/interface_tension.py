@@ -46,7 +46,7 @@ def one_volume(L, args, log):
     from sigmasim.multicanonical import muca_params, run_multicanonical
 
     cfg = config_for(L, args.d, args.beta, args.seed, args.measurements, args.thermalize)
-    params = muca_params({"variable": "im_omega_h", "range": list(args.range), "bins": args.bins,
+    params = muca_params({"variable": args.variable, "range": list(args.range), "bins": args.bins,
                           "wl_iterations": args.wl_iterations, "wl_sweeps": args.wl_sweeps,
                           "wl_start": args.wl_start, "overrelax": 1})
     t0 = time.process_time()
@@ -77,6 +77,9 @@ def main(argv=None) -> int:
     ap.add_argument("--d", type=int, default=3)
     ap.add_argument("--beta", type=float, default=0.76)
     ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--variable", default="im_omega_h", choices=["im_omega_h", "arg_omega_h"],
+                    help="collective variable (arg_omega_h: the phase of omega_h; its minima sit near "
+                         "+-pi/3 at theta = pi: pass --range -1.6 1.6 --regions 0.5)")
     ap.add_argument("--range", type=float, nargs=2, default=[-0.45, 0.45])
     ap.add_argument("--bins", type=int, default=36)
     ap.add_argument("--half-width", type=int, default=3)
@@ -125,6 +128,7 @@ def main(argv=None) -> int:
     text = json.dumps(blob, indent=1, default=lambda o: None)
     atomic_output(out / "interface_tension.json", lambda tmp: Path(tmp).write_text(text), what="table")
     pr.plot_profiles(profiles, out / "profiles.png",
+                     xlabel=r"Im $\omega_h$" if args.variable == "im_omega_h" else r"arg $\omega_h$",
                      title=f"U(3), d = {args.d}, beta {args.beta}, h 0.5, kappa 2, theta = pi: multicanonical")
     if have:
         import matplotlib
