@@ -194,3 +194,42 @@ def test_dask_windows_equal_serial_windows(tmp_path, done):
         b = um._read_window(um._window_path(target, k))[1]
         np.testing.assert_array_equal(a["x"], b["x"])
         np.testing.assert_array_equal(a["series.action"], b["series.action"])
+
+
+def _common_shape(p, bins):
+    """F on the given bins renormalised over them, with the replica error (half 68 % range)."""
+    def norm(F):
+        lp = -F[bins]
+        return -(lp - np.log(np.sum(np.exp(lp - lp.max()))) - lp.max())
+
+    F = norm(p.F)
+    reps = np.array([norm(r) for r in p.replicas])
+    lo, hi = np.quantile(reps, [0.1587, 0.8413], axis=0)
+    return F, 0.5 * (hi - lo)
+
+
+def test_windows_agree_with_a_plain_chain_on_an_interacting_lattice(tmp_path):
+    """U(1) on 4 x 4 at beta = 0.4, h = 0.5, theta = 0 (sites interact): the WHAM join of five windows and the histogram
+    of a plain chain (W = 0) give the same -ln P(x) within 4 sigma of the combined errors."""
+    from sigmasim.analysis import profile as pr
+    from sigmasim.multicanonical import Weight, run_biased
+
+    raw = {**RAW, "lattice": {"shape": [4, 4]},
+           "model": {**RAW["model"], "beta": 0.4, "kappa": 0.0, "theta": 0.0}}
+    cfg = config_from_dict(raw)
+    table = {**TABLE, "centres": [-0.4, -0.2, 0.0, 0.2, 0.4], "spring": 60.0, "range": [-0.6, 0.6],
+             "bins": 24, "sweeps": 3000}
+    params = um.umbrella_params(table)
+    folder = tmp_path / "umbrella"
+    um._prepare_folder(folder, raw, cfg, params)
+    assert all(s["status"] == "done" for s in um.run_windows(raw, cfg, params, folder, serial=True))
+    pu = um.join_windows(folder, params, n_boot=200).profile
+    plain = run_biased(config_from_dict({**raw, "seed": 99}), Weight.flat(-0.6, 0.6, 24), 20000, thermalize=200)
+    pp = pr.multicanonical_profile(plain.x, lambda x: np.zeros_like(np.asarray(x, float)), pu.edges, n_boot=200)
+    both = np.nonzero(np.isfinite(pu.F) & np.isfinite(pp.F) & (pp.counts >= 50))[0]
+    assert len(both) >= 8
+    fu, eu = _common_shape(pu, both)
+    fp, ep = _common_shape(pp, both)
+    pull = (fu - fp) / np.hypot(eu, ep)
+    assert np.max(np.abs(pull)) < 4.0, pull
+    assert np.max(fu) - np.min(fu) > 1.5            # a profile with shape, not a flat one
