@@ -119,7 +119,7 @@ def main(argv=None) -> int:
     ap.add_argument("--measurements", type=int, default=400)
     ap.add_argument("--lattice", type=int, default=6)
     args = ap.parse_args(argv)
-    from sigmasim.scan import _cores
+    from sigmasim.cluster import cores as _cores
 
     cores = _cores()
     work = Path(tempfile.mkdtemp(prefix="sigmasim-bench-scan-"))

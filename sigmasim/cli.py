@@ -133,7 +133,7 @@ def _branch_note(config, omega_h) -> str:
 # [sweep] is the old name of [hysteresis], read for one more release
 PROTOCOL_TABLES = {"hysteresis": "hysteresis", "sweep": "hysteresis", "tempering": "temper", "lifetimes": "lifetimes",
                    "scan": "scan",
-                   "multicanonical": "multicanonical"}
+                   "multicanonical": "multicanonical", "umbrella": "umbrella"}
 
 
 def _refuse_protocol_tables(path, raw=None) -> None:
@@ -485,6 +485,12 @@ def cmd_multicanonical(args) -> int:
     return multicanonical_command(args.config, out=args.out, quiet=args.quiet)
 
 
+def cmd_umbrella(args) -> int:
+    from sigmasim.protocols.umbrella import umbrella_command
+
+    return umbrella_command(args.config, serial=args.serial, quiet=args.quiet)
+
+
 def cmd_export(args) -> int:
     from sigmasim.export import export_command
 
@@ -762,6 +768,11 @@ def build_parser() -> argparse.ArgumentParser:
     mu.add_argument("--quiet", action="store_true", help="no stage lines")
     mu.protocol_table = "multicanonical"
     mu.set_defaults(func=cmd_multicanonical)
+    um = sub.add_parser("umbrella", help="umbrella windows along Im omega_h on Dask, joined by WHAM into -ln P(x)")
+    um.add_argument("config", help="run TOML with an [umbrella] table")
+    um.add_argument("--serial", action="store_true", help="run the windows in this process instead of on Dask")
+    um.add_argument("--quiet", action="store_true", help="no per-window lines")
+    um.set_defaults(func=cmd_umbrella)
     ex = sub.add_parser("export", help="a run's arrays as npz/csv/hdf5 plus a JSON sidecar with known answers")
     ex.add_argument("run", help="run file (.h5)")
     ex.add_argument("--format", choices=["npz", "csv", "hdf5"], default="npz")

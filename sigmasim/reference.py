@@ -16,7 +16,7 @@ __all__ = ["PROTOCOL_TABLES", "TABLE_ALIASES", "SCAN_MEANINGS", "protocol_schema
 
 #: table -> the command that runs a config with it
 PROTOCOL_TABLES = {"hysteresis": "hysteresis", "tempering": "temper", "lifetimes": "lifetimes", "scan": "scan",
-                   "multicanonical": "multicanonical"}
+                   "multicanonical": "multicanonical", "umbrella": "umbrella"}
 #: old table name -> its table (read for one more release)
 TABLE_ALIASES = {"sweep": "hysteresis"}
 
@@ -47,6 +47,10 @@ def protocol_schema(table: str) -> dict:
         from sigmasim.protocols.multicanonical import MUCA_SCHEMA
 
         return MUCA_SCHEMA
+    if table == "umbrella":
+        from sigmasim.protocols.umbrella import UMBRELLA_SCHEMA
+
+        return UMBRELLA_SCHEMA
     from sigmasim import protocols
 
     table = TABLE_ALIASES.get(table, table)

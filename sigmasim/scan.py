@@ -402,53 +402,16 @@ def run_point(raw: dict, threads: int, stop_file: str) -> dict:
 # ----------------------------------------------------------------------------
 
 
-def _cores() -> int:
-    try:
-        return len(os.sched_getaffinity(0))
-    except AttributeError:  # not on Linux
-        return os.cpu_count() or 1
-
-
-def _quiet_dask_logs() -> None:
-    import logging
-
-    for name in ("distributed", "distributed.nanny", "distributed.worker", "distributed.scheduler",
-                 "distributed.core", "distributed.comm", "tornado"):
-        logging.getLogger(name).setLevel(logging.CRITICAL)
-
-
 def make_client(spec: ScanSpec, scheduler: str | None = None, workers: int | None = None,
                 threads: int | None = None):
-    """(client, cluster or None, numba threads per run) for a scan."""
-    try:
-        from distributed import Client, LocalCluster
-    except ImportError:
-        raise ConfigError("sigmasim scan needs Dask distributed: pip install 'sigmasim[cluster]'") from None
-    _quiet_dask_logs()
-    address = spec.scheduler if scheduler is None else scheduler
-    threads = spec.threads if threads is None else threads
-    if address:
-        try:
-            client = Client(address, timeout="20s")
-        except (OSError, TimeoutError) as exc:
-            raise ConfigError(f"cannot connect to the Dask scheduler at {address}: {exc}") from None
-        return client, None, threads or 1
-    n = spec.workers if workers is None else workers
-    cores = _cores()
-    n = n or cores
-    if threads == 0:
-        threads = max(1, cores // n)
-    one = {k: "1" for k in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")}
-    try:
-        # the scheduler's HTTP server (health and metrics; the dashboard too when asked for and
-        # bokeh is installed) always starts: keep it on scan.host, on a free port
-        cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host=spec.host,
-                               dashboard_address=f"{spec.host}:0", scheduler_kwargs={"dashboard": spec.dashboard},
-                               silence_logs=50, env=one)
-    except OSError as exc:
-        raise ConfigError(f"cannot start the local Dask cluster on {spec.host}: {exc}") from None
-    client = Client(cluster)
-    return client, cluster, threads
+    """(client, cluster or None, numba threads per run) for a scan (:func:`sigmasim.cluster.make_client`
+    with the scan's settings)."""
+    from sigmasim.cluster import make_client as _make
+
+    return _make(scheduler=spec.scheduler if scheduler is None else scheduler,
+                 workers=spec.workers if workers is None else workers,
+                 threads=spec.threads if threads is None else threads,
+                 host=spec.host, dashboard=spec.dashboard)
 
 
 def _write_failures(spec: ScanSpec, points: list[Point]) -> None:

@@ -25,6 +25,7 @@ LAYERS = [
     "sigmasim.storage",
     "sigmasim.progress",
     "sigmasim.threads",
+    "sigmasim.cluster",
     "sigmasim.run",
     "sigmasim.exact",
     "sigmasim.vacua",

@@ -316,7 +316,8 @@ def test_example_scan_file_expands_to_valid_points():
 def test_embedded_cluster_listens_on_loopback_only(tmp_path):
     import psutil
 
-    from sigmasim.scan import _cores, make_client
+    from sigmasim.cluster import cores as _cores
+    from sigmasim.scan import make_client
 
     spec = load_scan(_scan_file(tmp_path, GRID, tmp_path / "o"))
     client, cluster, threads = make_client(spec, workers=1)
