@@ -17,6 +17,7 @@ from runfiles import assert_same_contents, contents, subprocess_env
 from sigmasim.cli import main
 from sigmasim.run import execute_run
 from sigmasim.config import config_from_dict
+from sigmasim.errors import ConfigError
 from sigmasim.scan import config_key, expand_points, load_scan, read_index
 
 pytest.importorskip("distributed")
