@@ -193,7 +193,8 @@ def iterate(sim: Simulation, *, until: int | None = None,
             measure_due: Callable[[int], bool] | None = None,
             should_stop: Callable[[], bool] | None = None,
             checkpoint_every: int | None = None,
-            checkpoint_seconds: float | None = None) -> Iterator[Step]:
+            checkpoint_seconds: float | None = None,
+            sweep: Callable[[], None] | None = None) -> Iterator[Step]:
     """Sweep ``sim`` until ``state.sweep == until``, yielding a :class:`Step` after every sweep.
 
     ``until``: the last sweep (default ``sim.total_sweeps``); ``measure_due(sweep)``: whether to
@@ -201,7 +202,9 @@ def iterate(sim: Simulation, *, until: int | None = None,
     ``should_stop()``: polled after every sweep; a checkpoint is due every ``checkpoint_every``
     sweeps (of ``state.sweep``), every ``checkpoint_seconds`` seconds (defaults: the config's) and
     when ``should_stop()`` turns true.  The consumer writes the checkpoints; the seconds are counted
-    from when it asks for the next step.  After a ``stop`` step the generator ends.
+    from when it asks for the next step.  After a ``stop`` step the generator ends.  ``sweep``: the
+    sweep to run (default ``sim.sweep``; a sampler of another weight, such as the multicanonical
+    chain's biased sweep, passes its own, which must advance ``state.sweep`` by one).
 
     The field is checked for NaN/inf before every sweep, before yielding a checkpoint and before
     the generator ends: a non-finite field raises :class:`NumericalError` naming the sweep and the
@@ -218,10 +221,11 @@ def iterate(sim: Simulation, *, until: int | None = None,
         def measure_due(sweep):
             past = sweep - therm
             return past > 0 and past % m_every == 0
+    one_sweep = sim.sweep if sweep is None else sweep
     last = time.monotonic()
     while st.sweep < total:
         _check_finite(sim)
-        sim.sweep()
+        one_sweep()
         record = sim.measure() if measure_due(st.sweep) else None
         now = time.monotonic()
         stop = bool(should_stop()) if should_stop is not None else False

@@ -428,3 +428,16 @@ def test_roundtrip_benchmark_smoke(capsys):
               "--production", "200", "--plain-sweeps", "5"])
     rows = [ln.split() for ln in capsys.readouterr().out.splitlines() if ln.strip().startswith("4 ")]
     assert len(rows) == 1 and float(rows[0][1]) > 0
+
+
+def test_biased_chain_stops_on_a_non_finite_field():
+    """The biased sweeps run through chain.iterate, which checks the field before every sweep."""
+    from sigmasim.errors import NumericalError
+    from sigmasim.protocols.multicanonical import Weight, run_biased
+
+    cfg = _cfg(nf=2, shape=(4, 4))
+    first = run_biased(cfg, Weight.flat(-1.0, 1.0, 8), 4)
+    state = first.state
+    state.re[0, 5] = np.nan
+    with pytest.raises(NumericalError, match="non-finite field after sweep"):
+        run_biased(cfg, Weight.flat(-1.0, 1.0, 8), 4, state=state)

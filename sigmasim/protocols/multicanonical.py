@@ -40,7 +40,6 @@ from sigmasim.chain import ChainState, Simulation
 from sigmasim.config import RunConfig
 from sigmasim.errors import ConfigError
 from sigmasim.kernels.bias import MODES, biased_sweeps, collective, variable_sum
-from sigmasim.kernels.measure import reunitarize, reunitarize3, reunitarize_u1
 from sigmasim.rng import mix64_int
 
 __all__ = ["Weight", "BiasedChain", "BiasedRun", "run_biased", "wang_landau", "reweighted_mean", "profile",
@@ -144,6 +143,10 @@ class BiasedChain:
         self.seed_hash = np.uint64(mix64_int(config.seed))
         self.counts = np.zeros(4, dtype=np.int64)
         self.values = np.array(weight.values, dtype=np.float64)  # the kernel's (Wang-Landau: mutable) table
+        self._x = np.empty(1, dtype=np.float64)  # x after the kernel's sweep
+        self._wl_f = 0.0
+        self._hist = np.zeros(self.values.size, dtype=np.int64)
+        self.last_x = float("nan")
 
     @property
     def state(self) -> ChainState:
@@ -157,38 +160,46 @@ class BiasedChain:
     def frozen_weight(self) -> Weight:
         return Weight(self.weight.lo, self.weight.hi, self.values.copy(), self.weight.wall)
 
-    def sweeps(self, n: int, wl_f: float = 0.0, hist: np.ndarray | None = None) -> np.ndarray:
-        """``n`` sweeps (re-unitarising every ``run.reunitarize_every``); returns x after each, (n,)."""
+    def _sweep(self) -> None:
+        """One biased sweep (the ``sweep`` that :func:`sigmasim.chain.iterate` runs), then the model's
+        re-unitarisation when due; x after it in ``self.last_x``."""
         cfg, st, lat = self.config, self.sim.state, self.sim.lattice
-        out = np.empty(n, dtype=np.float64)
-        if hist is None:
-            hist = np.zeros(self.values.size, dtype=np.int64)
         w = self.weight
-        done = 0
-        while done < n:
-            every = cfg.reunitarize_every
-            chunk = min(n - done, every - st.sweep % every)
-            before = self.counts.copy()
-            st.step = int(biased_sweeps(st.re, st.im, lat.neighbours, cfg.nf, cfg.special, float(cfg.beta),
-                                        self.sim.hdiag, float(cfg.kappa), complex(cfg.eta), int(cfg.metropolis_hits),
-                                        self.overrelax, float(st.step_size), self.seed_hash, st.step, chunk,
-                                        self.mode, self.cvar, float(w.lo), float(w.dx), self.values,
-                                        float(w.wall), float(wl_f), hist, out[done:], self.counts))
-            diff = self.counts - before
-            st.win_acc += diff[0::2]
-            st.win_tried += diff[1::2]
-            st.tune_acc += int(diff[0])
-            st.tune_tried += int(diff[1])
-            st.sweep += chunk
-            done += chunk
-            if st.sweep % every == 0:
-                if cfg.nf == 1:
-                    drift = reunitarize_u1(st.re[0], st.im[0], self.sim.blocks)
-                elif cfg.nf == 3 and not cfg.special:
-                    drift = reunitarize3(st.re, st.im, self.sim.blocks)
-                else:
-                    drift = reunitarize(st.re, st.im, cfg.nf, cfg.special, self.sim.blocks)
+        before = self.counts.copy()
+        st.step = int(biased_sweeps(st.re, st.im, lat.neighbours, cfg.nf, cfg.special, float(cfg.beta),
+                                    self.sim.hdiag, float(cfg.kappa), complex(cfg.eta), int(cfg.metropolis_hits),
+                                    self.overrelax, float(st.step_size), self.seed_hash, st.step, 1,
+                                    self.mode, self.cvar, float(w.lo), float(w.dx), self.values,
+                                    float(w.wall), float(self._wl_f), self._hist, self._x, self.counts))
+        diff = self.counts - before
+        st.win_acc += diff[0::2]
+        st.win_tried += diff[1::2]
+        st.tune_acc += int(diff[0])
+        st.tune_tried += int(diff[1])
+        st.sweep += 1
+        if st.sweep % cfg.reunitarize_every == 0:
+            drift = self.sim.model.project(self.sim)
+            if drift is not None:
                 st.win_drift = max(st.win_drift, drift)
+        self.last_x = float(self._x[0])
+
+    def steps(self, n: int, measure_due=None, wl_f: float = 0.0, hist: np.ndarray | None = None):
+        """``n`` biased sweeps through :func:`sigmasim.chain.iterate` (finiteness checks, measurement
+        after the sweeps ``measure_due`` names); yields iterate's steps.  ``wl_f`` > 0 adds
+        ``wl_f`` to W at x's bin after every sweep and counts x in ``hist`` (Wang-Landau)."""
+        from sigmasim.chain import iterate
+
+        self._wl_f = float(wl_f)
+        self._hist = np.zeros(self.values.size, dtype=np.int64) if hist is None else hist
+        yield from iterate(self.sim, until=self.sim.state.sweep + int(n),
+                           measure_due=measure_due if measure_due is not None else (lambda sweep: False),
+                           checkpoint_every=1 << 62, checkpoint_seconds=float("inf"), sweep=self._sweep)
+
+    def sweeps(self, n: int, wl_f: float = 0.0, hist: np.ndarray | None = None) -> np.ndarray:
+        """``n`` sweeps (:meth:`steps`, no measurements); returns x after each, (n,)."""
+        out = np.empty(int(n), dtype=np.float64)
+        for i, _ in enumerate(self.steps(n, wl_f=wl_f, hist=hist)):
+            out[i] = self.last_x
         return out
 
     def tune(self) -> None:
@@ -247,10 +258,11 @@ def run_biased(config: RunConfig, weight: Weight, sweeps: int, *, measure_every:
     n = int(sweeps) // int(measure_every)
     xs = np.empty(n)
     records = []
-    for i in range(n):
-        xs[i] = chain.sweeps(int(measure_every))[-1]
-        rec = chain.sim.measure()
-        records.append({k: rec[k] for k in chiral.SERIES})
+    start, every = chain.state.sweep, int(measure_every)
+    for step in chain.steps(n * every, measure_due=lambda sweep: (sweep - start) % every == 0):
+        if step.record is not None:
+            xs[len(records)] = chain.last_x
+            records.append({k: step.record[k] for k in chiral.SERIES})
     series = {k: np.array([r[k] for r in records]) for k in chiral.SERIES} if records else {}
     c = chain.counts
     acc = {"metropolis": c[0] / c[1] if c[1] else float("nan"),
