@@ -50,7 +50,7 @@ import numpy as np
 from numba import njit
 
 from sigmasim.kernels.general import _matmul, _retrace, _rotate_rows, _su2_direction, flavour_order, local_field
-from sigmasim.kernels.general import rotation_action_change
+from sigmasim.kernels.general import reflection, rotation_action_change
 from sigmasim.kernels.group import det, load, store
 from sigmasim.kernels.tables import phase_table, rotation_table, step_key_nb
 from sigmasim.rng import SITE_STRIDE, bits, uniform
@@ -190,14 +190,7 @@ def _overrelax_colour(re, im, nbr, start, stop, nf, special, beta, hdiag, kappa,
                 k, al, be = _su2_direction(W, i, j)
                 if k < 1e-300:
                     continue
-                a_ = al.conjugate() / k
-                b_ = -be / k
-                c_ = be.conjugate() / k
-                d_ = al / k
-                r00 = a_ * a_ + b_ * c_
-                r01 = a_ * b_ + b_ * d_
-                r10 = c_ * a_ + d_ * c_
-                r11 = c_ * b_ + d_ * d_
+                r00, r01, r10, r11 = reflection(al, be, k)
                 T[:, :] = U
                 _rotate_rows(T, i, j, r00, r01, r10, r11, nf)
                 xnew = site_variable(T, nf, mode, cvar, work)

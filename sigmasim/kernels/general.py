@@ -176,6 +176,18 @@ def _su2_direction(W, i, j):
 ORDER_COUNTER = np.uint64(1 << 63)  # the draw of the subgroup order (no site counter reaches it)
 
 
+@njit(cache=True, inline="always")
+def reflection(al, be, k):
+    """The overrelaxation rotation of one SU(2) subgroup: with v = [[al, be], [-be*, al*]] / k the
+    subgroup direction, r = (v^dagger)^2 (rows r00 r01 / r10 r11), which maps the local action to
+    itself (an involution of the site's matrix)."""
+    a_ = al.conjugate() / k
+    b_ = -be / k
+    c_ = be.conjugate() / k
+    d_ = al / k
+    return a_ * a_ + b_ * c_, a_ * b_ + b_ * d_, c_ * a_ + d_ * c_, c_ * b_ + d_ * d_
+
+
 @njit(cache=True)
 def flavour_order(key, nf, perm):
     """Fill ``perm`` with the flavour permutation of the colour update with ``key``.
@@ -313,15 +325,7 @@ def overrelax(re, im, nbr, start, stop, nf, beta, hdiag, kappa, eta, special, ke
                     k, al, be = _su2_direction(W, i, j)
                     if k < 1e-300:
                         continue
-                    # v = [[al, be], [-be*, al*]] / k ; r = (v^dagger)^2
-                    a_ = al.conjugate() / k
-                    b_ = -be / k
-                    c_ = be.conjugate() / k
-                    d_ = al / k
-                    r00 = a_ * a_ + b_ * c_
-                    r01 = a_ * b_ + b_ * d_
-                    r10 = c_ * a_ + d_ * c_
-                    r11 = c_ * b_ + d_ * d_
+                    r00, r01, r10, r11 = reflection(al, be, k)
                     _rotate_rows(U, i, j, r00, r01, r10, r11, nf)
                     _rotate_rows(W, i, j, r00, r01, r10, r11, nf)
             if not special:
