@@ -38,7 +38,7 @@ sys.path.insert(0, str(HERE.parent))
 
 from sigmasim.analysis import correlator_jackknife, fit_correlator, gamma_analysis  # noqa: E402
 from sigmasim.score import format_scores, load_estimates, load_truth, score  # noqa: E402
-from sigmasim.synth import synth_command  # noqa: E402
+from sigmasim.cli import synth_command  # noqa: E402
 
 OUT = HERE / "output"
 REPLICAS = 200

@@ -1,10 +1,11 @@
-"""Command line: ``sigmasim run | scan | demo | info | analyze | hysteresis | temper | lifetimes | vacua | validate |
-config-reference`` (``sweep``: the old name of ``hysteresis``, for one more release).
+"""Command line: ``sigmasim run | scan | demo | info | analyze | hysteresis | temper | lifetimes |
+multicanonical | umbrella | vacua | validate | export | synth | score | config-reference``
+(``sweep``: the old name of ``hysteresis``, for one more release).
 
 This is the error boundary: every :class:`SigmasimError` becomes one line on
 stderr and exit status 2; an interrupted run exits with 130 after writing its
-checkpoint.  It also holds all the printing: the tables of ``vacua``, ``hysteresis``,
-``temper`` and ``lifetimes`` are formatted here from the results their modules return.
+checkpoint.  It also holds all the printing: every ``*_command`` function lives here and formats
+what the modules' public functions return (the modules themselves print nothing).
 """
 
 from __future__ import annotations
@@ -147,6 +148,228 @@ def _refuse_protocol_tables(path, raw=None) -> None:
             raise ConfigError(f"{path} has a [{table}] table: run it with 'sigmasim {command} {path}'")
 
 
+
+# ---------------------------------------------------------------- command printers
+# each does its module's work through its public functions and prints the result
+
+def score_command(truth_json: str, estimates_json: str) -> int:
+    """``sigmasim score``: print the table; return 0 when every verdict is 'ok', 1 otherwise
+    (biased, errors too small or too large, not normal, off by > 3 sigma), so scripts can test it."""
+    from sigmasim.score import format_scores, load_estimates, load_truth, score
+
+    truth = load_truth(truth_json)
+    rows = score(truth, load_estimates(estimates_json))
+    print(format_scores(rows))
+    if any(r.n >= 2 for r in rows):
+        print("pull = (estimate - truth)/error; over replicas honest errors give mean 0, "
+              "width 1 (errors in brackets)")
+    bad = [r.name for r in rows if r.verdict != "ok"]
+    if bad:
+        print(f"not ok: {', '.join(bad)} (exit status 1)")
+        return 1
+    return 0
+
+
+def export_command(run_path: str, fmt: str, out: str | None, reference: bool = False,
+                   overwrite: bool = False) -> int:
+    """``sigmasim export``: write the export (never over existing files without ``overwrite``),
+    print the written files, return 0."""
+    import json
+    from sigmasim.export import export_run
+
+    paths = export_run(run_path, fmt, out, reference, overwrite=overwrite)
+    side = json.loads(paths[-1].read_text())
+    kinds = {}
+    for e in side["truth"].values():
+        kinds[e["how"]] = kinds.get(e["how"], 0) + 1
+    what = ", ".join(f"{n} {k}" for k, n in kinds.items()) or "none"
+    shown = paths if len(paths) <= 4 else paths[:2] + [f"... ({len(paths) - 3} more)"] + paths[-1:]
+    print(f"wrote {len(paths) - 1} data file(s) and the sidecar {paths[-1]}")
+    for p in shown[:-1]:
+        print(f"  {p}")
+    print(f"truth values: {what}")
+    return 0
+
+
+def synth_command(kind: str, out: str, seed: int, **params) -> int:
+    """``sigmasim synth``: write ``OUT.npz`` and ``OUT.json``; return 0."""
+    from sigmasim.export import write_arrays
+    from sigmasim.synth import synthesize
+
+    arrays, side = synthesize(kind, seed, **params)
+    entries = side.pop("arrays")
+    paths = write_arrays(Path(out), arrays, entries, "npz", side)
+    shapes = ", ".join(f"{k} {tuple(a.shape)}" for k, a in arrays.items())
+    print(f"wrote {paths[0]} ({shapes}) and {paths[-1]}")
+    tr = ", ".join(f"{k} = {v['value']:.6g}" for k, v in side["truth"].items()
+                   if isinstance(v["value"], float))
+    print(f"truth: {tr}")
+    return 0
+
+
+def scan_command(path: str, scheduler: str | None = None, workers: int | None = None,
+                 threads: int | None = None, collect_only: bool = False, plot: str | None = None,
+                 x: str | None = None, quiet: bool = False, raw: dict | None = None) -> int:
+    """``sigmasim scan SCAN.toml [--scheduler ADDR] [--workers N] [--collect] [--plot OBS --x KEY]``."""
+    from sigmasim.errors import ConfigError
+    from sigmasim.scan import collect, format_index, load_scan, plot_index, run_scan
+
+    spec = load_scan(path, raw)
+    if workers is not None and workers < 1:
+        raise ConfigError(f"--workers must be >= 1, got {workers}")
+    if threads is not None and threads < 1:
+        raise ConfigError(f"--threads must be >= 1, got {threads}")
+    points = None
+    status = 0
+    if not collect_only:
+        try:
+            points = run_scan(spec, scheduler=scheduler, workers=workers, threads=threads, quiet=quiet)
+        except KeyboardInterrupt:
+            collect(spec)
+            print(f"sigmasim: scan interrupted; every point is resumable: sigmasim scan {path}",
+                  file=__import__("sys").stderr)
+            return 130
+    points, csv_path, h5_path = collect(spec, points)
+    print(format_index(spec, points))
+    n = {s: sum(p.status == s for p in points) for s in ("done", "partial", "failed", "pending")}
+    print(f"{len(points)} points: {n['done']} done, {n['partial']} partial, {n['failed']} failed, "
+          f"{n['pending']} pending  (errors: Gamma method; research toy, not a physical prediction)")
+    for p in points:
+        if p.status == "failed":
+            print(f"failed: {p.label}: {p.error}")
+    print(f"index: {csv_path} and {h5_path}")
+    if plot:
+        print(f"figure: {plot_index(spec, points, plot, x)}")
+    if n["failed"] or (not collect_only and (n["partial"] or n["pending"])):
+        status = 1
+    return status
+
+
+def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = None,
+                    quiet: bool = False, band: float = 0.5) -> int:
+    """``sigmasim analyze PATH... [--plot] [--out DIR] [--band B] [--quiet]``.
+
+    Opens every run first (a bad file raises :class:`RunFileError` with a
+    one-line message before any work), analyses each, prints the table
+    (unless ``quiet``), writes ``<run>.analysis.json`` / ``.csv`` next to each
+    run and, with ``plot``, the figures (PNG and PDF) into ``out_dir`` or next
+    to the run.  Returns 0.
+    """
+    from sigmasim.errors import RunFileError
+    from sigmasim.analysis.report import analyze_data, compare_branches, format_table, write_outputs
+
+    from sigmasim.storage import open_run
+
+    if not paths:
+        raise SigmasimError("analyze: give at least one run file")
+    if not (isinstance(band, (int, float)) and 0.0 <= band < 1.0):
+        raise SigmasimError(f"--band must be in [0, 1), got {band}")
+    resolved = []
+    for p in paths:
+        p = Path(p)
+        if p.is_dir():  # a run folder <output>/<name>/ holds <name>.h5
+            cand = p / f"{p.name}.h5"
+            if not cand.exists():
+                raise RunFileError(f"{p} is a folder without {cand.name}")
+            p = cand
+        resolved.append(p)
+    from sigmasim.progress import Steps
+
+    data = [(p, open_run(p)) for p in resolved]
+    analyses, written = [], []
+    progress = Steps("analyze", quiet, "file")
+    for i, (p, d) in enumerate(data):
+        progress(i, len(data), p.name)  # a live line naming the file being analysed
+        analyses.append(analyze_data(d.series, d.slices, d.config, status=d.status, path=p, band=band))
+    compare_branches(analyses)
+    for (p, d), ra in zip(data, analyses):
+        written += list(write_outputs(ra))
+        if plot:
+            from sigmasim.analysis.plots import plot_all
+
+            target = Path(out_dir) if out_dir else p.parent
+            try:
+                target.mkdir(parents=True, exist_ok=True)
+            except OSError as exc:
+                raise RunFileError(f"cannot create the figure folder {target}: {exc.strerror}") from None
+            written += plot_all(ra, target)
+    progress.close()
+    if not quiet:
+        print(format_table(analyses))
+        print("written: " + ", ".join(str(w) for w in written))
+        sys.stdout.flush()
+    return 0
+
+
+def multicanonical_command(config_path: str, out: str | None = None, quiet: bool = False) -> int:
+    """``sigmasim multicanonical CONFIG [--out FILE.h5] [--quiet]``.
+
+    Runs the protocol, prints the summary and writes ``<run.output>/<name>/<name>-multicanonical.h5``
+    (or ``--out``): the frozen weight and its edges, the Wang-Landau histograms, the production
+    series (x, W(x) and every run series), the profile -ln P(x) with errors, and the averages,
+    round trips and timings as attributes.  A file there that this command did not write is never
+    replaced.
+    """
+    from sigmasim.errors import ConfigError
+    from sigmasim.protocols.multicanonical import load_multicanonical, result_blob, run_multicanonical
+
+    from pathlib import Path
+
+    from sigmasim import storage
+
+    config, params = load_multicanonical(config_path)
+    if out is not None and not str(out).endswith(".h5"):
+        raise ConfigError(f"--out must end in .h5, got {out}")
+    path = Path(out) if out is not None else config.run_dir / f"{config.name}-multicanonical.h5"
+    storage.check_multicanonical_target(path)
+
+    def stage(name):
+        if not quiet:
+            print(f"[{name}]", flush=True)
+
+    res = run_multicanonical(config, params, progress=stage)
+    print(res.summary())
+    data, attrs = result_blob(res)
+    storage.write_multicanonical(path, data, attrs)
+    print(f"wrote {path}")
+    return 0
+
+
+def umbrella_command(config_path: str, serial: bool = False, quiet: bool = False) -> int:
+    """``sigmasim umbrella CONFIG [--serial] [--quiet]``: run the missing windows, join, write."""
+    from sigmasim.errors import RunFileError
+    from sigmasim.protocols.umbrella import _prepare_folder, join_windows, load_umbrella, run_windows, write_outputs
+
+    raw, config, params = load_umbrella(config_path)
+    folder = config.run_dir / "umbrella"
+    from sigmasim.storage import release_lock, take_lock
+
+    folder.parent.mkdir(parents=True, exist_ok=True)
+    lock = take_lock(folder.parent / "umbrella.lock", "umbrella", folder)
+    try:
+        _prepare_folder(folder, raw, config, params)
+
+        def show(st):
+            if not quiet:
+                word = "skipped (complete)" if st.get("skipped") else st["status"]
+                extra = f": {st['error']}" if st["error"] else f" in {st['seconds']:.1f} s"
+                print(f"window {st['window']}: {word}{extra}", flush=True)
+
+        status = run_windows(raw, config, params, folder, serial=serial, progress=show)
+        failed = [s for s in status if s["status"] != "done"]
+        if failed:
+            raise RunFileError(f"{len(failed)} window(s) failed, first: {failed[0]['error']}; "
+                               "fix and rerun (complete windows are kept)")
+        res = join_windows(folder, params)
+        print(res.summary())
+        for path in write_outputs(res, folder, config.name):
+            print(f"wrote {path}")
+    finally:
+        release_lock(lock)
+    return 0
+
+
+
 def cmd_run(args) -> int:
     from sigmasim.chain import Interrupted
     from sigmasim.config import config_from_dict, read_toml
@@ -200,7 +423,6 @@ def cmd_scan(args) -> int:
 
     raw = read_toml(args.config)  # once: the config may be a pipe
     if "scan" in raw:
-        from sigmasim.scan import scan_command
 
         for flag in ("param", "values", "output"):
             if getattr(args, flag) is not None:
@@ -301,7 +523,6 @@ def cmd_info(args) -> int:
 
 
 def cmd_analyze(args) -> int:
-    from sigmasim.analysis.report import analyze_command
 
     return analyze_command(args.files, plot=args.plot, out_dir=args.out, quiet=args.quiet, band=args.band)
 
@@ -480,25 +701,21 @@ def cmd_lifetimes(args) -> int:
 
 
 def cmd_multicanonical(args) -> int:
-    from sigmasim.protocols.multicanonical import multicanonical_command
 
     return multicanonical_command(args.config, out=args.out, quiet=args.quiet)
 
 
 def cmd_umbrella(args) -> int:
-    from sigmasim.protocols.umbrella import umbrella_command
 
     return umbrella_command(args.config, serial=args.serial, quiet=args.quiet)
 
 
 def cmd_export(args) -> int:
-    from sigmasim.export import export_command
 
     return export_command(args.run, args.format, args.out, reference=args.reference, overwrite=args.overwrite)
 
 
 def cmd_synth(args) -> int:
-    from sigmasim.synth import synth_command
 
     params = {k: getattr(args, k) for k in ("replicas", "length", "rho", "amplitude", "shape", "m2",
                                               "configs", "method", "p01", "p10", "noise")}
@@ -506,7 +723,6 @@ def cmd_synth(args) -> int:
 
 
 def cmd_score(args) -> int:
-    from sigmasim.score import score_command
 
     return score_command(args.truth, args.estimates)
 

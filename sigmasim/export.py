@@ -88,7 +88,6 @@ __all__ = [
     "FORMATS",
     "TREE_LEVEL_MIN_BETA",
     "export_run",
-    "export_command",
     "run_arrays",
     "run_truth",
     "reference_truth",
@@ -509,21 +508,3 @@ def export_run(run_path, fmt: str = "npz", out=None, reference: bool = False,
             "notes": notes}
     prefix = _prefix(out) if out else run_path.with_name(run_path.stem + "_export")
     return write_arrays(prefix, arrays, entries, fmt, side, protect=(run_path,), overwrite=overwrite)
-
-
-def export_command(run_path: str, fmt: str, out: str | None, reference: bool = False,
-                   overwrite: bool = False) -> int:
-    """``sigmasim export``: write the export (never over existing files without ``overwrite``),
-    print the written files, return 0."""
-    paths = export_run(run_path, fmt, out, reference, overwrite=overwrite)
-    side = json.loads(paths[-1].read_text())
-    kinds = {}
-    for e in side["truth"].values():
-        kinds[e["how"]] = kinds.get(e["how"], 0) + 1
-    what = ", ".join(f"{n} {k}" for k, n in kinds.items()) or "none"
-    shown = paths if len(paths) <= 4 else paths[:2] + [f"... ({len(paths) - 3} more)"] + paths[-1:]
-    print(f"wrote {len(paths) - 1} data file(s) and the sidecar {paths[-1]}")
-    for p in shown[:-1]:
-        print(f"  {p}")
-    print(f"truth values: {what}")
-    return 0

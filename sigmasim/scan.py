@@ -45,8 +45,7 @@ import numpy as np
 from sigmasim.config import SCHEMA, _suggest, config_from_dict, read_toml
 from sigmasim.errors import ConfigError, RunFileError, SigmasimError
 
-__all__ = ["ScanSpec", "Point", "load_scan", "expand_points", "run_scan", "collect", "scan_command",
-           "HEADLINE"]
+__all__ = ["ScanSpec", "Point", "load_scan", "expand_points", "run_scan", "collect", "HEADLINE"]
 
 INDEX_FORMAT = "sigmasim-scan-index"
 INDEX_VERSION = 1
@@ -794,38 +793,3 @@ def plot_index(spec: ScanSpec, points: list[Point], observable: str, x: str | No
     fig.savefig(out.with_suffix(".pdf"), bbox_inches="tight")
     plt.close(fig)
     return out
-
-
-def scan_command(path: str, scheduler: str | None = None, workers: int | None = None,
-                 threads: int | None = None, collect_only: bool = False, plot: str | None = None,
-                 x: str | None = None, quiet: bool = False, raw: dict | None = None) -> int:
-    """``sigmasim scan SCAN.toml [--scheduler ADDR] [--workers N] [--collect] [--plot OBS --x KEY]``."""
-    spec = load_scan(path, raw)
-    if workers is not None and workers < 1:
-        raise ConfigError(f"--workers must be >= 1, got {workers}")
-    if threads is not None and threads < 1:
-        raise ConfigError(f"--threads must be >= 1, got {threads}")
-    points = None
-    status = 0
-    if not collect_only:
-        try:
-            points = run_scan(spec, scheduler=scheduler, workers=workers, threads=threads, quiet=quiet)
-        except KeyboardInterrupt:
-            collect(spec)
-            print(f"sigmasim: scan interrupted; every point is resumable: sigmasim scan {path}",
-                  file=__import__("sys").stderr)
-            return 130
-    points, csv_path, h5_path = collect(spec, points)
-    print(format_index(spec, points))
-    n = {s: sum(p.status == s for p in points) for s in ("done", "partial", "failed", "pending")}
-    print(f"{len(points)} points: {n['done']} done, {n['partial']} partial, {n['failed']} failed, "
-          f"{n['pending']} pending  (errors: Gamma method; research toy, not a physical prediction)")
-    for p in points:
-        if p.status == "failed":
-            print(f"failed: {p.label}: {p.error}")
-    print(f"index: {csv_path} and {h5_path}")
-    if plot:
-        print(f"figure: {plot_index(spec, points, plot, x)}")
-    if n["failed"] or (not collect_only and (n["partial"] or n["pending"])):
-        status = 1
-    return status

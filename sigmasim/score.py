@@ -52,7 +52,7 @@ import numpy as np
 from sigmasim.errors import ConfigError
 
 __all__ = ["ScoreRow", "load_truth", "load_estimates", "parse_estimates", "pulls", "score",
-           "format_scores", "score_command", "truth_value"]
+           "format_scores", "truth_value"]
 
 
 @dataclass(frozen=True)
@@ -255,19 +255,3 @@ def format_scores(rows: list[ScoreRow]) -> str:
     text = [line(head)]
     text.append("-" * len(text[0]))
     return "\n".join(text + [line(c) for c in cells])
-
-
-def score_command(truth_json: str, estimates_json: str) -> int:
-    """``sigmasim score``: print the table; return 0 when every verdict is 'ok', 1 otherwise
-    (biased, errors too small or too large, not normal, off by > 3 sigma), so scripts can test it."""
-    truth = load_truth(truth_json)
-    rows = score(truth, load_estimates(estimates_json))
-    print(format_scores(rows))
-    if any(r.n >= 2 for r in rows):
-        print("pull = (estimate - truth)/error; over replicas honest errors give mean 0, "
-              "width 1 (errors in brackets)")
-    bad = [r.name for r in rows if r.verdict != "ok"]
-    if bad:
-        print(f"not ok: {', '.join(bad)} (exit status 1)")
-        return 1
-    return 0

@@ -53,13 +53,11 @@ stationary start has the same law).
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import numpy as np
 import scipy.signal
 
 from sigmasim.errors import ConfigError
-from sigmasim.export import array_entry, truth_entry, write_arrays
+from sigmasim.export import array_entry, truth_entry
 from sigmasim.files import provenance
 
 __all__ = [
@@ -69,7 +67,6 @@ __all__ = [
     "free_field",
     "telegraph",
     "synthesize",
-    "synth_command",
     "geometric_sum_stats",
 ]
 
@@ -418,16 +415,3 @@ def synthesize(kind: str, seed: int = 0, **params) -> tuple[dict, dict]:
         "notes": [],
     }
     return arrays, side
-
-
-def synth_command(kind: str, out: str, seed: int, **params) -> int:
-    """``sigmasim synth``: write ``OUT.npz`` and ``OUT.json``; return 0."""
-    arrays, side = synthesize(kind, seed, **params)
-    entries = side.pop("arrays")
-    paths = write_arrays(Path(out), arrays, entries, "npz", side)
-    shapes = ", ".join(f"{k} {tuple(a.shape)}" for k, a in arrays.items())
-    print(f"wrote {paths[0]} ({shapes}) and {paths[-1]}")
-    tr = ", ".join(f"{k} = {v['value']:.6g}" for k, v in side["truth"].items()
-                   if isinstance(v["value"], float))
-    print(f"truth: {tr}")
-    return 0

@@ -24,12 +24,12 @@ from sigmasim.analysis.correlators import correlator_jackknife
 from sigmasim.analysis.report import (
     CSV_COLUMNS,
     TOY_NOTE,
-    analyze_command,
     analyze_data,
     analyze_run,
     output_paths,
 )
 from sigmasim.chain import Simulation, run_chain
+from sigmasim.cli import analyze_command
 from sigmasim.config import config_from_dict
 from sigmasim.errors import RunFileError, SigmasimError
 from sigmasim.storage import RunWriter

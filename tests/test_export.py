@@ -11,7 +11,8 @@ from sigmasim.analysis import gamma_analysis
 from sigmasim.chain import Simulation, run_chain
 from sigmasim.config import config_from_dict
 from sigmasim.errors import ConfigError, RunFileError
-from sigmasim.export import export_command, export_run, read_sidecar
+from sigmasim.cli import export_command
+from sigmasim.export import export_run, read_sidecar
 from sigmasim.storage import RunWriter, open_run
 
 

@@ -166,3 +166,17 @@ def test_the_parser_sees_lazy_and_relative_imports(tmp_path):
         assert imports_of(src) == {"sigmasim.storage", "sigmasim.models.chiral", "sigmasim.kernels.u1"}
     finally:
         src.unlink()
+
+
+def test_only_the_command_line_prints():
+    """cli.py holds all printing: no other module calls print() or defines a ``*_command``."""
+    bad = []
+    for path in sorted(PKG.rglob("*.py")):
+        if path.name == "cli.py" and path.parent == PKG:
+            continue
+        for node in ast.walk(ast.parse(path.read_text(), str(path))):
+            if isinstance(node, ast.Call) and isinstance(node.func, ast.Name) and node.func.id == "print":
+                bad.append(f"{path.relative_to(PKG.parent)}:{node.lineno} calls print()")
+            if isinstance(node, ast.FunctionDef) and node.name.endswith("_command") and node.col_offset == 0:
+                bad.append(f"{path.relative_to(PKG.parent)}:{node.lineno} defines {node.name}")
+    assert not bad, "\n".join(bad)

@@ -7,8 +7,8 @@ import pytest
 import scipy.stats
 
 from sigmasim.errors import ConfigError
-from sigmasim.score import load_truth, parse_estimates, pulls, score, score_command
-from sigmasim.synth import synth_command
+from sigmasim.cli import score_command, synth_command
+from sigmasim.score import load_truth, parse_estimates, pulls, score
 
 
 def _truth_file(tmp_path):

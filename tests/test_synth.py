@@ -13,6 +13,7 @@ import pytest  # noqa: E402
 
 from sigmasim import exact, synth  # noqa: E402
 from sigmasim.analysis import correlator_jackknife, fit_correlator, gamma_analysis  # noqa: E402
+from sigmasim.cli import synth_command  # noqa: E402
 from sigmasim.errors import ConfigError  # noqa: E402
 from sigmasim.score import parse_estimates, score  # noqa: E402
 
@@ -165,16 +166,16 @@ def test_bad_parameters_are_one_line_config_errors(tmp_path):
              ("ar1", dict(rho=[0.5, 0.2], amplitude=[1, 2, 3])), ("ar1", dict(length=1))]
     for kind, p in cases:
         with pytest.raises(ConfigError) as ei:
-            synth.synth_command(kind, str(tmp_path / "x"), 1, **p)
+            synth_command(kind, str(tmp_path / "x"), 1, **p)
         assert "\n" not in str(ei.value)
     with pytest.raises(ConfigError):
-        synth.synth_command("ar1", str(tmp_path / "x"), -1)
+        synth_command("ar1", str(tmp_path / "x"), -1)
 
 
 def test_synth_command_writes_npz_and_sidecar(tmp_path, capsys):
     import json
 
-    assert synth.synth_command("ar1", str(tmp_path / "ar"), 4, rho="0.9,0.2", amplitude="1,1",
+    assert synth_command("ar1", str(tmp_path / "ar"), 4, rho="0.9,0.2", amplitude="1,1",
                                length=100, replicas=3) == 0
     side = json.loads((tmp_path / "ar.json").read_text())
     arr = np.load(tmp_path / "ar.npz")

@@ -48,13 +48,12 @@ from .resampling import (
     jackknife_covariance,
     jackknife_means,
 )
-from .report import RunAnalysis, analyze_command, analyze_data, analyze_run, format_table
+from .report import RunAnalysis, analyze_data, analyze_run, format_table
 from .thermalisation import ThermalisationResult, thermalisation_cut
 
 __all__ = [
     "ChannelData",
     "RunAnalysis",
-    "analyze_command",
     "analyze_data",
     "analyze_run",
     "channel_correlator",

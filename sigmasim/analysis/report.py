@@ -88,13 +88,12 @@ from __future__ import annotations
 import csv
 import json
 import math
-import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-from sigmasim.errors import RunFileError, SigmasimError
+from sigmasim.errors import SigmasimError
 
 from .channels import CHANNELS, meson_correlators, tree_level
 from .correlators import effective_mass_errors, scan_fit_windows
@@ -110,7 +109,6 @@ __all__ = [
     "format_table",
     "analysis_dict",
     "write_outputs",
-    "analyze_command",
     "run_label",
     "CSV_COLUMNS",
     "TOY_NOTE",
@@ -821,56 +819,3 @@ def write_outputs(ra: RunAnalysis, json_path=None, csv_path=None) -> tuple[Path,
     write_json(json_path, analysis_dict(ra), what="analysis")
     atomic_output(csv_path, write_csv, what="analysis")
     return json_path, csv_path
-
-
-def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = None,
-                    quiet: bool = False, band: float = 0.5) -> int:
-    """``sigmasim analyze PATH... [--plot] [--out DIR] [--band B] [--quiet]``.
-
-    Opens every run first (a bad file raises :class:`RunFileError` with a
-    one-line message before any work), analyses each, prints the table
-    (unless ``quiet``), writes ``<run>.analysis.json`` / ``.csv`` next to each
-    run and, with ``plot``, the figures (PNG and PDF) into ``out_dir`` or next
-    to the run.  Returns 0.
-    """
-    from sigmasim.storage import open_run
-
-    if not paths:
-        raise SigmasimError("analyze: give at least one run file")
-    if not (isinstance(band, (int, float)) and 0.0 <= band < 1.0):
-        raise SigmasimError(f"--band must be in [0, 1), got {band}")
-    resolved = []
-    for p in paths:
-        p = Path(p)
-        if p.is_dir():  # a run folder <output>/<name>/ holds <name>.h5
-            cand = p / f"{p.name}.h5"
-            if not cand.exists():
-                raise RunFileError(f"{p} is a folder without {cand.name}")
-            p = cand
-        resolved.append(p)
-    from sigmasim.progress import Steps
-
-    data = [(p, open_run(p)) for p in resolved]
-    analyses, written = [], []
-    progress = Steps("analyze", quiet, "file")
-    for i, (p, d) in enumerate(data):
-        progress(i, len(data), p.name)  # a live line naming the file being analysed
-        analyses.append(analyze_data(d.series, d.slices, d.config, status=d.status, path=p, band=band))
-    compare_branches(analyses)
-    for (p, d), ra in zip(data, analyses):
-        written += list(write_outputs(ra))
-        if plot:
-            from .plots import plot_all
-
-            target = Path(out_dir) if out_dir else p.parent
-            try:
-                target.mkdir(parents=True, exist_ok=True)
-            except OSError as exc:
-                raise RunFileError(f"cannot create the figure folder {target}: {exc.strerror}") from None
-            written += plot_all(ra, target)
-    progress.close()
-    if not quiet:
-        print(format_table(analyses))
-        print("written: " + ", ".join(str(w) for w in written))
-        sys.stdout.flush()
-    return 0

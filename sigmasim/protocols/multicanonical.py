@@ -43,8 +43,7 @@ from sigmasim.kernels.bias import MODES, biased_sweeps, collective, variable_sum
 from sigmasim.rng import mix64_int
 
 __all__ = ["Weight", "BiasedChain", "BiasedRun", "run_biased", "wang_landau", "reweighted_mean", "profile",
-           "round_trips", "VARIABLES", "MUCA_SCHEMA", "muca_params", "MucaResult", "run_multicanonical",
-           "multicanonical_command"]
+           "round_trips", "VARIABLES", "MUCA_SCHEMA", "muca_params", "MucaResult", "run_multicanonical"]
 
 #: variable name -> meaning
 VARIABLES = {
@@ -606,34 +605,3 @@ def result_blob(res: MucaResult) -> tuple[dict, dict]:
         "seconds": json.dumps(res.seconds),
     }
     return data, attrs
-
-
-def multicanonical_command(config_path: str, out: str | None = None, quiet: bool = False) -> int:
-    """``sigmasim multicanonical CONFIG [--out FILE.h5] [--quiet]``.
-
-    Runs the protocol, prints the summary and writes ``<run.output>/<name>/<name>-multicanonical.h5``
-    (or ``--out``): the frozen weight and its edges, the Wang-Landau histograms, the production
-    series (x, W(x) and every run series), the profile -ln P(x) with errors, and the averages,
-    round trips and timings as attributes.  A file there that this command did not write is never
-    replaced.
-    """
-    from pathlib import Path
-
-    from sigmasim import storage
-
-    config, params = load_multicanonical(config_path)
-    if out is not None and not str(out).endswith(".h5"):
-        raise ConfigError(f"--out must end in .h5, got {out}")
-    path = Path(out) if out is not None else config.run_dir / f"{config.name}-multicanonical.h5"
-    storage.check_multicanonical_target(path)
-
-    def stage(name):
-        if not quiet:
-            print(f"[{name}]", flush=True)
-
-    res = run_multicanonical(config, params, progress=stage)
-    print(res.summary())
-    data, attrs = result_blob(res)
-    storage.write_multicanonical(path, data, attrs)
-    print(f"wrote {path}")
-    return 0

@@ -39,7 +39,7 @@ import numpy as np
 from sigmasim.errors import ConfigError, RunFileError, SigmasimError
 
 __all__ = ["UMBRELLA_SCHEMA", "umbrella_params", "load_umbrella", "window_seed", "window_weight",
-           "run_window", "run_windows", "join_windows", "UmbrellaResult", "umbrella_command"]
+           "run_window", "run_windows", "join_windows", "UmbrellaResult"]
 
 FORMAT = "sigmasim-umbrella"
 MANIFEST = "umbrella.json"
@@ -388,34 +388,3 @@ def write_outputs(res: UmbrellaResult, folder, title: str) -> list[Path]:
     atomic_output(csv, lambda tmp: Path(tmp).write_text("\n".join(rows) + "\n"), what="profile table")
     png = plot_profiles({title: p}, folder / "profile.png", title=f"umbrella windows joined by WHAM: {title}")
     return [js, csv, png]
-
-
-def umbrella_command(config_path: str, serial: bool = False, quiet: bool = False) -> int:
-    """``sigmasim umbrella CONFIG [--serial] [--quiet]``: run the missing windows, join, write."""
-    raw, config, params = load_umbrella(config_path)
-    folder = config.run_dir / "umbrella"
-    from sigmasim.storage import release_lock, take_lock
-
-    folder.parent.mkdir(parents=True, exist_ok=True)
-    lock = take_lock(folder.parent / "umbrella.lock", "umbrella", folder)
-    try:
-        _prepare_folder(folder, raw, config, params)
-
-        def show(st):
-            if not quiet:
-                word = "skipped (complete)" if st.get("skipped") else st["status"]
-                extra = f": {st['error']}" if st["error"] else f" in {st['seconds']:.1f} s"
-                print(f"window {st['window']}: {word}{extra}", flush=True)
-
-        status = run_windows(raw, config, params, folder, serial=serial, progress=show)
-        failed = [s for s in status if s["status"] != "done"]
-        if failed:
-            raise RunFileError(f"{len(failed)} window(s) failed, first: {failed[0]['error']}; "
-                               "fix and rerun (complete windows are kept)")
-        res = join_windows(folder, params)
-        print(res.summary())
-        for path in write_outputs(res, folder, config.name):
-            print(f"wrote {path}")
-    finally:
-        release_lock(lock)
-    return 0
