@@ -156,9 +156,10 @@ def test_sigterm_stops_cleanly_and_resume_matches(tmp_path):
             np.testing.assert_array_equal(a[part][k], b[part][k], err_msg=k)
 
 
+from sigmasim.cli import PROTOCOL_TABLES  # noqa: E402  every table that `run` refuses
+
 EXAMPLES = sorted((ROOT / "runs").glob("*.toml"))
-PLAIN = [p for p in EXAMPLES if not any(f"[{t}]" in p.read_text() for t in ("hysteresis", "sweep", "tempering", "lifetimes", "scan",
-                                                                                           "multicanonical"))]
+PLAIN = [p for p in EXAMPLES if not any(f"[{t}]" in p.read_text() for t in PROTOCOL_TABLES)]
 PROTOCOL = [p for p in EXAMPLES if p not in PLAIN]
 
 

@@ -257,8 +257,9 @@ def test_a_name_near_the_file_name_limit_works(tmp_path, capsys):
 
 def _signal_early(tmp_path, sig, delay):
     cfg = _cfg(tmp_path, meas=200, name=f"s{sig}-{delay}.toml")
+    # a folder per trial: a trial stopped after its run file exists leaves a file the next would refuse
     p = subprocess.Popen([sys.executable, "-m", "sigmasim", "run", str(cfg), "--quiet", "--output",
-                          str(tmp_path / "o")], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                          str(tmp_path / f"o-{delay}")], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                          env=subprocess_env(), cwd=ROOT)
     time.sleep(delay)
     p.send_signal(sig)
