@@ -121,7 +121,7 @@ def _exercise_all_kernels():
     st, lat = sim.state, sim.lattice
     for hb in (False, True):
         local_unf(st.re, st.im, lat.row_neighbours, lat.row_parity, lat.row_len_half, 0, 3, 0.5, sim.hdiag,
-                  0.1, 0.0, False, hb, np.uint64(3), rows_per_chunk3(lat.row_len_half), 2)
+                  0.1, 0.0, False, hb, np.uint64(3), rows_per_chunk3(lat.row_len_half), 2, False)
     for k in (heatbath, overrelax):
         k(st.re, st.im, lat.neighbours, 0, lat.half, 3, 0.5, sim.hdiag, 0.2, 1.0 + 0j, False, np.uint64(4), 2)
     from sigmasim.kernels.unf import metropolis_u2

@@ -49,7 +49,7 @@ def test_overrelaxation_keeps_the_linear_action(shape, nf, rows):
     re0 = re.copy()
     for step in range(4):
         local_unf(re, im, lat.row_neighbours, lat.row_parity, lat.row_len_half, step % 2, nf, beta, hdiag,
-                  0.4, -0.2, False, False, np.uint64(77 + step), g, 2)
+                  0.4, -0.2, False, False, np.uint64(77 + step), g, 2, False)
         s1 = _linear_action(re, im, lat, nf, beta, hdiag)
         assert abs(s1 - s0) < 1e-11 * lat.volume, (s0, s1)
     assert np.abs(re - re0).max() > 0.1
@@ -65,7 +65,7 @@ def test_chunking_and_blocks_do_not_change_the_numbers(shape, nf, hb):
         re, im = _random_field(lat, nf, 5)
         for step in range(3):
             local_unf(re, im, lat.row_neighbours, lat.row_parity, lat.row_len_half, step % 2, nf, 0.6, hdiag,
-                      0.3, 0.1, False, hb, np.uint64(9 + step), rows, nblk)
+                      0.3, 0.1, False, hb, np.uint64(9 + step), rows, nblk, False)
         out.append((re, im))
     for re, im in out[1:]:
         np.testing.assert_array_equal(re, out[0][0])
