@@ -12,6 +12,11 @@ thermalisation and Metropolis step tuning), site-hits per second of
       mass phase (Metropolis 4 hits per visit, heatbath, overrelaxation, and the
       default schedule 1 heatbath + 3 overrelaxation, counted as 4 site-hits per site);
   (c) U(2), the same couplings and updates as (b);
+  (d) U(4), U(5), U(6) (models U4_d3, U5_d3, U6_d3), the same couplings, heatbath,
+      overrelaxation and 1 heatbath + 3 overrelaxation on 1 thread, against
+      benchmarks/c/unf.c (a plain C build of the same generic algorithm, built here for
+      each N), with its physics checked against ours and, at beta = 0, against the
+      exact one-site values of sigmasim.exact;
 
 on 1 thread and on all threads; builds and runs the yardstick's `c`,
 `c_omp2` (and for Metropolis `c_scalar`) programs of every update it has
@@ -70,6 +75,11 @@ ALGO_NAMES = {  # the yardstick's algorithm names where it has the algorithm
     ("U2_d3", "hbor"): "heatbath1_overrelax3",
 }
 C_PROGRAM = {"U1_d3": "u1", "U3_d3": "u3", "U2_d3": "u2"}
+# (d): the generic nf >= 4 path against benchmarks/c/unf.c (built with -DNF=nf), 1 thread
+UNF_MODELS = {f"U{nf}_d3": dict(nf=nf, shape=[16, 16, 16], beta=0.5, mass=0.1, kappa=0.2, theta=3.0, hits=4,
+                                 step=0.3) for nf in (4, 5, 6)}
+UNF_ALGOS = ("heatbath", "overrelax", "hbor")
+UNF_SOURCE = ROOT / "benchmarks" / "c" / "unf.c"
 C_ALGO = {"metropolis": "metro", "heatbath": "hb", "overrelax": "or", "hbor": "hbor"}
 
 
@@ -83,7 +93,7 @@ def hits_per_site(cfg, algo: str) -> int:
 def config(model: str, algo: str, thermalize: int, seed: int = 11):
     from sigmasim.config import config_from_dict
 
-    m = MODELS[model]
+    m = MODELS[model] if model in MODELS else UNF_MODELS[model]
     return config_from_dict({
         "name": "bench",
         "seed": seed,
@@ -325,6 +335,141 @@ def run_c(exe: str, args: list, threads: int, impl: str | None) -> dict:
     return d
 
 
+
+# ----------------------------------------------------------------------------- nf = 4..6 against benchmarks/c/unf.c
+def build_unf(work: Path, nfs) -> dict:
+    """Build benchmarks/c/unf.c once per N (``-DNF=N``, no OpenMP: 1 thread); returns nf -> program."""
+    cc = os.environ.get("CC", "gcc")
+    flags = ["-O3", "-march=native", "-fno-math-errno", "-std=gnu11", "-Wall", "-Wno-unknown-pragmas"]
+    procs = {nf: subprocess.Popen([cc, *flags, f"-DNF={nf}", "-o", str(work / f"unf{nf}"), str(UNF_SOURCE), "-lm"],
+                                  stderr=subprocess.PIPE, text=True) for nf in nfs}
+    for nf, p in procs.items():
+        _, err = p.communicate()
+        if p.returncode:
+            raise RuntimeError(f"building unf.c with NF={nf} failed:\n{err}")
+    return {nf: str(work / f"unf{nf}") for nf in nfs}
+
+
+def unf_args(m: dict, algo: str, sweeps: int, therm: int, beta: float | None = None, size: int | None = None) -> list:
+    """The command line of benchmarks/c/unf.c for the couplings of model ``m``."""
+    return ["--algo", C_ALGO[algo], "--L", str(size or m["shape"][0]), "--sweeps", str(sweeps), "--therm", str(therm),
+            "--seed", "1001", "--beta", repr(m["beta"] if beta is None else beta), "--h", repr(m["mass"]),
+            "--kappa", repr(m["kappa"]), "--theta", repr(m["theta"])]
+
+
+def unf_exact_check(exe: str, m: dict, sweeps: int) -> dict:
+    """unf.c at beta = 0 (sites independent, 8^3, 1 heatbath + 3 overrelaxation) against the exact
+    one-site <S>/V and <Re Tr U>/nf of :func:`sigmasim.exact.one_site_u` (theta in the mass term)."""
+    from sigmasim.exact import one_site_u
+
+    nf, h, kappa = m["nf"], m["mass"], m["kappa"]
+    ex = one_site_u(nf, h, kappa, theta_m=m["theta"] / nf)
+    # S_x = -Re Tr(H U) - 2 kappa Re det U, H = h e^{i theta / nf} 1
+    s_exact = -nf * h * ex["re_tr_thetam_u"] - 2.0 * kappa * ex["re_thetaa_det_u"]
+    d = run_c(exe, unf_args(m, "hbor", sweeps, 20, beta=0.0, size=8), 1, None)
+    out = {"measurement": "unf_c_exact_one_site", "nf": nf, "sweeps": sweeps,
+           "action_per_site": d["action_per_site"], "action_per_site_err": d["action_per_site_err"],
+           "action_per_site_exact": s_exact, "retr_over_nf": d["retr_over_nf"],
+           "retr_over_nf_err": d["retr_over_nf_err"], "retr_over_nf_exact": ex["re_tr_u"]}
+    out["z_action"] = (d["action_per_site"] - s_exact) / d["action_per_site_err"]
+    out["z_retr"] = (d["retr_over_nf"] - ex["re_tr_u"]) / d["retr_over_nf_err"]
+    return out
+
+
+def unf_section(models: list, no_c: bool, quick: bool, secs: float, therm: int, emit, show) -> None:
+    """(d): nf = 4..6 heatbath, overrelaxation and 1 hb + 3 or, numba and unf.c in ABBA order on 1 thread,
+    the ratios, the physics of both at the same couplings (z) and unf.c at beta = 0 against the exact values."""
+    from sigmasim.chain import Simulation
+    from sigmasim.config import config_from_dict
+
+    print("== nf = 4..6: the generic path against benchmarks/c/unf.c (a plain C build of the same algorithm: "
+          "scalar per-site code, N a compile-time constant), 1 thread, numba, C, C, numba")
+    for model in models:  # warm the JIT cache (one kernel for every nf >= 2 heatbath/overrelaxation)
+        for algo in UNF_ALGOS:
+            c = config(model, algo, 0).to_dict()
+            c["lattice"]["shape"] = [4, 4, 4]
+            s = Simulation(config_from_dict(c))
+            s.sweep()
+            s.measure()
+    nfs = [UNF_MODELS[m]["nf"] for m in models]
+    exes, work = None, None
+    if no_c:
+        print("  unf.c: skipped (--no-c)")
+    else:
+        work = Path(tempfile.mkdtemp(prefix="sigmasim-unf-"))
+        try:
+            exes = build_unf(work, nfs)
+            print(f"  unf.c: built for N = {', '.join(map(str, nfs))} in {work}")
+        except (RuntimeError, OSError) as exc:
+            print(f"  unf.c: build failed, ratios to C skipped ({exc})")
+    rates, res = {}, {}
+    try:
+        for model in models:
+            m = UNF_MODELS[model]
+            volume = int(np.prod(m["shape"]))
+            for algo in UNF_ALGOS:
+                hits = 4 if algo == "hbor" else 1
+                for k, who in enumerate(("numba", "c", "c", "numba") if exes else ("numba",)):
+                    if who == "numba":
+                        d = run_numba(model, algo, 1, secs, therm)
+                        if k == 0:  # the C run gets about the same time: sweeps from our rate
+                            n_c = max(20, int(secs * d["site_hits_per_second"] / (volume * hits)))
+                    else:
+                        try:
+                            d = run_c(exes[m["nf"]], unf_args(m, algo, n_c, therm), 1, "c_unf")
+                        except (subprocess.SubprocessError, OSError, ValueError) as exc:
+                            print(f"  unf.c: failed ({exc})")
+                            continue
+                    d["model"] = model
+                    res.setdefault((model, algo, who), d)
+                    rates.setdefault((model, algo, who), []).append(
+                        (d["site_hits_per_second"], d.get("site_hits_per_cpu_second", float("nan"))))
+                    emit(d)
+                    show(d)
+        print("== nf = 4..6 ratios (same run; numba / unf.c, mean of the ABBA pair; wall-time rates, CPU-time "
+              "rates in brackets; goal: >= 0.4 on 1 thread)")
+        for model in models:
+            for algo in UNF_ALGOS:
+                a_, b_ = rates.get((model, algo, "numba")), rates.get((model, algo, "c"))
+                if not a_ or not b_:
+                    continue
+                w = np.mean([x[0] for x in a_]) / np.mean([x[0] for x in b_])
+                c = np.mean([x[1] for x in a_]) / np.mean([x[1] for x in b_])
+                print(f"  {model} {algo:11s} numba / unf.c: {w:5.2f}  [{c:5.2f}]")
+                emit({"measurement": "unf_ratio", "model": model, "algorithm": algo, "wall_ratio": w, "cpu_ratio": c})
+        if not exes:
+            return
+        print("== nf = 4..6 physics (numba vs unf.c at the same couplings, each mean +- blocked error; "
+              "z = difference / error)")
+        for model in models:
+            for algo in UNF_ALGOS:
+                nb, c = res.get((model, algo, "numba")), res.get((model, algo, "c"))
+                if nb is None or c is None:
+                    continue
+                z = []
+                for k in ("action_per_site", "retr_over_nf"):
+                    e = np.hypot(nb[k + "_err"], c[k + "_err"])
+                    z.append((nb[k] - c[k]) / e if e > 0 else float("nan"))
+                print(f"  {model} {algo:11s} S/V numba {nb['action_per_site']:.5f}+-{nb['action_per_site_err']:.5f} "
+                      f"C {c['action_per_site']:.5f}+-{c['action_per_site_err']:.5f} (z {z[0]:+.1f});  "
+                      f"ReTrU/nf numba {nb['retr_over_nf']:.5f}+-{nb['retr_over_nf_err']:.5f} "
+                      f"C {c['retr_over_nf']:.5f}+-{c['retr_over_nf_err']:.5f} (z {z[1]:+.1f})"
+                      + ("  <-- CHECK" if max(abs(x) for x in z) > 4 else ""))
+        print("== unf.c at beta = 0 against the exact one-site values (sigmasim.exact.one_site_u; 8^3, "
+              "1 hb + 3 or)")
+        for model in models:
+            m = UNF_MODELS[model]
+            d = unf_exact_check(exes[m["nf"]], m, 300 if quick else 1000)
+            emit(d)
+            print(f"  {model} S/V {d['action_per_site']:.5f}+-{d['action_per_site_err']:.5f} exact "
+                  f"{d['action_per_site_exact']:.5f} (z {d['z_action']:+.1f});  ReTrU/nf {d['retr_over_nf']:.5f}"
+                  f"+-{d['retr_over_nf_err']:.5f} exact {d['retr_over_nf_exact']:.5f} (z {d['z_retr']:+.1f})"
+                  + ("  <-- CHECK" if max(abs(d["z_action"]), abs(d["z_retr"])) > 4 else ""))
+    finally:
+        if work is not None:
+            shutil.rmtree(work, ignore_errors=True)
+
+
 # ----------------------------------------------------------------------------- compile / start-up / memory
 _COMPILE_SNIPPET = r"""
 import json, sys, time
@@ -440,8 +585,8 @@ def main(argv=None) -> int:
     ap.add_argument("--threads", type=int, default=0, help="the 'all threads' count (default: all cores)")
     ap.add_argument("--no-c", action="store_true", help="skip the C yardstick")
     ap.add_argument("--no-compile", action="store_true", help="skip compile, start-up and memory timings")
-    ap.add_argument("--models", default=",".join(MODELS),
-                    help=f"comma-separated subset of {', '.join(MODELS)} (default all)")
+    ap.add_argument("--models", default=",".join([*MODELS, *UNF_MODELS]),
+                    help=f"comma-separated subset of {', '.join([*MODELS, *UNF_MODELS])} (default all)")
     ap.add_argument("--repeat", type=int, default=3,
                     help="repetitions of the interleaved 1 vs all threads timing (default 3)")
     args = ap.parse_args(argv)
@@ -453,11 +598,13 @@ def main(argv=None) -> int:
     therm = {"U1_d3": 100 if args.quick else 200, "U3_d3": 60 if args.quick else 100,
              "U2_d3": 60 if args.quick else 100}
     models = [m.strip() for m in args.models.split(",") if m.strip()]
-    bad = [m for m in models if m not in MODELS]
+    bad = [m for m in models if m not in MODELS and m not in UNF_MODELS]
     if bad or not models:
-        print(f"error: --models takes a comma-separated subset of {', '.join(MODELS)}, got {args.models!r}",
-              file=sys.stderr)
+        print(f"error: --models takes a comma-separated subset of {', '.join([*MODELS, *UNF_MODELS])}, "
+              f"got {args.models!r}", file=sys.stderr)
         return 2
+    unf_models = [m for m in models if m in UNF_MODELS]  # (d), timed in unf_section
+    models = [m for m in models if m in MODELS]
     RESULTS.mkdir(parents=True, exist_ok=True)
     out_path = RESULTS / time.strftime("bench-%Y%m%d-%H%M%S.jsonl")
     lines = []
@@ -501,11 +648,13 @@ def main(argv=None) -> int:
             s.sweep()
             s.measure()
 
-    pdir = None if args.no_c else perf_dir()
+    pdir = None if args.no_c or not models else perf_dir()
     exes = None
     work = None
     if args.no_c:
         print("C yardstick: skipped (--no-c)")
+    elif not models:
+        pass  # only nf = 4..6 rows: the yardstick has no program for them (unf_section builds unf.c)
     elif pdir is None:
         print("C yardstick: NOT FOUND (set SIGMASIM_PERF_DIR or put it at ../shared/perf); "
               "ratios to C skipped")
@@ -643,6 +792,9 @@ def main(argv=None) -> int:
               f"ReTrU/nf numba {nb['retr_over_nf']:.5f}+-{nb['retr_over_nf_err']:.5f} "
               f"C {c['retr_over_nf']:.5f}+-{c['retr_over_nf_err']:.5f} (z {z[1]:+.1f})"
               + ("  <-- CHECK" if max(abs(x) for x in z) > 4 else ""))
+
+    if unf_models:
+        unf_section(unf_models, args.no_c, args.quick, secs, 60 if args.quick else 100, emit, show)
 
     if not args.no_compile:
         print("== JIT compile (first sweep + measure of each update; subprocess, temporary NUMBA_CACHE_DIR)")

@@ -71,3 +71,37 @@ def test_scaling_one_short_repetition(tmp_path):
     for r in rows:
         assert r["sigmasim_speedup"] > 0 and r["toy_vector_bound"] > 0 and "c_speedup" not in r
     assert "sigmasim median" in p.stdout
+
+
+
+@pytest.fixture(scope="module")
+def unf4(tmp_path_factory):
+    """benchmarks/c/unf.c built for N = 4 as bench.py builds it (about 1 s); skips without a C compiler."""
+    import os
+    import shutil
+
+    if shutil.which(os.environ.get("CC", "gcc")) is None:
+        pytest.skip("no C compiler")
+    sys.path.insert(0, str(ROOT))
+    from benchmarks import bench
+
+    return bench, bench.build_unf(tmp_path_factory.mktemp("unf"), [4])[4]
+
+
+@pytest.mark.parametrize("h,kappa", [(0.1, 0.2), (1.5, 0.7)])
+def test_unf_c_exact_one_site(unf4, h, kappa):
+    """The C build bench.py compares nf = 4..6 with reproduces, at beta = 0, the exact one-site
+    <S>/V and <Re Tr U>/N (sigmasim.exact; within 4 blocked errors).  About 0.5 s each (400 sweeps
+    of 8^3, 1 hb + 3 or); no numba."""
+    bench, exe = unf4
+    m = dict(bench.UNF_MODELS["U4_d3"], mass=h, kappa=kappa)
+    d = bench.unf_exact_check(exe, m, 400)
+    assert d["action_per_site_err"] > 0 and d["retr_over_nf_err"] > 0
+    assert abs(d["z_action"]) < 4, d
+    assert abs(d["z_retr"]) < 4, d
+
+
+def test_unf_c_bad_argument(unf4):
+    _, exe = unf4
+    p = subprocess.run([exe, "--L", "3"], capture_output=True, text=True, timeout=60)
+    assert p.returncode == 2 and len(p.stderr.strip().splitlines()) == 1 and "--L" in p.stderr
