@@ -23,10 +23,14 @@ sweep, and reports
   * the cost of one independent measurement, 2 tau_int x seconds per sweep, with its error;
   * the tunnelling time: sweeps per change of the branch of omega_h (the slow mode of a
     theta run; sigmasim.analysis.tunnelling_analysis with the hysteresis band 0.5, total
-    sweeps / number of events), and its cost in CPU seconds.  It is the slow mode: in the
-    nf = 2, 3 benchmark models a chain of a few thousand sweeps sees 0-6 changes, so the
-    column is a rough figure or a lower bound ("> N": no change in N sweeps); nf = 1 has one
-    branch ("-").
+    sweeps / number of events) with its exact 68 % interval (the Garwood interval of the
+    Poisson rate, sigmasim.analysis.tunnelling.poisson_interval, inverted), and its cost in
+    CPU seconds.  It is the slow mode: in the nf = 2, 3 benchmark models a chain of a few
+    thousand sweeps sees 0-6 changes, so the column is a rough figure; without a change it is
+    the 95 % lower limit ("> T": T = sweeps / 3.0, poisson_upper_limit inverted; no change in
+    N sweeps alone does not bound the mean time by N).  A row is marked "not separated" when
+    the analysis' bimodality test finds no separated vacua in the histogram of omega_h (the
+    band crossings are then not tunnelling events); nf = 1 has one branch ("-").
 
 Convention: gamma_analysis defines tau_int = 1/2 + sum_{t>=1} rho(t), so that
 var(mean) = 2 tau_int var / N (uncorrelated data: tau_int = 1/2).  N samples are then worth
@@ -106,6 +110,33 @@ def _tau(series: np.ndarray):
     return g, not any(issubclass(w.category, RuntimeWarning) for w in caught)
 
 
+def tunnelling_times(omega_h, theta: float, nf: int) -> dict:
+    """Sweeps per change of the branch of ``omega_h`` (one measurement per sweep) with its errors.
+
+    sigmasim.analysis.tunnelling_analysis (hysteresis band 0.5) counts the events; the mean time
+    between them is total sweeps / events, its 68 % interval the exact (Garwood) Poisson interval
+    of the rate inverted, and without an event the 95 % lower limit is the inverted upper limit of
+    the rate (sweeps / 3.0).  Computed also where the package's bimodality test finds the vacua not
+    separated (``tunnelling_vacua_separated`` False: the band crossings are then not tunnelling),
+    so that the row shows what was counted.  NaN for nf = 1 (one branch).
+    """
+    from sigmasim.analysis.tunnelling import poisson_interval, poisson_upper_limit, tunnelling_analysis
+
+    tun = tunnelling_analysis(np.asarray(omega_h), theta, nf, band=0.5)
+    n, total = tun.n_events, tun.total_time
+    per = total / n if n else float("inf")
+    rate_lo, rate_hi = poisson_interval(n, total)
+    rate_up95 = poisson_upper_limit(n, total)
+    low = 1.0 / rate_hi if rate_hi > 0 else float("nan")
+    high = 1.0 / rate_lo if rate_lo > 0 else float("inf")
+    lower95 = 1.0 / rate_up95 if rate_up95 > 0 else float("nan")
+    if nf == 1:
+        per = low = high = lower95 = float("nan")  # one branch: nothing to tunnel to
+    return {"tunnelling_events": n, "sweeps_per_tunnelling": per, "sweeps_per_tunnelling_low": low,
+            "sweeps_per_tunnelling_high": high, "sweeps_per_tunnelling_lower_95": lower95,
+            "tunnelling_vacua_separated": bool(tun.counted)}
+
+
 def measure_cost(model: str, schedule: str, budget: float, rel_error: float, thermalize: int,
                  size: int | None = None, min_sweeps: int = 500) -> dict:
     """One chain of ``model`` with ``schedule``: CPU time per sweep and tau_int of |Omega|.
@@ -149,8 +180,6 @@ def measure_cost(model: str, schedule: str, budget: float, rel_error: float, the
             break
         chunk = max(100, n // 5)
 
-    from sigmasim.analysis.tunnelling import tunnelling_analysis
-
     x = np.asarray(absomega)
     ts = np.asarray(t_sweep)
     th = thermalisation_cut(x)
@@ -158,10 +187,7 @@ def measure_cost(model: str, schedule: str, budget: float, rel_error: float, the
     if cut:
         x, ts = x[cut:], ts[cut:]
         g, window_ok = _tau(x)
-    tun = tunnelling_analysis(np.asarray(omega_h[cut:]), cfg.theta, cfg.nf, band=0.5)
-    per_tunnel = tun.total_time / tun.n_events if tun.n_events else float("inf")
-    if cfg.nf == 1:
-        per_tunnel = float("nan")  # one branch: nothing to tunnel to
+    tun = tunnelling_times(np.asarray(omega_h[cut:]), cfg.theta, cfg.nf)
     s_sweep, s_sweep_err = blocked_mean(ts)
     s_meas = t_meas / len(absomega)
     cost = 2.0 * g.tau_int * s_sweep
@@ -178,8 +204,7 @@ def measure_cost(model: str, schedule: str, budget: float, rel_error: float, the
         "tau_int": g.tau_int, "tau_int_err": g.tau_int_error, "window": g.window,
         "cpu_seconds_per_independent": cost, "cpu_seconds_per_independent_err": cost * rel,
         "cpu_seconds_per_independent_measuring_every_sweep": 2.0 * g.tau_int * (s_sweep + s_meas),
-        "tunnelling_events": tun.n_events, "sweeps_per_tunnelling": per_tunnel,
-        "cpu_seconds_per_tunnelling": per_tunnel * s_sweep,
+        **tun, "cpu_seconds_per_tunnelling": tun["sweeps_per_tunnelling"] * s_sweep,
         "acceptance": float(np.nanmean(acc)) if np.isfinite(acc).any() else float("nan"),
         "step": sim.state.step_size, "foreign_load_before": load,
         "contended": contended(load, 1),
@@ -187,13 +212,18 @@ def measure_cost(model: str, schedule: str, budget: float, rel_error: float, the
 
 
 def _tunnel_text(d) -> str:
-    """The two tunnelling columns of the table: '-' for one branch, '> N' without an event."""
+    """The two tunnelling columns of the table: '-' for one branch; without an event the 95 % lower
+    limit ('> T'); else sweeps / events [68 % interval] (events), 'not separated' where the
+    bimodality test finds no separated vacua."""
     per = d["sweeps_per_tunnelling"]
     if math.isnan(per):
         return "- | -"
+    sep = "" if d.get("tunnelling_vacua_separated", True) else ", not separated"
     if math.isinf(per):
-        return f"> {d['sweeps']} (0) | > {d['sweeps'] * d['cpu_seconds_per_sweep']:.2e}"
-    return f"{per:.3g} ({d['tunnelling_events']}) | {d['cpu_seconds_per_tunnelling']:.2e}"
+        low = d["sweeps_per_tunnelling_lower_95"]
+        return f"> {low:.3g} (0 in {d['sweeps']}{sep}) | > {low * d['cpu_seconds_per_sweep']:.2e}"
+    return (f"{per:.3g} [{d['sweeps_per_tunnelling_low']:.2g}, {d['sweeps_per_tunnelling_high']:.2g}] "
+            f"({d['tunnelling_events']}{sep}) | {d['cpu_seconds_per_tunnelling']:.2e}")
 
 
 def warm_jit(models, schedules) -> None:
@@ -306,7 +336,7 @@ def main(argv=None) -> int:
     print()
     print("| model | update | CPU s / sweep | tau_int of abs(Omega) (sweeps) "
           "| CPU s / independent sample | same, measuring every sweep | sweeps "
-          "| sweeps per tunnelling (events) | CPU s per tunnelling |")
+          "| sweeps per tunnelling [68 % interval] (events) | CPU s per tunnelling |")
     print("| --- | --- | --- | --- | --- | --- | --- | --- | --- |")
     for d in rows:
         flag = "" if d["stopped_on"] == "target" and d["window_found"] else " *"
@@ -323,7 +353,8 @@ def main(argv=None) -> int:
     print("(CPU s / independent sample = 2 tau_int x CPU s per sweep of the updates alone; the "
           f"next column adds one Simulation.measure per sweep, which costs {meas}.  * stopped on "
           "the CPU budget before the target error of tau_int.  Tunnelling: changes of the branch of "
-          "omega_h, hysteresis band 0.5; sweeps per tunnelling = sweeps / events.)")
+          "omega_h, hysteresis band 0.5; sweeps per tunnelling = sweeps / events, its exact 68 % "
+          "Poisson interval; '> T': no change, 95 % lower limit T = sweeps / 3.0.)")
     # physics sanity: every schedule samples the same distribution
     for m in models:
         same = [d for d in rows if d["model"] == m]

@@ -36,6 +36,10 @@ def test_independent_cost_quick_tiny(tmp_path):
         assert math.isclose(d["cpu_seconds_per_independent"],
                             2 * d["tau_int"] * d["cpu_seconds_per_sweep"], rel_tol=1e-12)
         assert 0 < d["abs_omega"] <= 1
+        if d["tunnelling_events"]:
+            assert d["sweeps_per_tunnelling_low"] < d["sweeps_per_tunnelling"] < d["sweeps_per_tunnelling_high"]
+        elif d["model"] != "U1_d3":
+            assert 0 < d["sweeps_per_tunnelling_lower_95"] < d["sweeps"]
     # the printed table has one row per chain
     table = [ln for ln in p.stdout.splitlines() if ln.startswith("| U")]
     assert len(table) == len(rows)
@@ -105,3 +109,55 @@ def test_unf_c_bad_argument(unf4):
     _, exe = unf4
     p = subprocess.run([exe, "--L", "3"], capture_output=True, text=True, timeout=60)
     assert p.returncode == 2 and len(p.stderr.strip().splitlines()) == 1 and "--L" in p.stderr
+
+
+@pytest.fixture
+def icost(monkeypatch):
+    """benchmarks/independent_cost.py as a module (its import sets NUMBA_NUM_THREADS=1: undone after)."""
+    import os
+
+    monkeypatch.setenv("NUMBA_NUM_THREADS", os.environ.get("NUMBA_NUM_THREADS", "1"))
+    sys.path.insert(0, str(ROOT))
+    from benchmarks import independent_cost
+
+    return independent_cost
+
+
+def _branch_series(ks, theta, nf, seed=5):
+    """omega_h sitting on branch ks[i] at measurement i (phase (2 pi k + theta) / nf, small noise)."""
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    ph = (2 * np.pi * np.asarray(ks) + theta) / nf + 0.05 * rng.normal(size=len(ks))
+    return 0.3 * np.exp(1j * ph)
+
+
+def test_tunnelling_times_interval_and_limit(icost):
+    """Known answers: 4 changes in 1000 sweeps give 999 / 4 sweeps per change inside the inverted
+    Garwood interval (Garwood, Biometrika 28 (1936) 437: for n = 4 the 68.27 % rate interval is
+    [2.09, 7.16] / T, computed here from chi2); no change gives the 95 % lower limit T / ln(20)
+    (= T / 3.0, the zero-event Poisson limit); nf = 1 gives '-'.  No numba; well under a second."""
+    import numpy as np
+    from scipy.stats import chi2
+
+    ks = np.repeat([0, 1, 0, 2, 1], 200)
+    d = icost.tunnelling_times(_branch_series(ks, 3.0, 3), 3.0, 3)
+    t = 999.0
+    assert d["tunnelling_events"] == 4
+    assert d["sweeps_per_tunnelling"] == pytest.approx(t / 4)
+    assert d["sweeps_per_tunnelling_low"] == pytest.approx(t / (chi2.ppf(0.5 + 0.6826894921370859 / 2, 10) / 2))
+    assert d["sweeps_per_tunnelling_high"] == pytest.approx(t / (chi2.ppf(0.5 - 0.6826894921370859 / 2, 8) / 2))
+    assert d["sweeps_per_tunnelling_low"] < t / 4 < d["sweeps_per_tunnelling_high"]
+    row = dict(d, sweeps=1000, cpu_seconds_per_sweep=1e-3, cpu_seconds_per_tunnelling=t / 4 * 1e-3)
+    text = icost._tunnel_text(row)
+    assert text.startswith("250 [") and "(4" in text
+
+    d0 = icost.tunnelling_times(_branch_series(np.zeros(1000, int), 3.0, 3), 3.0, 3)
+    assert d0["tunnelling_events"] == 0 and d0["sweeps_per_tunnelling"] == float("inf")
+    assert d0["sweeps_per_tunnelling_lower_95"] == pytest.approx(t / np.log(20.0))
+    text0 = icost._tunnel_text(dict(d0, sweeps=1000, cpu_seconds_per_sweep=1e-3, cpu_seconds_per_tunnelling=np.inf))
+    assert text0.startswith(f"> {t / np.log(20.0):.3g} (0 in 1000")
+
+    d1 = icost.tunnelling_times(np.full(100, 0.5 + 0j), 3.0, 1)
+    assert icost._tunnel_text(dict(d1, sweeps=100, cpu_seconds_per_sweep=1e-3,
+                                   cpu_seconds_per_tunnelling=np.nan)) == "- | -"
