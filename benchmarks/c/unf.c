@@ -1,9 +1,9 @@
 /* unf.c: a plain C build of sigmasim's generic U(N) heatbath and overrelaxation, for the
  * speed comparison in benchmarks/bench.py (N = 4, 5, 6 and any other N >= 2).
  *
- *   cc -O3 -march=native -fno-math-errno -std=gnu11 -DNF=4 [-fopenmp] -o unf4 unf.c -lm
+ *   cc -O3 -march=native -fno-math-errno -std=gnu11 -fopenmp-simd -DNF=4 [-fopenmp] -o unf4 unf.c -lm
  *   ./unf4 [--algo hb|or|hbor] [--nor 3] [--L 16] [--sweeps N] [--therm N] [--seed S]
- *          [--beta 0.5] [--h 0.1] [--kappa 0.2] [--theta 3.0] [--impl NAME]
+ *          [--beta 0.5] [--h 0.1] [--kappa 0.2] [--theta 3.0] [--layout chunk|site] [--impl NAME]
  *
  * Model (sigmasim.models.chiral, theta placed in the mass term):
  *   S = -beta sum_{x,mu} Re Tr(U_x^+ U_{x+mu}) - sum_x Re Tr(H U_x) - kappa sum_x 2 Re det U_x,
@@ -22,8 +22,14 @@
  *   hbor: one heatbath and --nor overrelaxation colour sweeps of both colours per sweep
  *     (counted as 1 + nor site-hits per site).
  * The field is projected back onto U(N) (Gram-Schmidt of the rows) every 10 sweeps.
- * The data layout is the plain one: the 2 N^2 doubles of a site contiguous (real parts, then
- * imaginary parts), every site updated by scalar code with the matrix size a compile-time constant.
+ * The field keeps the 2 N^2 doubles of a site contiguous (real parts, then imaginary parts).  Two
+ * ways to update, with the same draws and the same arithmetic (the same chain up to rounding):
+ *   --layout chunk (default): 64 sites of one colour at a time, every per-site quantity in scratch
+ *     rows [component][site], so that the arithmetic runs as loops over the sites that the compiler
+ *     vectorises (the layout of sigmasim.kernels.unf); the rejection loops and the determinant
+ *     (LU with partial pivoting) site by site; the sines, cosines and logarithms are the scalar
+ *     libm ones (no hand-written vector versions);
+ *   --layout site: one site at a time, scalar code with the matrix size a compile-time constant.
  *
  * Random numbers: a counter-based generator (SplitMix64 finaliser of key + n * golden ratio,
  * common practice, no source); colour update t has its own key, site x its own counters from
@@ -191,6 +197,7 @@ typedef struct {
     int nsite[2];
     double beta, h, kappa, theta, hr, hi;
     u64 seed;
+    int chunked; /* 1: chunk_update (sites innermost), 0: site_update (one site at a time) */
 } lat_t;
 
 /* one heatbath (hb) or overrelaxation update of site s; returns 1 if the phase step was accepted */
@@ -337,6 +344,188 @@ static void flavour_perm(u64 key, int *perm)
     }
 }
 
+/* ------------------------------------------------------------------ the chunked update
+ * The same site update for CH sites of one colour at a time, with every per-site quantity in
+ * scratch rows [component][site] (sites innermost), so that the arithmetic runs as loops over
+ * the sites that the compiler vectorises (the layout of sigmasim.kernels.unf); the rejection
+ * loops (x0, von Mises) and the determinant run site by site.  Same draws as site_update. */
+#ifndef CH
+#define CH 64
+#endif
+#define SIMD _Pragma("omp simd")
+
+static long chunk_update(lat_t *lt, const int *sites, int m, u64 key, const int *perm, int hb)
+{
+    static _Thread_local double A[2 * NC][CH] __attribute__((aligned(64)));
+    static _Thread_local double U[2 * NC][CH] __attribute__((aligned(64)));
+    static _Thread_local double W[2 * NC][CH] __attribute__((aligned(64)));
+    static _Thread_local double Q[8][CH] __attribute__((aligned(64)));
+    static _Thread_local double P[6][CH] __attribute__((aligned(64)));
+    const double beta = lt->beta;
+    for (int s = 0; s < m; s++) {
+        const int x = sites[s];
+        const int *nb = lt->nbr + (size_t)x * NNB;
+        double n[2 * NC];
+        const double *q = lt->F + (size_t)nb[0] * 2 * NC;
+        for (int c = 0; c < 2 * NC; c++) n[c] = q[c];
+        for (int k = 1; k < NNB; k++) {
+            q = lt->F + (size_t)nb[k] * 2 * NC;
+            for (int c = 0; c < 2 * NC; c++) n[c] += q[c];
+        }
+        for (int a = 0; a < NF; a++)
+            for (int b = 0; b < NF; b++) {
+                A[a * NF + b][s] = beta * n[b * NF + a];
+                A[NC + a * NF + b][s] = -beta * n[NC + b * NF + a];
+            }
+        for (int a = 0; a < NF; a++) { A[a * NF + a][s] += lt->hr; A[NC + a * NF + a][s] += lt->hi; }
+        const double *f = lt->F + (size_t)x * 2 * NC;
+        for (int c = 0; c < 2 * NC; c++) U[c][s] = f[c];
+    }
+    for (int a = 0; a < NF; a++)
+        for (int b = 0; b < NF; b++) {
+            double *wr = W[a * NF + b], *wi = W[NC + a * NF + b];
+            SIMD for (int s = 0; s < m; s++) { wr[s] = 0.0; wi[s] = 0.0; }
+            for (int c = 0; c < NF; c++) {
+                const double *xr = U[a * NF + c], *xi = U[NC + a * NF + c], *yr = A[c * NF + b],
+                             *yi = A[NC + c * NF + b];
+                SIMD for (int s = 0; s < m; s++) {
+                    wr[s] += xr[s] * yr[s] - xi[s] * yi[s];
+                    wi[s] += xr[s] * yi[s] + xi[s] * yr[s];
+                }
+            }
+        }
+    u64 nctr[CH];
+    for (int s = 0; s < m; s++) nctr[s] = (u64)sites[s] << 24;
+    for (int pa = 0; pa < NF; pa++)
+        for (int pb = pa + 1; pb < NF; pb++) {
+            const int i = perm[pa], j = perm[pb];
+            const int ii = i * NF + i, jj = j * NF + j, ij = i * NF + j, ji = j * NF + i;
+            /* v^+ = [[conj al, -be], [conj be, al]] / k in P rows: ar ai br bi, k in P[4] */
+            SIMD for (int s = 0; s < m; s++) {
+                const double alr = 0.5 * (W[ii][s] + W[jj][s]), ali = 0.5 * (W[NC + ii][s] - W[NC + jj][s]);
+                const double ber = 0.5 * (W[ij][s] - W[ji][s]), bei = 0.5 * (W[NC + ij][s] + W[NC + ji][s]);
+                const double k2 = alr * alr + ali * ali + ber * ber + bei * bei;
+                const int tiny = k2 < 1e-300;
+                const double k = sqrt(k2), ik = tiny ? 0.0 : 1.0 / k;
+                P[0][s] = alr * ik; P[1][s] = ali * ik; P[2][s] = ber * ik; P[3][s] = bei * ik;
+                P[4][s] = tiny ? 0.0 : k;
+            }
+            if (hb) {
+                for (int s = 0; s < m; s++) {
+                    if (P[4][s] == 0.0) { P[5][s] = 2.0; continue; } /* identity below */
+                    const double x0 = su2_x0(2.0 * P[4][s], key, &nctr[s]);
+                    const double c3 = 2.0 * unif(key, nctr[s]) - 1.0;
+                    const double ph = 2.0 * M_PI * unif(key, nctr[s] + 1);
+                    nctr[s] += 2;
+                    const double rr = sqrt(fmax(0.0, 1.0 - x0 * x0));
+                    const double st = rr * sqrt(fmax(0.0, 1.0 - c3 * c3));
+                    Q[0][s] = x0; Q[1][s] = rr * c3; Q[2][s] = st * sin(ph); Q[3][s] = st * cos(ph);
+                    P[5][s] = x0;
+                }
+                SIMD for (int s = 0; s < m; s++) {
+                    const int one = P[5][s] > 1.5;
+                    const double ar_ = one ? 1.0 : P[0][s], ai_ = one ? 0.0 : -P[1][s];
+                    const double br_ = one ? 0.0 : -P[2][s], bi_ = one ? 0.0 : -P[3][s];
+                    const double cr_ = -br_, ci_ = bi_, dr_ = ar_, di_ = -ai_;
+                    const double pr = one ? 1.0 : Q[0][s], pi = one ? 0.0 : Q[1][s];
+                    const double qr = one ? 0.0 : Q[2][s], qi = one ? 0.0 : Q[3][s];
+                    Q[0][s] = (pr * ar_ - pi * ai_) + (qr * cr_ - qi * ci_);
+                    Q[1][s] = (pr * ai_ + pi * ar_) + (qr * ci_ + qi * cr_);
+                    Q[2][s] = (pr * br_ - pi * bi_) + (qr * dr_ - qi * di_);
+                    Q[3][s] = (pr * bi_ + pi * br_) + (qr * di_ + qi * dr_);
+                    Q[4][s] = (-qr * ar_ - qi * ai_) + (pr * cr_ + pi * ci_);
+                    Q[5][s] = (-qr * ai_ + qi * ar_) + (pr * ci_ - pi * cr_);
+                    Q[6][s] = (-qr * br_ - qi * bi_) + (pr * dr_ + pi * di_);
+                    Q[7][s] = (-qr * bi_ + qi * br_) + (pr * di_ - pi * dr_);
+                }
+            } else {
+                SIMD for (int s = 0; s < m; s++) {
+                    const int one = P[4][s] == 0.0;
+                    const double ar_ = P[0][s], ai_ = -P[1][s], br_ = -P[2][s], bi_ = -P[3][s];
+                    const double t = 2.0 * P[0][s];
+                    Q[0][s] = one ? 1.0 : t * ar_ - 1.0; Q[1][s] = t * ai_;
+                    Q[2][s] = t * br_; Q[3][s] = t * bi_;
+                    Q[4][s] = -t * br_; Q[5][s] = t * bi_;
+                    Q[6][s] = one ? 1.0 : t * ar_ - 1.0; Q[7][s] = -t * ai_;
+                }
+            }
+            for (int X = 0; X < 2; X++) {
+                double (*M)[CH] = X ? W : U;
+                for (int b = 0; b < NF; b++) {
+                    double *xr = M[i * NF + b], *xi = M[NC + i * NF + b], *yr = M[j * NF + b], *yi = M[NC + j * NF + b];
+                    SIMD for (int s = 0; s < m; s++) {
+                        const double ar = xr[s], ai = xi[s], br = yr[s], bi = yi[s];
+                        xr[s] = (Q[0][s] * ar - Q[1][s] * ai) + (Q[2][s] * br - Q[3][s] * bi);
+                        xi[s] = (Q[0][s] * ai + Q[1][s] * ar) + (Q[2][s] * bi + Q[3][s] * br);
+                        yr[s] = (Q[4][s] * ar - Q[5][s] * ai) + (Q[6][s] * br - Q[7][s] * bi);
+                        yi[s] = (Q[4][s] * ai + Q[5][s] * ar) + (Q[6][s] * bi + Q[7][s] * br);
+                    }
+                }
+            }
+        }
+    /* the phase step: z = Tr W in P[0], P[1], |z| in P[2]; proposal e in Q[0], Q[1] */
+    SIMD for (int s = 0; s < m; s++) {
+        double zr = 0.0, zi = 0.0;
+        for (int a = 0; a < NF; a++) { zr += W[a * NF + a][s]; zi += W[NC + a * NF + a][s]; }
+        P[0][s] = zr; P[1][s] = zi; P[2][s] = sqrt(zr * zr + zi * zi);
+    }
+    if (hb)
+        for (int s = 0; s < m; s++) {
+            u64 n = ((u64)sites[s] << 24) + ((u64)1 << 23);
+            von_mises(P[2][s], key, &n, &Q[2][s], &Q[3][s]);
+            nctr[s] = n; /* the accept draw's counter */
+        }
+    SIMD for (int s = 0; s < m; s++) {
+        const double kz = P[2][s];
+        const int big = kz > 1e-300;
+        const double ik = big ? 1.0 / kz : 0.0;
+        const double cr = P[0][s] * ik, ci = -P[1][s] * ik;
+        double er, ei;
+        if (hb) {
+            const double c = Q[2][s], sn = Q[3][s];
+            er = big ? c * cr - sn * ci : c;
+            ei = big ? c * ci + sn * cr : sn;
+        } else {
+            er = big ? cr * cr - ci * ci : 1.0;
+            ei = big ? 2.0 * cr * ci : 0.0;
+        }
+        double pr = er, pi = ei;
+        for (int t = 1; t < NF; t++) {
+            const double x = pr * er - pi * ei;
+            pi = pr * ei + pi * er;
+            pr = x;
+        }
+        Q[0][s] = er; Q[1][s] = ei; Q[4][s] = pr; Q[5][s] = pi; P[3][s] = big;
+    }
+    long acc = 0;
+    for (int s = 0; s < m; s++) {
+        double ur[NC], ui[NC], dr, di;
+        for (int c = 0; c < NC; c++) { ur[c] = U[c][s]; ui[c] = U[NC + c][s]; }
+        det_n(ur, ui, &dr, &di);
+        const double ds = -2.0 * lt->kappa * ((Q[4][s] * dr - Q[5][s] * di) - dr);
+        int ok;
+        if (hb)
+            ok = ds <= 0.0 || unif(key, nctr[s]) < exp(-ds);
+        else
+            ok = P[3][s] != 0.0 && (ds <= 0.0 || unif(key, ((u64)sites[s] << 24) + ((u64)1 << 23)) < exp(-ds));
+        P[4][s] = ok;
+        acc += ok;
+    }
+    for (int c = 0; c < NC; c++)
+        SIMD for (int s = 0; s < m; s++) {
+            const int ok = P[4][s] != 0.0;
+            const double er = ok ? Q[0][s] : 1.0, ei = ok ? Q[1][s] : 0.0;
+            const double x = U[c][s], y = U[NC + c][s];
+            U[c][s] = er * x - ei * y;
+            U[NC + c][s] = er * y + ei * x;
+        }
+    for (int s = 0; s < m; s++) {
+        double *f = lt->F + (size_t)sites[s] * 2 * NC;
+        for (int c = 0; c < 2 * NC; c++) f[c] = U[c][s];
+    }
+    return acc;
+}
+
 static long colour_update(lat_t *lt, int colour, u64 t, int hb)
 {
     const u64 key = update_key(lt->seed, t);
@@ -345,6 +534,15 @@ static long colour_update(lat_t *lt, int colour, u64 t, int hb)
     const int *sites = lt->sites[colour];
     const int ns = lt->nsite[colour];
     long acc = 0;
+    if (lt->chunked) {
+        const int nch = (ns + CH - 1) / CH;
+#pragma omp parallel for schedule(static) reduction(+ : acc)
+        for (int c = 0; c < nch; c++) {
+            const int q0 = c * CH, m = ns - q0 < CH ? ns - q0 : CH;
+            acc += chunk_update(lt, sites + q0, m, key, perm, hb);
+        }
+        return acc;
+    }
 #pragma omp parallel for schedule(static) reduction(+ : acc)
     for (int q = 0; q < ns; q++) acc += site_update(lt, sites[q], key, perm, hb);
     return acc;
@@ -450,6 +648,7 @@ int main(int argc, char **argv)
     u64 seed = 12345;
     double beta = 0.5, h = 0.1, kappa = 0.2, theta = 3.0;
     const char *impl = NULL;
+    int chunked = 1;
     for (int i = 1; i < argc; i++) {
         if (i + 1 >= argc) usage();
         const char *o = argv[i], *v = argv[++i];
@@ -469,6 +668,11 @@ int main(int argc, char **argv)
         else if (!strcmp(o, "--kappa")) kappa = atof(v);
         else if (!strcmp(o, "--theta")) theta = atof(v);
         else if (!strcmp(o, "--impl")) impl = v;
+        else if (!strcmp(o, "--layout")) {
+            if (!strcmp(v, "chunk")) chunked = 1;
+            else if (!strcmp(v, "site")) chunked = 0;
+            else usage();
+        }
         else usage();
     }
     if (L < 2 || L % 2) { fprintf(stderr, "unf: --L must be even and >= 2\n"); return 2; }
@@ -477,7 +681,7 @@ int main(int argc, char **argv)
     lat_t lt;
     lt.L = L;
     lt.V = L * L * L;
-    lt.beta = beta; lt.h = h; lt.kappa = kappa; lt.theta = theta; lt.seed = seed;
+    lt.beta = beta; lt.h = h; lt.kappa = kappa; lt.theta = theta; lt.seed = seed; lt.chunked = chunked;
     lt.hr = h * cos(theta / NF);
     lt.hi = h * sin(theta / NF);
     lt.F = malloc(sizeof(double) * 2 * NC * (size_t)lt.V);
@@ -533,7 +737,10 @@ int main(int argc, char **argv)
 #ifdef _OPENMP
     nth = omp_get_max_threads();
 #endif
-    char implname[64], algname[64];
+    char implname[64], algname[64], aes[32], res[32];
+    /* JSON has no nan: a missing error (fewer than 2 blocks) prints as NaN, which Python reads */
+    if (isfinite(ae)) snprintf(aes, sizeof aes, "%.10f", ae); else snprintf(aes, sizeof aes, "NaN");
+    if (isfinite(re)) snprintf(res, sizeof res, "%.10f", re); else snprintf(res, sizeof res, "NaN");
     if (impl) snprintf(implname, sizeof implname, "%s", impl);
     else if (nth > 1) snprintf(implname, sizeof implname, "c_unf_omp%d", nth);
     else snprintf(implname, sizeof implname, "c_unf");
@@ -543,11 +750,12 @@ int main(int argc, char **argv)
            "\"lattice\": \"%dx%dx%d\", \"L\": %d, \"threads\": %d, \"sweeps\": %d, \"therm\": %d, "
            "\"hits_per_site\": %d, \"seconds\": %.6f, \"site_hits_per_second\": %.6e, \"cpu_seconds\": %.6f, "
            "\"site_hits_per_cpu_second\": %.6e, \"acceptance\": %.6f, "
-           "\"action_per_site\": %.10f, \"action_per_site_err\": %.10f, "
-           "\"retr_over_nf\": %.10f, \"retr_over_nf_err\": %.10f, "
+           "\"action_per_site\": %.10f, \"action_per_site_err\": %s, "
+           "\"retr_over_nf\": %.10f, \"retr_over_nf_err\": %s, \"layout\": \"%s\", "
            "\"beta\": %.16g, \"h\": %.16g, \"kappa\": %.16g, \"theta\": %.16g, \"seed\": %llu}\n",
            NF, algname, implname, NF, L, L, L, L, nth, sweeps, therm, hps, tw, hits / tw, tc, hits / tc,
-           acc / hits, am, ae, rm, re, beta, h, kappa, theta, (unsigned long long)seed);
+           acc / hits, am, aes, rm, res, chunked ? "chunk" : "site", beta, h, kappa, theta,
+           (unsigned long long)seed);
     free(act); free(rtr);
     free(lt.F); free(lt.nbr); free(lt.sites[0]); free(lt.sites[1]);
     return 0;
