@@ -161,3 +161,24 @@ def test_tunnelling_times_interval_and_limit(icost):
     d1 = icost.tunnelling_times(np.full(100, 0.5 + 0j), 3.0, 1)
     assert icost._tunnel_text(dict(d1, sweeps=100, cpu_seconds_per_sweep=1e-3,
                                    cpu_seconds_per_tunnelling=np.nan)) == "- | -"
+
+
+def test_unf_c_layouts_same_chain(unf4):
+    """unf.c's chunked update (the default, vectorised across sites) and its site-by-site one use the
+    same draws and arithmetic: 3 heatbath sweeps, and one sweep of 1 heatbath + 3 overrelaxation,
+    agree to rounding (the 6^3 lattice has a partial chunk).  Later the chains part, as any two
+    roundings of a chaotic chain do (the overrelaxation and the accept thresholds amplify them).
+    Well under a second."""
+    import json
+
+    _, exe = unf4
+    for algo, sweeps in (("hb", 3), ("hbor", 1)):
+        out = {}
+        for layout in ("chunk", "site"):
+            p = subprocess.run([exe, "--algo", algo, "--L", "6", "--sweeps", str(sweeps), "--therm", "0",
+                                "--layout", layout], capture_output=True, text=True, timeout=60, check=True)
+            out[layout] = json.loads(p.stdout)
+        assert out["chunk"]["layout"] == "chunk" and out["site"]["layout"] == "site"
+        assert out["chunk"]["acceptance"] == out["site"]["acceptance"], algo
+        assert out["chunk"]["action_per_site"] == pytest.approx(out["site"]["action_per_site"], rel=1e-9, abs=0)
+        assert out["chunk"]["retr_over_nf"] == pytest.approx(out["site"]["retr_over_nf"], rel=1e-8, abs=1e-12)
