@@ -636,7 +636,7 @@ static double cpu_s(void)
 static void usage(void)
 {
     fprintf(stderr, "unf%d [--algo hb|or|hbor] [--nor 3] [--L 16] [--sweeps N] [--therm N] [--seed S]\n"
-                    "      [--beta 0.5] [--h 0.1] [--kappa 0.2] [--theta 3.0] [--impl NAME]\n", NF);
+                    "      [--beta 0.5] [--h 0.1] [--kappa 0.2] [--theta 3.0] [--layout chunk|site] [--impl NAME]\n", NF);
     exit(2);
 }
 
