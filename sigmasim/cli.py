@@ -273,6 +273,16 @@ def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = 
                 raise RunFileError(f"{p} is a folder without {cand.name}")
             p = cand
         resolved.append(p)
+    from sigmasim.storage import MUCA_FORMAT, hdf5_root_attrs
+
+    for p in resolved:
+        try:
+            fmt = hdf5_root_attrs(p, ("format",)).get("format") if p.is_file() else None
+        except OSError:
+            fmt = None
+        if fmt == MUCA_FORMAT:
+            raise RunFileError(f"{p} is a multicanonical file, not a run: 'sigmasim info {p}' prints its "
+                               "reweighted averages and barrier")
     from sigmasim.progress import Steps
 
     data = [(p, open_run(p)) for p in resolved]

@@ -328,7 +328,19 @@ def test_command_writes_a_readable_file_and_refuses_foreign_ones(tmp_path, capsy
     assert main(["info", str(out)]) == 0
     text = capsys.readouterr().out
     assert "sigmasim multicanonical file, variable im_omega_h" in text and "abs_x" in text
-    assert "[multicanonical]" in text
+    assert "[multicanonical]" in text and "research toy" in text
+    # the canonical averages and the barrier with their errors, as the command computed them
+    import json
+
+    bar = json.loads(attrs["barrier"])
+    assert f"barrier Delta F = {bar['values']['barrier']:.4g} +- {bar['errors']['barrier']:.2g}" in text
+    avg = json.loads(attrs["averages"])["abs_x"]
+    assert f"abs_x: {avg[0]:.6g} +- {avg[1]:.2g}" in text and "block bootstrap" in text
+    assert data["profile/interval"].shape == (18, 2) and data["profile/edges"].shape == (19,)
+    # `sigmasim analyze` points to `info` in one line
+    assert main(["analyze", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert "is a multicanonical file" in err and "sigmasim info" in err and err.count("\n") == 1
     # same config + seed = same numbers
     out2 = tmp_path / "m2.h5"
     assert main(["multicanonical", str(cfg), "--out", str(out2), "--quiet"]) == 0
