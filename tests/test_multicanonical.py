@@ -500,8 +500,17 @@ def test_a_signal_checkpoints_and_a_rerun_continues_bit_identically(muca_ref, tm
     err = capsys.readouterr().err
     assert f"stopped at sweep {stop_at};" in err and "continue with: sigmasim multicanonical" in err
     assert not out.exists() and mc.checkpoint_path(out).exists()
-    assert main(["multicanonical", str(cfg), "--out", str(out), "--quiet"]) == 0
+    done = [0]
+
+    def counted(self):
+        done[0] += 1
+        real(self)
+
+    with monkeypatch.context() as m:
+        m.setattr(mc.BiasedChain, "_sweep", counted)
+        assert main(["multicanonical", str(cfg), "--out", str(out), "--quiet"]) == 0
     assert "continuing from the checkpoint" in capsys.readouterr().out
+    assert done[0] == 20 + 300 + 200 - stop_at  # continued, not started again
     assert not mc.checkpoint_path(out).exists()
     _same_datasets(_datasets(out), want)
 

@@ -384,7 +384,8 @@ MUCA_SCHEMA = {
     "wl_chunks": ("int:1:1000000", 1, "at most this many chunks of wl_sweeps per iteration"),
     "overrelax": ("int:0:100", 1, "overrelaxation passes per sweep (after the Metropolis pass)"),
     "regions": ("regions", None, "optional [left, right]: a round trip goes x <= left -> x >= right -> "
-                "x <= left (default: the outer quarters of the grid)"),
+                "x <= left (default: the outer quarters of the grid); the barrier's saddle is sought between "
+                "the minima on either side of their midpoint"),
 }
 
 
