@@ -312,8 +312,8 @@ def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = 
 
 
 def multicanonical_command(config_path: str, out: str | None = None, quiet: bool = False,
-                           overwrite: bool = False) -> int:
-    """``sigmasim multicanonical CONFIG [--out FILE.h5] [--overwrite] [--quiet]``.
+                           overwrite: bool = False, plot: bool = False) -> int:
+    """``sigmasim multicanonical CONFIG [--out FILE.h5] [--overwrite] [--plot] [--quiet]``.
 
     Runs the protocol, prints the summary and writes ``<run.output>/<name>/<name>-multicanonical.h5``
     (or ``--out``): the frozen weight and its edges, the Wang-Landau histograms, the production
@@ -321,7 +321,7 @@ def multicanonical_command(config_path: str, out: str | None = None, quiet: bool
     barrier, round trips and timings as attributes.  The run checkpoints to ``<file>.checkpoint``
     and a rerun of the same command continues it (Ctrl-C/SIGTERM: checkpoint, exit 130).  A file
     there that this command did not write is never replaced, one of another config only with
-    ``--overwrite``.
+    ``--overwrite``.  ``--plot`` also draws -ln P(x) with its error band into FILE.png.
     """
     from sigmasim.chain import Interrupted
     from sigmasim.protocols import multicanonical as mc
@@ -344,6 +344,8 @@ def multicanonical_command(config_path: str, out: str | None = None, quiet: bool
     if res is not None:
         print(res.summary())
         print(f"wrote {path}")
+        if plot:
+            print(f"wrote {mc.plot_profile(res, path.with_suffix('.png'))}")
     return 0
 
 
@@ -714,7 +716,8 @@ def cmd_lifetimes(args) -> int:
 
 def cmd_multicanonical(args) -> int:
 
-    return multicanonical_command(args.config, out=args.out, quiet=args.quiet, overwrite=args.overwrite)
+    return multicanonical_command(args.config, out=args.out, quiet=args.quiet, overwrite=args.overwrite,
+                                  plot=args.plot)
 
 
 def cmd_umbrella(args) -> int:
@@ -996,6 +999,7 @@ def build_parser() -> argparse.ArgumentParser:
                                                 "a rerun continues its checkpoint FILE.checkpoint")
     mu.add_argument("--overwrite", action="store_true", help="start again, replacing this command's file of another "
                                                             "config or an earlier finished run")
+    mu.add_argument("--plot", action="store_true", help="also draw -ln P(x) with its error band (FILE.png)")
     mu.add_argument("--quiet", action="store_true", help="no stage lines")
     mu.protocol_table = "multicanonical"
     mu.set_defaults(func=cmd_multicanonical)

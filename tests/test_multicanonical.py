@@ -341,10 +341,12 @@ def test_command_writes_a_readable_file_and_refuses_foreign_ones(tmp_path, capsy
     assert main(["analyze", str(out)]) == 2
     err = capsys.readouterr().err
     assert "is a multicanonical file" in err and "sigmasim info" in err and err.count("\n") == 1
-    # same config + seed = same numbers
+    # same config + seed = same numbers; --plot draws the same profile
     out2 = tmp_path / "m2.h5"
-    assert main(["multicanonical", str(cfg), "--out", str(out2), "--quiet"]) == 0
+    assert main(["multicanonical", str(cfg), "--out", str(out2), "--quiet", "--plot"]) == 0
     assert np.array_equal(read_multicanonical(out2)[0]["production/x"], data["production/x"])
+    assert np.array_equal(read_multicanonical(out2)[0]["profile/error"], data["profile/error"], equal_nan=True)
+    assert (tmp_path / "m2.png").stat().st_size > 1000 and "m2.png" in capsys.readouterr().out
     # a file the command did not write is never replaced
     foreign = tmp_path / "foreign.h5"
     foreign.write_bytes(b"not hdf5")

@@ -814,7 +814,7 @@ def execute(config: RunConfig, params: dict, path, overwrite: bool = False, prog
                 stored = None
             if stored != run_identity(config, params):
                 raise RunFileError(f"refusing to overwrite {path}: it was written by another config or "
-                                   "[multicanonical] table (use --overwrite to replace it)")
+                                   "[multicanonical] table, or by an earlier sigmasim (use --overwrite to replace it)")
             if not ckpt.exists():
                 if note is not None:
                     note(f"{path} already holds the finished run of this config: nothing to run "
@@ -847,6 +847,16 @@ def load_multicanonical(config_path) -> tuple[RunConfig, dict]:
     config = config_from_dict(rest)
     check_config(config, params)
     return config, params
+
+
+def plot_profile(res: MucaResult, path) -> Path:
+    """The figure of the run's -ln P(x) with its bootstrap band (analysis.profile.plot_profiles)."""
+    from sigmasim.analysis.profile import plot_profiles
+
+    c = res.config
+    label = f"L = {list(c.shape)}, beta {c.beta:g}, theta {c.theta:.4g}"
+    return plot_profiles({label: res.profile}, path, title=f"multicanonical {c.name}: -ln P({res.params['variable']})",
+                         xlabel=res.params["variable"])
 
 
 def result_blob(res: MucaResult) -> tuple[dict, dict]:
