@@ -443,9 +443,9 @@ def test_biased_chain_stops_on_a_non_finite_field():
 
 def _resumable(tmp_path, name="m.toml", **muca):
     """20 thermalisation sweeps, Wang-Landau 2 iterations of up to 3 chunks of 50 sweeps (the
-    first repeats: 150 + 150 sweeps), 200 production sweeps; a checkpoint every 7 sweeps."""
+    first repeats: 150 + 150 sweeps), 200 production sweeps; a checkpoint every 25 sweeps."""
     raw = _small(tmp_path, wl_flatness=0.2, wl_chunks=3, **muca)
-    raw["run"] = {**raw["run"], "checkpoint_every": 7}
+    raw["run"] = {**raw["run"], "checkpoint_every": 25}
     return _write(tmp_path, raw, name)
 
 
@@ -519,7 +519,7 @@ def test_a_signal_checkpoints_and_a_rerun_continues_bit_identically(muca_ref, tm
 
 def test_a_crash_continues_from_the_last_periodic_checkpoint(muca_ref, tmp_path, monkeypatch):
     """A crash (an exception out of the sweep, as a kill leaves the files) in the production: the
-    last periodic checkpoint (every 7 sweeps) is continued, same datasets bit for bit."""
+    last periodic checkpoint (every 25 sweeps) is continued, same datasets bit for bit."""
     from sigmasim.cli import main
     from sigmasim.protocols import multicanonical as mc
 
@@ -539,7 +539,7 @@ def test_a_crash_continues_from_the_last_periodic_checkpoint(muca_ref, tmp_path,
     from sigmasim.storage import read_tree
 
     ck = read_tree(mc.checkpoint_path(out), states=("state",))
-    assert ck["@attrs"]["stage"] == "production" and ck["state"]["@state"].sweep == 329
+    assert ck["@attrs"]["stage"] == "production" and ck["state"]["@state"].sweep == 325
     assert main(["multicanonical", str(cfg), "--out", str(out), "--quiet"]) == 0
     _same_datasets(_datasets(out), want)
 
