@@ -10,7 +10,8 @@ Protocol (``sigmasim multicanonical CONFIG``, table ``[multicanonical]``):
 1. thermalise with W = 0 (Metropolis step tuned as in an ordinary run);
 2. build W by Wang-Landau iterations (Wang & Landau, PRL 86 (2001) 2050):
    after every sweep ``W[bin(x)] += f``, f halved after each iteration
-   (a fixed schedule, no flatness criterion: the production run is exact
+   (an iteration repeats its sweeps until the histogram is flat enough,
+   ``wl_flatness``, at most ``wl_chunks`` times: the production run is exact
    whatever W is; a flatter W only makes it faster);
 3. freeze W and run the production chain, an exact Markov chain of
    exp(-S - W(x));
