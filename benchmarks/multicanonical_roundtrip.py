@@ -30,7 +30,8 @@ import numpy as np
 
 from sigmasim.chain import Simulation
 from sigmasim.config import config_from_dict
-from sigmasim.protocols.multicanonical import BiasedChain, Weight, round_trips, run_biased, wang_landau
+from sigmasim.analysis.profile import round_trips
+from sigmasim.protocols.multicanonical import BiasedChain, Weight, run_biased, wang_landau
 
 RATES = {4: 0.038, 6: 0.005, 8: 0.0004}  # tunnelling events per sweep of the plain chain (quoted)
 
@@ -94,7 +95,7 @@ def main(argv=None):
                          args.wl_chunks)
         wl_seconds = time.process_time() - t
         run = run_biased(cfg, chain.frozen_weight(), args.production, variable=args.variable, state=chain.state)
-        n, _ = round_trips(run.x, -args.cut, args.cut)
+        n = round_trips(run.x, -args.cut, args.cut).round_trips
         muca_sweep = run.seconds / args.production
         muca_rt = run.seconds / n if n else float("inf")
         tau = args.production / n if n else float("inf")

@@ -273,6 +273,16 @@ def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = 
                 raise RunFileError(f"{p} is a folder without {cand.name}")
             p = cand
         resolved.append(p)
+    from sigmasim.storage import MUCA_FORMAT, hdf5_root_attrs
+
+    for p in resolved:
+        try:
+            fmt = hdf5_root_attrs(p, ("format",)).get("format") if p.is_file() else None
+        except OSError:
+            fmt = None
+        if fmt == MUCA_FORMAT:
+            raise RunFileError(f"{p} is a multicanonical file, not a run: 'sigmasim info {p}' prints its "
+                               "reweighted averages and barrier")
     from sigmasim.progress import Steps
 
     data = [(p, open_run(p)) for p in resolved]
@@ -301,37 +311,41 @@ def analyze_command(paths: list[str], plot: bool = False, out_dir: str | None = 
     return 0
 
 
-def multicanonical_command(config_path: str, out: str | None = None, quiet: bool = False) -> int:
-    """``sigmasim multicanonical CONFIG [--out FILE.h5] [--quiet]``.
+def multicanonical_command(config_path: str, out: str | None = None, quiet: bool = False,
+                           overwrite: bool = False, plot: bool = False) -> int:
+    """``sigmasim multicanonical CONFIG [--out FILE.h5] [--overwrite] [--plot] [--quiet]``.
 
     Runs the protocol, prints the summary and writes ``<run.output>/<name>/<name>-multicanonical.h5``
     (or ``--out``): the frozen weight and its edges, the Wang-Landau histograms, the production
     series (x, W(x) and every run series), the profile -ln P(x) with errors, and the averages,
-    round trips and timings as attributes.  A file there that this command did not write is never
-    replaced.
+    barrier, round trips and timings as attributes.  The run checkpoints to ``<file>.checkpoint``
+    and a rerun of the same command continues it (Ctrl-C/SIGTERM: checkpoint, exit 130).  A file
+    there that this command did not write is never replaced, one of another config only with
+    ``--overwrite``.  ``--plot`` also draws -ln P(x) with its error band into FILE.png.
     """
-    from sigmasim.errors import ConfigError
-    from sigmasim.protocols.multicanonical import load_multicanonical, result_blob, run_multicanonical
+    from sigmasim.chain import Interrupted
+    from sigmasim.protocols import multicanonical as mc
 
-    from pathlib import Path
-
-    from sigmasim import storage
-
-    config, params = load_multicanonical(config_path)
-    if out is not None and not str(out).endswith(".h5"):
-        raise ConfigError(f"--out must end in .h5, got {out}")
-    path = Path(out) if out is not None else config.run_dir / f"{config.name}-multicanonical.h5"
-    storage.check_multicanonical_target(path)
+    config, params = mc.load_multicanonical(config_path)
+    path = Path(out) if out is not None else mc.default_path(config)
 
     def stage(name):
         if not quiet:
             print(f"[{name}]", flush=True)
 
-    res = run_multicanonical(config, params, progress=stage)
-    print(res.summary())
-    data, attrs = result_blob(res)
-    storage.write_multicanonical(path, data, attrs)
-    print(f"wrote {path}")
+    try:
+        res = mc.execute(config, params, path, overwrite=overwrite, progress=stage,
+                         note=lambda text: print(text, flush=True))
+    except Interrupted as exc:
+        print(f"sigmasim: stopped at sweep {exc.args[0]}; checkpoint written to {mc.checkpoint_path(path)}; "
+              f"continue with: sigmasim multicanonical {config_path}" + (f" --out {out}" if out else ""),
+              file=sys.stderr)
+        return 130
+    if res is not None:
+        print(res.summary())
+        print(f"wrote {path}")
+        if plot:
+            print(f"wrote {mc.plot_profile(res, path.with_suffix('.png'))}")
     return 0
 
 
@@ -702,7 +716,8 @@ def cmd_lifetimes(args) -> int:
 
 def cmd_multicanonical(args) -> int:
 
-    return multicanonical_command(args.config, out=args.out, quiet=args.quiet)
+    return multicanonical_command(args.config, out=args.out, quiet=args.quiet, overwrite=args.overwrite,
+                                  plot=args.plot)
 
 
 def cmd_umbrella(args) -> int:
@@ -980,7 +995,11 @@ def build_parser() -> argparse.ArgumentParser:
     mu = sub.add_parser("multicanonical", help="multicanonical sampling across the barrier in Im omega_h "
                                                "(weight building, production, -ln P(x), round trips)")
     mu.add_argument("config", help="run TOML with a [multicanonical] table")
-    mu.add_argument("--out", default=None, help="HDF5 output (default <output>/<name>/<name>-multicanonical.h5)")
+    mu.add_argument("--out", default=None, help="HDF5 output (default <output>/<name>/<name>-multicanonical.h5); "
+                                                "a rerun continues its checkpoint FILE.checkpoint")
+    mu.add_argument("--overwrite", action="store_true", help="start again, replacing this command's file of another "
+                                                            "config or an earlier finished run")
+    mu.add_argument("--plot", action="store_true", help="also draw -ln P(x) with its error band (FILE.png)")
     mu.add_argument("--quiet", action="store_true", help="no stage lines")
     mu.protocol_table = "multicanonical"
     mu.set_defaults(func=cmd_multicanonical)

@@ -109,8 +109,26 @@ def _multicanonical_file(path: Path) -> str:
     lines = [f"{path}: sigmasim multicanonical file, variable {protocol.get('variable', '?')}, "
              f"{len(data.get('weight/values', ()))} bins, {n} production measurements, "
              f"{attrs.get('round_trips', '?')} round trips"]
+    lines.append("canonical averages (reweighted with exp(+W), Gamma-method errors):")
     for k, v in averages.items():
-        lines.append(f"  {k}: {v[0]:.6g} +- {v[1]:.2g} (reweighted)")
+        lines.append(f"  {k}: {v[0]:.6g} +- {v[1]:.2g}")
+    barrier = json.loads(attrs.get("barrier", "null") or "null")
+    if barrier:
+        v, e = barrier["values"], barrier["errors"]
+        flags = "" if barrier.get("refined", True) else " [an extremum fell outside its fitting window]"
+        if barrier.get("failed_replicas"):
+            flags += (f" [{barrier['failed_replicas']} bootstrap replicas left a side without a visited bin: "
+                      "errors NaN]")
+        lines.append(f"barrier Delta F = {v['barrier']:.4g} +- {e['barrier']:.2g} (saddle at x = "
+                     f"{v['x_saddle']:.4g} minus the lower minimum), {v['barrier_mean']:.4g} +- "
+                     f"{e['barrier_mean']:.2g} (minus the mean of both minima); F(right) - F(left) = "
+                     f"{v['asymmetry']:.4g} +- {e['asymmetry']:.2g}{flags}")
+        lines.append(f"  -ln P(x): {attrs.get('profile_method', '?')}")
+    elif "barrier" in attrs:
+        lines.append("barrier: none (" + "; ".join(json.loads(attrs.get("notes", "[]"))) + ")")
+    else:
+        lines.append("barrier: not in this file (written by an earlier sigmasim)")
+    lines.append("(a research toy, not a physical prediction)")
     lines += ["protocol:", _indent(config_block({"multicanonical": protocol})),
               "config:", _indent(config_block(json.loads(attrs.get("config", "{}"))))]
     return "\n".join(lines)

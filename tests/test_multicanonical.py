@@ -13,7 +13,8 @@ from sigmasim.chain import Simulation
 from sigmasim.config import config_from_dict
 from sigmasim.kernels.bias import biased_sweeps
 from sigmasim.kernels.general import metropolis, overrelax
-from sigmasim.protocols.multicanonical import Weight, profile, reweighted_mean, round_trips, run_biased
+from sigmasim.analysis import profile as pr
+from sigmasim.protocols.multicanonical import Weight, reweighted_mean, run_biased
 from sigmasim.rng import mix64_int, step_key
 from sigmasim.updates import proposal_table
 
@@ -75,6 +76,11 @@ def _one_site_chain(nf, h, kappa, theta_m, theta_a, weight, variable, sweeps, se
     return xs, counts
 
 
+def _exact_f(p_bins, edges):
+    """-ln of the exact density normalised on the grid (the convention of analysis.profile)."""
+    return -np.log(p_bins / p_bins.sum() / np.diff(edges))
+
+
 ONE_SITE = [  # nf, h, kappa, theta_m, theta_a, variable, sweeps
     (1, 0.5, 2.0, 0.4, 0.3, "im_omega_h", 60000),
     (3, 0.5, 2.0, np.pi / 3, 0.0, "im_omega_h", 60000),  # theta = pi: the U(3) case of the study
@@ -94,14 +100,12 @@ def test_one_site_biased_chain_reweights_to_the_exact_distribution(nf, h, kappa,
     weight = Weight(lo, hi, 2.0 * np.log(p_exact / p_exact.max()), wall=5.0)
     xs, counts = _one_site_chain(nf, h, kappa, theta_m, theta_a, weight, variable, sweeps)
     assert counts[0] > 0.2 * counts[1]
-    prof = profile(xs, weight(xs), edges)
-    p_mc = prof["p"] * np.diff(edges)
-    err = prof["p_error"] * np.diff(edges)
-    pulls = (p_mc - p_exact) / err
+    prof = pr.multicanonical_profile(xs, weight, edges, n_boot=200, seed=1)
+    pulls = (prof.F - _exact_f(p_exact, edges)) / prof.error
     assert np.all(np.isfinite(pulls)), pulls
     assert np.max(np.abs(pulls)) < 4.0, pulls
     assert p_exact.max() / p_exact.min() > 2.0
-    sampled = prof["counts"] / prof["counts"].sum()
+    sampled = prof.counts / prof.counts.sum()
     assert np.max(np.abs(sampled / (p_exact / p_exact.sum()) - 1.0)) > 0.4
 
 
@@ -132,10 +136,10 @@ def test_one_site_phase_variable_reweights_to_the_exact_distribution():
     assert abs(p_exact.sum() - 1.0) < 1e-10
     weight = Weight(-np.pi, np.pi, 2.0 * np.log(p_exact / p_exact.max()), wall=5.0)
     xs, _ = _one_site_chain(1, h, kappa, theta_m, theta_a, weight, "arg_omega_h", 40000)
-    prof = profile(xs, weight(xs), edges)
-    pulls = (prof["p"] * np.diff(edges) - p_exact) / (prof["p_error"] * np.diff(edges))
+    prof = pr.multicanonical_profile(xs, weight, edges, n_boot=200, seed=1)
+    pulls = (prof.F - _exact_f(p_exact, edges)) / prof.error
     assert np.all(np.isfinite(pulls)) and np.max(np.abs(pulls)) < 4.0, pulls
-    sampled = prof["counts"] / prof["counts"].sum()
+    sampled = prof.counts / prof.counts.sum()
     assert np.max(np.abs(sampled / p_exact - 1.0)) > 0.4
 
 
@@ -146,8 +150,8 @@ def test_one_site_sign_of_the_weight_matters():
     p_exact = exact.one_site_variable_distribution(1, 0.5, 2.0, 0.4, 0.3, edges, "im_omega_h", n_gauss=24)
     weight = Weight(lo, hi, np.log(p_exact / p_exact.max()), wall=5.0)
     xs, _ = _one_site_chain(1, 0.5, 2.0, 0.4, 0.3, weight, "im_omega_h", 20000)
-    prof = profile(xs, -weight(xs), edges)
-    pulls = (prof["p"] * np.diff(edges) - p_exact) / (prof["p_error"] * np.diff(edges))
+    prof = pr.multicanonical_profile(xs, lambda x: -weight(x), edges, n_boot=200, seed=1)
+    pulls = (prof.F - _exact_f(p_exact, edges)) / prof.error
     assert np.nanmax(np.abs(pulls)) > 10.0
 
 
@@ -208,40 +212,16 @@ def test_reweighted_mean_bias_and_coverage():
     assert np.isfinite(v) and e > 0
 
 
-def test_profile_bias_and_coverage():
-    """Synthetic biased samples with a known canonical density: x ~ N(0, 1) canonical, sampled
-    with W(x) = x^2 / 4 (density N(0, 2/3)); each bin's reweighted probability covers the exact
-    one within 1 sigma in about 68 % of 100 replicas (all bins pooled), with no bias beyond 4
-    sigma of the replica scatter; an empty bin comes out NaN, a bin with everything in it 1."""
-    from scipy import stats
-
-    edges = np.linspace(-2.0, 2.0, 9)
-    exact_p = np.diff(stats.norm.cdf(edges))
-    rng = np.random.default_rng(11)
-    covered, total, est = 0, 0, []
-    for _ in range(100):
-        x = rng.normal(0.0, np.sqrt(2.0 / 3.0), size=2000)
-        prof = profile(x, x ** 2 / 4.0, edges)
-        p = prof["p"] * np.diff(edges)
-        e = prof["p_error"] * np.diff(edges)
-        covered += int(np.sum(np.abs(p - exact_p) < e))
-        total += p.size
-        est.append(p)
-    est = np.array(est)
-    assert 0.60 < covered / total < 0.76
-    assert np.all(np.abs(est.mean(axis=0) - exact_p) < 4 * est.std(axis=0) / np.sqrt(len(est)))
-    few = profile(np.array([0.1, 0.2, 0.15, 0.12, 0.3, 0.25, 0.11, 0.13, 0.14, 0.2]), np.zeros(10),
-                  [-1.0, 0.0, 1.0])
-    assert np.isnan(few["p"][0]) and few["p"][1] == 1.0 and few["minus_ln_p"][1] == 0.0
-
-
-def test_round_trips_counts_full_cycles_only():
+def test_round_trips_of_the_protocol_count_full_cycles():
+    """The protocol counts round trips with analysis.profile.round_trips: left (1) -> right (3) ->
+    left (5) is one, -> right (7) -> left (9) two, the entry at 10 (x = 0.5 >= right) a fifth
+    half trip only; a single passage is none."""
     x = np.array([0, -1, 0, 1, 0, -1, -1, 1, 1, -1, 0.5])
-    n, at = round_trips(x, -0.5, 0.5)
-    # left (1) -> right (3) -> left (5): 1; -> right (7) -> left (9): 2
-    assert n == 2 and list(at) == [5, 9]
-    assert round_trips(np.zeros(5), -0.5, 0.5)[0] == 0
-    assert round_trips(np.array([1.0, -1.0]), -0.5, 0.5)[0] == 0
+    rt = pr.round_trips(x, -0.5, 0.5)
+    assert rt.round_trips == 2 and rt.half_trips == 5
+    np.testing.assert_array_equal(rt.passages, [2.0, 2.0, 2.0, 1.0])
+    assert pr.round_trips(np.zeros(5), -0.5, 0.5).round_trips == 0
+    assert pr.round_trips(np.array([1.0, -1.0]), -0.5, 0.5).round_trips == 0
 
 
 def test_weight_function_matches_the_kernel():
@@ -348,11 +328,25 @@ def test_command_writes_a_readable_file_and_refuses_foreign_ones(tmp_path, capsy
     assert main(["info", str(out)]) == 0
     text = capsys.readouterr().out
     assert "sigmasim multicanonical file, variable im_omega_h" in text and "abs_x" in text
-    assert "[multicanonical]" in text
-    # same config + seed = same numbers
+    assert "[multicanonical]" in text and "research toy" in text
+    # the canonical averages and the barrier with their errors, as the command computed them
+    import json
+
+    bar = json.loads(attrs["barrier"])
+    assert f"barrier Delta F = {bar['values']['barrier']:.4g} +- {bar['errors']['barrier']:.2g}" in text
+    avg = json.loads(attrs["averages"])["abs_x"]
+    assert f"abs_x: {avg[0]:.6g} +- {avg[1]:.2g}" in text and "block bootstrap" in text
+    assert data["profile/interval"].shape == (18, 2) and data["profile/edges"].shape == (19,)
+    # `sigmasim analyze` points to `info` in one line
+    assert main(["analyze", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert "is a multicanonical file" in err and "sigmasim info" in err and err.count("\n") == 1
+    # same config + seed = same numbers; --plot draws the same profile
     out2 = tmp_path / "m2.h5"
-    assert main(["multicanonical", str(cfg), "--out", str(out2), "--quiet"]) == 0
+    assert main(["multicanonical", str(cfg), "--out", str(out2), "--quiet", "--plot"]) == 0
     assert np.array_equal(read_multicanonical(out2)[0]["production/x"], data["production/x"])
+    assert np.array_equal(read_multicanonical(out2)[0]["profile/error"], data["profile/error"], equal_nan=True)
+    assert (tmp_path / "m2.png").stat().st_size > 1000 and "m2.png" in capsys.readouterr().out
     # a file the command did not write is never replaced
     foreign = tmp_path / "foreign.h5"
     foreign.write_bytes(b"not hdf5")
@@ -441,3 +435,216 @@ def test_biased_chain_stops_on_a_non_finite_field():
     state.re[0, 5] = np.nan
     with pytest.raises(NumericalError, match="non-finite field after sweep"):
         run_biased(cfg, Weight.flat(-1.0, 1.0, 8), 4, state=state)
+
+
+# ---------------------------------------------------------------------------
+# checkpoint and resume of the whole command
+# ---------------------------------------------------------------------------
+
+def _resumable(tmp_path, name="m.toml", **muca):
+    """20 thermalisation sweeps, Wang-Landau 2 iterations of up to 3 chunks of 50 sweeps (the
+    first repeats: 150 + 150 sweeps), 200 production sweeps; a checkpoint every 25 sweeps."""
+    raw = _small(tmp_path, wl_flatness=0.2, wl_chunks=3, **muca)
+    raw["run"] = {**raw["run"], "checkpoint_every": 25}
+    return _write(tmp_path, raw, name)
+
+
+def _datasets(path):
+    from sigmasim.storage import read_multicanonical
+
+    return read_multicanonical(path)[0]
+
+
+def _same_datasets(got, want):
+    assert got.keys() == want.keys()
+    for k in want:
+        np.testing.assert_array_equal(got[k], want[k], err_msg=k)  # NaN (unvisited bin) equals NaN
+
+
+@pytest.fixture(scope="module")
+def muca_ref(tmp_path_factory):
+    from sigmasim.cli import main
+
+    tmp = tmp_path_factory.mktemp("muca-ref")
+    cfg = _resumable(tmp)
+    out = tmp / "ref.h5"
+    assert main(["multicanonical", str(cfg), "--out", str(out), "--quiet"]) == 0
+    want = _datasets(out)
+    assert [int(s) for s in want["wang_landau/sweeps"]] == [150, 150]  # the chunks are exercised
+    return cfg, want
+
+
+@pytest.mark.parametrize("stop_at", [9, 70, 95, 250, 400])
+def test_a_signal_checkpoints_and_a_rerun_continues_bit_identically(muca_ref, tmp_path, monkeypatch, capsys,
+                                                                   stop_at):
+    """SIGINT at sweep 9 (thermalisation), 70 (end of a Wang-Landau chunk), 95 (inside a chunk of
+    the first iteration), 250 (second iteration), 400 (production): exit 130 with a checkpoint
+    and no output; the same command again continues and writes every dataset of an
+    uninterrupted run bit for bit, then removes the checkpoint."""
+    import os
+    import signal
+
+    from sigmasim.cli import main
+    from sigmasim.protocols import multicanonical as mc
+
+    cfg, want = muca_ref
+    out = tmp_path / "cut.h5"
+    real = mc.BiasedChain._sweep
+
+    def sweep(self):
+        real(self)
+        if self.state.sweep == stop_at:
+            os.kill(os.getpid(), signal.SIGINT)
+
+    with monkeypatch.context() as m:
+        m.setattr(mc.BiasedChain, "_sweep", sweep)
+        assert main(["multicanonical", str(cfg), "--out", str(out), "--quiet"]) == 130
+    err = capsys.readouterr().err
+    assert f"stopped at sweep {stop_at};" in err and "continue with: sigmasim multicanonical" in err
+    assert not out.exists() and mc.checkpoint_path(out).exists()
+    done = [0]
+
+    def counted(self):
+        done[0] += 1
+        real(self)
+
+    with monkeypatch.context() as m:
+        m.setattr(mc.BiasedChain, "_sweep", counted)
+        assert main(["multicanonical", str(cfg), "--out", str(out), "--quiet"]) == 0
+    assert "continuing from the checkpoint" in capsys.readouterr().out
+    assert done[0] == 20 + 300 + 200 - stop_at  # continued, not started again
+    assert not mc.checkpoint_path(out).exists()
+    _same_datasets(_datasets(out), want)
+
+
+def test_a_crash_continues_from_the_last_periodic_checkpoint(muca_ref, tmp_path, monkeypatch):
+    """A crash (an exception out of the sweep, as a kill leaves the files) in the production: the
+    last periodic checkpoint (every 25 sweeps) is continued, same datasets bit for bit."""
+    from sigmasim.cli import main
+    from sigmasim.protocols import multicanonical as mc
+
+    cfg, want = muca_ref
+    out = tmp_path / "crash.h5"
+    real = mc.BiasedChain._sweep
+
+    def sweep(self):
+        real(self)
+        if self.state.sweep == 333:
+            raise RuntimeError("crash")
+
+    with monkeypatch.context() as m:
+        m.setattr(mc.BiasedChain, "_sweep", sweep)
+        with pytest.raises(RuntimeError):
+            main(["multicanonical", str(cfg), "--out", str(out), "--quiet"])
+    from sigmasim.storage import read_tree
+
+    ck = read_tree(mc.checkpoint_path(out), states=("state",))
+    assert ck["@attrs"]["stage"] == "production" and ck["state"]["@state"].sweep == 325
+    assert main(["multicanonical", str(cfg), "--out", str(out), "--quiet"]) == 0
+    _same_datasets(_datasets(out), want)
+
+
+def test_reruns_refuse_other_configs_and_foreign_or_damaged_files(muca_ref, tmp_path, monkeypatch, capsys):
+    """Same folder, another config: one line, exit 2 (checkpoint or output); --overwrite starts
+    again.  A finished run is not run again.  A foreign or damaged checkpoint or output: one line,
+    exit 2, the file untouched.  Another process writing the file: one line, exit 2."""
+    import os
+    import signal
+
+    from sigmasim.cli import main
+    from sigmasim.protocols import multicanonical as mc
+    from sigmasim.storage import lock_path, release_lock, take_lock
+    from runfiles import assert_one_line_error
+
+    cfg, want = muca_ref
+    other = _resumable(tmp_path, "other.toml", wl_sweeps=40)
+    out = tmp_path / "m.h5"
+    ck = mc.checkpoint_path(out)
+    real = mc.BiasedChain._sweep
+
+    def sweep(self):
+        real(self)
+        if self.state.sweep == 30:
+            os.kill(os.getpid(), signal.SIGINT)
+
+    with monkeypatch.context() as m:
+        m.setattr(mc.BiasedChain, "_sweep", sweep)
+        assert main(["multicanonical", str(other), "--out", str(out), "--quiet"]) == 130
+    capsys.readouterr()
+
+    def refused(config, text):
+        assert main(["multicanonical", str(config), "--out", str(out), "--quiet"]) == 2
+        err = capsys.readouterr().err
+        assert_one_line_error(err)
+        assert text in err, err
+
+    refused(cfg, "belongs to another config or [multicanonical] table")
+    saved = ck.read_bytes()
+    ck.write_bytes(b"not a checkpoint")
+    refused(other, "is not a multicanonical checkpoint of sigmasim")
+    ck.write_bytes(saved)
+    import h5py
+
+    with h5py.File(ck, "a") as f:
+        f["state/re"][0, 0] = 7.0  # not unitary any more: refused before a kernel sees it
+    refused(other, "damaged checkpoint")
+    with h5py.File(ck, "a") as f:
+        f["chain/values"][0] = np.nan
+    refused(other, "is a damaged multicanonical checkpoint (weight table)")
+    # --overwrite starts again; then the output exists and is finished
+    assert main(["multicanonical", str(cfg), "--out", str(out), "--quiet", "--overwrite"]) == 0
+    _same_datasets(_datasets(out), want)
+    capsys.readouterr()
+    before = out.read_bytes()
+    assert main(["multicanonical", str(cfg), "--out", str(out), "--quiet"]) == 0
+    assert "already holds the finished run of this config" in capsys.readouterr().out
+    refused(other, "written by another config or [multicanonical] table")
+    assert out.read_bytes() == before
+    lock = take_lock(lock_path(out), "sigmasim process", out)
+    try:
+        refused(cfg, "is writing")
+    finally:
+        release_lock(lock)
+    out.write_bytes(before[: len(before) // 2])  # truncated
+    refused(cfg, "refusing to overwrite")
+    assert len(out.read_bytes()) == len(before) // 2
+
+
+def test_a_command_killed_with_sigkill_continues_bit_identically(muca_ref, tmp_path):
+    """kill -9 in the middle of the run (no handler runs): the rerun continues the last periodic
+    checkpoint and writes the datasets of the uninterrupted run."""
+    import signal
+    import subprocess
+    import sys
+    import time
+    from pathlib import Path
+
+    import h5py
+
+    from sigmasim.cli import main
+    from sigmasim.protocols import multicanonical as mc
+    from runfiles import subprocess_env
+
+    cfg, want = muca_ref
+    out = tmp_path / "k.h5"
+    ck = mc.checkpoint_path(out)
+    p = subprocess.Popen([sys.executable, "-m", "sigmasim", "multicanonical", str(cfg), "--out", str(out), "--quiet"],
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=subprocess_env(),
+                         cwd=Path(__file__).resolve().parents[1])
+    seen = 0
+    deadline = time.monotonic() + 300
+    while p.poll() is None and time.monotonic() < deadline:
+        try:
+            with h5py.File(ck, "r") as f:
+                seen = int(f["state"].attrs["sweep"])
+        except (OSError, KeyError):
+            pass
+        if seen >= 100:
+            break
+        time.sleep(0.002)
+    p.send_signal(signal.SIGKILL)
+    p.communicate(timeout=60)
+    assert seen >= 100, "the run kept no checkpoint"
+    assert not out.exists()
+    assert main(["multicanonical", str(cfg), "--out", str(out), "--quiet"]) == 0
+    _same_datasets(_datasets(out), want)

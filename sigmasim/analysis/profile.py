@@ -147,6 +147,40 @@ def block_length(x, factor: float = BLOCK_FACTOR, min_blocks: int = MIN_BLOCKS) 
         return 1, True
 
 
+def _reweighted_block_length(x, wx, edges, factor: float = BLOCK_FACTOR,
+                             min_blocks: int = MIN_BLOCKS) -> tuple[int, bool]:
+    """Block length of a reweighted chain (see :func:`multicanonical_profile`): ``(length, sparse)``.
+
+    The series analysed are ``x``, ``|x - c|`` (``c`` the grid's centre: the distance from the
+    barrier can stay correlated while x flips sign), ``e 1[x in grid]`` and ``e 1[x in bin b]`` for
+    every bin with at least ``MIN_SAMPLES`` samples (``e = exp(W - max W)``); the longest
+    ``tau_int`` sets the length, capped to leave ``min_blocks`` blocks.  Constant series are left out.
+    """
+    from sigmasim.analysis.resampling import auto_bin_size
+
+    x = np.asarray(x, dtype=float).ravel()
+    if len(x) < MIN_SAMPLES:
+        return 1, True
+    nb = len(edges) - 1
+    b = np.searchsorted(edges, x, side="right") - 1
+    b[x == edges[-1]] = nb - 1
+    inside = (b >= 0) & (b < nb)
+    e = np.exp(np.asarray(wx, dtype=float) - np.max(wx))
+    counts = np.bincount(b[inside], minlength=nb)
+    centre = 0.5 * (edges[0] + edges[-1])
+    cols = [x, np.abs(x - centre), e * inside] + [e * (b == j) for j in np.nonzero(counts >= MIN_SAMPLES)[0]]
+    data = np.column_stack(cols)
+    data = data[:, np.ptp(data, axis=0) > 0]
+    if data.shape[1] == 0:
+        return 1, True
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            return int(auto_bin_size(data, factor=factor, min_bins=min_blocks)), False
+    except ValueError:
+        return 1, True
+
+
 def _check_edges(edges) -> np.ndarray:
     e = np.asarray(edges, dtype=float).ravel()
     if len(e) < 3 or not np.all(np.isfinite(e)) or not np.all(np.diff(e) > 0):
@@ -420,19 +454,24 @@ def multicanonical_profile(x, bias: Callable, edges, *, n_boot: int = 200, seed:
     """``-ln P(x)`` of one chain sampled with a frozen weight ``W`` (reweighted with ``exp(+W)``).
 
     Each sample counts with ``exp(W(x_n))`` (exact per sample, no binning of the weight); the
-    errors are a block bootstrap over the chain (block length from the Gamma method of ``x``).
+    errors are a block bootstrap over the chain, the block length ``ceil(block_factor tau_int)``
+    with the largest Gamma-method ``tau_int`` among ``x``, its distance from the grid's centre, the
+    reweighted in-grid indicator and the reweighted indicator of every bin with at least
+    ``MIN_SAMPLES`` samples
+    (:func:`_reweighted_block_length`: ``x`` alone can decorrelate much faster than the bins'
+    contents, e.g. when overrelaxation flips its sign).
     """
     edges = _check_edges(edges)
     x = np.asarray(x, dtype=float).ravel()
     if not np.all(np.isfinite(x)):
         raise ValueError("the series has non-finite values")
-    if block is None:
-        blen, sp = block_length(x, block_factor)
-    else:
-        blen, sp = int(block), False
     wx = np.asarray(bias(x), dtype=float)
     if wx.shape != x.shape or not np.all(np.isfinite(wx)):
         raise ValueError("the weight must give a finite value for every sample")
+    if block is None:
+        blen, sp = _reweighted_block_length(x, wx, edges, block_factor)
+    else:
+        blen, sp = int(block), False
     shift = float(wx.max()) if len(wx) else 0.0
     blocks = _block_hist(x, edges, max(1, blen), np.exp(wx - shift))
     counts = _block_hist(x, edges, max(1, blen)).sum(axis=0)

@@ -10,27 +10,37 @@ Protocol (``sigmasim multicanonical CONFIG``, table ``[multicanonical]``):
 1. thermalise with W = 0 (Metropolis step tuned as in an ordinary run);
 2. build W by Wang-Landau iterations (Wang & Landau, PRL 86 (2001) 2050):
    after every sweep ``W[bin(x)] += f``, f halved after each iteration
-   (a fixed schedule, no flatness criterion: the production run is exact
+   (an iteration repeats its sweeps until the histogram is flat enough,
+   ``wl_flatness``, at most ``wl_chunks`` times: the production run is exact
    whatever W is; a flatter W only makes it faster);
 3. freeze W and run the production chain, an exact Markov chain of
    exp(-S - W(x));
 4. canonical averages by reweighting with exp(+W(x_i)) (ratio estimator,
    errors from Wolff's Gamma method on the production series, derived
-   quantity), -ln P(x) per bin the same way, and the round-trip time
-   between the two ends of the grid in the flat ensemble.
+   quantity); -ln P(x), the barrier and the round trips in the flat
+   ensemble from :mod:`sigmasim.analysis.profile`
+   (:func:`~sigmasim.analysis.profile.multicanonical_profile`: block
+   bootstrap, the estimator whose coverage test passes on a correlated
+   chain; :func:`~sigmasim.analysis.profile.barrier`,
+   :func:`~sigmasim.analysis.profile.round_trips`).
+
+The whole protocol checkpoints (:func:`run_multicanonical` with ``checkpoint``,
+:func:`execute`): a rerun continues and ends with the numbers of an
+uninterrupted run, bit for bit.
 
 The functions :func:`run_biased` (a chain with a GIVEN frozen weight, for
 example the harmonic restraint of an umbrella window, :meth:`Weight.harmonic`)
-and :func:`reweighted_mean`, :func:`profile`, :func:`round_trips` are the
-public API for other protocols.  Results are a research toy, not a physical
-prediction.
+and :func:`reweighted_mean` are the public API for other protocols.  Results
+are a research toy, not a physical prediction.
 """
 
 from __future__ import annotations
 
+import json
 import math
 import time
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
 
@@ -42,8 +52,9 @@ from sigmasim.errors import ConfigError
 from sigmasim.kernels.bias import MODES, biased_sweeps, collective, variable_sum
 from sigmasim.rng import mix64_int
 
-__all__ = ["Weight", "BiasedChain", "BiasedRun", "run_biased", "wang_landau", "reweighted_mean", "profile",
-           "round_trips", "VARIABLES", "MUCA_SCHEMA", "muca_params", "MucaResult", "run_multicanonical"]
+__all__ = ["Weight", "BiasedChain", "BiasedRun", "run_biased", "wang_landau", "reweighted_mean", "VARIABLES",
+           "MUCA_SCHEMA", "muca_params", "MucaResult", "run_multicanonical", "analyse", "execute",
+           "checkpoint_path", "default_path", "run_identity"]
 
 #: variable name -> meaning
 VARIABLES = {
@@ -182,17 +193,23 @@ class BiasedChain:
                 st.win_drift = max(st.win_drift, drift)
         self.last_x = float(self._x[0])
 
-    def steps(self, n: int, measure_due=None, wl_f: float = 0.0, hist: np.ndarray | None = None):
+    def steps(self, n: int, measure_due=None, wl_f: float = 0.0, hist: np.ndarray | None = None, *,
+              should_stop=None, checkpoint_every: int | None = None, checkpoint_seconds: float | None = None):
         """``n`` biased sweeps through :func:`sigmasim.chain.iterate` (finiteness checks, measurement
         after the sweeps ``measure_due`` names); yields iterate's steps.  ``wl_f`` > 0 adds
-        ``wl_f`` to W at x's bin after every sweep and counts x in ``hist`` (Wang-Landau)."""
+        ``wl_f`` to W at x's bin after every sweep and counts x in ``hist`` (Wang-Landau).
+        ``should_stop``, ``checkpoint_every`` and ``checkpoint_seconds`` go to iterate (default:
+        no checkpoint is ever due)."""
         from sigmasim.chain import iterate
 
         self._wl_f = float(wl_f)
         self._hist = np.zeros(self.values.size, dtype=np.int64) if hist is None else hist
         yield from iterate(self.sim, until=self.sim.state.sweep + int(n),
                            measure_due=measure_due if measure_due is not None else (lambda sweep: False),
-                           checkpoint_every=1 << 62, checkpoint_seconds=float("inf"), sweep=self._sweep)
+                           should_stop=should_stop,
+                           checkpoint_every=1 << 62 if checkpoint_every is None else int(checkpoint_every),
+                           checkpoint_seconds=float("inf") if checkpoint_seconds is None else checkpoint_seconds,
+                           sweep=self._sweep)
 
     def sweeps(self, n: int, wl_f: float = 0.0, hist: np.ndarray | None = None) -> np.ndarray:
         """``n`` sweeps (:meth:`steps`, no measurements); returns x after each, (n,)."""
@@ -238,6 +255,29 @@ class BiasedRun:
     seconds: float = 0.0
 
 
+def _production_steps(chain: BiasedChain, sweeps: int, every: int, pos: dict, **iterate_kw):
+    """The measured sweeps of a frozen-weight chain: ``pos`` holds ``start`` (the sweep before the
+    first of them), ``x`` and ``records`` (lists, appended in place), so that a checkpoint written
+    at any yielded step continues exactly.  Yields iterate's steps (``iterate_kw`` go to it)."""
+    start = int(pos["start"])
+    left = start + int(sweeps) - chain.state.sweep
+    for step in chain.steps(left, measure_due=lambda sweep: (sweep - start) % every == 0, **iterate_kw):
+        if step.record is not None:
+            pos["x"].append(chain.last_x)
+            pos["records"].append({k: step.record[k] for k in chiral.SERIES})
+        yield step
+
+
+def _biased_run(chain: BiasedChain, weight: Weight, pos: dict, seconds: float) -> BiasedRun:
+    xs = np.asarray(pos["x"], dtype=np.float64)
+    records = pos["records"]
+    series = {k: np.array([r[k] for r in records]) for k in chiral.SERIES} if records else {}
+    c = chain.counts
+    acc = {"metropolis": c[0] / c[1] if c[1] else float("nan"),
+           "overrelax": c[2] / c[3] if c[3] else float("nan")}
+    return BiasedRun(xs, weight(xs), series, weight, chain.state, acc, seconds)
+
+
 def run_biased(config: RunConfig, weight: Weight, sweeps: int, *, measure_every: int = 1, thermalize: int = 0,
                variable: str = "im_omega_h", overrelax: int = 1, state: ChainState | None = None) -> BiasedRun:
     """Run an exact Markov chain of exp(-S - W(x)) with a frozen ``weight``.
@@ -254,19 +294,38 @@ def run_biased(config: RunConfig, weight: Weight, sweeps: int, *, measure_every:
         if chain.state.sweep % config.tune_every == 0:
             chain.tune()
     chain.counts[:] = 0
-    n = int(sweeps) // int(measure_every)
-    xs = np.empty(n)
-    records = []
-    start, every = chain.state.sweep, int(measure_every)
-    for step in chain.steps(n * every, measure_due=lambda sweep: (sweep - start) % every == 0):
-        if step.record is not None:
-            xs[len(records)] = chain.last_x
-            records.append({k: step.record[k] for k in chiral.SERIES})
-    series = {k: np.array([r[k] for r in records]) for k in chiral.SERIES} if records else {}
-    c = chain.counts
-    acc = {"metropolis": c[0] / c[1] if c[1] else float("nan"),
-           "overrelax": c[2] / c[3] if c[3] else float("nan")}
-    return BiasedRun(xs, weight(xs), series, weight, chain.state, acc, time.process_time() - t0)
+    every = int(measure_every)
+    pos = {"start": chain.state.sweep, "x": [], "records": []}
+    for _ in _production_steps(chain, (int(sweeps) // every) * every, every, pos):
+        pass
+    return _biased_run(chain, weight, pos, time.process_time() - t0)
+
+
+def _wl_position() -> dict:
+    """Where a Wang-Landau build stands: iteration ``k``, chunk ``c`` of it, the sweep its chunk
+    started at, its histogram (None between iterations) and the finished iterations."""
+    return {"k": 0, "c": 0, "chunk_start": 0, "hist": None, "done": []}
+
+
+def _wang_landau_steps(chain: BiasedChain, iterations: int, sweeps: int, f0: float, flatness: float, chunks: int,
+                       pos: dict, **iterate_kw):
+    """The Wang-Landau sweeps (see :func:`wang_landau`), yielding iterate's steps; ``pos``
+    (:func:`_wl_position`) is kept up to date, so that a checkpoint written at any yielded step
+    continues exactly.  A consumer that gets a ``stop`` step must not ask for more."""
+    while pos["k"] < int(iterations):
+        f = float(f0) / 2.0 ** pos["k"]
+        if pos["hist"] is None:
+            pos.update(c=0, chunk_start=chain.state.sweep, hist=np.zeros(chain.values.size, dtype=np.int64))
+        hist = pos["hist"]
+        yield from chain.steps(pos["chunk_start"] + int(sweeps) - chain.state.sweep, wl_f=f, hist=hist,
+                               **iterate_kw)
+        mean = hist.mean()
+        flat = float(hist.min() / mean) if mean > 0 else 0.0
+        if flat >= flatness or pos["c"] + 1 >= max(1, int(chunks)):
+            pos["done"].append({"f": f, "hist": hist, "flatness": flat, "sweeps": (pos["c"] + 1) * int(sweeps)})
+            pos.update(k=pos["k"] + 1, hist=None)
+        else:
+            pos.update(c=pos["c"] + 1, chunk_start=chain.state.sweep)
 
 
 def wang_landau(chain: BiasedChain, iterations: int, sweeps: int, f0: float = 1.0, flatness: float = 0.0,
@@ -279,20 +338,11 @@ def wang_landau(chain: BiasedChain, iterations: int, sweeps: int, f0: float = 1.
     Returns per iteration: f, the histogram, its flatness and the sweeps run.  After the last
     iteration the table is shifted to min 0.
     """
-    out = []
-    for k in range(int(iterations)):
-        f = float(f0) / 2.0 ** k
-        hist = np.zeros(chain.values.size, dtype=np.int64)
-        flat = 0.0
-        for c in range(max(1, int(chunks))):
-            chain.sweeps(int(sweeps), wl_f=f, hist=hist)
-            mean = hist.mean()
-            flat = float(hist.min() / mean) if mean > 0 else 0.0
-            if flat >= flatness:
-                break
-        out.append({"f": f, "hist": hist, "flatness": flat, "sweeps": (c + 1) * int(sweeps)})
+    pos = _wl_position()
+    for _ in _wang_landau_steps(chain, iterations, sweeps, f0, flatness, chunks, pos):
+        pass
     chain.values -= chain.values.min()
-    return out
+    return pos["done"]
 
 
 def _ratio_gamma(num: np.ndarray, den: np.ndarray):
@@ -315,68 +365,6 @@ def reweighted_mean(obs, w) -> tuple[float, float, float]:
     return float(g.value), float(g.error), float(g.tau_int)
 
 
-def profile(x, w, edges) -> dict:
-    """-ln P(x) of the canonical ensemble per bin of ``edges`` from a biased chain.
-
-    P_b = sum_i 1[x_i in b] e^{w_i} / sum_i e^{w_i} / width, error of each by the Gamma method (ratio
-    estimator); ``minus_ln_p`` is shifted to min 0, ``error`` = err(P)/P.  Bins without a
-    sample are NaN.  Returns ``centres``, ``p`` (density), ``p_error``, ``minus_ln_p``, ``error``,
-    ``counts``.
-    """
-    x = np.asarray(x, dtype=np.float64)
-    w = np.asarray(w, dtype=np.float64)
-    edges = np.asarray(edges, dtype=np.float64)
-    e = np.exp(w - w.max())
-    nb = edges.size - 1
-    idx = np.searchsorted(edges, x, side="right") - 1
-    p = np.full(nb, np.nan)
-    pe = np.full(nb, np.nan)
-    counts = np.bincount(idx[(idx >= 0) & (idx < nb)], minlength=nb)
-    for b in range(nb):
-        if counts[b] == 0:
-            continue
-        ind = (idx == b).astype(np.float64)
-        if counts[b] == x.size:
-            p[b], pe[b] = 1.0, 0.0
-        else:
-            g = _ratio_gamma(ind * e, e)
-            p[b], pe[b] = g.value, g.error
-    width = np.diff(edges)
-    dens, dens_err = p / width, pe / width
-    with np.errstate(divide="ignore", invalid="ignore"):
-        mlp = -np.log(dens)
-        err = dens_err / dens
-    mlp -= np.nanmin(mlp)
-    return {"centres": 0.5 * (edges[1:] + edges[:-1]), "p": dens, "p_error": dens_err, "minus_ln_p": mlp,
-            "error": err, "counts": counts}
-
-
-def round_trips(x, left: float, right: float) -> tuple[int, np.ndarray]:
-    """Round trips of the series ``x`` between the regions x <= left and x >= right.
-
-    A round trip is left -> right -> left (or right -> left -> right, counted from the first region
-    the series reaches).  Returns (number of completed round trips, indices at which each one
-    completed).
-    """
-    x = np.asarray(x, dtype=np.float64)
-    state = 0  # 0: not yet in a region, else the region last visited (-1 left, +1 right)
-    start = 0
-    legs = 0
-    done = []
-    for i, v in enumerate(x):
-        r = -1 if v <= left else (1 if v >= right else 0)
-        if r == 0 or r == state:
-            continue
-        if state == 0:
-            start = r
-        else:
-            legs += 1
-            if legs % 2 == 0 and r == start:
-                done.append(i)
-        state = r
-    return len(done), np.asarray(done, dtype=np.int64)
-
-
 # ---------------------------------------------------------------------------
 # the protocol: [multicanonical] table, weight building, production, analysis
 # ---------------------------------------------------------------------------
@@ -397,7 +385,8 @@ MUCA_SCHEMA = {
     "wl_chunks": ("int:1:1000000", 1, "at most this many chunks of wl_sweeps per iteration"),
     "overrelax": ("int:0:100", 1, "overrelaxation passes per sweep (after the Metropolis pass)"),
     "regions": ("regions", None, "optional [left, right]: a round trip goes x <= left -> x >= right -> "
-                "x <= left (default: the outer quarters of the grid)"),
+                "x <= left (default: the outer quarters of the grid); the barrier's saddle is sought between "
+                "the minima on either side of their midpoint"),
 }
 
 
@@ -464,28 +453,45 @@ def check_config(config: RunConfig, params: dict) -> None:
 
 @dataclass
 class MucaResult:
-    """What :func:`run_multicanonical` returns (see :func:`multicanonical_command` for the file)."""
+    """What :func:`run_multicanonical` returns (see :func:`result_blob` for the file).
+
+    ``profile`` is the block-bootstrap -ln P(x) of :func:`sigmasim.analysis.profile.multicanonical_profile`,
+    ``barrier`` its :class:`~sigmasim.analysis.profile.BarrierResult` (None when one side of the
+    split was never visited; ``notes`` says so), ``trips`` the
+    :class:`~sigmasim.analysis.profile.RoundTrips` between the two regions.
+    """
 
     config: RunConfig
     params: dict
     weight: Weight
     wl: list
     run: BiasedRun
-    profile: dict
+    profile: object
+    barrier: object
     averages: dict
-    round_trips: int
+    trips: object
     regions: tuple
     seconds: dict
+    notes: list = field(default_factory=list)
+
+    @property
+    def round_trips(self) -> int:
+        """Completed round trips (half trips // 2)."""
+        return int(self.trips.round_trips)
 
     @property
     def round_trip_sweeps(self) -> float:
-        """Production sweeps per completed round trip (inf without one)."""
-        sweeps = self.run.x.size * self.config.measure_every
-        return sweeps / self.round_trips if self.round_trips else float("inf")
+        """Sweeps per round trip, 2 exposure / half trips (inf without a passage)."""
+        t = self.trips.time
+        return float(t) if np.isfinite(t) else float("inf")
 
     @property
     def round_trip_seconds(self) -> float:
-        return self.run.seconds / self.round_trips if self.round_trips else float("inf")
+        """Production CPU seconds per round trip."""
+        sweeps = self.run.x.size * self.config.measure_every
+        if not (sweeps and np.isfinite(self.round_trip_sweeps)):
+            return float("inf")
+        return self.run.seconds / sweeps * self.round_trip_sweeps
 
     def summary(self) -> str:
         c, p = self.config, self.params
@@ -502,6 +508,12 @@ class MucaResult:
                  "  canonical averages (reweighted, Gamma-method errors):"]
         for k, (v, e, tau) in self.averages.items():
             lines.append(f"    {k:22s} {v: .6f} +- {e:.6f}  (tau_int {tau:.3g})")
+        blk = self.profile.windows[0]["block"] if self.profile.windows else "?"
+        lines.append(f"  -ln P(x): block bootstrap ({self.profile.replicas.shape[0]} replicas, blocks of {blk} "
+                     f"measurements), {len(self.profile.unvisited)} unvisited bins")
+        if self.barrier is not None:
+            lines.append(f"  barrier Delta F: {self.barrier.summary()}")
+        lines += [f"  {n}" for n in self.notes]
         lines.append("  (a research toy, not a physical prediction)")
         return "\n".join(lines)
 
@@ -519,42 +531,309 @@ def _average_observables(run: BiasedRun) -> dict:
     return {k: reweighted_mean(v, run.w) for k, v in obs.items()}
 
 
-def run_multicanonical(config: RunConfig, params: dict, progress=None) -> MucaResult:
+#: bootstrap replicas of the profile and the barrier (seeded by the config's seed)
+PROFILE_BOOTSTRAP = 200
+
+
+def analyse(config: RunConfig, params: dict, weight: Weight, wl: list, run: BiasedRun, seconds: dict) -> MucaResult:
+    """Averages, -ln P(x) (block bootstrap), the barrier and the round trips of a production run."""
+    from sigmasim.analysis import profile as pr
+
+    lo, hi = params["range"]
+    regions = tuple(params["regions"]) if params["regions"] else (lo + 0.25 * (hi - lo), hi - 0.25 * (hi - lo))
+    notes = []
+    prof = pr.multicanonical_profile(run.x, weight, weight.edges, n_boot=PROFILE_BOOTSTRAP, seed=config.seed)
+    try:
+        br = pr.barrier(prof, split=0.5 * (regions[0] + regions[1]), half_width=min(4, max(2, weight.bins // 6)))
+    except ValueError as exc:
+        br = None
+        notes.append(f"no barrier: {exc}")
+    sweeps = run.series["sweep"] if run.series else None
+    trips = pr.round_trips(run.x, *regions, sweeps=sweeps)
+    return MucaResult(config, params, weight, wl, run, prof, br, _average_observables(run), trips, regions,
+                      seconds, notes)
+
+
+# ---------------------------------------------------------------------------
+# checkpoint and resume of the whole protocol
+# ---------------------------------------------------------------------------
+
+CHECKPOINT_FORMAT = "sigmasim-multicanonical-checkpoint"
+STAGES = ("thermalisation", "wang_landau", "production")
+
+
+def checkpoint_path(path) -> Path:
+    """The checkpoint of an unfinished run that writes ``path`` (``<file>.checkpoint``)."""
+    path = Path(path)
+    return path.with_name(path.name + ".checkpoint")
+
+
+def default_path(config: RunConfig) -> Path:
+    """The output of ``sigmasim multicanonical`` by default: ``<output>/<name>/<name>-multicanonical.h5``."""
+    return config.run_dir / f"{config.name}-multicanonical.h5"
+
+
+def run_identity(config: RunConfig, params: dict) -> str:
+    """Everything that fixes the numbers of a run: the chain's physics hash, the measurements and the
+    [multicanonical] table (a checkpoint or an output of another identity is never continued)."""
+    return json.dumps({"physics": config.physics_hash(), "measurements": config.measurements,
+                       "multicanonical": params}, sort_keys=True)
+
+
+def _last_sweep(config: RunConfig, params: dict) -> int:
+    return (config.thermalize + params["wl_iterations"] * max(1, params["wl_chunks"]) * params["wl_sweeps"]
+            + config.measurements * config.measure_every)
+
+
+def _save_checkpoint(path: Path, config, params, stage: str, chain: BiasedChain, wl: dict, prod, seconds) -> None:
+    """Everything a resumed run needs, written atomically (storage.write_tree)."""
+    from sigmasim.storage import write_tree
+
+    bins = chain.values.size
+    done = wl["done"]
+    recs = prod["records"] if prod else []
+    tree = {
+        "@attrs": {"format": CHECKPOINT_FORMAT, "identity": run_identity(config, params), "stage": stage,
+                   "wl_k": int(wl["k"]), "wl_c": int(wl["c"]), "wl_chunk_start": int(wl["chunk_start"]),
+                   "wl_open": int(wl["hist"] is not None),
+                   "production_start": int(prod["start"]) if prod else -1, "seconds": json.dumps(seconds)},
+        "state": {"@state": chain.state},
+        "chain": {"values": chain.values, "counts": chain.counts},
+        "wang_landau": {
+            "hist": wl["hist"] if wl["hist"] is not None else np.zeros(bins, dtype=np.int64),
+            "f": np.array([w["f"] for w in done], dtype=np.float64),
+            "flatness": np.array([w["flatness"] for w in done], dtype=np.float64),
+            "sweeps": np.array([w["sweeps"] for w in done], dtype=np.int64),
+            "hists": (np.array([w["hist"] for w in done], dtype=np.int64) if done
+                      else np.zeros((0, bins), dtype=np.int64))},
+        "production": {"x": np.asarray(prod["x"] if prod else [], dtype=np.float64),
+                       "series": {k: np.array([r[k] for r in recs]) for k in chiral.SERIES}},
+    }
+    write_tree(path, tree, what="multicanonical checkpoint")
+
+
+def _load_checkpoint(path: Path, config: RunConfig, params: dict) -> dict:
+    """(stage, state, weight table, counts, Wang-Landau position, production position, seconds) of a
+    checkpoint, every value checked; one-line :class:`RunFileError` when foreign, of another run
+    or damaged."""
+    from sigmasim.errors import RunFileError
+    from sigmasim.storage import _check_state_ranges, _check_unitary, read_tree
+
+    def damaged(why):
+        return RunFileError(f"{path} is a damaged multicanonical checkpoint ({why}); remove it to start the run "
+                            "again")
+
+    try:
+        f = read_tree(path, states=("state",))
+    except (KeyError, TypeError, ValueError, OverflowError) as exc:
+        raise damaged(" ".join(str(exc).split()) or type(exc).__name__) from None
+    except OSError:
+        raise RunFileError(f"{path} is not a multicanonical checkpoint of sigmasim (not a readable HDF5 file); "
+                           "remove it or give another --out") from None
+    attrs = f["@attrs"]
+    if attrs.get("format") != CHECKPOINT_FORMAT:
+        raise RunFileError(f"{path} is not a multicanonical checkpoint of sigmasim; remove it or give another --out")
+    if attrs.get("identity") != run_identity(config, params):
+        raise RunFileError(f"{path} belongs to another config or [multicanonical] table; restore that config, "
+                           "or remove it to start this one")
+    bins, every = params["bins"], config.measure_every
+    try:
+        stage = attrs["stage"]
+        k, c, chunk_start, wl_open, start = (int(attrs[a]) for a in ("wl_k", "wl_c", "wl_chunk_start", "wl_open",
+                                                                      "production_start"))
+        seconds = {s: float(v) for s, v in json.loads(attrs["seconds"]).items()}
+        st = f["state"]["@state"]
+        values = np.asarray(f["chain"]["values"], dtype=np.float64)
+        counts = np.asarray(f["chain"]["counts"])
+        g = f["wang_landau"]
+        hist, hists = np.asarray(g["hist"]), np.asarray(g["hists"])
+        fs, flats, wsweeps = (np.asarray(g[n]) for n in ("f", "flatness", "sweeps"))
+        x = np.asarray(f["production"]["x"], dtype=np.float64)
+        series = {key: f["production"]["series"][key] for key in chiral.SERIES}
+    except (KeyError, TypeError, ValueError, OverflowError) as exc:
+        raise damaged(" ".join(str(exc).split()) or type(exc).__name__) from None
+    nf, v = config.nf, config.volume
+    sweep = st.sweep
+    checks = [
+        (stage in STAGES, f"stage {stage!r}"),
+        (set(seconds) == set(STAGES), "timings"),
+        (st.re.shape == (nf * nf, v) and st.im.shape == (nf * nf, v), f"field of shape {st.re.shape}"),
+        (np.isfinite(st.re).all() and np.isfinite(st.im).all(), "non-finite field"),
+        (values.shape == (bins,) and np.isfinite(values).all(), "weight table"),
+        (counts.shape == (4,) and counts.dtype.kind in "iu" and (counts >= 0).all()
+         and counts[0] <= counts[1] and counts[2] <= counts[3], "acceptance counts"),
+        (0 <= k <= params["wl_iterations"] and 0 <= c < max(1, params["wl_chunks"]) and wl_open in (0, 1),
+         "Wang-Landau position"),
+        (hist.shape == (bins,) and hist.dtype.kind in "iu" and (hist >= 0).all()
+         and hists.shape == (k, bins) and fs.shape == flats.shape == wsweeps.shape == (k,), "Wang-Landau histograms"),
+        (not wl_open or 0 <= sweep - chunk_start <= params["wl_sweeps"], "Wang-Landau chunk"),
+        (stage != "thermalisation" or sweep <= config.thermalize, "thermalisation sweep"),
+        (stage != "production" or (k == params["wl_iterations"] and 0 <= start <= sweep
+                                   and sweep - start <= config.measurements * every
+                                   and x.size == (sweep - start) // every and np.isfinite(x).all()
+                                   and all(len(a) == x.size for a in series.values())), "production records"),
+    ]
+    for ok, what in checks:
+        if not ok:
+            raise damaged(what)
+    _check_state_ranges(st, config, path, last_sweep=_last_sweep(config, params))
+    _check_unitary(st, config, path)
+    wl = {"k": k, "c": c, "chunk_start": chunk_start, "hist": hist.astype(np.int64) if wl_open else None,
+          "done": [{"f": float(fs[i]), "hist": hists[i].astype(np.int64), "flatness": float(flats[i]),
+                    "sweeps": int(wsweeps[i])} for i in range(k)]}
+    prod = None
+    if stage == "production":
+        recs = [{key: series[key][i] for key in chiral.SERIES} for i in range(x.size)]
+        prod = {"start": start, "x": list(x), "records": recs}
+    return {"stage": stage, "state": st, "values": values, "counts": counts.astype(np.int64), "wl": wl,
+            "prod": prod, "seconds": seconds}
+
+
+def run_multicanonical(config: RunConfig, params: dict, progress=None, checkpoint=None,
+                       should_stop=None) -> MucaResult:
     """The protocol: thermalise (W = 0, step tuned), Wang-Landau, frozen production, analysis.
 
-    ``progress(stage: str)`` is called at each stage when given.
+    ``progress(stage: str)`` is called at each stage when given.  With ``checkpoint`` (a path)
+    the whole state (chain, weight table, Wang-Landau position and histograms, production records)
+    is saved there every ``run.checkpoint_every`` sweeps or ``run.checkpoint_seconds`` (chain.iterate's
+    cadence, in every stage), when the production starts and when ``should_stop()`` turns true
+    (then :class:`sigmasim.chain.Interrupted` is raised); an existing checkpoint of the same run
+    (:func:`run_identity`) is continued, and the result is that of an uninterrupted run bit for bit.
     """
+    from sigmasim.chain import Interrupted
+
     check_config(config, params)
     lo, hi = params["range"]
-    weight0 = Weight.flat(lo, hi, params["bins"], params["wall"])
-    chain = BiasedChain(config, weight0, params["variable"], params["overrelax"])
-    t0 = time.process_time()
-    if progress:
-        progress("thermalisation")
-    for _ in range(config.thermalize):
-        chain.sweeps(1)
-        if chain.state.sweep % config.tune_every == 0:
-            chain.tune()
-    t1 = time.process_time()
-    if progress:
-        progress("Wang-Landau")
-    wl = wang_landau(chain, params["wl_iterations"], params["wl_sweeps"], params["wl_start"],
-                     params["wl_flatness"], params["wl_chunks"])
-    weight = chain.frozen_weight()
-    t2 = time.process_time()
+    ck = Path(checkpoint) if checkpoint is not None else None
+    got = _load_checkpoint(ck, config, params) if ck is not None and ck.exists() else None
+    stage = got["stage"] if got else "thermalisation"
+    wl = got["wl"] if got else _wl_position()
+    seconds = got["seconds"] if got else {s: 0.0 for s in STAGES}
+    chain = BiasedChain(config, Weight.flat(lo, hi, params["bins"], params["wall"]), params["variable"],
+                        params["overrelax"], got["state"] if got else None)
+    if got:
+        chain.values[:] = got["values"]
+        chain.counts[:] = got["counts"]
+    kw = {"should_stop": should_stop}
+    if ck is not None:
+        kw.update(checkpoint_every=config.checkpoint_every, checkpoint_seconds=config.checkpoint_seconds)
+    now = {"stage": stage, "t": time.process_time(), "chain": chain, "prod": got["prod"] if got else None}
+
+    def tick(next_stage=None):
+        t = time.process_time()
+        seconds[now["stage"]] += t - now["t"]
+        now["t"] = t
+        if next_stage is not None:
+            now["stage"] = next_stage
+
+    def save():
+        tick()
+        _save_checkpoint(ck, config, params, now["stage"], now["chain"], wl, now["prod"], seconds)
+
+    def consume(steps, each=None):
+        for step in steps:
+            if each is not None:
+                each()
+            if step.checkpoint and ck is not None:
+                save()
+            # a stop asked for at the last sweep of a stage or chunk is not iterate's early stop
+            if step.stop or (step.checkpoint and should_stop is not None and should_stop()):
+                raise Interrupted(step.sweep)
+
+    if stage == "thermalisation":
+        if progress:
+            progress("thermalisation")
+
+        def tune():
+            if chain.state.sweep % config.tune_every == 0:
+                chain.tune()
+
+        consume(chain.steps(config.thermalize - chain.state.sweep, **kw), tune)
+        tick("wang_landau")
+        stage = "wang_landau"
+    if stage == "wang_landau":
+        if progress:
+            progress("Wang-Landau")
+        consume(_wang_landau_steps(chain, params["wl_iterations"], params["wl_sweeps"], params["wl_start"],
+                                   params["wl_flatness"], params["wl_chunks"], wl, **kw))
+        chain.values -= chain.values.min()
+        tick("production")
+        weight = chain.frozen_weight()
+        prod_chain = BiasedChain(config, weight, params["variable"], params["overrelax"], chain.state)
+        now.update(chain=prod_chain, prod={"start": chain.state.sweep, "x": [], "records": []})
+        if ck is not None:
+            save()
+    else:
+        weight = chain.frozen_weight()
+        prod_chain = BiasedChain(config, weight, params["variable"], params["overrelax"], chain.state)
+        prod_chain.counts[:] = chain.counts
+        now["chain"] = prod_chain
     if progress:
         progress("production")
-    run = run_biased(config, weight, config.measurements * config.measure_every,
-                     measure_every=config.measure_every, variable=params["variable"],
-                     overrelax=params["overrelax"], state=chain.state)
+    every = config.measure_every
+    consume(_production_steps(prod_chain, config.measurements * every, every, now["prod"], **kw))
+    tick()
+    run = _biased_run(prod_chain, weight, now["prod"], seconds["production"])
     if progress:
         progress("analysis")
-    regions = tuple(params["regions"]) if params["regions"] else (lo + 0.25 * (hi - lo), hi - 0.25 * (hi - lo))
-    n_rt, _ = round_trips(run.x, *regions)
-    prof = profile(run.x, run.w, weight.edges)
-    averages = _average_observables(run)
-    seconds = {"thermalisation": t1 - t0, "wang_landau": t2 - t1, "production": run.seconds}
-    return MucaResult(config, params, weight, wl, run, prof, averages, n_rt, regions, seconds)
+    return analyse(config, params, weight, wl["done"], run, {
+        "thermalisation": seconds["thermalisation"], "wang_landau": seconds["wang_landau"],
+        "production": seconds["production"]})
+
+
+def execute(config: RunConfig, params: dict, path, overwrite: bool = False, progress=None, note=None):
+    """Run (or continue) the protocol into its output ``path`` (the command without the printing).
+
+    Holds ``<path>.lock`` for the whole run; never replaces a file that is not a multicanonical
+    file of sigmasim; refuses an output of another config or table unless ``overwrite``; continues
+    the checkpoint ``<path>.checkpoint`` when there is one; an output of this run without a
+    checkpoint is complete (``note`` says so, None is returned).  SIGINT/SIGTERM write a
+    checkpoint and raise :class:`sigmasim.chain.Interrupted`.
+    """
+    from sigmasim.errors import RunFileError
+    from sigmasim.run import _StopFlag
+    from sigmasim.storage import (check_multicanonical_target, hdf5_root_attrs, lock_path, release_lock, take_lock,
+                                  write_multicanonical)
+
+    path = Path(path)
+    if path.suffix != ".h5":
+        raise ConfigError(f"--out must end in .h5, got {path}")
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise RunFileError(f"cannot create the output folder {path.parent}: {exc.strerror}") from None
+    ckpt = checkpoint_path(path)
+    lock = take_lock(lock_path(path), "sigmasim process", path)
+    try:
+        check_multicanonical_target(path)
+        if overwrite:
+            ckpt.unlink(missing_ok=True)
+        elif path.exists():
+            try:
+                stored = hdf5_root_attrs(path, ("identity",)).get("identity")
+            except OSError:
+                stored = None
+            if stored != run_identity(config, params):
+                raise RunFileError(f"refusing to overwrite {path}: it was written by another config or "
+                                   "[multicanonical] table, or by an earlier sigmasim (use --overwrite to replace it)")
+            if not ckpt.exists():
+                if note is not None:
+                    note(f"{path} already holds the finished run of this config: nothing to run "
+                         "(--overwrite runs it again)")
+                return None
+        if ckpt.exists() and note is not None:
+            note(f"continuing from the checkpoint {ckpt}")
+        flag = _StopFlag().install()
+        try:
+            res = run_multicanonical(config, params, progress=progress, checkpoint=ckpt, should_stop=flag)
+        finally:
+            flag.restore()
+        data, attrs = result_blob(res)
+        write_multicanonical(path, data, attrs)
+        ckpt.unlink(missing_ok=True)
+    finally:
+        release_lock(lock)
+    return res
 
 
 def load_multicanonical(config_path) -> tuple[RunConfig, dict]:
@@ -571,10 +850,20 @@ def load_multicanonical(config_path) -> tuple[RunConfig, dict]:
     return config, params
 
 
+def plot_profile(res: MucaResult, path) -> Path:
+    """The figure of the run's -ln P(x) with its bootstrap band (analysis.profile.plot_profiles)."""
+    from sigmasim.analysis.profile import plot_profiles
+
+    c = res.config
+    label = f"L = {list(c.shape)}, beta {c.beta:g}, theta {c.theta:.4g}"
+    return plot_profiles({label: res.profile}, path, title=f"multicanonical {c.name}: -ln P({res.params['variable']})",
+                         xlabel=res.params["variable"])
+
+
 def result_blob(res: MucaResult) -> tuple[dict, dict]:
     """(datasets, attributes) of the multicanonical output file (see :func:`multicanonical_command`)."""
-    import json
-
+    fin = np.isfinite(res.profile.F)
+    shift = float(np.min(res.profile.F[fin])) if fin.any() else 0.0
     data = {
         "weight/values": res.weight.values,
         "weight/edges": res.weight.edges,
@@ -585,10 +874,12 @@ def result_blob(res: MucaResult) -> tuple[dict, dict]:
                              else np.zeros((0, res.weight.bins), dtype=np.int64)),
         "production/x": res.run.x,
         "production/w": res.run.w,
-        "profile/centres": res.profile["centres"],
-        "profile/minus_ln_p": res.profile["minus_ln_p"],
-        "profile/error": res.profile["error"],
-        "profile/counts": res.profile["counts"],
+        "profile/edges": res.profile.edges,
+        "profile/centres": res.profile.centres,
+        "profile/minus_ln_p": res.profile.F - shift,
+        "profile/error": res.profile.error,
+        "profile/interval": res.profile.interval - shift,
+        "profile/counts": res.profile.counts.astype(np.int64),
     }
     for k, v in res.run.series.items():
         data[f"production/{k}"] = v
@@ -603,5 +894,12 @@ def result_blob(res: MucaResult) -> tuple[dict, dict]:
         "averages": json.dumps({k: list(v) for k, v in res.averages.items()}),
         "acceptance": json.dumps({k: float(v) for k, v in res.run.acceptance.items()}),
         "seconds": json.dumps(res.seconds),
+        "identity": run_identity(res.config, res.params),
+        "profile_method": (f"block bootstrap, {res.profile.replicas.shape[0]} replicas, blocks of "
+                           f"{res.profile.windows[0]['block']} measurements"),
+        "barrier": json.dumps({"values": res.barrier.values, "errors": res.barrier.errors,
+                               "refined": res.barrier.refined, "failed_replicas": res.barrier.failed_replicas}
+                              if res.barrier is not None else {}),
+        "notes": json.dumps(res.notes),
     }
     return data, attrs
