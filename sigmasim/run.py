@@ -16,10 +16,10 @@ from pathlib import Path
 
 from sigmasim.errors import RunFileError, SigmasimError
 
-__all__ = ["execute_run"]
+__all__ = ["StopFlag", "execute_run"]
 
 
-class _StopFlag:
+class StopFlag:
     """Turns SIGINT/SIGTERM into a request to stop at the next sweep boundary."""
 
     def __init__(self):
@@ -95,7 +95,7 @@ def _execute_locked(config, path, resume, overwrite, quiet, label, should_stop, 
         return path
     writer = RunWriter(config, path, resume=resume)
     bar = ProgressBar(label or config.name, disable=True if quiet else None)
-    flag = _StopFlag().install()
+    flag = StopFlag().install()
     try:
         stop = flag if should_stop is None else (lambda: flag() or should_stop())
         run_chain(sim, (bar, writer, *sinks), should_stop=stop)

@@ -791,7 +791,7 @@ def execute(config: RunConfig, params: dict, path, overwrite: bool = False, prog
     checkpoint and raise :class:`sigmasim.chain.Interrupted`.
     """
     from sigmasim.errors import RunFileError
-    from sigmasim.run import _StopFlag
+    from sigmasim.run import StopFlag
     from sigmasim.storage import (check_multicanonical_target, hdf5_root_attrs, lock_path, release_lock, take_lock,
                                   write_multicanonical)
 
@@ -823,7 +823,7 @@ def execute(config: RunConfig, params: dict, path, overwrite: bool = False, prog
                 return None
         if ckpt.exists() and note is not None:
             note(f"continuing from the checkpoint {ckpt}")
-        flag = _StopFlag().install()
+        flag = StopFlag().install()
         try:
             res = run_multicanonical(config, params, progress=progress, checkpoint=ckpt, should_stop=flag)
         finally:
