@@ -107,7 +107,8 @@ def test_unf_c_exact_one_site(unf4, h, kappa):
 
 def test_unf_c_bad_argument(unf4):
     _, exe = unf4
-    p = subprocess.run([exe, "--L", "3"], capture_output=True, text=True, timeout=60)
+    p = subprocess.run([exe, "--L", "3"], capture_output=True, text=True, timeout=60,
+                       env=subprocess_env())
     assert p.returncode == 2 and len(p.stderr.strip().splitlines()) == 1 and "--L" in p.stderr
 
 
@@ -176,7 +177,8 @@ def test_unf_c_layouts_same_chain(unf4):
         out = {}
         for layout in ("chunk", "site"):
             p = subprocess.run([exe, "--algo", algo, "--L", "6", "--sweeps", str(sweeps), "--therm", "0",
-                                "--layout", layout], capture_output=True, text=True, timeout=60, check=True)
+                                "--layout", layout], capture_output=True, text=True, timeout=60, check=True,
+                               env=subprocess_env())
             out[layout] = json.loads(p.stdout)
         assert out["chunk"]["layout"] == "chunk" and out["site"]["layout"] == "site"
         assert out["chunk"]["acceptance"] == out["site"]["acceptance"], algo
