@@ -398,7 +398,8 @@ def test_one_call_metropolis_update_is_the_per_colour_path(nf, special, nblk):
                                      tc, ts, hits, key, rows_per_chunk(h), 0)
         else:
             acc_ref += metropolis_u3(re, im, lat.row_neighbours, lat.row_parity, h, colour, 0.7, hdiag, 0.2, -0.1,
-                                     table_u3_packed(special, eps, tkey), hits, key, rows_per_chunk3(h), 0)
+                                     table_u3_packed(special, eps, tkey), hits, key, rows_per_chunk3(h),
+                                     0)
     sh = np.uint64(mix64_int(seed))
     if nf == 1:
         acc = metropolis_u1_update(re2[0], im2[0], lat.row_neighbours, lat.row_parity, h, 0.7, 0.3, 0.1, eps, sh,
@@ -427,7 +428,8 @@ def test_one_call_u1_heatbath_overrelax_are_the_per_colour_kernels(update, nblk)
     rt = (lat.row_neighbours, lat.row_parity, h)
     for colour in (0, 1):
         if update == "heatbath":
-            heatbath_u1(c, s, *rt, colour, 0.8, 0.2, -0.1, step_key(seed, step + colour), rows_per_chunk(h), 0)
+            heatbath_u1(c, s, *rt, colour, 0.8, 0.2, -0.1, step_key(seed, step + colour), rows_per_chunk(h),
+                        0)
         else:
             overrelax_u1(c, s, *rt, colour, 0.8, 0.2, -0.1, rows_per_chunk(h), 0)
     kernel = heatbath_u1_update if update == "heatbath" else overrelax_u1_update
