@@ -164,7 +164,7 @@ def test_metropolis_u1_rows_match_site_reference(shape, rows):
         colour = step % 2
         nhits = 1 + step % 3
         a = metropolis_u1(c, s, lat.row_neighbours, lat.row_parity, lat.row_len_half, colour,
-                          0.7, 0.1, -0.05, tc, ts, nhits, key, g)
+                          0.7, 0.1, -0.05, tc, ts, nhits, key, g, 0)
         b = _ref_metropolis_u1(c_ref, s_ref, lat.neighbours, colour * lat.half,
                                (colour + 1) * lat.half, 0.7, 0.1, -0.05, tc, ts, nhits, key)
         assert a == b
@@ -190,7 +190,7 @@ def test_metropolis_u3_rows_match_site_reference(shape, rows):
         key = np.uint64(0xABCDEF + 104729 * step)
         colour = step % 2
         a = metropolis_u3(re, im, lat.row_neighbours, lat.row_parity, lat.row_len_half, colour,
-                          0.6, hdiag, 0.3, -0.1, tab, 4, key, g)
+                          0.6, hdiag, 0.3, -0.1, tab, 4, key, g, 0)
         b = _ref_metropolis_u3(re_ref, im_ref, lat.neighbours, colour * lat.half,
                                (colour + 1) * lat.half, 0.6, hdiag, 0.3, -0.1, tab, 4, key)
         assert a == b
@@ -255,10 +255,10 @@ def test_heatbath_overrelax_u1_rows_match_site_reference(shape, rows):
         lo, hi = colour * lat.half, (colour + 1) * lat.half
         key = np.uint64(0x5151 + 31337 * step)
         if step % 3 == 0:
-            heatbath_u1(c, s, *rt, colour, 0.9, 0.1, 0.05, key, g)
+            heatbath_u1(c, s, *rt, colour, 0.9, 0.1, 0.05, key, g, 0)
             _ref_heatbath_u1(c_ref, s_ref, lat.neighbours, lo, hi, 0.9, 0.1, 0.05, key)
         else:
-            overrelax_u1(c, s, *rt, colour, 0.9, 0.1, 0.05, g)
+            overrelax_u1(c, s, *rt, colour, 0.9, 0.1, 0.05, g, 0)
             _ref_overrelax_u1(c_ref, s_ref, lat.neighbours, lo, hi, 0.9, 0.1, 0.05)
         np.testing.assert_array_equal(c, c_ref)
         np.testing.assert_array_equal(s, s_ref)
@@ -395,10 +395,11 @@ def test_one_call_metropolis_update_is_the_per_colour_path(nf, special, nblk):
         if nf == 1:
             tc, ts = table_u1(eps, tkey)
             acc_ref += metropolis_u1(re[0], im[0], lat.row_neighbours, lat.row_parity, h, colour, 0.7, 0.3, 0.1,
-                                     tc, ts, hits, key, rows_per_chunk(h))
+                                     tc, ts, hits, key, rows_per_chunk(h), 0)
         else:
             acc_ref += metropolis_u3(re, im, lat.row_neighbours, lat.row_parity, h, colour, 0.7, hdiag, 0.2, -0.1,
-                                     table_u3_packed(special, eps, tkey), hits, key, rows_per_chunk3(h))
+                                     table_u3_packed(special, eps, tkey), hits, key, rows_per_chunk3(h),
+                                     0)
     sh = np.uint64(mix64_int(seed))
     if nf == 1:
         acc = metropolis_u1_update(re2[0], im2[0], lat.row_neighbours, lat.row_parity, h, 0.7, 0.3, 0.1, eps, sh,
@@ -427,9 +428,10 @@ def test_one_call_u1_heatbath_overrelax_are_the_per_colour_kernels(update, nblk)
     rt = (lat.row_neighbours, lat.row_parity, h)
     for colour in (0, 1):
         if update == "heatbath":
-            heatbath_u1(c, s, *rt, colour, 0.8, 0.2, -0.1, step_key(seed, step + colour), rows_per_chunk(h))
+            heatbath_u1(c, s, *rt, colour, 0.8, 0.2, -0.1, step_key(seed, step + colour), rows_per_chunk(h),
+                        0)
         else:
-            overrelax_u1(c, s, *rt, colour, 0.8, 0.2, -0.1, rows_per_chunk(h))
+            overrelax_u1(c, s, *rt, colour, 0.8, 0.2, -0.1, rows_per_chunk(h), 0)
     kernel = heatbath_u1_update if update == "heatbath" else overrelax_u1_update
     kernel(c2, s2, *rt, 0.8, 0.2, -0.1, np.uint64(mix64_int(seed)), step, rows_per_chunk(h), nblk)
     assert not np.array_equal(c, np.cos(phi))
