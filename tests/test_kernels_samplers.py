@@ -128,18 +128,15 @@ def test_polynomial_log_sincos_exp_against_numpy():
 
 
 @njit(cache=True)
-def _draws(a, key, uc0, base):
+def _vector_draws(a, key):
+    """unf's vectorised x0 and von Mises draws for sites s < len(a) with counters from s * SITE_STRIDE."""
     m = a.shape[0]
-    out = np.empty((6, m))
+    out = np.empty((3, m))
     L = np.empty(m, dtype=np.int64)
     T = np.empty((3, m))
     OK = np.empty(m, dtype=np.bool_)
-    _x0_draws(a, out[0], L, T[0], T[1], OK, key, uc0, base, m)
-    _vm_draws(a, out[2], out[3], L, T[0], T[1], T[2], OK, key, uc0, base, m)
-    for s in range(m):
-        n = (uc0 + np.uint64(s)) * SITE_STRIDE + base
-        out[1, s] = 2.0 if a[s] < 2e-300 else sample_su2_x0(a[s], key, n)[0]
-        out[4, s], out[5, s], _ = von_mises_angle(a[s], key, n)
+    _x0_draws(a, out[0], L, T[0], T[1], OK, key, np.uint64(0), np.uint64(0), m)
+    _vm_draws(a, out[1], out[2], L, T[0], T[1], T[2], OK, key, np.uint64(0), np.uint64(0), m)
     return out
 
 
@@ -149,15 +146,21 @@ def test_vectorised_rejection_loops_are_the_scalar_samplers():
     # attempt, so they return the same draws up to the rounding of the polynomial log/sin/cos
     # (a decision flip at the acceptance boundary has probability ~1e-15 per draw): both Creutz
     # and Kennedy-Pendleton x0 (alpha below and above 3), von Mises from k < 1e-12 to large k,
-    # no field (alpha < 2e-300: x0 = 2, "r = 1"), non-finite input (NaN out)
-    rng = np.random.default_rng(6)
-    a = np.concatenate([rng.uniform(0.0, 3.0, 200), rng.uniform(3.0, 8.0, 100), 10.0 ** rng.uniform(-14, 3, 100),
-                        [0.0, 1e-301, 1e-13, 2.999999, 3.0, np.nan, np.inf]])
-    out = _draws(a, step_key(7, 0), np.uint64(1000), np.uint64(2))
-    fin = np.isfinite(a)
-    for got, ref in ((out[0], out[1]), (out[2], out[4]), (out[3], out[5])):
-        np.testing.assert_allclose(got[fin], ref[fin], rtol=0, atol=1e-12)
-        assert np.isnan(got[~fin]).all()
-    assert (out[0][a < 2e-300] == 2.0).all()
+    # no field (alpha < 2e-300: x0 = 2, "r = 1"), non-finite input (NaN out).  The scalar
+    # samplers run through the helpers above (same counters, site s from s * SITE_STRIDE).
+    key = step_key(7, 0)
+    n = 300
+    for a in (0.0, 1e-301, 1e-13, 1e-5, 0.3, 1.0, 2.999999, 3.0, 4.5, 12.0, 300.0, np.nan, np.inf):
+        got = _vector_draws(np.full(n, a), key)
+        if not np.isfinite(a):
+            assert np.isnan(got).all()
+            continue
+        if a < 2e-300:
+            assert (got[0] == 2.0).all()
+        else:
+            np.testing.assert_allclose(got[0], _draw_x0(a, key, n), rtol=0, atol=1e-12)
+        ang = np.arctan2(got[2], got[1])
+        d = np.angle(np.exp(1j * (ang - _draw_vm(a, key, n))))
+        assert np.abs(d).max() < 1e-12, (a, np.abs(d).max())
     # the test can fail: another key gives other draws
-    assert np.abs(_draws(a, step_key(7, 1), np.uint64(1000), np.uint64(2))[0][fin] - out[0][fin]).max() > 0.1
+    assert np.abs(_vector_draws(np.full(n, 1.0), step_key(7, 1))[0] - _draw_x0(1.0, key, n)).max() > 0.1

@@ -12,8 +12,10 @@ innermost, and each step of the site update is one pass over the chunk's sites:
   the SU(2) direction of a subgroup and the rotation of two rows of U and W are
   branch-free loops over the sites, which LLVM vectorises;
 - the rejection loops (x0 of the SU(2) heatbath, the von Mises angle of the phase)
-  run site by site, each site from its own counters, so the numbers do not depend on
-  the chunking or the thread count.
+  run their first attempt for every site as one vector loop (polynomial log, sin and
+  cos of :mod:`sigmasim.kernels.simd`), then the rejected sites as a list; each site
+  draws from its own counters, so the numbers do not depend on the chunking or the
+  thread count.
 
 Local action as in :mod:`sigmasim.kernels.general`: ``A = M^dagger`` with
 ``M = beta N + diag(conj hdiag)`` stored as its real parts (components ``a nf + b``)
@@ -137,7 +139,8 @@ def _fast_row(M, nc, b, re, im, rs, h, o, j0, w):
 # as one vector loop; the sites it rejected are compacted into a list, and the next attempt of
 # all of them (attempt a of a site uses the counters the a-th pass of the scalar loop would)
 # runs as a vector loop over that list, until the list is empty.  A site's numbers therefore
-# depend only on its own counters, not on the chunking or the thread count.
+# depend only on its own counters, not on the chunking or the thread count.  The two draws are
+# functions of their own (not inlined): one compiled copy serves every caller and the tests.
 
 
 @njit(cache=True, inline="always", error_model="numpy")
@@ -159,7 +162,7 @@ def _x0_attempt(alpha, key, n):
     return 1.0 - (xk if kp else xc), (okk if kp else okc)
 
 
-@njit(cache=True, inline="always", error_model="numpy")
+@njit(cache=True, error_model="numpy")
 def _x0_draws(A, X, L, P, Z, OK, key, uc0, base, m):
     """X[s] = x0 for the chunk sites s < m with alpha = A[s] (counters from
     ``(uc0 + s) * SITE_STRIDE + base``); 2.0 where alpha < 2e-300 (no field: r = 1), NaN where
@@ -213,7 +216,7 @@ def _vm_attempt(k, key, n):
     return f, (sn if u3 >= 0.5 else -sn), ok
 
 
-@njit(cache=True, inline="always", error_model="numpy")
+@njit(cache=True, error_model="numpy")
 def _vm_draws(K, F, G, L, P, Z, Z2, OK, key, uc0, base, m):
     """(F[s], G[s]) = (cos psi, sin psi) of a von Mises angle of concentration K[s] for the chunk
     sites s < m (counters from ``(uc0 + s) * SITE_STRIDE + base``; below k = 1e-12 a uniform
