@@ -12,8 +12,10 @@ innermost, and each step of the site update is one pass over the chunk's sites:
   the SU(2) direction of a subgroup and the rotation of two rows of U and W are
   branch-free loops over the sites, which LLVM vectorises;
 - the rejection loops (x0 of the SU(2) heatbath, the von Mises angle of the phase)
-  run site by site, each site from its own counters, so the numbers do not depend on
-  the chunking or the thread count.
+  run their first attempt for every site as one vector loop (polynomial log, sin and
+  cos of :mod:`sigmasim.kernels.simd`), then the rejected sites as a list; each site
+  draws from its own counters, so the numbers do not depend on the chunking or the
+  thread count.
 
 Local action as in :mod:`sigmasim.kernels.general`: ``A = M^dagger`` with
 ``M = beta N + diag(conj hdiag)`` stored as its real parts (components ``a nf + b``)
@@ -32,9 +34,9 @@ from numba import njit, prange
 
 from sigmasim.kernels import tables
 from sigmasim.kernels.general import flavour_order
-from sigmasim.kernels.group import det, det_lu_in_place, sample_su2_x0, von_mises_angle
+from sigmasim.kernels.group import KP_MIN, det, det_lu_in_place
 from sigmasim.kernels.serial import total, zeros_bool, zeros_int
-from sigmasim.kernels.simd import exp_le0, lookup16, u01_from_bits
+from sigmasim.kernels.simd import exp_le0, log1m, log_pos, lookup16, one_minus_exp_neg, sincos_pm_pi, u01_from_bits
 from sigmasim.kernels.u3 import CHUNK_SITES, _det3
 from sigmasim.rng import SITE_STRIDE, bits, uniform
 
@@ -127,6 +129,128 @@ def _fast_row(M, nc, b, re, im, rs, h, o, j0, w):
                 q = q0 + np.uint64(i)
                 M[comp, p] = (M[comp, p] + re[comp, q + _ONE]) + re[comp, q]
                 M[nc + comp, p] = (M[nc + comp, p] + im[comp, q + _ONE]) + im[comp, q]
+
+
+# ----------------------------------------------------------------------------- rejection loops
+# The x0 draw of the SU(2) heatbath and the von Mises angle of the phase step, as
+# :func:`group.sample_su2_x0` and :func:`group.von_mises_angle` (the same algorithms and the
+# same counters per attempt), but with the polynomial log, sin and cos of :mod:`simd`, so that
+# one attempt is branch-free and vectorises across sites.  The first attempt of every site runs
+# as one vector loop; the sites it rejected are compacted into a list, and the next attempt of
+# all of them (attempt a of a site uses the counters the a-th pass of the scalar loop would)
+# runs as a vector loop over that list, until the list is empty.  A site's numbers therefore
+# depend only on its own counters, not on the chunking or the thread count.  The two draws are
+# functions of their own (not inlined): one compiled copy serves every caller and the tests.
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _x0_attempt(alpha, key, n):
+    """One attempt of :func:`group.sample_su2_x0` at counter n: (x0, accepted).  Creutz below
+    ``KP_MIN`` (counters n, n + 1), Kennedy-Pendleton above (n .. n + 3); both are evaluated,
+    the branch is a select.  alpha > 1e-300."""
+    u1 = uniform(key, n)
+    u2 = uniform(key, n + _ONE)
+    u3 = uniform(key, n + _TWO)
+    u4 = uniform(key, n + np.uint64(3))
+    ia = 1.0 / alpha
+    xc = -log1m(u1 * one_minus_exp_neg(2.0 * alpha)) * ia
+    okc = u2 * u2 < xc * (2.0 - xc)
+    _, cs = sincos_pm_pi(np.pi * (2.0 * u2 - 1.0))  # -cos(2 pi u2): only its square is used
+    xk = -(log_pos(u1) + cs * cs * log_pos(u3)) * ia
+    okk = u4 * u4 <= 1.0 - 0.5 * xk
+    kp = alpha >= KP_MIN
+    return 1.0 - (xk if kp else xc), (okk if kp else okc)
+
+
+@njit(cache=True, error_model="numpy")
+def _x0_draws(A, X, L, P, Z, OK, key, uc0, base, m):
+    """X[s] = x0 for the chunk sites s < m with alpha = A[s] (counters from
+    ``(uc0 + s) * SITE_STRIDE + base``); 2.0 where alpha < 2e-300 (no field: r = 1), NaN where
+    alpha is not finite.  L, P, Z, OK: scratch of m entries."""
+    for s in range(m):
+        a = A[s]
+        none = a < 2e-300
+        bad = not (a >= 0.0 and a < np.inf)
+        x0, ok = _x0_attempt(2.0 if (none or bad) else a, key, (uc0 + np.uint64(s)) * SITE_STRIDE + base)
+        X[s] = 2.0 if none else (np.nan if bad else x0)
+        OK[s] = ok or none or bad
+    cnt = 0
+    for s in range(m):
+        L[cnt] = s
+        P[cnt] = A[s]
+        cnt += 0 if OK[s] else 1
+    att = np.uint64(1)
+    while cnt > 0:
+        for t in range(cnt):
+            a = P[t]
+            n = (uc0 + np.uint64(L[t])) * SITE_STRIDE + base + (np.uint64(4) if a >= KP_MIN else _TWO) * att
+            Z[t], OK[t] = _x0_attempt(a, key, n)
+        c2 = 0
+        for t in range(cnt):
+            s = L[t]
+            ok = OK[t]
+            X[s] = Z[t] if ok else X[s]
+            L[c2] = s
+            P[c2] = P[t]
+            c2 += 0 if ok else 1
+        cnt = c2
+        att += _ONE
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _vm_attempt(k, key, n):
+    """One attempt of :func:`group.von_mises_angle` (Best & Fisher) at counters n .. n + 2 for
+    k >= 1e-12: (cos psi, sin psi, accepted)."""
+    s4 = np.sqrt(1.0 + 4.0 * k * k)
+    tau = 1.0 + s4
+    rho = 2.0 * k * tau / ((s4 + 1.0) * (tau + np.sqrt(2.0 * tau)))
+    r = (1.0 + rho * rho) / (2.0 * rho)
+    u1 = uniform(key, n)
+    u2 = uniform(key, n + _ONE)
+    u3 = uniform(key, n + _TWO)
+    _, z = sincos_pm_pi(np.pi * u1)
+    f = (1.0 + r * z) / (r + z)
+    c = k * (r - f)
+    ok = (c * (2.0 - c) > u2) or (log_pos(c / u2) + 1.0 - c >= 0.0)
+    sn = np.sqrt(max(0.0, 1.0 - f * f))
+    return f, (sn if u3 >= 0.5 else -sn), ok
+
+
+@njit(cache=True, error_model="numpy")
+def _vm_draws(K, F, G, L, P, Z, Z2, OK, key, uc0, base, m):
+    """(F[s], G[s]) = (cos psi, sin psi) of a von Mises angle of concentration K[s] for the chunk
+    sites s < m (counters from ``(uc0 + s) * SITE_STRIDE + base``; below k = 1e-12 a uniform
+    angle from the first counter, NaN where k is not finite).  L, P, Z, Z2, OK: scratch."""
+    for s in range(m):
+        k = K[s]
+        n = (uc0 + np.uint64(s)) * SITE_STRIDE + base
+        tiny = k < 1e-12
+        bad = not (k >= 0.0 and k < np.inf)
+        f, g, ok = _vm_attempt(1.0 if (tiny or bad) else k, key, n)
+        sh, ch = sincos_pm_pi(np.pi * uniform(key, n))  # the uniform angle 2 pi u of k < 1e-12
+        F[s] = np.nan if bad else ((ch * ch - sh * sh) if tiny else f)
+        G[s] = np.nan if bad else ((2.0 * sh * ch) if tiny else g)
+        OK[s] = ok or tiny or bad
+    cnt = 0
+    for s in range(m):
+        L[cnt] = s
+        P[cnt] = K[s]
+        cnt += 0 if OK[s] else 1
+    att = np.uint64(3)
+    while cnt > 0:
+        for t in range(cnt):
+            Z[t], Z2[t], OK[t] = _vm_attempt(P[t], key, (uc0 + np.uint64(L[t])) * SITE_STRIDE + base + att)
+        c2 = 0
+        for t in range(cnt):
+            s = L[t]
+            ok = OK[t]
+            F[s] = Z[t] if ok else F[s]
+            G[s] = Z2[t] if ok else G[s]
+            L[c2] = s
+            P[c2] = P[t]
+            c2 += 0 if ok else 1
+        cnt = c2
+        att += np.uint64(3)
 
 
 @njit(cache=True, inline="always")
@@ -320,14 +444,15 @@ def _store_rows2(S, us, sw, n0r, n0i, n1r, n1i, p0r, p0i, p1r, p1i):
 
 
 @njit(cache=True, error_model="numpy")
-def _chunk_u2(S, re, im, uc0, m, i, hb, special, k2r, k2i, key, phase_base):
+def _chunk_u2(S, re, im, uc0, m, i, hb, special, k2r, k2i, key, phase_base, L, T, OK):
     """The whole site update of one chunk for nf = 2 (the numbers of the generic path).
 
     ``S``: the slots above, M filled in.  The one subgroup is (i, 1 - i) of the flavour order;
     rows are read in that order by branch-free selects, and the trace and the determinant take
     them back in flavour order, so every sum has the generic kernel's order.  Overrelaxation is
     one vector loop over the sites; the heatbath runs the x0 and von Mises rejection loops
-    site by site between its vector loops.  Returns the accepted phase steps.
+    between its vector loops (:func:`_x0_draws`, :func:`_vm_draws`; L, T, OK their scratch).
+    Returns the accepted phase steps.
     """
     sw = i == 1
     na = 0
@@ -404,15 +529,9 @@ def _chunk_u2(S, re, im, uc0, m, i, hb, special, k2r, k2i, key, phase_base):
             _st(S, S2_V + 2, us, br * ik)
             _st(S, S2_V + 3, us, bi * ik)
             _st(S, S2_V + 4, us, 2.0 * k)
-        # ---- x0, site by site
-        for s in range(m):
-            us = np.uint64(s)
-            alpha = _ld(S, S2_V + 4, us)
-            if alpha < 2e-300:
-                x0 = 2.0  # no field in this subgroup: r = 1 below
-            else:
-                x0, _ = sample_su2_x0(alpha, key, (uc0 + us) * SITE_STRIDE + _TWO)
-            _st(S, S2_V + 5, us, x0)
+        # ---- x0: every site's first attempt in one vector loop, then the rejected ones
+        _x0_draws(S[(S2_V + 4) * CHUNK_SITES:(S2_V + 5) * CHUNK_SITES],
+                  S[(S2_V + 5) * CHUNK_SITES:(S2_V + 6) * CHUNK_SITES], L, T[0], T[1], OK, key, uc0, _TWO, m)
         # ---- the point on the sphere, r = X V^dagger, the rotated rows and Tr W
         for s in range(m):
             us = np.uint64(s)
@@ -426,9 +545,9 @@ def _chunk_u2(S, re, im, uc0, m, i, hb, special, k2r, k2i, key, phase_base):
             rr = np.sqrt(rr2)
             c3 = 2.0 * u - 1.0
             rs = rr * np.sqrt(max(0.0, 1.0 - c3 * c3))
-            ph = np.pi * (2.0 * v - 1.0)
-            x1 = rs * np.cos(ph)
-            x2 = rs * np.sin(ph)
+            sp, cp = sincos_pm_pi(np.pi * (2.0 * v - 1.0))
+            x1 = rs * cp
+            x2 = rs * sp
             x3 = rr * c3
             Ar = 1.0 if one else _ld(S, S2_V, us)
             Ai = 0.0 if one else _ld(S, S2_V + 1, us)
@@ -449,12 +568,15 @@ def _chunk_u2(S, re, im, uc0, m, i, hb, special, k2r, k2i, key, phase_base):
             _st(S, S2_V + 1, us, zi)
             _st(S, S2_V + 2, us, np.sqrt(zr * zr + zi * zi))
         if not special:
-            # ---- the von Mises angle, site by site
+            # ---- the von Mises angle: first attempts in one vector loop, then the rejected ones
+            F = T[3]
+            G = T[4]
+            _vm_draws(S[(S2_V + 2) * CHUNK_SITES:(S2_V + 3) * CHUNK_SITES], F, G, L, T[0], T[1], T[2], OK, key, uc0,
+                      phase_base + _ONE, m)
             for s in range(m):
                 us = np.uint64(s)
-                c, sn, _ = von_mises_angle(_ld(S, S2_V + 2, us), key, (uc0 + us) * SITE_STRIDE + phase_base + _ONE)
-                _st(S, S2_Q, us, c)
-                _st(S, S2_Q + 1, us, sn)
+                _st(S, S2_Q, us, F[s])
+                _st(S, S2_Q + 1, us, G[s])
             # ---- the phase step
             for s in range(m):
                 us = np.uint64(s)
@@ -532,6 +654,12 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
         X = np.empty(CHUNK_SITES + 2 * h if rows > 0 else 1)
         fo = np.empty(CHUNK_SITES, dtype=np.bool_)
         work = np.empty((nf, nf), dtype=np.complex128)
+        # the rejection loops' list of sites and scratch: separate arrays (LLVM's run-time overlap
+        # checks do not cover two rows of one array written in one loop; with them it does not vectorise)
+        L = np.empty(CHUNK_SITES, dtype=np.int64)
+        OK = np.empty(CHUNK_SITES, dtype=np.bool_)
+        T = (np.empty(CHUNK_SITES), np.empty(CHUNK_SITES), np.empty(CHUNK_SITES), np.empty(CHUNK_SITES),
+             np.empty(CHUNK_SITES))
         for ch in range(blk * nch // nblk, (blk + 1) * nch // nblk):
             if rows > 0:
                 r0 = ch * rows
@@ -551,7 +679,7 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
             _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, hdiag, rows, r0, r1,
                          j0, w, m, other)
             if nf == 2 and not generic:
-                acc[ch] = _chunk_u2(S, re, im, uc0, m, perm[0], hb, special, k2r, k2i, key, phase_base)
+                acc[ch] = _chunk_u2(S, re, im, uc0, m, perm[0], hb, special, k2r, k2i, key, phase_base, L, T, OK)
                 continue
             # ---- U and W = U A = U M^dagger
             for comp in range(nc):
@@ -599,13 +727,7 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
                             V[3, s] = bi * ik
                             V[4, s] = 2.0 * k
                         gb = np.uint64(g) * SUB_STRIDE
-                        for s in range(m):
-                            n = (uc0 + np.uint64(s)) * SITE_STRIDE + gb
-                            if V[4, s] < 2e-300:
-                                V[5, s] = 2.0  # no field in this subgroup: r = 1 below
-                            else:
-                                x0, _ = sample_su2_x0(V[4, s], key, n + _TWO)
-                                V[5, s] = x0
+                        _x0_draws(V[4], V[5], L, T[0], T[1], OK, key, uc0, gb + _TWO, m)
                         for s in range(m):
                             n = (uc0 + np.uint64(s)) * SITE_STRIDE + gb
                             u = uniform(key, n)
@@ -617,9 +739,9 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
                             rr = np.sqrt(rr2)
                             c3 = 2.0 * u - 1.0
                             rs = rr * np.sqrt(max(0.0, 1.0 - c3 * c3))
-                            ph = np.pi * (2.0 * v - 1.0)
-                            x1 = rs * np.cos(ph)
-                            x2 = rs * np.sin(ph)
+                            sp, cp = sincos_pm_pi(np.pi * (2.0 * v - 1.0))
+                            x1 = rs * cp
+                            x2 = rs * sp
                             x3 = rr * c3
                             Ar = 1.0 if one else V[0, s]
                             Ai = 0.0 if one else V[1, s]
@@ -660,11 +782,10 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
                     V[1, s] = zi
                     V[2, s] = np.sqrt(zr * zr + zi * zi)
                 if hb:
+                    _vm_draws(V[2], T[3], T[4], L, T[0], T[1], T[2], OK, key, uc0, phase_base + _ONE, m)
                     for s in range(m):
-                        n = (uc0 + np.uint64(s)) * SITE_STRIDE + phase_base
-                        c, sn, _ = von_mises_angle(V[2, s], key, n + _ONE)
-                        Q[0, s] = c
-                        Q[1, s] = sn
+                        Q[0, s] = T[3][s]
+                        Q[1, s] = T[4][s]
                 for s in range(m):
                     kz = V[2, s]
                     big = kz > 1e-300
