@@ -11,7 +11,10 @@ U(3), d = 3, h 0.5, kappa 2, theta pi, beta 0.76 (the tunnelling study's couplin
   the issue (QUOTED_RATES) are kept for comparison only;
 * multicanonical: Wang-Landau weight building, then a frozen production run of exp(-S - W(x)) in
   x = arg omega_h (default) or Im omega_h; sweeps per round trip 2 / (passage rate) from the same
-  passage count (exact Poisson interval), times the CPU seconds per production sweep.
+  passage count (exact Poisson interval), times the CPU seconds per production sweep.  The grid
+  in arg omega_h is [-1.6, 1.6] (the vacua sit near -+pi/3): with the whole circle [-pi, pi] the
+  Wang-Landau weight pushed the L = 8 chain into the third branch at arg = +-pi, where it went
+  round through the wrap (8226 "passages" in 20000 sweeps that never crossed the barrier at 0).
 
 Sweeps per round trip and CPU seconds per sweep are printed separately (the seconds depend on the
 load of the machine).  Single thread:
@@ -128,8 +131,11 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sizes", type=int, nargs="+", default=[8])
     ap.add_argument("--variable", default="arg_omega_h", choices=["im_omega_h", "arg_omega_h"])
-    ap.add_argument("--range", type=float, nargs=2, default=[-math.pi, math.pi])
-    ap.add_argument("--bins", type=int, default=36)
+    ap.add_argument("--range", type=float, nargs=2, default=[-1.6, 1.6],
+                    help="grid of W; for arg omega_h keep it away from +-pi: over the whole circle the walk "
+                         "went round through the third branch at arg = pi and counted passages that never "
+                         "crossed the barrier at 0")
+    ap.add_argument("--bins", type=int, default=24)
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--cut", type=float, default=0.5, help="round-trip regions x <= -cut and x >= cut")
     ap.add_argument("--thermalize", type=int, default=200)
@@ -140,7 +146,7 @@ def main(argv=None):
     ap.add_argument("--wl-chunks", type=int, default=3, help="at most this many chunks per iteration")
     ap.add_argument("--production", type=int, default=20000)
     ap.add_argument("--plain-sweeps", type=int, default=50)
-    ap.add_argument("--overrelax", type=int, default=1, help="overrelaxation passes per biased sweep")
+    ap.add_argument("--overrelax", type=int, default=3, help="overrelaxation passes per biased sweep")
     ap.add_argument("--global-hits", type=int, default=0, help="global phase-move hits per biased sweep (U(nf))")
     ap.add_argument("--global-step", type=float, default=0.5, help="the global move's angle range [-a, a]")
     ap.add_argument("--measure-plain", type=int, nargs=2, action="append", metavar=("L", "SWEEPS"),
