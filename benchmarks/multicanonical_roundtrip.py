@@ -196,9 +196,23 @@ def main(argv=None):
         muca_rt = muca_sweep * rt.time if rt.half_trips else float("inf")
         print(f"{L:3d} {plain:13.4g} {plain_sw:15.4g} {plain_rt:10.4g} {muca_sweep:12.4g} {wl_seconds:7.1f} "
               f"{rt.half_trips:10d} {rt.time:14.4g} {muca_rt:9.4g} {plain_rt / muca_rt:9.3g}", flush=True)
-        print(f"    plain sweeps per round trip {plain_sw:.4g} +- {plain_sw_err:.2g} (fit, extrapolated beyond L = "
-              f"{max(MEASURED_EVENTS)}); muca sweeps per round trip 68 % interval [{rt.time_low:.4g}, "
+        beyond = " extrapolated" if L > max(MEASURED_EVENTS) else ""
+        print(f"    plain sweeps per round trip {plain_sw:.4g} +- {plain_sw_err:.2g} (fit{beyond}); muca sweeps per round trip 68 % interval [{rt.time_low:.4g}, "
               f"{rt.time_high:.4g}]; acceptance {({k: round(float(v), 3) for k, v in run.acceptance.items()})}")
+        from sigmasim.analysis import profile as pr
+
+        weight = chain.frozen_weight()
+        prof = pr.multicanonical_profile(run.x, weight, weight.edges, n_boot=200, seed=L)
+        try:
+            br = pr.barrier(prof, split=0.0, half_width=3)
+            df, dfe = br.values["barrier_mean"], br.errors["barrier_mean"]
+            hour = dfe * math.sqrt(run.seconds / 7200.0)  # 1 h on 2 cores = 7200 CPU s (1/sqrt(t))
+            print(f"    Delta F = F(saddle) - mean F(minima) = {df:.4g} +- {dfe:.2g} (relative {dfe / abs(df):.2g}) from "
+                  f"{run.seconds:.0f} CPU s of production (+ {wl_seconds:.0f} s Wang-Landau); extrapolated as "
+                  f"1/sqrt(t) to 7200 CPU s (1 h on 2 cores): +- {hour:.2g} (relative {hour / abs(df):.2g}); "
+                  f"unvisited bins {list(prof.unvisited)}")
+        except ValueError as exc:
+            print(f"    no barrier: {exc}")
         hist = np.histogram(run.x, bins=args.bins, range=tuple(args.range))[0]
         print(f"    Wang-Landau sweeps {[w['sweeps'] for w in wl]}, flatness "
               f"{[round(w['flatness'], 2) for w in wl]}")
