@@ -577,3 +577,15 @@ def test_plain_rate_fit_bias_and_coverage():
         assert lo < cover / 400 < hi, cover
     with pytest.raises(ValueError, match="two volumes with events"):
         mod.plain_rate_fit({4: (10, 100.0), 6: (0, 1000.0)})
+
+
+def test_benchmark_passages_do_not_count_the_way_round_outside_the_grid():
+    """A phase walk that leaves the grid [-1.6, 1.6] at +1.6 and comes back at -1.6 (through the wrap
+    at +-pi) has not crossed the barrier at 0: that passage is not counted, the others are."""
+    from sigmasim.analysis.profile import round_trips as passages
+
+    mod = _bench_module()
+    x = np.array([-1, -1, 0, 1, 1, 2, -2, -1, -1, 1, 0, -1.0])
+    n, exposure, (lo, hi), outside = mod.passages_inside(x, -1.6, 1.6, 0.5)
+    assert (n, exposure, outside) == (3, 11.0, 2) and lo < 3 / 11 < hi
+    assert passages(x, -0.5, 0.5).half_trips == 4
