@@ -1,15 +1,16 @@
-"""Interface tension from the free-energy barrier in Im omega_h over volumes (a research toy).
+"""Interface tension from the free-energy barrier over volumes (a research toy).
 
-For each L: a multicanonical chain in x = Im omega_h (Wang-Landau weight, then a frozen production
-run; :func:`sigmasim.protocols.multicanonical.run_multicanonical`), the canonical profile F(x) = -ln P(x) by
+For each L: a multicanonical chain in x = arg omega_h (default) or Im omega_h (Wang-Landau
+weight, then a frozen production run; :func:`sigmasim.protocols.multicanonical.run_multicanonical`), the canonical profile F(x) = -ln P(x) by
 reweighting with exp(+W) (:func:`sigmasim.analysis.profile.multicanonical_profile`, block-bootstrap
 errors), the barrier Delta F(L) = F(saddle) - mean F(minima) with located extrema
 (:func:`sigmasim.analysis.profile.barrier`), the round-trip time in the flat ensemble, and finally
 the fit Delta F = 2 sigma L^(d-1) [+ const] (K. Binder, Phys. Rev. A 25 (1982) 1699) with chi^2.
 
-Default couplings: U(3), h = 0.5, kappa = 2, d = 3, theta = pi, beta = 0.76.  The grid of x
-narrows with L (the peaks sit near +-x0 with x0 about 0.3 at these couplings and sharpen as 1/sqrt(V));
-pass --range to change it.
+Default couplings: U(3), h = 0.5, kappa = 2, d = 3, theta = pi, beta = 0.76.  Default grid:
+arg omega_h in [-1.6, 1.6] (the minima sit near -+pi/3; the whole circle lets the walk go round
+through the third branch at +-pi), 3 overrelaxation passes per sweep.  In Im omega_h the peaks sit
+near +-0.3 and sharpen as 1/sqrt(V) (--range -0.45 0.45 --regions 0.2).
 
     python analysis/interface_tension.py --L 4 6 8 10 12 --measurements 200000 --wl-sweeps 20000 \
         --out runs/interface-tension
@@ -48,7 +49,8 @@ def one_volume(L, args, log):
     cfg = config_for(L, args.d, args.beta, args.seed, args.measurements, args.thermalize)
     params = muca_params({"variable": args.variable, "range": list(args.range), "bins": args.bins,
                           "wl_iterations": args.wl_iterations, "wl_sweeps": args.wl_sweeps,
-                          "wl_start": args.wl_start, "overrelax": 1})
+                          "wl_start": args.wl_start, "wl_flatness": args.wl_flatness,
+                          "wl_chunks": args.wl_chunks, "overrelax": args.overrelax})
     t0 = time.process_time()
     res = run_multicanonical(cfg, params, progress=lambda s: log(f"  L = {L}: {s}"))
     cpu = time.process_time() - t0
@@ -77,18 +79,25 @@ def main(argv=None) -> int:
     ap.add_argument("--d", type=int, default=3)
     ap.add_argument("--beta", type=float, default=0.76)
     ap.add_argument("--seed", type=int, default=1)
-    ap.add_argument("--variable", default="im_omega_h", choices=["im_omega_h", "arg_omega_h"],
-                    help="collective variable (arg_omega_h: the phase of omega_h; its minima sit near "
-                         "+-pi/3 at theta = pi: pass --range -1.6 1.6 --regions 0.5)")
-    ap.add_argument("--range", type=float, nargs=2, default=[-0.45, 0.45])
-    ap.add_argument("--bins", type=int, default=36)
+    ap.add_argument("--variable", default="arg_omega_h", choices=["im_omega_h", "arg_omega_h"],
+                    help="collective variable (default arg_omega_h, the phase of omega_h: its minima sit "
+                         "near -+pi/3 at theta = pi; for im_omega_h pass --range -0.45 0.45 --regions 0.2)")
+    ap.add_argument("--range", type=float, nargs=2, default=[-1.6, 1.6],
+                    help="grid of W (in arg omega_h keep it away from +-pi, the third branch)")
+    ap.add_argument("--bins", type=int, default=24)
     ap.add_argument("--half-width", type=int, default=3)
-    ap.add_argument("--regions", type=float, default=0.2, help="round trips between x <= -R and x >= R")
+    ap.add_argument("--regions", type=float, default=0.5, help="round trips between x <= -R and x >= R")
     ap.add_argument("--thermalize", type=int, default=200)
     ap.add_argument("--measurements", type=int, default=10000)
     ap.add_argument("--wl-iterations", type=int, default=8)
     ap.add_argument("--wl-sweeps", type=int, default=500)
     ap.add_argument("--wl-start", type=float, default=0.5)
+    ap.add_argument("--wl-flatness", type=float, default=0.3,
+                    help="repeat a Wang-Landau iteration until the histogram's min / mean reaches this")
+    ap.add_argument("--wl-chunks", type=int, default=3, help="at most this many chunks per iteration")
+    ap.add_argument("--overrelax", type=int, default=3,
+                    help="overrelaxation passes per sweep (3: the fastest round trips per CPU second "
+                         "measured at L = 8, benchmarks/multicanonical_roundtrip.py)")
     ap.add_argument("--bootstrap", type=int, default=200)
     ap.add_argument("--fit-terms", nargs="*", default=["const"], choices=["const", "log"])
     ap.add_argument("--out", default="runs/interface-tension")

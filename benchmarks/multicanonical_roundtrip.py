@@ -2,20 +2,26 @@
 
 U(3), d = 3, h 0.5, kappa 2, theta pi, beta 0.76 (the tunnelling study's couplings).  For each L:
 
-* plain chain: CPU seconds per sweep measured here (Metropolis + one overrelaxation pass, the
-  same sweep as the biased chain), times the expected sweeps per round trip 2 / rate(L) with
-  rate(L) = A exp(-b L^2) fitted to the measured tunnelling rates 0.038, 0.005, 0.0004 per sweep
-  at L = 4, 6, 8 (b = 0.098; these rates are quoted from the tunnelling study, not re-measured
-  here);
+* plain chain: CPU seconds per sweep of the plain kernels (Metropolis + one overrelaxation pass,
+  the same sweep as the biased chain), times the expected sweeps per round trip 2 / rate(L), with
+  rate(L) = A exp(-b L^2) fitted (weighted least squares in ln rate, Poisson weights) to the passage
+  rates MEASURED with ``--measure-plain`` (the biased chain with W = 0, bit for bit the plain chain;
+  a passage is the first entry into arg omega_h >= cut coming from <= -cut or back; the numbers in
+  MEASURED_EVENTS); beyond the largest measured L this is an extrapolation.  The rates quoted in
+  the issue (QUOTED_RATES) are kept for comparison only;
 * multicanonical: Wang-Landau weight building, then a frozen production run of exp(-S - W(x)) in
-  x = Im omega_h (or, --variable arg_omega_h, the phase of omega_h); CPU seconds of the
-  production run per completed round trip x <= -c -> x >= c -> x <= -c (c = --cut).
+  x = arg omega_h (default) or Im omega_h; sweeps per round trip 2 / (passage rate) from the same
+  passage count (exact Poisson interval), times the CPU seconds per production sweep.  The grid
+  in arg omega_h is [-1.6, 1.6] (the vacua sit near -+pi/3): with the whole circle [-pi, pi] the
+  Wang-Landau weight pushed the L = 8 chain into the third branch at arg = +-pi, where it went
+  round through the wrap (8226 "passages" in 20000 sweeps that never crossed the barrier at 0).
 
-Prints one table row per L.  Single thread; run it on an idle machine for clean numbers:
+Sweeps per round trip and CPU seconds per sweep are printed separately (the seconds depend on the
+load of the machine).  Single thread:
 
-    NUMBA_NUM_THREADS=1 python benchmarks/multicanonical_roundtrip.py --sizes 8 --production 20000
-    NUMBA_NUM_THREADS=1 python benchmarks/multicanonical_roundtrip.py --sizes 8 --variable arg_omega_h \
-        --range -3.14159 3.14159 --bins 36 --wl-flatness 0.3 --wl-chunks 3 --wl-sweeps 1000 --cut 0.5
+    NUMBA_NUM_THREADS=1 python benchmarks/multicanonical_roundtrip.py --cut 0.5 \
+        --measure-plain 4 100000 --measure-plain 6 200000 --measure-plain 8 300000
+    NUMBA_NUM_THREADS=1 python benchmarks/multicanonical_roundtrip.py --sizes 8
 
 Research toy numbers, not physical predictions.
 """
@@ -30,18 +36,100 @@ import numpy as np
 
 from sigmasim.chain import Simulation
 from sigmasim.config import config_from_dict
-from sigmasim.analysis.profile import round_trips
 from sigmasim.protocols.multicanonical import BiasedChain, Weight, run_biased, wang_landau
 
-RATES = {4: 0.038, 6: 0.005, 8: 0.0004}  # tunnelling events per sweep of the plain chain (quoted)
+# For comparison only: tunnelling rates per sweep QUOTED in the issue (branch changes of the branch
+# angle, beta not stated there), never re-measured: 0.038, 0.005, 0.0004 at L = 4, 6, 8.
+QUOTED_RATES = {4: 0.038, 6: 0.005, 8: 0.0004}
+
+# Measured here (``--measure-plain``): the plain chain is the biased chain with W = 0 (bit for bit the
+# plain Metropolis + overrelaxation sweep), x = arg omega_h after every sweep; an event is a half trip,
+# the first entry into x >= cut coming from x <= -cut or back (cut 0.5: the round-trip definition of
+# the multicanonical run); L -> (events, exposure in sweeps).  One run each, seed 1, 200 tuning
+# sweeps first: ``--cut 0.5 --measure-plain 4 100000 --measure-plain 6 200000 --measure-plain 8 300000``
+# (branch changes with band 0.5, the quoted rates' definition, in the same runs: 2124, 1402, 968).
+MEASURED_EVENTS = {4: (2202, 99999.0), 6: (1472, 199999.0), 8: (1018, 299999.0)}
 
 
-def plain_rate_fit():
-    """(A, b) of rate = A exp(-b L^2), least squares in ln rate over RATES."""
-    L = np.array(sorted(RATES), dtype=float)
-    y = np.log([RATES[int(v)] for v in L])
-    b, lna = np.polyfit(L ** 2, y, 1)
-    return math.exp(lna), -b
+def plain_rate_fit(events=None):
+    """(A, b, cov) of rate = A exp(-b L^2): weighted least squares in ln rate over the measured
+    events (Poisson: err(ln rate) = 1 / sqrt(n)); cov is the covariance of (ln A, b)."""
+    events = MEASURED_EVENTS if events is None else events
+    L = np.array(sorted(events), dtype=float)
+    n = np.array([events[int(v)][0] for v in L], dtype=float)
+    t = np.array([events[int(v)][1] for v in L], dtype=float)
+    if L.size < 2 or np.any(n < 1):
+        raise ValueError("the fit needs at least two volumes with events")
+    y = np.log(n / t)
+    w = n  # 1 / var(ln rate)
+    X = np.column_stack([np.ones_like(L), -L ** 2])
+    cov = np.linalg.inv(X.T @ (w[:, None] * X))
+    lna, b = cov @ (X.T @ (w * y))
+    return math.exp(lna), float(b), cov
+
+
+def plain_fit_chi2(events=None):
+    """(chi^2, degrees of freedom) of :func:`plain_rate_fit` (Poisson weights n)."""
+    events = MEASURED_EVENTS if events is None else events
+    a, b, _ = plain_rate_fit(events)
+    chi2 = sum(n * (math.log(n / t) - math.log(a) + b * L * L) ** 2 for L, (n, t) in events.items())
+    return chi2, len(events) - 2
+
+
+def plain_round_trip_sweeps(L, events=None):
+    """(expected sweeps per plain round trip 2 / rate(L), its error from the fit's covariance)."""
+    a, b, cov = plain_rate_fit(events)
+    g = np.array([1.0, -float(L) ** 2])  # d ln rate / d (ln A, b)
+    sweeps = 2.0 / (a * math.exp(-b * L * L))
+    return sweeps, sweeps * math.sqrt(float(g @ cov @ g))
+
+
+def passages_inside(x, lo, hi, cut):
+    """Half trips between x <= -cut and x >= cut that stay inside the grid [lo, hi]: the series is cut
+    at every sample outside the grid (for arg omega_h a walk out of the grid can come back through
+    the wrap at +-pi without crossing the barrier at 0) and the passages of the pieces are added.
+    Returns (half trips, exposure in sweeps, 68 % interval of the rate, samples outside)."""
+    from sigmasim.analysis.profile import round_trips as passages
+    from sigmasim.analysis.tunnelling import poisson_interval
+
+    x = np.asarray(x, dtype=float)
+    outside = (x < lo) | (x > hi)
+    n, start = 0, None
+    for i, out in enumerate(np.append(outside, True).tolist()):
+        if not out and start is None:
+            start = i
+        elif out and start is not None:
+            if i - start > 1:
+                n += passages(x[start:i], -cut, cut).half_trips
+            start = None
+    exposure = float(len(x) - 1)
+    return n, exposure, poisson_interval(n, exposure), int(outside.sum())
+
+
+def measure_plain(L, sweeps, cut=0.5, thermalize=200, seed=1, chunk=5000):
+    """The plain chain's passages at L: the biased chain with W = 0 (``arg_omega_h`` tracked by the
+    kernel), Metropolis step tuned during ``thermalize`` sweeps, then ``sweeps`` sweeps.  Returns a
+    dict: half trips with their exact Poisson interval (:func:`sigmasim.analysis.profile.round_trips`),
+    branch changes (:func:`sigmasim.analysis.tunnelling.tunnelling_analysis`, band 0.5, the quoted
+    rates' definition), CPU seconds per sweep of this chain."""
+    from sigmasim.analysis.profile import round_trips as passages
+    from sigmasim.analysis.tunnelling import tunnelling_analysis
+
+    cfg = config(L, seed)
+    chain = BiasedChain(cfg, Weight.flat(-math.pi, math.pi, 2), variable="arg_omega_h", overrelax=1)
+    for _ in range(thermalize):
+        chain.sweeps(1)
+        if chain.state.sweep % cfg.tune_every == 0:
+            chain.tune()
+    t = time.process_time()
+    x = np.concatenate([chain.sweeps(min(chunk, sweeps - i)) for i in range(0, sweeps, chunk)])
+    cpu = time.process_time() - t
+    rt = passages(x, -cut, cut)
+    tun = tunnelling_analysis(np.exp(1j * x), math.pi, cfg.nf, gate=False)
+    return {"L": L, "sweeps": sweeps, "half_trips": rt.half_trips, "exposure": rt.exposure, "rate": rt.rate,
+            "rate_low": rt.rate_low, "rate_high": rt.rate_high, "branch_changes": tun.n_events,
+            "branch_rate": tun.rate, "cpu_per_sweep": cpu / sweeps,
+            "fraction_right": float(np.mean(x > 0))}
 
 
 def config(L, seed=1):
@@ -64,28 +152,57 @@ def plain_seconds_per_sweep(cfg, sweeps):
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sizes", type=int, nargs="+", default=[8])
-    ap.add_argument("--variable", default="im_omega_h", choices=["im_omega_h", "arg_omega_h"])
-    ap.add_argument("--range", type=float, nargs=2, default=[-0.6, 0.6])
-    ap.add_argument("--bins", type=int, default=40)
-    ap.add_argument("--cut", type=float, default=0.2, help="round-trip regions x <= -cut and x >= cut")
+    ap.add_argument("--variable", default="arg_omega_h", choices=["im_omega_h", "arg_omega_h"])
+    ap.add_argument("--range", type=float, nargs=2, default=[-1.6, 1.6],
+                    help="grid of W; for arg omega_h keep it away from +-pi: over the whole circle the walk "
+                         "went round through the third branch at arg = pi and counted passages that never "
+                         "crossed the barrier at 0")
+    ap.add_argument("--bins", type=int, default=24)
+    ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--cut", type=float, default=0.5, help="round-trip regions x <= -cut and x >= cut")
     ap.add_argument("--thermalize", type=int, default=200)
     ap.add_argument("--wl-iterations", type=int, default=8)
-    ap.add_argument("--wl-sweeps", type=int, default=2000)
+    ap.add_argument("--wl-sweeps", type=int, default=1000)
     ap.add_argument("--wl-start", type=float, default=1.0)
-    ap.add_argument("--wl-flatness", type=float, default=0.0, help="repeat an iteration until min/mean reaches it")
-    ap.add_argument("--wl-chunks", type=int, default=1, help="at most this many chunks per iteration")
+    ap.add_argument("--wl-flatness", type=float, default=0.3, help="repeat an iteration until min/mean reaches it")
+    ap.add_argument("--wl-chunks", type=int, default=3, help="at most this many chunks per iteration")
     ap.add_argument("--production", type=int, default=20000)
     ap.add_argument("--plain-sweeps", type=int, default=50)
+    ap.add_argument("--overrelax", type=int, default=3, help="overrelaxation passes per biased sweep")
+    ap.add_argument("--global-hits", type=int, default=0, help="global phase-move hits per biased sweep (U(nf))")
+    ap.add_argument("--global-step", type=float, default=0.5, help="the global move's angle range [-a, a]")
+    ap.add_argument("--measure-plain", type=int, nargs=2, action="append", metavar=("L", "SWEEPS"),
+                    help="measure the plain chain's passages at L in SWEEPS sweeps (repeatable) and exit")
     args = ap.parse_args(argv)
-    a, b = plain_rate_fit()
-    print(f"plain tunnelling rate fit: {a:.4g} exp(-{b:.4f} L^2) per sweep (rates quoted at L = 4, 6, 8)")
-    print(f"{'L':>3} {'plain s/sweep':>13} {'plain s/round trip':>18} {'muca s/sweep':>12} {'WL s':>7} "
-          f"{'round trips':>11} {'muca s/round trip':>17} {'speed-up':>9} {'tau_rt sweeps':>13}")
+    if args.measure_plain:
+        for L, n in args.measure_plain:
+            r = measure_plain(L, n, cut=args.cut, seed=args.seed)
+            print(f"plain L = {L}: {r['half_trips']} half trips in {r['exposure']:.0f} sweeps, rate "
+                  f"{r['rate']:.4g} [{r['rate_low']:.4g}, {r['rate_high']:.4g}] per sweep (68 %), branch changes "
+                  f"{r['branch_changes']} ({r['branch_rate']:.4g} per sweep), {r['cpu_per_sweep']:.3g} CPU s per "
+                  f"sweep (W = 0 biased kernel), fraction x > 0: {r['fraction_right']:.3f}", flush=True)
+        return
+    from sigmasim.analysis.profile import round_trips as passages
+
+    a, b, cov = plain_rate_fit()
+    chi2, dof = plain_fit_chi2()
+    print(f"plain passage rate fit: {a:.4g} exp(-{b:.4f} L^2) per sweep, b +- {math.sqrt(cov[1, 1]):.4f}, "
+          f"chi^2 {chi2:.3g} / {dof} (measured at L = {sorted(MEASURED_EVENTS)}; the quoted rates "
+          f"{QUOTED_RATES} are not used)")
+    Ls = sorted(MEASURED_EVENTS)
+    pairs = {(p, q): {k: MEASURED_EVENTS[k] for k in (p, q)} for p, q in zip(Ls[:-1], Ls[1:])}
     for L in args.sizes:
-        cfg = config(L)
+        spread = ", ".join(f"{plain_round_trip_sweeps(L, ev)[0]:.3g} (L = {p}, {q} only)" for (p, q), ev in pairs.items())
+        print(f"  plain sweeps per round trip at L = {L}: {plain_round_trip_sweeps(L)[0]:.3g} (all); {spread}")
+    print(f"{'L':>3} {'plain s/sweep':>13} {'plain sweeps/rt':>15} {'plain s/rt':>10} {'muca s/sweep':>12} "
+          f"{'WL s':>7} {'half trips':>10} {'muca sweeps/rt':>14} {'muca s/rt':>9} {'speed-up':>9}")
+    for L in args.sizes:
+        cfg = config(L, args.seed)
         plain = plain_seconds_per_sweep(cfg, args.plain_sweeps)
-        plain_rt = plain * 2.0 / (a * math.exp(-b * L * L))
-        chain = BiasedChain(cfg, Weight.flat(*args.range, args.bins), variable=args.variable, overrelax=1)
+        plain_sw, plain_sw_err = plain_round_trip_sweeps(L)
+        plain_rt = plain * plain_sw
+        chain = BiasedChain(cfg, Weight.flat(*args.range, args.bins), variable=args.variable,
+                            overrelax=args.overrelax, global_hits=args.global_hits, global_step=args.global_step)
         t = time.process_time()
         for _ in range(args.thermalize):
             chain.sweeps(1)
@@ -94,18 +211,38 @@ def main(argv=None):
         wl = wang_landau(chain, args.wl_iterations, args.wl_sweeps, args.wl_start, args.wl_flatness,
                          args.wl_chunks)
         wl_seconds = time.process_time() - t
-        run = run_biased(cfg, chain.frozen_weight(), args.production, variable=args.variable, state=chain.state)
-        n = round_trips(run.x, -args.cut, args.cut).round_trips
+        run = run_biased(cfg, chain.frozen_weight(), args.production, variable=args.variable, state=chain.state,
+                         overrelax=args.overrelax, global_hits=args.global_hits, global_step=args.global_step)
+        n_in, expo, (r_lo, r_hi), n_out = passages_inside(run.x, *args.range, args.cut)
+        rt_time = 2.0 * expo / n_in if n_in else float("inf")
         muca_sweep = run.seconds / args.production
-        muca_rt = run.seconds / n if n else float("inf")
-        tau = args.production / n if n else float("inf")
-        print(f"{L:3d} {plain:13.4g} {plain_rt:18.4g} {muca_sweep:12.4g} {wl_seconds:7.1f} {n:11d} "
-              f"{muca_rt:17.4g} {plain_rt / muca_rt:9.3g} {tau:13.4g}", flush=True)
+        muca_rt = muca_sweep * rt_time
+        print(f"{L:3d} {plain:13.4g} {plain_sw:15.4g} {plain_rt:10.4g} {muca_sweep:12.4g} {wl_seconds:7.1f} "
+              f"{n_in:10d} {rt_time:14.4g} {muca_rt:9.4g} {plain_rt / muca_rt:9.3g}", flush=True)
+        rt = passages(run.x, -args.cut, args.cut)
+        print(f"    passages inside the grid {n_in} (68 % interval of sweeps per round trip "
+              f"[{2 / r_hi:.4g}, {2 / r_lo if r_lo > 0 else float('inf'):.4g}]); samples outside the grid {n_out}; "
+              f"passages counted through the outside as well: {rt.half_trips}")
+        beyond = " extrapolated" if L > max(MEASURED_EVENTS) else ""
+        print(f"    plain sweeps per round trip {plain_sw:.4g} +- {plain_sw_err:.2g} (fit{beyond}); acceptance {({k: round(float(v), 3) for k, v in run.acceptance.items()})}")
+        from sigmasim.analysis import profile as pr
+
+        weight = chain.frozen_weight()
+        prof = pr.multicanonical_profile(run.x, weight, weight.edges, n_boot=200, seed=L)
+        try:
+            br = pr.barrier(prof, split=0.0, half_width=3)
+            df, dfe = br.values["barrier_mean"], br.errors["barrier_mean"]
+            hour = dfe * math.sqrt(run.seconds / 7200.0)  # 1 h on 2 cores = 7200 CPU s (1/sqrt(t))
+            print(f"    Delta F = F(saddle) - mean F(minima) = {df:.4g} +- {dfe:.2g} (relative {dfe / abs(df):.2g}) from "
+                  f"{run.seconds:.0f} CPU s of production (+ {wl_seconds:.0f} s Wang-Landau); extrapolated as "
+                  f"1/sqrt(t) to 7200 CPU s (1 h on 2 cores): +- {hour:.2g} (relative {hour / abs(df):.2g}); "
+                  f"unvisited bins {list(prof.unvisited)}")
+        except ValueError as exc:
+            print(f"    no barrier: {exc}")
         hist = np.histogram(run.x, bins=args.bins, range=tuple(args.range))[0]
         print(f"    Wang-Landau sweeps {[w['sweeps'] for w in wl]}, flatness "
               f"{[round(w['flatness'], 2) for w in wl]}")
         print(f"    production histogram of x over {args.range}: {hist.tolist()}")
-
 
 if __name__ == "__main__":
     main()

@@ -39,6 +39,16 @@ Overrelaxation
     preserves the Haar measure; common practice, no source).  The phase
     reflection (also an involution) is accepted with ``min(1, exp(-dS_det - dW))``.
 
+Global phase move (:func:`global_phase_moves`, U(nf) only)
+    ``U_x -> e^{i alpha} U_x`` on every site with alpha uniform in ``[-a, a]`` (a symmetric proposal
+    on a one-parameter orbit of the global U(1); the product Haar measure is invariant).  The
+    kinetic term is invariant, so with ``M = sum_x Tr(H U_x)`` and ``D = sum_x det U_x``
+    ``dS = -Re((e^{i alpha} - 1) M) - 2 kappa Re(e^{i theta_a} (e^{i nf alpha} - 1) D)``, and
+    ``Z -> e^{i alpha} Z`` (modes 0, 2) or ``e^{i nf alpha} Z`` (mode 1); so given the sums every
+    hit costs O(1) and is accepted with ``min(1, exp(-dS - dW))``; the accepted angles add up and the
+    field is rotated once (one pass) at the end.  In mode 2 the move shifts arg omega_h by alpha
+    exactly.  SU(nf) has no such phase (det U = 1): the callers refuse it.
+
 The variable X is recomputed from the field at the start of every colour
 update, so the chain depends only on the field and the step counter (resumes
 continue exactly), and rounding cannot accumulate.
@@ -55,11 +65,13 @@ from sigmasim.kernels.group import det, load, store
 from sigmasim.kernels.tables import phase_table, rotation_table, step_key_nb
 from sigmasim.rng import SITE_STRIDE, bits, uniform
 
-__all__ = ["site_variable", "variable_sum", "collective", "weight_value", "biased_sweeps", "MODES"]
+__all__ = ["site_variable", "variable_sum", "collective", "weight_value", "biased_sweeps", "global_phase_moves",
+           "MODES"]
 
 MODES = {"im_omega_h": 0, "im_det": 1, "arg_omega_h": 2}
 _ONE = np.uint64(1)
 SALT_TABLE = 0x5EED  # the Metropolis table salt of sigmasim.updates (same tables as the plain chain)
+SALT_GLOBAL = 0x6E0BA1  # the global phase move's draws (a stream of its own within a step)
 
 
 @njit(cache=True, inline="always")
@@ -310,3 +322,60 @@ def biased_sweeps(re, im, nbr, nf, special, beta, hdiag, kappa, eta, nhits, n_or
             if wl_f > 0.0:
                 wtab[b] += wl_f
     return step
+
+
+@njit(cache=True)
+def global_phase_moves(re, im, nf, hdiag, kappa, eta, mode, cvar, lo, dx, wtab, wall, nhits, amax, seed_hash,
+                       step, counts):
+    """``nhits`` Metropolis hits of the global phase move ``U_x -> e^{i alpha} U_x`` (module notes),
+    alpha uniform in ``[-amax, amax]``, accepted with ``min(1, exp(-dS - dW))``; then the field is
+    rotated by the sum of the accepted angles.  U(nf) only.  The draws use the key
+    ``step_key(seed, step, SALT_GLOBAL)`` (counters 0 .. nhits - 1), so the chain stays a function
+    of the field and the step counter; ``step`` is not advanced.  ``counts`` (int64 (2,)) is
+    incremented by [accepted, tried].  Returns the total angle applied."""
+    vol = re.shape[1]
+    U = np.empty((nf, nf), dtype=np.complex128)
+    work = np.empty((nf, nf), dtype=np.complex128)
+    msum = complex(0.0, 0.0)
+    dsum = complex(0.0, 0.0)
+    zsum = complex(0.0, 0.0)
+    for s in range(vol):
+        load(re, im, s, nf, U)
+        t = complex(0.0, 0.0)
+        m = complex(0.0, 0.0)
+        for a in range(nf):
+            t += U[a, a]
+            m += hdiag[a] * U[a, a]
+        msum += m
+        d = det(U, nf, work)
+        dsum += d
+        zsum += cvar * d if mode == 1 else cvar * t / nf
+    key = step_key_nb(seed_hash, step, SALT_GLOBAL)
+    wcur = weight_value(collective(zsum, vol, mode), lo, dx, wtab, wall)
+    total = 0.0
+    for hit in range(nhits):
+        alpha = amax * (2.0 * uniform(key, np.uint64(2 * hit)) - 1.0)
+        e = complex(np.cos(alpha), np.sin(alpha))
+        en = complex(np.cos(nf * alpha), np.sin(nf * alpha))
+        dS = -((e - 1.0) * msum).real - 2.0 * kappa * (eta * (en - 1.0) * dsum).real
+        znew = zsum * (en if mode == 1 else e)
+        wnew = weight_value(collective(znew, vol, mode), lo, dx, wtab, wall)
+        counts[1] += 1
+        if _accept(dS + (wnew - wcur), uniform(key, np.uint64(2 * hit + 1))):
+            msum *= e
+            dsum *= en
+            zsum = znew
+            wcur = wnew
+            total += alpha
+            counts[0] += 1
+    if total != 0.0:
+        c = np.cos(total)
+        sn = np.sin(total)
+        rows = re.shape[0]
+        for s in range(vol):
+            for r in range(rows):
+                a = re[r, s]
+                b = im[r, s]
+                re[r, s] = c * a - sn * b
+                im[r, s] = sn * a + c * b
+    return total

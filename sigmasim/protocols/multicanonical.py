@@ -49,7 +49,7 @@ from sigmasim.models import chiral
 from sigmasim.chain import ChainState, Simulation
 from sigmasim.config import RunConfig
 from sigmasim.errors import ConfigError
-from sigmasim.kernels.bias import MODES, biased_sweeps, collective, variable_sum
+from sigmasim.kernels.bias import MODES, biased_sweeps, collective, global_phase_moves, variable_sum
 from sigmasim.rng import mix64_int
 
 __all__ = ["Weight", "BiasedChain", "BiasedRun", "run_biased", "wang_landau", "reweighted_mean", "VARIABLES",
@@ -138,12 +138,19 @@ class BiasedChain:
 
     The chain model only: nf >= 1 chiral model, any group; Metropolis (``metropolis_hits`` of the
     config, step ``state.step_size``) plus ``overrelax`` overrelaxation passes per sweep.
+    ``global_hits`` > 0 (U(nf) only) starts every sweep with that many hits of the global phase move
+    U_x -> e^{i alpha} U_x, alpha uniform in [-global_step, global_step]
+    (:func:`sigmasim.kernels.bias.global_phase_moves`); 0 (default) leaves the chain unchanged.
     """
 
     def __init__(self, config: RunConfig, weight: Weight, variable: str = "im_omega_h", overrelax: int = 1,
-                 state: ChainState | None = None):
+                 state: ChainState | None = None, global_hits: int = 0, global_step: float = 0.5):
         if not models.get(config.kind).UNITARY:
             raise ConfigError("multicanonical sampling supports models with a unitary field only (model.kind = 'chiral')")
+        if global_hits and config.special:
+            raise ConfigError("the global phase move needs model.group = 'U' (SU(nf) has no U(1) phase)")
+        if not (global_hits >= 0 and math.isfinite(global_step) and global_step > 0):
+            raise ConfigError(f"the global phase move needs hits >= 0 and a step > 0, got {global_hits}, {global_step}")
         self.sim = Simulation(config, state)
         self.config = config
         self.weight = weight
@@ -152,6 +159,9 @@ class BiasedChain:
         self.overrelax = int(overrelax)
         self.seed_hash = np.uint64(mix64_int(config.seed))
         self.counts = np.zeros(4, dtype=np.int64)
+        self.global_hits = int(global_hits)
+        self.global_step = float(global_step)
+        self.global_counts = np.zeros(2, dtype=np.int64)  # global phase move: accepted, tried
         self.values = np.array(weight.values, dtype=np.float64)  # the kernel's (Wang-Landau: mutable) table
         self._x = np.empty(1, dtype=np.float64)  # x after the kernel's sweep
         self._wl_f = 0.0
@@ -176,6 +186,10 @@ class BiasedChain:
         cfg, st, lat = self.config, self.sim.state, self.sim.lattice
         w = self.weight
         before = self.counts.copy()
+        if self.global_hits:
+            global_phase_moves(st.re, st.im, cfg.nf, self.sim.hdiag, float(cfg.kappa), complex(cfg.eta), self.mode,
+                               self.cvar, float(w.lo), float(w.dx), self.values, float(w.wall), self.global_hits,
+                               self.global_step, self.seed_hash, st.step, self.global_counts)
         st.step = int(biased_sweeps(st.re, st.im, lat.neighbours, cfg.nf, cfg.special, float(cfg.beta),
                                     self.sim.hdiag, float(cfg.kappa), complex(cfg.eta), int(cfg.metropolis_hits),
                                     self.overrelax, float(st.step_size), self.seed_hash, st.step, 1,
@@ -275,25 +289,31 @@ def _biased_run(chain: BiasedChain, weight: Weight, pos: dict, seconds: float) -
     c = chain.counts
     acc = {"metropolis": c[0] / c[1] if c[1] else float("nan"),
            "overrelax": c[2] / c[3] if c[3] else float("nan")}
+    if chain.global_hits:
+        g = chain.global_counts
+        acc["global_phase"] = g[0] / g[1] if g[1] else float("nan")
     return BiasedRun(xs, weight(xs), series, weight, chain.state, acc, seconds)
 
 
 def run_biased(config: RunConfig, weight: Weight, sweeps: int, *, measure_every: int = 1, thermalize: int = 0,
-               variable: str = "im_omega_h", overrelax: int = 1, state: ChainState | None = None) -> BiasedRun:
+               variable: str = "im_omega_h", overrelax: int = 1, state: ChainState | None = None,
+               global_hits: int = 0, global_step: float = 0.5) -> BiasedRun:
     """Run an exact Markov chain of exp(-S - W(x)) with a frozen ``weight``.
 
     ``thermalize`` sweeps come first (with the same weight; the Metropolis step is tuned toward
     ``run.target_acceptance`` every ``run.tune_every`` sweeps there, and frozen after), then
     ``sweeps`` sweeps with a measurement every ``measure_every``.  Seeded by ``config.seed``;
     with ``state`` given the chain continues from it (same numbers as one longer run).
+    ``global_hits``, ``global_step``: the global phase move (:class:`BiasedChain`).
     """
-    chain = BiasedChain(config, weight, variable, overrelax, state)
+    chain = BiasedChain(config, weight, variable, overrelax, state, global_hits, global_step)
     t0 = time.process_time()
     for _ in range(int(thermalize)):
         chain.sweeps(1)
         if chain.state.sweep % config.tune_every == 0:
             chain.tune()
     chain.counts[:] = 0
+    chain.global_counts[:] = 0
     every = int(measure_every)
     pos = {"start": chain.state.sweep, "x": [], "records": []}
     for _ in _production_steps(chain, (int(sweeps) // every) * every, every, pos):
