@@ -80,7 +80,9 @@ def test_effective_mass_limits_show_every_point(u1):
 
 
 def test_no_empty_dwell_time_figure(tmp_path, u1):
-    ra = _ra({"nf": 2, "beta": 0.6, "mass": 0.3, "kappa": 0.5, "theta": 1.0}, meas=60)
+    # deep in one vacuum (h = 2 at theta = 0): no branch change in 60 measurements for any of seeds 1..8,
+    # not only for this seed (at h = 0.3, theta = 1 five of eight seeds changed branch)
+    ra = _ra({"nf": 2, "beta": 0.6, "mass": 2.0, "kappa": 0.5, "theta": 0.0}, meas=60)
     assert ra.tunnelling is not None and len(ra.tunnelling.completed) == 0
     names = [p.name for p in plots.plot_all(ra, tmp_path)]
     assert not any("dwell_times" in n for n in names) and any("omega_plane" in n for n in names)

@@ -197,7 +197,10 @@ def test_demo_runs(tmp_path, capsys):
     assert {(d.config.start, d.config.seed) for d in runs.values()} == {("hot", 2026)}
     for th in (3.0, 3.3):
         k = vacua.branch_label(runs[th].series["omega_h"], th, 3)
-        assert set(np.unique(k)) == {0, -1}
+        # both branches next to pi hold a good share; the third (k = +1, tree-level energy
+        # -3m cos((theta + 2 pi)/3) > 0, far above) is at most a rare fluctuation of the 4^3 lattice
+        assert np.mean(k == 0) > 0.05 and np.mean(k == -1) > 0.05, np.unique(k, return_counts=True)
+        assert np.mean((k != 0) & (k != -1)) < 0.01, np.unique(k, return_counts=True)
     assert runs[2.6].series["omega_h"].imag.mean() > 0 > runs[3.7].series["omega_h"].imag.mean()
     assert "k = 0 global" in out and "k = -1 global" in out
 
