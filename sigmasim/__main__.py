@@ -1,22 +1,21 @@
-"""``python -m sigmasim`` is the same as the ``sigmasim`` command."""
+"""``python -m sigmasim`` is the same as the ``sigmasim`` command.
+
+Ctrl-C or SIGTERM while the modules are still being imported ends the command like an interrupt
+later on: one line, exit status 130, no traceback (:mod:`sigmasim.interrupt` keeps the
+KeyboardInterrupt out of the imports; :func:`_leave` keeps the status 130).
+"""
 
 import os
-import signal
 import sys
 
 
-def _stop(signum, frame):
-    raise KeyboardInterrupt
-
-
 def _leave(code: int) -> None:
-    """Exit with ``code``; after an interrupt (130) without the interpreter's own exit path.
+    """Exit with ``code``; after an interrupt (130) by ``os._exit`` with the streams flushed.
 
-    A SIGTERM at start-up can raise KeyboardInterrupt inside code that a library runs through
-    ``eval`` while it is being imported (``collections.namedtuple`` does); CPython 3.11 then marks
-    the interrupt as unhandled although ``main`` caught it, and ``python -m`` ends the process by
-    SIGINT (status -2) instead of 130 (seen in about 5 of 100 signals 0.12-0.4 s after start).
-    The run has written its checkpoint and closed its files before 130 comes back here.
+    A KeyboardInterrupt that once passed through code run by ``eval`` (``collections.namedtuple``
+    does that at import time) makes CPython 3.11 end a ``python -m`` process by SIGINT (status -2)
+    even when the interrupt was caught.  The command has written its checkpoint and closed its
+    files before 130 comes back here.
     """
     if code == 130:
         for stream in (sys.stdout, sys.stderr):
@@ -29,7 +28,9 @@ def _leave(code: int) -> None:
 
 
 try:
-    signal.signal(signal.SIGTERM, _stop)  # before the imports: SIGTERM at start-up exits 130 too
+    from sigmasim import interrupt
+
+    interrupt.install()  # before the heavy imports: a signal at start-up exits 130 too
     from sigmasim.cli import main
 
     code = main()

@@ -1061,13 +1061,13 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _terminate_as_interrupt() -> None:
-    """SIGTERM before a run installs its own handler stops the command like Ctrl-C (exit 130)."""
-    def handler(signum, frame):
-        raise KeyboardInterrupt
+    """SIGTERM before a run installs its own handler stops the command like Ctrl-C (exit 130);
+    :func:`sigmasim.interrupt.handler` keeps it out of the middle of an import."""
+    from sigmasim import interrupt
 
     if threading.current_thread() is threading.main_thread():
         if signal.getsignal(signal.SIGTERM) in (signal.SIG_DFL, None):
-            signal.signal(signal.SIGTERM, handler)
+            interrupt.install((signal.SIGTERM,))
 
 
 def main(argv=None) -> int:

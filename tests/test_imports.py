@@ -14,6 +14,7 @@ PKG = Path(__file__).resolve().parents[1] / "sigmasim"
 LAYERS = [
     "sigmasim",
     "sigmasim.errors",
+    "sigmasim.interrupt",
     "sigmasim.config",
     "sigmasim.lattice",
     "sigmasim.rng",
