@@ -83,6 +83,19 @@ UNF_SOURCE = ROOT / "benchmarks" / "c" / "unf.c"
 C_ALGO = {"metropolis": "metro", "heatbath": "hb", "overrelax": "or", "hbor": "hbor"}
 
 
+def physics_comparison(nb: dict, c: dict) -> str:
+    """S/V and Re Tr U / nf of a numba and a C run with z = difference / combined error, marked when
+    |z| > 4."""
+    z = []
+    for k in ("action_per_site", "retr_over_nf"):
+        e = np.hypot(nb[k + "_err"], c[k + "_err"])
+        z.append((nb[k] - c[k]) / e if e > 0 else float("nan"))
+    return (f"S/V numba {nb['action_per_site']:.5f}+-{nb['action_per_site_err']:.5f} "
+            f"C {c['action_per_site']:.5f}+-{c['action_per_site_err']:.5f} (z {z[0]:+.1f});  "
+            f"ReTrU/nf numba {nb['retr_over_nf']:.5f}+-{nb['retr_over_nf_err']:.5f} "
+            f"C {c['retr_over_nf']:.5f}+-{c['retr_over_nf_err']:.5f} (z {z[1]:+.1f})"
+            + ("  <-- CHECK" if max(abs(x) for x in z) > 4 else ""))
+
 def hits_per_site(cfg, algo: str) -> int:
     """Site-hits per site and sweep: Metropolis hits, 4 for the 1 + 3 schedule, else 1."""
     if algo == "metropolis":
@@ -449,15 +462,7 @@ def unf_section(models: list, no_c: bool, quick: bool, secs: float, therm: int, 
                 nb, c = res.get((model, algo, "numba")), res.get((model, algo, "c"))
                 if nb is None or c is None:
                     continue
-                z = []
-                for k in ("action_per_site", "retr_over_nf"):
-                    e = np.hypot(nb[k + "_err"], c[k + "_err"])
-                    z.append((nb[k] - c[k]) / e if e > 0 else float("nan"))
-                print(f"  {model} {algo:11s} S/V numba {nb['action_per_site']:.5f}+-{nb['action_per_site_err']:.5f} "
-                      f"C {c['action_per_site']:.5f}+-{c['action_per_site_err']:.5f} (z {z[0]:+.1f});  "
-                      f"ReTrU/nf numba {nb['retr_over_nf']:.5f}+-{nb['retr_over_nf_err']:.5f} "
-                      f"C {c['retr_over_nf']:.5f}+-{c['retr_over_nf_err']:.5f} (z {z[1]:+.1f})"
-                      + ("  <-- CHECK" if max(abs(x) for x in z) > 4 else ""))
+                print(f"  {model} {algo:11s} {physics_comparison(nb, c)}")
         print("== unf.c at beta = 0 against the exact one-site values (sigmasim.exact.one_site_u; 8^3, "
               "1 hb + 3 or)")
         for model in models:
@@ -786,15 +791,7 @@ def main(argv=None) -> int:
             print(f"  {model}: numba S/V {nb['action_per_site']:.5f}+-{nb['action_per_site_err']:.5f}, "
                   f"ReTrU/nf {nb['retr_over_nf']:.5f}+-{nb['retr_over_nf_err']:.5f} (no C run)")
             continue
-        z = []
-        for k in ("action_per_site", "retr_over_nf"):
-            e = np.hypot(nb[k + "_err"], c[k + "_err"])
-            z.append((nb[k] - c[k]) / e if e > 0 else float("nan"))
-        print(f"  {model}: S/V numba {nb['action_per_site']:.5f}+-{nb['action_per_site_err']:.5f} "
-              f"C {c['action_per_site']:.5f}+-{c['action_per_site_err']:.5f} (z {z[0]:+.1f});  "
-              f"ReTrU/nf numba {nb['retr_over_nf']:.5f}+-{nb['retr_over_nf_err']:.5f} "
-              f"C {c['retr_over_nf']:.5f}+-{c['retr_over_nf_err']:.5f} (z {z[1]:+.1f})"
-              + ("  <-- CHECK" if max(abs(x) for x in z) > 4 else ""))
+        print(f"  {model}: {physics_comparison(nb, c)}")
 
     if unf_models:
         unf_section(unf_models, args.no_c, args.quick, secs, 60 if args.quick else 100, emit, show)

@@ -9,12 +9,27 @@ The three protocols (:mod:`~sigmasim.protocols.hysteresis`, :mod:`~sigmasim.prot
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 
 from sigmasim.config import RunConfig, _check, _suggest, config_from_dict, read_toml
-from sigmasim.errors import ConfigError
+from sigmasim.errors import ConfigError, RunFileError
 
-__all__ = ["split_protocol", "load_protocol"]
+__all__ = ["split_protocol", "load_protocol", "h5_output"]
+
+
+def h5_output(path) -> Path:
+    """The ``--out`` of a protocol command as a Path: it must end in .h5, and its folder is created
+    (one-line errors: ConfigError, RunFileError)."""
+    path = Path(path)
+    if path.suffix != ".h5":
+        raise ConfigError(f"--out must end in .h5, got {path}")
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise RunFileError(f"cannot create the output folder {path.parent}: {exc.strerror}") from None
+    return path
 
 
 def split_protocol(raw: dict, table: str, schema: dict) -> tuple[dict, dict]:

@@ -80,7 +80,7 @@ import numpy as np
 from sigmasim.config import RunConfig
 from sigmasim.errors import ConfigError, RunFileError
 from sigmasim import models
-from sigmasim.protocols.common import _mean_err, split_protocol, sweeps
+from sigmasim.protocols.common import _mean_err, h5_output, split_protocol, sweeps
 
 __all__ = ["SWEEP_FORMAT", "SWEEP_SCHEMA", "SweepParams", "SweepResult", "run_sweep", "theta_derivative",
            "tree_level", "write_sweep", "read_sweep", "plot_sweep", "sweep_checkpoint_path", "load_hysteresis",
@@ -552,13 +552,7 @@ def execute(config: RunConfig, params: SweepParams, path, overwrite: bool = Fals
     from sigmasim.protocols.common import _set_threads
     from sigmasim.storage import lock_path, release_lock, take_lock
 
-    path = Path(path)
-    if path.suffix != ".h5":
-        raise ConfigError(f"--out must end in .h5, got {path}")
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise RunFileError(f"cannot create the output folder {path.parent}: {exc.strerror}") from None
+    path = h5_output(path)
     ckpt = sweep_checkpoint_path(path)
     lock = take_lock(lock_path(path), "sigmasim process", path)
     try:

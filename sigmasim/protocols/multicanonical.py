@@ -51,6 +51,7 @@ from sigmasim.config import RunConfig
 from sigmasim.errors import ConfigError
 from sigmasim.kernels.bias import MODES, biased_sweeps, collective, global_phase_moves, variable_sum
 from sigmasim.rng import mix64_int
+from sigmasim.protocols.common import h5_output
 
 __all__ = ["Weight", "BiasedChain", "BiasedRun", "run_biased", "wang_landau", "reweighted_mean", "VARIABLES",
            "MUCA_SCHEMA", "muca_params", "MucaResult", "run_multicanonical", "analyse", "execute",
@@ -815,13 +816,7 @@ def execute(config: RunConfig, params: dict, path, overwrite: bool = False, prog
     from sigmasim.storage import (check_multicanonical_target, hdf5_root_attrs, lock_path, release_lock, take_lock,
                                   write_multicanonical)
 
-    path = Path(path)
-    if path.suffix != ".h5":
-        raise ConfigError(f"--out must end in .h5, got {path}")
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise RunFileError(f"cannot create the output folder {path.parent}: {exc.strerror}") from None
+    path = h5_output(path)
     ckpt = checkpoint_path(path)
     lock = take_lock(lock_path(path), "sigmasim process", path)
     try:
