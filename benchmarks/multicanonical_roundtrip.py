@@ -32,7 +32,10 @@ lower bound; the fit over L = 4, 6 alone (two points, no degree of freedom left)
 passages in 20000 multicanonical sweeps, 191 sweeps and 0.53 CPU s per round trip, speed-up >= 74
 (about 700 with the extrapolated plain rate); but the Wang-Landau stage (8 x 3000 sweeps) did not
 flatten and the production run never left arg omega_h in [-0.93, 0.93], short of the vacua near
--+pi/3, so the barrier height it prints is not the one between the two minima.
+-+pi/3, so the barrier height it prints is not the one between the two minima.  At L = 12, beta 0.80
+(``--beta 0.80 --sizes 12 --wl-chunks 2 --production 10000``, 240 CPU s) the walk failed: Wang-Landau
+flatness 0 in all 8 iterations, and all 10000 production sweeps in the one bin arg omega_h in
+[-1.20, -1.07] (the vacuum near -pi/3), no passage.  Not yet understood; not a speed-up result.
 
 Research toy numbers, not physical predictions.
 """
