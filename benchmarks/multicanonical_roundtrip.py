@@ -35,7 +35,13 @@ flatten and the production run never left arg omega_h in [-0.93, 0.93], short of
 -+pi/3, so the barrier height it prints is not the one between the two minima.  At L = 12, beta 0.80
 (``--beta 0.80 --sizes 12 --wl-chunks 2 --production 10000``, 240 CPU s) the walk failed: Wang-Landau
 flatness 0 in all 8 iterations, and all 10000 production sweeps in the one bin arg omega_h in
-[-1.20, -1.07] (the vacuum near -pi/3), no passage.  Not yet understood; not a speed-up result.
+[-1.20, -1.07] (the vacuum near -pi/3), no passage.  A likely reason (not proven): W is constant
+inside a bin, and at L = 12 the vacuum is narrower than a bin of 0.13, so nothing pushes x to the bin
+edge.  With 96 bins (``--beta 0.80 --sizes 12 --bins 96 --wl-chunks 1 --wl-sweeps 2000 --production
+5000 --plain-sweeps 10``, 147 CPU s) the walk crossed: 3 passages in 5000 sweeps, 3333 sweeps
+(68 %: 1689-7312) and 24 CPU s per round trip, speed-up >= 5.9 against the plain lower bound from
+L = 8 (1.09e5 sweeps; the L = 4, 6 fit extrapolates to 1.5e12); Wang-Landau still not flat (flatness
+0), x visited [-1.1, 1.1] only, so its barrier height (30.4 +- 0.7) is not trustworthy either.
 
 Research toy numbers, not physical predictions.
 """
