@@ -22,6 +22,26 @@ load of the machine).  Single thread:
     NUMBA_NUM_THREADS=1 python benchmarks/multicanonical_roundtrip.py --cut 0.5 \
         --measure-plain 4 100000 --measure-plain 6 200000 --measure-plain 8 300000
     NUMBA_NUM_THREADS=1 python benchmarks/multicanonical_roundtrip.py --sizes 8
+    NUMBA_NUM_THREADS=1 python benchmarks/multicanonical_roundtrip.py --beta 0.80 --sizes 8 12
+
+``--beta`` picks the couplings' beta and the plain rates measured at it (MEASURED_EVENTS_BY_BETA).
+At beta 0.80 the plain chain froze at L = 8 (no passage in 10^5 sweeps), so its round trip there is
+a lower bound (2 / the 68 % upper limit of the rate, 1.09e5 sweeps) and the speed-up printed is a
+lower bound; the fit over L = 4, 6 alone (two points, no degree of freedom left) extrapolates to
+1.05e6 sweeps at L = 8.  Measured at L = 8, beta 0.80 (``--beta 0.80 --sizes 8``, 204 CPU s): 209
+passages in 20000 multicanonical sweeps, 191 sweeps and 0.53 CPU s per round trip, speed-up >= 74
+(about 700 with the extrapolated plain rate); but the Wang-Landau stage (8 x 3000 sweeps) did not
+flatten and the production run never left arg omega_h in [-0.93, 0.93], short of the vacua near
+-+pi/3, so the barrier height it prints is not the one between the two minima.  At L = 12, beta 0.80
+(``--beta 0.80 --sizes 12 --wl-chunks 2 --production 10000``, 240 CPU s) the walk failed: Wang-Landau
+flatness 0 in all 8 iterations, and all 10000 production sweeps in the one bin arg omega_h in
+[-1.20, -1.07] (the vacuum near -pi/3), no passage.  A likely reason (not proven): W is constant
+inside a bin, and at L = 12 the vacuum is narrower than a bin of 0.13, so nothing pushes x to the bin
+edge.  With 96 bins (``--beta 0.80 --sizes 12 --bins 96 --wl-chunks 1 --wl-sweeps 2000 --production
+5000 --plain-sweeps 10``, 147 CPU s) the walk crossed: 3 passages in 5000 sweeps, 3333 sweeps
+(68 %: 1689-7312) and 24 CPU s per round trip, speed-up >= 5.9 against the plain lower bound from
+L = 8 (1.09e5 sweeps; the L = 4, 6 fit extrapolates to 1.5e12); Wang-Landau still not flat (flatness
+0), x visited [-1.1, 1.1] only, so its barrier height (30.4 +- 0.7) is not trustworthy either.
 
 Research toy numbers, not physical predictions.
 """
@@ -49,6 +69,34 @@ QUOTED_RATES = {4: 0.038, 6: 0.005, 8: 0.0004}
 # sweeps first: ``--cut 0.5 --measure-plain 4 100000 --measure-plain 6 200000 --measure-plain 8 300000``
 # (branch changes with band 0.5, the quoted rates' definition, in the same runs: 2124, 1402, 968).
 MEASURED_EVENTS = {4: (2202, 99999.0), 6: (1472, 199999.0), 8: (1018, 299999.0)}
+
+# The same measurement at larger beta, 10^5 sweeps per L, seed 1, one run each:
+# ``--beta B --measure-plain 4 100000 --measure-plain 6 100000 --measure-plain 8 100000``.  At beta
+# 0.80 it froze at L = 8 (27 passages at L = 6, none at L = 8), at 0.84 from L = 6 on (no passage in
+# 10^5 sweeps: the chain stayed in the vacuum where it started).  beta -> {L: (events, exposure in sweeps)}.
+MEASURED_EVENTS_BY_BETA = {
+    0.76: MEASURED_EVENTS,
+    0.80: {4: (929, 99998.0), 6: (27, 99999.0), 8: (0, 99999.0)},
+    0.84: {4: (388, 99999.0), 6: (0, 99999.0), 8: (0, 99999.0)},
+}
+
+
+def plain_round_trip_estimate(L, events):
+    """Expected plain sweeps per round trip at L from the measured ``events`` {L: (n, exposure)}:
+    returns (sweeps, error, kind).  With two or more volumes with events: 2 / rate(L) from
+    :func:`plain_rate_fit` over those volumes (kind "fit", or "fit, extrapolated" beyond the largest of
+    them).  Otherwise, if some measured volume L0 <= L had no event: a lower bound 2 / (68 % upper limit
+    of the rate at L0) (kind "lower bound from L0", error nan; it assumes the rate does not grow with
+    L); else ValueError."""
+    from sigmasim.analysis.tunnelling import poisson_interval
+
+    seen = {k: v for k, v in events.items() if v[0] > 0}
+    if len(seen) >= 2 and L <= max(seen) or not any(n == 0 and k <= L for k, (n, _) in events.items()):
+        sweeps, err = plain_round_trip_sweeps(L, seen)
+        return sweeps, err, "fit" if L <= max(seen) else "fit, extrapolated"
+    L0 = max(k for k, (n, _) in events.items() if n == 0 and k <= L)
+    hi = poisson_interval(0, events[L0][1])[1]
+    return 2.0 / hi, float("nan"), f"lower bound from L = {L0}"
 
 
 def plain_rate_fit(events=None):
@@ -106,7 +154,7 @@ def passages_inside(x, lo, hi, cut):
     return n, exposure, poisson_interval(n, exposure), int(outside.sum())
 
 
-def measure_plain(L, sweeps, cut=0.5, thermalize=200, seed=1, chunk=5000):
+def measure_plain(L, sweeps, cut=0.5, thermalize=200, seed=1, chunk=5000, beta=0.76):
     """The plain chain's passages at L: the biased chain with W = 0 (``arg_omega_h`` tracked by the
     kernel), Metropolis step tuned during ``thermalize`` sweeps, then ``sweeps`` sweeps.  Returns a
     dict: half trips with their exact Poisson interval (:func:`sigmasim.analysis.profile.round_trips`),
@@ -115,7 +163,7 @@ def measure_plain(L, sweeps, cut=0.5, thermalize=200, seed=1, chunk=5000):
     from sigmasim.analysis.profile import round_trips as passages
     from sigmasim.analysis.tunnelling import tunnelling_analysis
 
-    cfg = config(L, seed)
+    cfg = config(L, seed, beta)
     chain = BiasedChain(cfg, Weight.flat(-math.pi, math.pi, 2), variable="arg_omega_h", overrelax=1)
     for _ in range(thermalize):
         chain.sweeps(1)
@@ -132,10 +180,10 @@ def measure_plain(L, sweeps, cut=0.5, thermalize=200, seed=1, chunk=5000):
             "fraction_right": float(np.mean(x > 0))}
 
 
-def config(L, seed=1):
+def config(L, seed=1, beta=0.76):
     return config_from_dict({
         "name": f"muca-bench-{L}", "seed": seed, "lattice": {"shape": [L, L, L]},
-        "model": {"group": "U", "nf": 3, "beta": 0.76, "mass": 0.5, "kappa": 2.0, "theta": math.pi},
+        "model": {"group": "U", "nf": 3, "beta": beta, "mass": 0.5, "kappa": 2.0, "theta": math.pi},
         "updates": {"schedule": [{"update": "metropolis", "repeat": 1}, {"update": "overrelax", "repeat": 1}]},
         "run": {"start": "hot", "thermalize": 0, "measurements": 1, "threads": 1}})
 
@@ -152,6 +200,8 @@ def plain_seconds_per_sweep(cfg, sweeps):
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sizes", type=int, nargs="+", default=[8])
+    ap.add_argument("--beta", type=float, default=0.76,
+                    help="beta; the plain chain's rates are taken from the measurements at this beta")
     ap.add_argument("--variable", default="arg_omega_h", choices=["im_omega_h", "arg_omega_h"])
     ap.add_argument("--range", type=float, nargs=2, default=[-1.6, 1.6],
                     help="grid of W; for arg omega_h keep it away from +-pi: over the whole circle the walk "
@@ -176,30 +226,37 @@ def main(argv=None):
     args = ap.parse_args(argv)
     if args.measure_plain:
         for L, n in args.measure_plain:
-            r = measure_plain(L, n, cut=args.cut, seed=args.seed)
-            print(f"plain L = {L}: {r['half_trips']} half trips in {r['exposure']:.0f} sweeps, rate "
+            r = measure_plain(L, n, cut=args.cut, seed=args.seed, beta=args.beta)
+            print(f"plain beta = {args.beta} L = {L}: {r['half_trips']} half trips in {r['exposure']:.0f} sweeps, rate "
                   f"{r['rate']:.4g} [{r['rate_low']:.4g}, {r['rate_high']:.4g}] per sweep (68 %), branch changes "
                   f"{r['branch_changes']} ({r['branch_rate']:.4g} per sweep), {r['cpu_per_sweep']:.3g} CPU s per "
                   f"sweep (W = 0 biased kernel), fraction x > 0: {r['fraction_right']:.3f}", flush=True)
         return
     from sigmasim.analysis.profile import round_trips as passages
 
-    a, b, cov = plain_rate_fit()
-    chi2, dof = plain_fit_chi2()
-    print(f"plain passage rate fit: {a:.4g} exp(-{b:.4f} L^2) per sweep, b +- {math.sqrt(cov[1, 1]):.4f}, "
-          f"chi^2 {chi2:.3g} / {dof} (measured at L = {sorted(MEASURED_EVENTS)}; the quoted rates "
-          f"{QUOTED_RATES} are not used)")
-    Ls = sorted(MEASURED_EVENTS)
-    pairs = {(p, q): {k: MEASURED_EVENTS[k] for k in (p, q)} for p, q in zip(Ls[:-1], Ls[1:])}
-    for L in args.sizes:
-        spread = ", ".join(f"{plain_round_trip_sweeps(L, ev)[0]:.3g} (L = {p}, {q} only)" for (p, q), ev in pairs.items())
-        print(f"  plain sweeps per round trip at L = {L}: {plain_round_trip_sweeps(L)[0]:.3g} (all); {spread}")
+    if args.beta not in MEASURED_EVENTS_BY_BETA:
+        raise SystemExit(f"no measured plain rates at beta {args.beta} (measured: {sorted(MEASURED_EVENTS_BY_BETA)}); "
+                         f"measure them with --measure-plain first")
+    events = MEASURED_EVENTS_BY_BETA[args.beta]
+    seen = {k: v for k, v in events.items() if v[0] > 0}
+    print(f"plain chain at beta {args.beta}: measured (events, sweeps) {events}; the quoted rates {QUOTED_RATES} "
+          f"are not used")
+    if len(seen) >= 2:
+        a, b, cov = plain_rate_fit(seen)
+        chi2, dof = plain_fit_chi2(seen)
+        print(f"plain passage rate fit: {a:.4g} exp(-{b:.4f} L^2) per sweep, b +- {math.sqrt(cov[1, 1]):.4f}, "
+              f"chi^2 {chi2:.3g} / {dof} (L = {sorted(seen)})")
+        Ls = sorted(seen)
+        pairs = {(p, q): {k: seen[k] for k in (p, q)} for p, q in zip(Ls[:-1], Ls[1:])}
+        for L in args.sizes:
+            spread = ", ".join(f"{plain_round_trip_sweeps(L, ev)[0]:.3g} (L = {p}, {q} only)" for (p, q), ev in pairs.items())
+            print(f"  plain sweeps per round trip at L = {L}: {plain_round_trip_sweeps(L, seen)[0]:.3g} (all); {spread}")
     print(f"{'L':>3} {'plain s/sweep':>13} {'plain sweeps/rt':>15} {'plain s/rt':>10} {'muca s/sweep':>12} "
           f"{'WL s':>7} {'half trips':>10} {'muca sweeps/rt':>14} {'muca s/rt':>9} {'speed-up':>9}")
     for L in args.sizes:
-        cfg = config(L, args.seed)
+        cfg = config(L, args.seed, args.beta)
         plain = plain_seconds_per_sweep(cfg, args.plain_sweeps)
-        plain_sw, plain_sw_err = plain_round_trip_sweeps(L)
+        plain_sw, plain_sw_err, plain_kind = plain_round_trip_estimate(L, events)
         plain_rt = plain * plain_sw
         chain = BiasedChain(cfg, Weight.flat(*args.range, args.bins), variable=args.variable,
                             overrelax=args.overrelax, global_hits=args.global_hits, global_step=args.global_step)
@@ -223,8 +280,8 @@ def main(argv=None):
         print(f"    passages inside the grid {n_in} (68 % interval of sweeps per round trip "
               f"[{2 / r_hi:.4g}, {2 / r_lo if r_lo > 0 else float('inf'):.4g}]); samples outside the grid {n_out}; "
               f"passages counted through the outside as well: {rt.half_trips}")
-        beyond = " extrapolated" if L > max(MEASURED_EVENTS) else ""
-        print(f"    plain sweeps per round trip {plain_sw:.4g} +- {plain_sw_err:.2g} (fit{beyond}); acceptance {({k: round(float(v), 3) for k, v in run.acceptance.items()})}")
+        print(f"    plain sweeps per round trip {plain_sw:.4g} +- {plain_sw_err:.2g} ({plain_kind}; a lower bound makes "
+              f"the speed-up a lower bound); acceptance {({k: round(float(v), 3) for k, v in run.acceptance.items()})}")
         from sigmasim.analysis import profile as pr
 
         weight = chain.frozen_weight()

@@ -796,3 +796,20 @@ def test_benchmark_passages_do_not_count_the_way_round_outside_the_grid():
     n, exposure, (lo, hi), outside = mod.passages_inside(x, -1.6, 1.6, 0.5)
     assert (n, exposure, outside) == (3, 11.0, 2) and lo < 3 / 11 < hi
     assert passages(x, -0.5, 0.5).half_trips == 4
+
+
+def test_benchmark_beta_option_and_frozen_plain_chain_bound():
+    """The benchmark takes beta (the plain chain froze at beta 0.84 from L = 6 on); without two
+    volumes with events the plain round trip is a lower bound 2 / (68 % upper Poisson limit of the
+    largest zero-event volume <= L): 0 events in 10^5 sweeps -> rate < 1.841e-5, >= 1.086e5 sweeps."""
+    mod = _bench_module()
+    assert mod.config(4, 1, 0.84).beta == 0.84 and mod.config(4).beta == 0.76
+    events = {4: (388, 99999.0), 6: (0, 99999.0), 8: (0, 99999.0)}
+    sweeps, err, kind = mod.plain_round_trip_estimate(12, events)
+    assert kind == "lower bound from L = 8" and np.isnan(err)
+    assert abs(sweeps - 2.0 / 1.8410e-5) < 0.01 * sweeps
+    sweeps, err, kind = mod.plain_round_trip_estimate(12, {4: (900, 1e5), 6: (400, 1e5), 8: (100, 1e5)})
+    a, b, _ = mod.plain_rate_fit({4: (900, 1e5), 6: (400, 1e5), 8: (100, 1e5)})
+    assert kind == "fit, extrapolated" and abs(sweeps - 2.0 / (a * np.exp(-b * 144))) < 1e-9 * sweeps
+    with pytest.raises(ValueError, match="two volumes with events"):
+        mod.plain_round_trip_estimate(4, {4: (10, 1e3)})
