@@ -42,7 +42,7 @@ import numpy as np
 from numba import njit, prange
 
 from sigmasim.kernels import tables
-from sigmasim.kernels.serial import total, zeros_bool, zeros_int
+from sigmasim.kernels.serial import total, zeros_int
 from sigmasim.kernels.simd import exp_le0, load18, lookup16, store18, u01_from_bits
 from sigmasim.rng import SITE_STRIDE, bits
 
@@ -105,9 +105,9 @@ def _fast_rows(Mc, Tc, X, x, src, m, h, fo, ff, fl):
         xpw = X[k + np.uint64(1) - uh]
         xm = X[k - np.uint64(1)]
         xmw = X[k - np.uint64(1) + uh]
-        a = xpw if fl[i] else xp
-        b = xmw if ff[i] else xm
-        o = fo[i]
+        a = xpw if fl[i] != 0 else xp
+        b = xmw if ff[i] != 0 else xm
+        o = fo[i] != 0
         Tc[i] = (Mc[i] + (a if o else xc)) + (xc if o else b)
 
 
@@ -187,12 +187,12 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
     acc = zeros_int(nch)
     nblk = nch if nblk <= 0 else min(nch, nblk)
     # row-start / row-end flags of a chunk of whole rows: the same for every chunk
-    ff = zeros_bool(CHUNK_SITES)
-    fl = zeros_bool(CHUNK_SITES)
+    ff = zeros_int(CHUNK_SITES)  # int64 masks: the select loop vectorises (bool: 1.8x slower)
+    fl = zeros_int(CHUNK_SITES)
     if rows > 0:
         for g in range(rows):
-            ff[g * h] = True
-            fl[g * h + h - 1] = True
+            ff[g * h] = 1
+            fl[g * h + h - 1] = 1
     for blk in prange(nblk):
         # scratch once per block of chunks (the blocks only share out the work)
         M = np.empty((18, CHUNK_SITES))
@@ -202,7 +202,7 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
         uu = np.empty(CHUNK_SITES)
         ix = np.empty(CHUNK_SITES, dtype=np.int64)
         X = np.empty(CHUNK_SITES + 2 * h if rows > 0 else 1)
-        fo = np.empty(CHUNK_SITES, dtype=np.bool_)
+        fo = np.empty(CHUNK_SITES, dtype=np.int64)
         for ch in range(blk * nch // nblk, (blk + 1) * nch // nblk):
             if rows > 0:
                 r0 = ch * rows
