@@ -43,6 +43,15 @@ edge.  With 96 bins (``--beta 0.80 --sizes 12 --bins 96 --wl-chunks 1 --wl-sweep
 L = 8 (1.09e5 sweeps; the L = 4, 6 fit extrapolates to 1.5e12); Wang-Landau still not flat (flatness
 0), x visited [-1.1, 1.1] only, so its barrier height (30.4 +- 0.7) is not trustworthy either.
 
+Later runs at beta 0.80, one thread: L = 8 with ``--range -1.4 1.4 --bins 48 --wl-iterations 10
+--wl-sweeps 3000 --wl-chunks 3 --production 20000`` (158 + 48 CPU s): every bin visited, 105
+passages, 381 sweeps (68 %: 344-422) and 0.92 CPU s per round trip, speed-up >= 37.9 against the
+L = 8 lower bound (about 370 against the L = 4, 6 extrapolation), Delta F 11.34 +- 0.36.  L = 12 with
+``--range -1.4 1.4 --bins 96 --wl-iterations 10 --wl-sweeps 3000 --wl-chunks 3 --production 20000
+--plain-sweeps 20`` (645 + 145 CPU s, the other core busy): 50 passages, 800 sweeps (68 %: 688-931)
+and 5.8 CPU s per round trip, speed-up >= 16.7 against the L = 8 bound; Delta F 30.1 +- 0.45; no
+Wang-Landau iteration flat (6 and 9 bins at the grid's edges never visited).
+
 Research toy numbers, not physical predictions.
 """
 
