@@ -13,7 +13,6 @@ from __future__ import annotations
 import argparse
 import signal
 import sys
-import threading
 from pathlib import Path
 
 from sigmasim.errors import SigmasimError
@@ -1065,9 +1064,8 @@ def _terminate_as_interrupt() -> None:
     :func:`sigmasim.interrupt.handler` keeps it out of the middle of an import."""
     from sigmasim import interrupt
 
-    if threading.current_thread() is threading.main_thread():
-        if signal.getsignal(signal.SIGTERM) in (signal.SIG_DFL, None):
-            interrupt.install((signal.SIGTERM,))
+    if signal.getsignal(signal.SIGTERM) in (signal.SIG_DFL, None):
+        interrupt.install((signal.SIGTERM,))  # main thread only (install checks)
 
 
 def main(argv=None) -> int:
