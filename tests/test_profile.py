@@ -351,3 +351,19 @@ def test_interface_tension_script_smoke(tmp_path, capsys):
     assert [r["L"] for r in blob["volumes"]] == [2, 4] and "research toy" in blob["note"]
     assert (out / "profiles.png").stat().st_size > 1000
     assert "L = 4" in capsys.readouterr().out
+
+
+def test_barrier_flags_a_minimum_at_the_edge_of_the_visited_range():
+    """A grid that cuts the left well off before its minimum (x = -1): F falls all the way to the
+    grid's left end, so the left 'minimum' is the outermost bin and is flagged; the same chain on a
+    grid holding both wells, or with the left end unvisited beyond the well, is not flagged."""
+    rng = np.random.default_rng(7)
+    x = draw(rng, 20000, lambda v: -U(v, a=1.5), phi=0.5)
+    flat = lambda v: np.zeros_like(v)  # noqa: E731
+    cut = pr.barrier(pr.multicanonical_profile(x, flat, np.linspace(-0.8, 2.0, 57), n_boot=50), split=0.0,
+                     half_width=3)
+    assert cut.at_edge == ("left",) and cut.outer_bins["left"] == 0 and cut.outer_bins["right"] > 3
+    assert "minimum at the edge" in cut.summary()
+    whole = pr.barrier(pr.multicanonical_profile(x, flat, np.linspace(-2.0, 2.0, 81), n_boot=50), split=0.0,
+                       half_width=3)
+    assert whole.at_edge == () and min(whole.outer_bins.values()) > 3 and "edge" not in whole.summary()

@@ -544,6 +544,10 @@ class BarrierResult:
     Keys: ``x_left, F_left, x_saddle, F_saddle, x_right, F_right, barrier, barrier_left,
     barrier_right, barrier_mean, asymmetry``.  ``refined`` is False when a fitted extremum fell
     outside its fitting window (the bin value was used: widen ``half_width`` or refine the grid).
+    ``outer_bins``: {"left": n, "right": n}, the visited bins of the central profile farther out than
+    each minimum's bin; ``at_edge``: the sides where that is 0, i.e. F still falls toward the end of
+    the visited range (or of the grid) and the minimum was not located: the barrier is then not the
+    one between the two minima (widen the grid or visit its ends).
     """
 
     values: dict
@@ -551,6 +555,11 @@ class BarrierResult:
     samples: dict
     refined: bool
     failed_replicas: int
+    outer_bins: dict = field(default_factory=dict)
+
+    @property
+    def at_edge(self) -> tuple:
+        return tuple(side for side in ("left", "right") if self.outer_bins.get(side, 1) == 0)
 
     def __getitem__(self, key):
         return self.values[key]
@@ -564,6 +573,9 @@ class BarrierResult:
              f"{v['asymmetry']:.4g} +- {e['asymmetry']:.2g}")
         if not self.refined:
             s += " [an extremum fell outside its fitting window: bin values used]"
+        if self.at_edge:
+            s += (f" [minimum at the edge of the visited range on the {' and '.join(self.at_edge)} side: not "
+                  "located, the barrier is not between two minima]")
         if self.failed_replicas:
             s += (f" [{self.failed_replicas} bootstrap replicas left a side of the split without a visited"
                   " bin: errors NaN, more statistics needed]")
@@ -606,7 +618,11 @@ def barrier(profile: Profile, split: float | None = None, half_width: int = 4) -
             errs[k] = float(0.5 * (hi - lo))
         else:
             errs[k] = float("nan")
-    return BarrierResult({k: float(v) for k, v in vals.items()}, errs, samp, bool(central[6]), failed)
+    fin = np.isfinite(profile.F)
+    left, right = np.nonzero(fin & (c < split))[0], np.nonzero(fin & (c >= split))[0]
+    il, ir = left[np.argmin(profile.F[left])], right[np.argmin(profile.F[right])]   # as in _extrema
+    outer = {"left": int(np.count_nonzero(fin[:il])), "right": int(np.count_nonzero(fin[ir + 1:]))}
+    return BarrierResult({k: float(v) for k, v in vals.items()}, errs, samp, bool(central[6]), failed, outer)
 
 
 # ----------------------------------------------------------------------------- interface tension
