@@ -42,34 +42,84 @@ def config_for(L: int, d: int, beta: float, seed: int, measurements: int, therma
         "run": {"start": "hot", "thermalize": thermalize, "measurements": measurements, "threads": 1}})
 
 
+def vacuum_peak(L, d, beta, sweeps, thermalize=500, seed=1, overrelax=3):
+    """Peak position and width of arg omega_h in the vacuum a plain chain (W = 0) falls into at L.
+
+    Hot start, ``thermalize`` sweeps with the Metropolis step tuned, then ``sweeps`` sweeps of the
+    biased kernel with a flat weight over the whole circle (bit for bit the plain chain).  Returns
+    (mean |x|, error of it from blocks of 1/10 of the series, standard deviation of |x|, passages
+    x -> -x through |x| < 0.5 seen, CPU s).  At theta = pi the two vacua are mirror images (x -> -x),
+    so |x| folds both; where the chain still tunnels (small L) the width includes a little barrier
+    traffic and is an upper bound."""
+    from sigmasim.analysis.profile import round_trips
+    from sigmasim.protocols.multicanonical import BiasedChain, Weight
+
+    cfg = config_for(L, d, beta, seed, 1, 0)
+    chain = BiasedChain(cfg, Weight.flat(-math.pi, math.pi, 2), variable="arg_omega_h", overrelax=overrelax)
+    t0 = time.process_time()
+    for _ in range(thermalize):
+        chain.sweeps(1)
+        if chain.state.sweep % cfg.tune_every == 0:
+            chain.tune()
+    x = chain.sweeps(sweeps)
+    cpu = time.process_time() - t0
+    a = np.abs(x)
+    blocks = a[: a.size // 10 * 10].reshape(10, -1).mean(axis=1)
+    return (float(a.mean()), float(blocks.std(ddof=1) / math.sqrt(10)), float(a.std(ddof=1)),
+            round_trips(x, -0.5, 0.5).half_trips, cpu)
+
+
 def one_volume(L, args, log):
     from sigmasim.analysis import profile as pr
     from sigmasim.protocols.multicanonical import muca_params, run_multicanonical
 
-    cfg = config_for(L, args.d, args.beta, args.seed, args.measurements, args.thermalize)
-    params = muca_params({"variable": args.variable, "range": list(args.range), "bins": args.bins,
-                          "wl_iterations": args.wl_iterations, "wl_sweeps": args.wl_sweeps,
+    lo, hi, bins = args.grid_of.get(L, (args.range[0], args.range[1], args.bins))
+    wl_sweeps, measurements = args.schedule_of.get(L, (args.wl_sweeps, args.measurements))
+    cfg = config_for(L, args.d, args.beta, args.seed, measurements, args.thermalize)
+    params = muca_params({"variable": args.variable, "range": [lo, hi], "bins": bins,
+                          "wl_iterations": args.wl_iterations, "wl_sweeps": wl_sweeps,
                           "wl_start": args.wl_start, "wl_flatness": args.wl_flatness,
                           "wl_chunks": args.wl_chunks, "overrelax": args.overrelax})
     t0 = time.process_time()
     res = run_multicanonical(cfg, params, progress=lambda s: log(f"  L = {L}: {s}"))
     cpu = time.process_time() - t0
-    edges = np.linspace(args.range[0], args.range[1], args.bins + 1)
+    edges = np.linspace(lo, hi, bins + 1)
     prof = pr.multicanonical_profile(res.run.x, res.weight, edges, n_boot=args.bootstrap, seed=L)
+    if args.save_series:
+        from sigmasim.storage import atomic_output
+
+        w = res.weight
+
+        def write(tmp):
+            with open(tmp, "wb") as fh:
+                np.savez_compressed(fh, x=res.run.x, values=w.values, lo=w.lo, hi=w.hi, wall=w.wall)
+
+        Path(args.out).mkdir(parents=True, exist_ok=True)
+        atomic_output(Path(args.out) / f"series-L{L}.npz", write, what="series")
     try:
-        br = pr.barrier(prof, split=0.0, half_width=args.half_width)
+        hws = None if args.saddle_window is None else max(args.half_width,
+                                                            int(round(args.saddle_window / prof.widths[0])))
+        br = pr.barrier(prof, split=0.0, half_width=args.half_width, saddle_half_width=hws)
     except ValueError as exc:
         br = None
         log(f"  L = {L}: no barrier ({exc})")
     rt = pr.round_trips(res.run.x, -args.regions, args.regions)
-    row = {"L": L, "cpu_seconds": cpu, "measurements": int(res.run.x.size),
+    row = {"L": L, "range": [lo, hi], "bins": bins, "cpu_seconds": cpu,
+           "cpu_seconds_by_stage": dict(res.seconds), "measurements": int(res.run.x.size),
+           "wang_landau": [{"f": w["f"], "sweeps": w["sweeps"], "flatness": w["flatness"]} for w in res.wl],
            "acceptance": res.run.acceptance, "unvisited": [int(b) for b in prof.unvisited],
            "sparse": prof.sparse, "round_trip": rt.summary(), "round_trip_sweeps": rt.time,
            "round_trip_sweeps_interval": [rt.time_low, rt.time_high], "half_trips": rt.half_trips}
     if br is not None:
         row.update({k: {"value": br.values[k], "error": br.errors[k]} for k in br.values})
         row["refined"] = br.refined
-    log(f"  L = {L}: {br.summary() if br is not None else 'no barrier'}; {rt.summary()}; {cpu:.0f} CPU s")
+        row["outer_bins"] = br.outer_bins
+        row["minimum_at_edge"] = list(br.at_edge)
+    log(f"  L = {L}: grid [{lo:g}, {hi:g}] in {bins} bins; Wang-Landau sweeps {[w['sweeps'] for w in res.wl]}, "
+        f"flatness {[round(w['flatness'], 2) for w in res.wl]}; {len(prof.unvisited)} unvisited bins")
+    log(f"  L = {L}: {br.summary() if br is not None else 'no barrier'}; {rt.summary()}; {cpu:.0f} CPU s "
+        f"({', '.join(f'{k} {v:.0f}' for k, v in res.seconds.items())}); production "
+        f"{res.run.seconds / max(1, res.run.x.size):.3g} CPU s per sweep")
     return row, prof
 
 
@@ -85,7 +135,27 @@ def main(argv=None) -> int:
     ap.add_argument("--range", type=float, nargs=2, default=[-1.6, 1.6],
                     help="grid of W (in arg omega_h keep it away from +-pi, the third branch)")
     ap.add_argument("--bins", type=int, default=24)
-    ap.add_argument("--half-width", type=int, default=3)
+    ap.add_argument("--grid", type=float, nargs=4, action="append", default=[], metavar=("L", "LO", "HI", "BINS"),
+                    help="the grid of W at this L (repeatable; overrides --range/--bins there; see the module notes "
+                         "for the rule and --vacua to measure what it needs)")
+    ap.add_argument("--schedule", type=int, nargs=3, action="append", default=[],
+                    metavar=("L", "WL_SWEEPS", "MEASUREMENTS"),
+                    help="Wang-Landau sweeps per chunk and production measurements at this L (repeatable; "
+                         "overrides --wl-sweeps/--measurements there)")
+    ap.add_argument("--vacua", type=int, default=0, metavar="SWEEPS",
+                    help="instead of the study: run a plain chain of SWEEPS sweeps per L, print where the vacuum "
+                         "peak of arg omega_h sits and how wide it is, and the --grid the rule gives, then exit")
+    ap.add_argument("--margin", type=float, default=5.0,
+                    help="the --vacua rule: the grid ends this many peak widths beyond each peak")
+    ap.add_argument("--bins-per-width", type=float, default=3.0,
+                    help="the --vacua rule: at least this many bins per peak width")
+    ap.add_argument("--save-series", action="store_true",
+                    help="also write <out>/series-L<L>.npz (production x and the frozen weight) to redo the analysis")
+    ap.add_argument("--half-width", type=int, default=3,
+                    help="bins on each side of an extremum in its cubic fit (sigmasim.analysis.profile.barrier)")
+    ap.add_argument("--saddle-window", type=float, default=None,
+                    help="half width in x of the saddle's cubic fit (default: --half-width bins); on a fine grid "
+                         "the flat barrier top needs a wider window than the narrow vacuum peaks")
     ap.add_argument("--regions", type=float, default=0.5, help="round trips between x <= -R and x >= R")
     ap.add_argument("--thermalize", type=int, default=200)
     ap.add_argument("--measurements", type=int, default=10000)
@@ -112,6 +182,31 @@ def main(argv=None) -> int:
     def log(msg):
         print(msg, flush=True)
 
+    bad = [g for g in args.grid if not (g[0] == int(g[0]) > 0 and g[1] < g[2] and g[3] == int(g[3]) >= 2)]
+    if bad:
+        print(f"interface_tension: error: --grid {' '.join(f'{v:g}' for v in bad[0])}: want L LO HI BINS with "
+              f"LO < HI and integers L > 0, BINS >= 2", file=sys.stderr)
+        return 2
+    args.grid_of = {int(g[0]): (g[1], g[2], int(g[3])) for g in args.grid}
+    bad = [s for s in args.schedule if min(s) <= 0]
+    if bad:
+        print(f"interface_tension: error: --schedule {' '.join(map(str, bad[0]))}: want positive L WL_SWEEPS "
+              f"MEASUREMENTS", file=sys.stderr)
+        return 2
+    args.schedule_of = {s[0]: (s[1], s[2]) for s in args.schedule}
+    if args.vacua:
+        spec = []
+        for L in args.L:
+            x0, e0, w, trips, cpu = vacuum_peak(L, args.d, args.beta, args.vacua, thermalize=args.thermalize,
+                                                seed=args.seed)
+            half = min(x0 + args.margin * w, max(map(abs, args.range)))  # never wider than --range
+            bins = int(math.ceil(2 * half / (w / args.bins_per_width)))
+            log(f"L = {L}: vacuum peak |arg omega_h| = {x0:.4f} +- {e0:.4f}, width {w:.4f}, {trips} passages "
+                f"through |x| < 0.5 in {args.vacua} sweeps, {cpu:.0f} CPU s -> --grid {L} {-half:.3f} {half:.3f} {bins}")
+            spec.append(f"--grid {L} {-half:.3f} {half:.3f} {bins}")
+        log(" ".join(spec))
+        return 0
+
     rows, profiles = [], {}
     try:
         for L in args.L:
@@ -122,7 +217,11 @@ def main(argv=None) -> int:
         print(f"interface_tension: error: {exc}", file=sys.stderr)
         return 2
     have = [r for r in rows if "barrier_mean" in r and np.isfinite(r["barrier_mean"]["error"])
-            and r["barrier_mean"]["error"] > 0]
+            and r["barrier_mean"]["error"] > 0 and not r["minimum_at_edge"]]
+    for r in rows:
+        if r.get("minimum_at_edge"):
+            log(f"L = {r['L']} left out of the fit: its minimum on the {' and '.join(r['minimum_at_edge'])} side lies "
+                f"at the edge of the visited range (not located)")
     fit = None
     if len(have) > len(args.fit_terms):
         fit = pr.fit_interface_tension([r["L"] for r in have], [r["barrier_mean"]["value"] for r in have],

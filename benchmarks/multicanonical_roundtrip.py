@@ -303,6 +303,9 @@ def main(argv=None):
                   f"{run.seconds:.0f} CPU s of production (+ {wl_seconds:.0f} s Wang-Landau); extrapolated as "
                   f"1/sqrt(t) to 7200 CPU s (1 h on 2 cores): +- {hour:.2g} (relative {hour / abs(df):.2g}); "
                   f"unvisited bins {list(prof.unvisited)}")
+            print(f"    located minima at x = {br.values['x_left']:.4g} and {br.values['x_right']:.4g}, saddle at "
+                  f"{br.values['x_saddle']:.4g}; visited bins beyond each minimum {br.outer_bins}"
+                  + (f": MINIMUM AT THE EDGE ({', '.join(br.at_edge)})" if br.at_edge else ""))
         except ValueError as exc:
             print(f"    no barrier: {exc}")
         hist = np.histogram(run.x, bins=args.bins, range=tuple(args.range))[0]

@@ -367,3 +367,30 @@ def test_barrier_flags_a_minimum_at_the_edge_of_the_visited_range():
     whole = pr.barrier(pr.multicanonical_profile(x, flat, np.linspace(-2.0, 2.0, 81), n_boot=50), split=0.0,
                        half_width=3)
     assert whole.at_edge == () and min(whole.outer_bins.values()) > 3 and "edge" not in whole.summary()
+
+
+def test_interface_tension_script_per_volume_grid(tmp_path, capsys):
+    """--grid/--schedule set the grid and the schedule of one L only; --vacua measures the vacuum
+    peak and prints the grid of the rule; bad --grid is one line and exit 2."""
+    import json
+    import runpy
+    from pathlib import Path
+
+    script = Path(__file__).resolve().parents[1] / "analysis" / "interface_tension.py"
+    main = runpy.run_path(str(script))["main"]
+    out = tmp_path / "it"
+    assert main(["--L", "2", "4", "--grid", "4", "-1.2", "1.2", "30", "--schedule", "4", "100", "250",
+                 "--measurements", "300", "--wl-iterations", "2", "--wl-sweeps", "100", "--thermalize", "20",
+                 "--bootstrap", "20", "--fit-terms", "--save-series", "--out", str(out)]) == 0
+    rows = {r["L"]: r for r in json.loads((out / "interface_tension.json").read_text())["volumes"]}
+    assert rows[4]["range"] == [-1.2, 1.2] and rows[4]["bins"] == 30 and rows[4]["measurements"] == 250
+    assert rows[2]["range"] == [-1.6, 1.6] and rows[2]["bins"] == 24 and rows[2]["measurements"] == 300
+    assert [w["sweeps"] for w in rows[4]["wang_landau"]][0] >= 100
+    with np.load(out / "series-L4.npz") as z:
+        assert z["x"].size == 250 and z["values"].size == 30 and float(z["lo"]) == -1.2
+    capsys.readouterr()
+    assert main(["--L", "4", "--vacua", "300", "--thermalize", "20"]) == 0
+    line = capsys.readouterr().out.strip().splitlines()[-1].split()
+    assert line[:2] == ["--grid", "4"] and float(line[2]) == -float(line[3]) and int(line[4]) >= 2
+    assert main(["--grid", "4", "1", "0", "3"]) == 2
+    assert "want L LO HI BINS" in capsys.readouterr().err
