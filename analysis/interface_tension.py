@@ -15,9 +15,36 @@ near +-0.3 and sharpen as 1/sqrt(V) (--range -0.45 0.45 --regions 0.2).
     python analysis/interface_tension.py --L 4 6 8 10 12 --measurements 200000 --wl-sweeps 20000 \
         --out runs/interface-tension
 
-writes <out>/interface_tension.json (per L: Delta F, minima, saddle, round trips, CPU seconds; the
-fit), <out>/profiles.png (all profiles on one plot) and <out>/fit.png.  Results are a research toy,
-not a physical prediction.
+writes <out>/interface_tension.json (per L: grid, Wang-Landau sweeps and flatness, Delta F, minima,
+saddle, visited bins beyond each minimum, round trips, CPU seconds by stage; the fit),
+<out>/profiles.png (all profiles on one plot) and <out>/fit.png (with --save-series also
+<out>/series-L<L>.npz: the production x and the frozen weight).  Results are a research toy, not a
+physical prediction.
+
+Grid per volume (--grid L LO HI BINS, repeatable; --schedule L WL_SWEEPS MEASUREMENTS likewise).
+The vacuum peaks of arg omega_h narrow as 1/sqrt(V) while their position hardly moves, so one grid
+for all L is either too coarse at large L (W is linear between bin centres: a bin wider than the
+peak leaves nothing to push x out of it) or wastes the Wang-Landau walk on far tails that nothing
+needs (the canonical P falls off steeply beyond the vacua and the walk never gets there).  Rule:
+measure the peak position x0 and width w (standard deviation of |x|) with a plain chain that stays
+in one vacuum (--vacua SWEEPS: hot start, --thermalize sweeps with the step tuned, then SWEEPS
+sweeps; the two vacua are mirror images at theta = pi), then take the grid [-R, R] with
+R = x0 + MARGIN w (--margin, default 5; never wider than --range) and at least BINS_PER_WIDTH bins
+per w (--bins-per-width, default 3).  --vacua prints the resulting --grid arguments.  Measured at
+beta 0.80 (``--beta 0.80 --L 12 10 8 6 4 --vacua 3000 --thermalize 500``, 78 CPU s):
+
+    L    x0 = <|arg omega_h|>   w       passages   grid (margin 5, 3 bins per w)
+    12   0.9405(13)             0.0179  0          [-1.030, 1.030], 345 bins
+    10   0.9348(19)             0.0279  0          [-1.074, 1.074], 232 bins
+     8   0.9392(27)             0.0344  0          [-1.111, 1.111], 194 bins
+     6   0.926(6)               0.078   0          [-1.317, 1.317], 101 bins
+     4   0.825(9)               0.23    70         [-1.6, 1.6] (capped), 43 bins
+
+(at L = 4 the chain still tunnels, so its width includes barrier traffic: an upper bound).  On
+such a fine grid the flat barrier top spans many bins: --saddle-window (in x) widens the saddle's
+cubic fit beyond the --half-width bins the narrow minima use (a 3-bin window around the highest,
+noisiest bin is biased upward, tests/test_profile.py).  A volume whose located minimum is the
+outermost visited bin (sigmasim.analysis.profile.BarrierResult.at_edge) is left out of the fit.
 """
 
 from __future__ import annotations

@@ -52,6 +52,20 @@ L = 8 lower bound (about 370 against the L = 4, 6 extrapolation), Delta F 11.34 
 and 5.8 CPU s per round trip, speed-up >= 16.7 against the L = 8 bound; Delta F 30.1 +- 0.45; no
 Wang-Landau iteration flat (6 and 9 bins at the grid's edges never visited).
 
+The vacua at beta 0.80, L = 12 sit at |arg omega_h| = 0.940 with width 0.018 (a plain chain in one
+vacuum, ``analysis/interface_tension.py --beta 0.80 --L 12 --vacua 3000 --thermalize 500``): the
+96-bin grid above had bins (0.029) wider than the peak, and its ends at +-1.4 lie 25 widths out,
+where the canonical P is negligible.  A grid cut 5 widths beyond the peaks with 3 bins per width,
+``--beta 0.80 --sizes 12 --range -1.03 1.03 --bins 344 --wl-iterations 6 --wl-start 1.0 --wl-sweeps
+4000 --wl-chunks 3 --wl-flatness 0.5 --production 30000 --plain-sweeps 20`` (442 + 233 CPU s, 13.0
+CPU min in all, 7.8 ms per sweep, the other core busy): the Wang-Landau iterations with f = 1, 1/2,
+1/4 reached flatness (min / mean) 0.60, 0.60, 0.56 in 8000 sweeps each, those with f = 1/8, 1/16,
+1/32 did not within 12000 sweeps (0.0, 0.0, 0.11: the last bins of the right tail); production: 73
+passages, 822 sweeps (68 %: 727-931) and 6.4 CPU s per round trip (speed-up >= 14.8 against the
+L = 8 lower bound); 343 of 344 bins visited; the located minima at x = -0.943 and +0.956 with 14
+and 11 visited bins beyond them (inside, not at the edge); Delta F(12) = 28.32 +- 0.41 (1.4 % from
+233 CPU s of production; 1/sqrt(t) extrapolates to 0.26 % in 7200 CPU s, an extrapolation).
+
 Research toy numbers, not physical predictions.
 """
 
