@@ -96,6 +96,57 @@ def vacuum_peak(L, d, beta, sweeps, thermalize=500, seed=1, overrelax=3):
             round_trips(x, -0.5, 0.5).half_trips, cpu)
 
 
+def reanalyse(args, log) -> int:
+    """--reanalyse: the barrier, the fit and the error of Delta F against production CPU time again from
+    <out>/interface_tension.json and <out>/series-L<L>.npz (no new sweeps, nothing written)."""
+    from sigmasim.analysis import profile as pr
+    from sigmasim.protocols.multicanonical import Weight
+
+    out = Path(args.out)
+    try:
+        blob = json.loads((out / "interface_tension.json").read_text())
+    except (OSError, ValueError) as exc:
+        print(f"interface_tension: error: cannot read {out / 'interface_tension.json'} ({exc})", file=sys.stderr)
+        return 2
+    have = []
+    for row in blob["volumes"]:
+        L = row["L"]
+        try:
+            with np.load(out / f"series-L{L}.npz") as z:
+                x, w = z["x"], Weight(float(z["lo"]), float(z["hi"]), z["values"], float(z["wall"]))
+        except OSError:
+            log(f"L = {L}: no series-L{L}.npz (run with --save-series)")
+            continue
+        hws = None if args.saddle_window is None else max(args.half_width, int(round(args.saddle_window / w.dx)))
+        prod = row["cpu_seconds_by_stage"]["production"]
+        curve = []
+        try:
+            for frac in (0.125, 0.25, 0.5, 1.0):
+                n = int(round(frac * x.size))
+                prof = pr.multicanonical_profile(x[:n], w, w.edges, n_boot=args.bootstrap, seed=L)
+                br = pr.barrier(prof, split=0.0, half_width=args.half_width, saddle_half_width=hws)
+                curve.append((frac * prod, br["barrier_mean"], br.errors["barrier_mean"]))
+        except ValueError as exc:
+            log(f"L = {L}: no barrier ({exc})")
+            continue
+        t, v, e = (np.array(c) for c in zip(*curve))
+        rel = e / np.abs(v)
+        slope = float(np.polyfit(np.log(t), np.log(rel), 1)[0])
+        log(f"L = {L}: Delta F = {v[-1]:.4g} +- {e[-1]:.2g} (half width {args.half_width}, saddle {hws or args.half_width} "
+            f"bins); minima at edge: {list(br.at_edge) or 'none'}; relative error against production CPU s: "
+            + ", ".join(f"{a:.0f} s {b:.3g}" for a, b in zip(t, rel))
+            + f"; slope of ln(relative error) on ln t {slope:.2f} (1/sqrt(t): -0.5); extrapolated as 1/sqrt(t) to "
+              f"7200 CPU s (1 h on 2 cores): {rel[-1] * math.sqrt(t[-1] / 7200):.2g}")
+        if not br.at_edge:
+            have.append((L, v[-1], e[-1]))
+    for terms in ((), ("const",)):
+        if len(have) > len(terms) + 1:
+            fit = pr.fit_interface_tension(*zip(*have), d=args.d, terms=terms)
+            log(f"fit Delta F = 2 sigma L^{args.d - 1}{' + const' if terms else ''} over L = {[h[0] for h in have]}: "
+                f"{fit.summary()}")
+    return 0
+
+
 def one_volume(L, args, log):
     from sigmasim.analysis import profile as pr
     from sigmasim.protocols.multicanonical import muca_params, run_multicanonical
@@ -176,6 +227,9 @@ def main(argv=None) -> int:
                     help="the --vacua rule: the grid ends this many peak widths beyond each peak")
     ap.add_argument("--bins-per-width", type=float, default=3.0,
                     help="the --vacua rule: at least this many bins per peak width")
+    ap.add_argument("--reanalyse", action="store_true",
+                    help="redo the barrier (--half-width, --saddle-window), both fits and the error of Delta F "
+                         "against CPU time from the files a --save-series run left in --out; no sweeps")
     ap.add_argument("--save-series", action="store_true",
                     help="also write <out>/series-L<L>.npz (production x and the frozen weight) to redo the analysis")
     ap.add_argument("--half-width", type=int, default=3,
@@ -221,6 +275,8 @@ def main(argv=None) -> int:
               f"MEASUREMENTS", file=sys.stderr)
         return 2
     args.schedule_of = {s[0]: (s[1], s[2]) for s in args.schedule}
+    if args.reanalyse:
+        return reanalyse(args, log)
     if args.vacua:
         spec = []
         for L in args.L:

@@ -389,6 +389,11 @@ def test_interface_tension_script_per_volume_grid(tmp_path, capsys):
     with np.load(out / "series-L4.npz") as z:
         assert z["x"].size == 250 and z["values"].size == 30 and float(z["lo"]) == -1.2
     capsys.readouterr()
+    assert main(["--reanalyse", "--bootstrap", "10", "--out", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "L = 4" in text and ("relative error against production CPU s" in text or "no barrier" in text)
+    assert main(["--reanalyse", "--out", str(tmp_path / "none")]) == 2
+    capsys.readouterr()
     assert main(["--L", "4", "--vacua", "300", "--thermalize", "20"]) == 0
     line = capsys.readouterr().out.strip().splitlines()[-1].split()
     assert line[:2] == ["--grid", "4"] and float(line[2]) == -float(line[3]) and int(line[4]) >= 2
