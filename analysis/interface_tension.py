@@ -98,7 +98,8 @@ def vacuum_peak(L, d, beta, sweeps, thermalize=500, seed=1, overrelax=3):
 
 def reanalyse(args, log) -> int:
     """--reanalyse: the barrier, the fit and the error of Delta F against production CPU time again from
-    <out>/interface_tension.json and <out>/series-L<L>.npz (no new sweeps, nothing written)."""
+    <out>/interface_tension.json and <out>/series-L<L>.npz for the volumes in --L (no new sweeps,
+    nothing written)."""
     from sigmasim.analysis import profile as pr
     from sigmasim.protocols.multicanonical import Weight
 
@@ -111,6 +112,8 @@ def reanalyse(args, log) -> int:
     have = []
     for row in blob["volumes"]:
         L = row["L"]
+        if L not in args.L:
+            continue
         try:
             with np.load(out / f"series-L{L}.npz") as z:
                 x, w = z["x"], Weight(float(z["lo"]), float(z["hi"]), z["values"], float(z["wall"]))
@@ -139,10 +142,10 @@ def reanalyse(args, log) -> int:
               f"7200 CPU s (1 h on 2 cores): {rel[-1] * math.sqrt(t[-1] / 7200):.2g}")
         if not br.at_edge:
             have.append((L, v[-1], e[-1]))
-    for terms in ((), ("const",)):
+    for terms in ((), ("const",), ("const", "log")):
         if len(have) > len(terms) + 1:
             fit = pr.fit_interface_tension(*zip(*have), d=args.d, terms=terms)
-            log(f"fit Delta F = 2 sigma L^{args.d - 1}{' + const' if terms else ''} over L = {[h[0] for h in have]}: "
+            log(f"fit Delta F = 2 sigma L^{args.d - 1}{''.join(' + ' + t for t in terms)} over L = {[h[0] for h in have]}: "
                 f"{fit.summary()}")
     return 0
 
