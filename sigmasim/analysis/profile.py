@@ -517,8 +517,9 @@ def _refine(c, F, i, hw, kind):
     return float(c[i]), float(F[i]), False
 
 
-def _extrema(c, F, split, hw):
-    """(xL, FL, xS, FS, xR, FR, all refined) of one profile; NaNs when a side has no finite bin."""
+def _extrema(c, F, split, hw, hws=None):
+    """(xL, FL, xS, FS, xR, FR, all refined) of one profile; NaNs when a side has no finite bin.
+    ``hws``: half width of the saddle's fitting window (default ``hw``)."""
     fin = np.isfinite(F)
     left = np.nonzero(fin & (c < split))[0]
     right = np.nonzero(fin & (c >= split))[0]
@@ -531,7 +532,7 @@ def _extrema(c, F, split, hw):
     i_s = mid[np.argmax(F[mid])]
     xl, fl, okl = _refine(c, F, il, hw, "min")
     xr, fr, okr = _refine(c, F, ir, hw, "min")
-    xs, fs, oks = _refine(c, F, i_s, hw, "max")
+    xs, fs, oks = _refine(c, F, i_s, hw if hws is None else hws, "max")
     return xl, fl, xs, fs, xr, fr, okl and okr and oks
 
 
@@ -544,6 +545,10 @@ class BarrierResult:
     Keys: ``x_left, F_left, x_saddle, F_saddle, x_right, F_right, barrier, barrier_left,
     barrier_right, barrier_mean, asymmetry``.  ``refined`` is False when a fitted extremum fell
     outside its fitting window (the bin value was used: widen ``half_width`` or refine the grid).
+    ``outer_bins``: {"left": n, "right": n}, the visited bins of the central profile farther out than
+    each minimum's bin; ``at_edge``: the sides where that is 0, i.e. F still falls toward the end of
+    the visited range (or of the grid) and the minimum was not located: the barrier is then not the
+    one between the two minima (widen the grid or visit its ends).
     """
 
     values: dict
@@ -551,6 +556,11 @@ class BarrierResult:
     samples: dict
     refined: bool
     failed_replicas: int
+    outer_bins: dict = field(default_factory=dict)
+
+    @property
+    def at_edge(self) -> tuple:
+        return tuple(side for side in ("left", "right") if self.outer_bins.get(side, 1) == 0)
 
     def __getitem__(self, key):
         return self.values[key]
@@ -564,6 +574,9 @@ class BarrierResult:
              f"{v['asymmetry']:.4g} +- {e['asymmetry']:.2g}")
         if not self.refined:
             s += " [an extremum fell outside its fitting window: bin values used]"
+        if self.at_edge:
+            s += (f" [minimum at the edge of the visited range on the {' and '.join(self.at_edge)} side: not "
+                  "located, the barrier is not between two minima]")
         if self.failed_replicas:
             s += (f" [{self.failed_replicas} bootstrap replicas left a side of the split without a visited"
                   " bin: errors NaN, more statistics needed]")
@@ -582,21 +595,26 @@ def _derived(d):
     return d
 
 
-def barrier(profile: Profile, split: float | None = None, half_width: int = 4) -> BarrierResult:
+def barrier(profile: Profile, split: float | None = None, half_width: int = 4,
+            saddle_half_width: int | None = None) -> BarrierResult:
     """Locate the two minima (left/right of ``split``, default the grid centre) and the saddle.
 
-    ``half_width`` bins on each side enter the cubic fit around each extremum.
+    ``half_width`` bins on each side enter the cubic fit around each extremum;
+    ``saddle_half_width`` (default ``half_width``) sets the saddle's window alone: on a fine grid
+    the barrier top is flat over many bins, and a narrow window around the highest (noisiest) bin
+    follows its noise upward, while the minima need a window no wider than the peak.
     """
     c = profile.centres
     split = 0.5 * (profile.edges[0] + profile.edges[-1]) if split is None else float(split)
     hw = int(half_width)
-    if hw < 2:
-        raise ValueError("half_width must be >= 2 (a cubic needs 5 bins)")
-    central = _extrema(c, profile.F, split, hw)
+    hws = hw if saddle_half_width is None else int(saddle_half_width)
+    if min(hw, hws) < 2:
+        raise ValueError("half_width and saddle_half_width must be >= 2 (a cubic needs 5 bins)")
+    central = _extrema(c, profile.F, split, hw, hws)
     if not np.isfinite(central[0]):
         raise ValueError(f"the profile has no visited bin on one side of split = {split:g}")
     vals = _derived(dict(zip(_BKEYS, (np.float64(v) for v in central[:6]))))
-    reps = np.array([_extrema(c, r, split, hw)[:6] for r in profile.replicas]).reshape(-1, 6)
+    reps = np.array([_extrema(c, r, split, hw, hws)[:6] for r in profile.replicas]).reshape(-1, 6)
     samp = _derived({k: reps[:, j] for j, k in enumerate(_BKEYS)})
     failed = int(np.count_nonzero(~np.all(np.isfinite(reps), axis=1)))
     errs = {}
@@ -606,7 +624,11 @@ def barrier(profile: Profile, split: float | None = None, half_width: int = 4) -
             errs[k] = float(0.5 * (hi - lo))
         else:
             errs[k] = float("nan")
-    return BarrierResult({k: float(v) for k, v in vals.items()}, errs, samp, bool(central[6]), failed)
+    fin = np.isfinite(profile.F)
+    left, right = np.nonzero(fin & (c < split))[0], np.nonzero(fin & (c >= split))[0]
+    il, ir = left[np.argmin(profile.F[left])], right[np.argmin(profile.F[right])]   # as in _extrema
+    outer = {"left": int(np.count_nonzero(fin[:il])), "right": int(np.count_nonzero(fin[ir + 1:]))}
+    return BarrierResult({k: float(v) for k, v in vals.items()}, errs, samp, bool(central[6]), failed, outer)
 
 
 # ----------------------------------------------------------------------------- interface tension
