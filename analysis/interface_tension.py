@@ -219,7 +219,7 @@ def one_volume(L, args, log):
            "cpu_seconds_by_stage": dict(res.seconds), "measurements": int(res.run.x.size),
            "wang_landau": [{"f": w["f"], "sweeps": w["sweeps"], "flatness": w["flatness"]} for w in res.wl],
            "acceptance": res.run.acceptance, "unvisited": [int(b) for b in prof.unvisited],
-           "sparse": prof.sparse, "round_trip": rt.summary(), "round_trip_sweeps": rt.time,
+           "sparse": prof.sparse, "short": prof.short, "round_trip": rt.summary(), "round_trip_sweeps": rt.time,
            "round_trip_sweeps_interval": [rt.time_low, rt.time_high], "half_trips": rt.half_trips}
     if br is not None:
         row.update({k: {"value": br.values[k], "error": br.errors[k]} for k in br.values})

@@ -39,7 +39,12 @@ Block bootstrap over each window's own series (B. Efron, The Jackknife, the Boot
 Resampling Plans, SIAM (1982); blocks for correlated data: common practice, no source): the block
 length is ``ceil(10 tau_int)`` of the window's series from Wolff's Gamma method
 (:func:`sigmasim.analysis.resampling.auto_bin_size`, same rule as the binned jackknife there),
-capped so that at least 10 blocks remain.  A window with fewer than
+capped so that at least 10 blocks remain.  A series whose block length had to be capped (shorter
+than ``10 x 10 = 100 tau_int``: a multicanonical chain with a few dozen round trips) is listed in
+``short``: its blocks are shorter than the correlations and its tau_int itself is estimated low, so
+its errors are underestimated (a beta = 0.80, L = 12 interface study gave three independent chains of
+about 16 tau_int whose barriers scattered 2.6x beyond their bootstrap errors): run it longer or
+take the error from the scatter of independent chains.  A window with fewer than
 :data:`sigmasim.analysis.gamma.MIN_SAMPLES` samples gets blocks of one sample and is listed in
 ``sparse`` (its errors are then iid errors: too few samples to measure an autocorrelation).  Each
 replica resamples blocks with replacement inside every window independently and re-solves WHAM.
@@ -131,20 +136,30 @@ class Window:
 def block_length(x, factor: float = BLOCK_FACTOR, min_blocks: int = MIN_BLOCKS) -> tuple[int, bool]:
     """Block length ``ceil(factor tau_int)`` of a series (capped to leave ``min_blocks`` blocks).
 
-    Returns ``(length, sparse)``; ``sparse`` is True when the series is too short (or constant) for
-    the Gamma method, and the length is then 1.
+    Returns ``(length, sparse, capped)``; ``sparse`` is True when the series is too short (or
+    constant) for the Gamma method, and the length is then 1; ``capped`` is True when
+    ``factor tau_int`` exceeded the cap (the series is shorter than ``factor min_blocks tau_int``:
+    errors underestimated, see the module notes).
     """
-    from sigmasim.analysis.resampling import auto_bin_size
-
     x = np.asarray(x, dtype=float).ravel()
     if len(x) < MIN_SAMPLES or not np.ptp(x) > 0:
-        return 1, True
+        return 1, True, False
+    return _capped_block(x, factor, min_blocks)
+
+
+def _capped_block(data, factor: float, min_blocks: int) -> tuple[int, bool, bool]:
+    """``(min(ceil(factor tau_int), N // min_blocks), False, capped)`` or ``(1, True, False)``."""
+    from sigmasim.analysis.resampling import auto_bin_size
+
+    n = len(data)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            return int(auto_bin_size(x, factor=factor, min_bins=min_blocks)), False
+            full = int(auto_bin_size(data, factor=factor, min_bins=1))
     except ValueError:
-        return 1, True
+        return 1, True, False
+    cap = max(1, n // max(1, int(min_blocks)))
+    return min(full, cap), False, full > cap
 
 
 def _reweighted_block_length(x, wx, edges, factor: float = BLOCK_FACTOR,
@@ -155,12 +170,11 @@ def _reweighted_block_length(x, wx, edges, factor: float = BLOCK_FACTOR,
     barrier can stay correlated while x flips sign), ``e 1[x in grid]`` and ``e 1[x in bin b]`` for
     every bin with at least ``MIN_SAMPLES`` samples (``e = exp(W - max W)``); the longest
     ``tau_int`` sets the length, capped to leave ``min_blocks`` blocks.  Constant series are left out.
+    Returns ``(length, sparse, capped)`` as :func:`block_length`.
     """
-    from sigmasim.analysis.resampling import auto_bin_size
-
     x = np.asarray(x, dtype=float).ravel()
     if len(x) < MIN_SAMPLES:
-        return 1, True
+        return 1, True, False
     nb = len(edges) - 1
     b = np.searchsorted(edges, x, side="right") - 1
     b[x == edges[-1]] = nb - 1
@@ -172,13 +186,8 @@ def _reweighted_block_length(x, wx, edges, factor: float = BLOCK_FACTOR,
     data = np.column_stack(cols)
     data = data[:, np.ptp(data, axis=0) > 0]
     if data.shape[1] == 0:
-        return 1, True
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            return int(auto_bin_size(data, factor=factor, min_bins=min_blocks)), False
-    except ValueError:
-        return 1, True
+        return 1, True, False
+    return _capped_block(data, factor, min_blocks)
 
 
 def _check_edges(edges) -> np.ndarray:
@@ -233,9 +242,12 @@ class Profile:
     window_f : float array (K,)
         WHAM free energies ``f_k`` of the windows (``f_0 = 0``); empty for a single chain.
     windows : list of dict
-        Per window: label, samples, in-grid fraction, block length, sparse flag.
+        Per window: label, samples, in-grid fraction, block length, sparse and short flags.
     sparse : list of str
         Labels of windows too short for a block length (iid errors there).
+    short : list of str
+        Labels of series shorter than ``100 tau_int`` (block length capped): their errors are
+        underestimated (module notes, *Errors*).
     method : str
     """
 
@@ -251,6 +263,7 @@ class Profile:
     sparse: list
     method: str
     notes: list = field(default_factory=list)
+    short: list = field(default_factory=list)
 
     @property
     def centres(self) -> np.ndarray:
@@ -268,11 +281,14 @@ class Profile:
             lines.append(f"unvisited bins (F left NaN): {', '.join(str(int(b)) for b in self.unvisited)}")
         if self.sparse:
             lines.append(f"too few samples for a block length (iid errors): {', '.join(self.sparse)}")
+        if self.short:
+            lines.append(f"shorter than {BLOCK_FACTOR * MIN_BLOCKS:.0f} tau_int (blocks capped; errors UNDERESTIMATED: "
+                         f"run longer or use the scatter of independent chains): {', '.join(self.short)}")
         lines += self.notes
         return "\n".join(lines) + f"\n({_TOY})"
 
 
-def _finish(edges, logp_central, logp_reps, counts, window_f, info, sparse, method, notes) -> Profile:
+def _finish(edges, logp_central, logp_reps, counts, window_f, info, sparse, method, notes, short=()) -> Profile:
     """Normalise log bin probabilities into F = -ln(P/width), with replica ranges."""
     widths = np.diff(edges)
 
@@ -296,7 +312,7 @@ def _finish(edges, logp_central, logp_reps, counts, window_f, info, sparse, meth
     err[unvisited] = np.nan
     interval[unvisited] = np.nan
     return Profile(edges, F, err, interval, reps, counts, unvisited, window_f, info, sparse, method,
-                   notes)
+                   notes, list(short))
 
 
 def _wham_solve(h, n_k, w, f0=None):
@@ -382,21 +398,23 @@ def wham(windows: Sequence[Window], edges, *, n_boot: int = 200, seed: int = 0,
     if len(windows) == 0:
         raise ValueError("wham needs at least one window")
     centres = 0.5 * (edges[1:] + edges[:-1])
-    blocks, info, sparse = [], [], []
+    blocks, info, sparse, short = [], [], [], []
     w = np.empty((len(windows), len(centres)))
     for k, win in enumerate(windows):
         label = win.label or f"window {k}"
         if win.block is not None:
-            blen, sp = int(win.block), False
+            blen, sp, capped = int(win.block), False, False
         else:
-            blen, sp = block_length(win.x, block_factor)
+            blen, sp, capped = block_length(win.x, block_factor)
         hb = _block_hist(win.x, edges, max(1, blen))
         blocks.append(hb)
         n_in = float(hb.sum())
         info.append({"label": label, "samples": len(win.x), "in_grid": n_in / max(1, len(win.x)),
-                     "block": blen, "sparse": sp})
+                     "block": blen, "sparse": sp, "short": capped})
         if sp:
             sparse.append(label)
+        if capped:
+            short.append(label)
         wk = np.asarray(win.bias(centres), dtype=float)
         if wk.shape != centres.shape or not np.all(np.isfinite(wk)):
             raise ValueError(f"{label}: the bias must give finite values at the bin centres")
@@ -413,7 +431,7 @@ def wham(windows: Sequence[Window], edges, *, n_boot: int = 200, seed: int = 0,
         hr = np.array([rng.multinomial(len(b), np.full(len(b), 1.0 / len(b))) @ b for b in blocks])
         lp, _ = _wham_solve(hr, hr.sum(axis=1), w, f0=np.nan_to_num(f))
         reps.append(lp)
-    return _finish(edges, logp, reps, h.sum(axis=0), f, info, sparse, "WHAM", notes)
+    return _finish(edges, logp, reps, h.sum(axis=0), f, info, sparse, "WHAM", notes, short)
 
 
 def mbar_profile(windows: Sequence[Window], edges) -> Profile:
@@ -459,7 +477,8 @@ def multicanonical_profile(x, bias: Callable, edges, *, n_boot: int = 200, seed:
     reweighted in-grid indicator and the reweighted indicator of every bin with at least
     ``MIN_SAMPLES`` samples
     (:func:`_reweighted_block_length`: ``x`` alone can decorrelate much faster than the bins'
-    contents, e.g. when overrelaxation flips its sign).
+    contents, e.g. when overrelaxation flips its sign).  A chain shorter than ``block_factor x 10
+    tau_int`` is listed in ``short`` (errors underestimated; module notes, *Errors*).
     """
     edges = _check_edges(edges)
     x = np.asarray(x, dtype=float).ravel()
@@ -469,9 +488,9 @@ def multicanonical_profile(x, bias: Callable, edges, *, n_boot: int = 200, seed:
     if wx.shape != x.shape or not np.all(np.isfinite(wx)):
         raise ValueError("the weight must give a finite value for every sample")
     if block is None:
-        blen, sp = _reweighted_block_length(x, wx, edges, block_factor)
+        blen, sp, capped = _reweighted_block_length(x, wx, edges, block_factor)
     else:
-        blen, sp = int(block), False
+        blen, sp, capped = int(block), False, False
     shift = float(wx.max()) if len(wx) else 0.0
     blocks = _block_hist(x, edges, max(1, blen), np.exp(wx - shift))
     counts = _block_hist(x, edges, max(1, blen)).sum(axis=0)
@@ -486,9 +505,9 @@ def multicanonical_profile(x, bias: Callable, edges, *, n_boot: int = 200, seed:
     reps = [logp_of(rng.multinomial(len(blocks), np.full(len(blocks), 1.0 / len(blocks))) @ blocks)
             for _ in range(int(n_boot))]
     info = [{"label": "chain", "samples": len(x), "in_grid": counts.sum() / max(1, len(x)),
-             "block": blen, "sparse": sp}]
+             "block": blen, "sparse": sp, "short": capped}]
     return _finish(edges, logp_of(blocks.sum(axis=0)), reps, counts, np.zeros(0), info,
-                   ["chain"] if sp else [], "multicanonical reweighting", [])
+                   ["chain"] if sp else [], "multicanonical reweighting", [], ["chain"] if capped else [])
 
 
 # ----------------------------------------------------------------------------- barrier

@@ -531,7 +531,7 @@ class MucaResult:
             lines.append(f"    {k:22s} {v: .6f} +- {e:.6f}  (tau_int {tau:.3g})")
         blk = self.profile.windows[0]["block"] if self.profile.windows else "?"
         lines.append(f"  -ln P(x): block bootstrap ({self.profile.replicas.shape[0]} replicas, blocks of {blk} "
-                     f"measurements), {len(self.profile.unvisited)} unvisited bins")
+                     f"measurements), {len(self.profile.unvisited)} unvisited bins" + _SHORT * bool(self.profile.short))
         if self.barrier is not None:
             lines.append(f"  barrier Delta F: {self.barrier.summary()}")
         lines += [f"  {n}" for n in self.notes]
@@ -551,6 +551,10 @@ def _average_observables(run: BiasedRun) -> dict:
     }
     return {k: reweighted_mean(v, run.w) for k, v in obs.items()}
 
+
+#: the warning of a production chain shorter than 100 tau_int (sigmasim.analysis.profile, module notes)
+_SHORT = ("; WARNING: the production chain is shorter than 100 tau_int (blocks capped at a tenth of it): the "
+          "errors are UNDERESTIMATED, run longer or compare independent chains")
 
 #: bootstrap replicas of the profile and the barrier (seeded by the config's seed)
 PROFILE_BOOTSTRAP = 200
@@ -911,7 +915,7 @@ def result_blob(res: MucaResult) -> tuple[dict, dict]:
         "seconds": json.dumps(res.seconds),
         "identity": run_identity(res.config, res.params),
         "profile_method": (f"block bootstrap, {res.profile.replicas.shape[0]} replicas, blocks of "
-                           f"{res.profile.windows[0]['block']} measurements"),
+                           f"{res.profile.windows[0]['block']} measurements" + _SHORT * bool(res.profile.short)),
         "barrier": json.dumps({"values": res.barrier.values, "errors": res.barrier.errors,
                                "refined": res.barrier.refined, "failed_replicas": res.barrier.failed_replicas}
                               if res.barrier is not None else {}),

@@ -362,7 +362,7 @@ def result_dict(res: UmbrellaResult) -> dict:
 
     out = {"format": FORMAT, "note": _TOY, "method": p.method, "edges": clean(p.edges), "F": clean(p.F),
            "error": clean(p.error), "counts": clean(p.counts), "unvisited": [int(b) for b in p.unvisited],
-           "window_f": clean(p.window_f), "windows": p.windows, "sparse": p.sparse, "notes": p.notes}
+           "window_f": clean(p.window_f), "windows": p.windows, "sparse": p.sparse, "short": p.short, "notes": p.notes}
     if res.barrier is not None:
         out["barrier"] = {k: {"value": res.barrier.values[k], "error": res.barrier.errors[k]}
                           for k in res.barrier.values}
