@@ -126,6 +126,111 @@ def vacuum_peak(L, d, beta, sweeps, thermalize=500, seed=1, overrelax=3):
             round_trips(x, -0.5, 0.5).half_trips, cpu)
 
 
+def draw_fit(points, fit, d, path, note=""):
+    """Delta F against L^(d-1) with error bars and the fitted curve, to ``path`` (PNG)."""
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    import matplotlib.pyplot as plt
+
+    from sigmasim.storage import atomic_output
+
+    fig, ax = plt.subplots(figsize=(5.6, 4.0))
+    Ls, v, e = (np.array(c, float) for c in zip(*points))
+    ax.errorbar(Ls ** (d - 1), v, e, fmt="o", label=r"$\Delta F(L)$" + note)
+    if fit is not None:
+        grid = np.linspace(Ls.min(), Ls.max(), 100)
+        ax.plot(grid ** (d - 1), fit.model(grid), label=fr"fit: $\sigma$ = {fit.sigma:.4g} $\pm$ "
+                                                    fr"{fit.sigma_error:.2g}, p = {fit.p_value:.2g}")
+    ax.set_xlabel(fr"$L^{{{d - 1}}}$")
+    ax.set_ylabel(r"$\Delta F = F_{saddle} - \bar F_{min}$")
+    ax.legend(fontsize=8)
+    fig.suptitle("barrier vs volume (Binder 1982)\nresearch toy, not a physical prediction", fontsize=9)
+    fig.tight_layout()
+    atomic_output(path, lambda tmp: fig.savefig(tmp, format="png", dpi=120), what="figure")
+    plt.close(fig)
+
+
+def combine_replicas(values, errors):
+    """One volume's Delta F from R >= 2 independent chains (different seeds).
+
+    Returns (mean, error, scatter error, chi^2 of the chains about their mean with their own errors,
+    its p-value for R - 1 dof).  The scatter error is the half width of the 68.27 % Student-t
+    interval, t_{0.8413}(R - 1) std(ddof=1) / sqrt(R) (1.32 std/sqrt(3) for R = 3: the scatter of
+    three chains is itself uncertain by about 50 %); the error is the larger of it and the chains'
+    own errors combined, sqrt(sum e^2) / R, because short chains' own errors are too small
+    (sigmasim.analysis.profile, module notes, *Errors*) and a lucky small scatter should not beat
+    them (common practice, no source)."""
+    from scipy import stats
+
+    v, e = np.asarray(values, float), np.asarray(errors, float)
+    R = v.size
+    if R < 2:
+        raise ValueError("combining needs at least two chains")
+    mean = float(v.mean())
+    scatter = float(stats.t.ppf(0.5 + 0.6827 / 2, R - 1) * v.std(ddof=1) / math.sqrt(R))
+    own = float(math.sqrt(np.sum(e ** 2)) / R)
+    chi2 = float(np.sum((v - mean) ** 2 / e ** 2))
+    return mean, max(scatter, own), scatter, chi2, float(stats.chi2.sf(chi2, R - 1))
+
+
+def combine(args, log) -> int:
+    """--combine DIR...: Delta F(L) from the interface_tension.json of independent runs (other --seed),
+    the fits of every --fit-terms form over the volumes all runs have, <out>/combined.json and <out>/fit.png."""
+    from sigmasim.analysis import profile as pr
+    from sigmasim.storage import atomic_output
+
+    runs = []
+    for d in args.combine:
+        try:
+            runs.append(json.loads((Path(d) / "interface_tension.json").read_text()))
+        except (OSError, ValueError) as exc:
+            print(f"interface_tension: error: cannot read {Path(d) / 'interface_tension.json'} ({exc})", file=sys.stderr)
+            return 2
+    seeds = [r["args"].get("seed") for r in runs]
+    if len(set(seeds)) != len(seeds):
+        print(f"interface_tension: error: --combine wants independent runs, but the seeds repeat: {seeds}",
+              file=sys.stderr)
+        return 2
+    by_L = {}
+    for r in runs:
+        for row in r["volumes"]:
+            if row["L"] in args.L and "barrier_mean" in row and not row.get("minimum_at_edge"):
+                by_L.setdefault(row["L"], []).append((row["barrier_mean"]["value"], row["barrier_mean"]["error"],
+                                                       bool(row.get("short"))))
+    rows, points = [], []
+    for L in sorted(by_L):
+        reps = by_L[L]
+        if len(reps) < 2:
+            log(f"L = {L}: only {len(reps)} run(s) with a barrier: left out")
+            continue
+        v, e, short = zip(*reps)
+        mean, err, scatter, chi2, p = combine_replicas(v, e)
+        rows.append({"L": L, "runs": len(v), "values": list(v), "errors": list(e), "mean": mean, "error": err,
+                     "scatter_error": scatter, "chi2": chi2, "dof": len(v) - 1, "p_value": p})
+        points.append((L, mean, err))
+        log(f"L = {L}: Delta F = {mean:.4g} +- {err:.2g} from {len(v)} runs ({', '.join(f'{a:.4g}({b:.2g})' for a, b in zip(v, e))}); "
+            f"scatter error {scatter:.2g}; chi^2 of the runs about their mean {chi2:.3g} / {len(v) - 1} (p {p:.2g})")
+    fits, chosen = {}, None
+    for terms in ((), ("const",), ("const", "log")):
+        if len(points) > len(terms) + 1:
+            fit = pr.fit_interface_tension(*zip(*points), d=args.d, terms=terms)
+            fits[" + ".join(("2 sigma L^2",) + terms)] = {"params": fit.params, "errors": fit.errors, "chi2": fit.chi2,
+                                                        "dof": fit.dof, "p_value": fit.p_value}
+            log(f"fit Delta F = 2 sigma L^{args.d - 1}{''.join(' + ' + t for t in terms)} over L = "
+                f"{[q[0] for q in points]}: {fit.summary()}")
+            if tuple(args.fit_terms) == terms:
+                chosen = fit
+    out = Path(args.out)
+    text = json.dumps({"note": "research toy, not a physical prediction", "runs": [str(d) for d in args.combine],
+                       "seeds": seeds, "volumes": rows, "fits": fits}, indent=1)
+    atomic_output(out / "combined.json", lambda tmp: Path(tmp).write_text(text), what="table")
+    if points:
+        draw_fit(points, chosen, args.d, out / "fit.png", note=f" ({len(runs)} independent runs)")
+    log(f"wrote {out / 'combined.json'}" + (f", {out / 'fit.png'}" if points else ""))
+    return 0
+
+
 def reanalyse(args, log) -> int:
     """--reanalyse: the barrier, the fit and the error of Delta F against production CPU time again from
     <out>/interface_tension.json and <out>/series-L<L>.npz for the volumes in --L (no new sweeps,
@@ -228,6 +333,9 @@ def one_volume(L, args, log):
         row["minimum_at_edge"] = list(br.at_edge)
     log(f"  L = {L}: grid [{lo:g}, {hi:g}] in {bins} bins; Wang-Landau sweeps {[w['sweeps'] for w in res.wl]}, "
         f"flatness {[round(w['flatness'], 2) for w in res.wl]}; {len(prof.unvisited)} unvisited bins")
+    if prof.short:
+        log(f"  L = {L}: the production chain is shorter than 100 tau_int: its errors are UNDERESTIMATED "
+            f"(run longer, or run other --seed values and --combine them)")
     log(f"  L = {L}: {br.summary() if br is not None else 'no barrier'}; {rt.summary()}; {cpu:.0f} CPU s "
         f"({', '.join(f'{k} {v:.0f}' for k, v in res.seconds.items())}); production "
         f"{res.run.seconds / max(1, res.run.x.size):.3g} CPU s per sweep")
@@ -263,6 +371,10 @@ def main(argv=None) -> int:
     ap.add_argument("--reanalyse", action="store_true",
                     help="redo the barrier (--half-width, --saddle-window), both fits and the error of Delta F "
                          "against CPU time from the files a --save-series run left in --out; no sweeps")
+    ap.add_argument("--combine", nargs="+", metavar="DIR", default=None,
+                    help="instead of the study: Delta F(L) from the --out folders of independent runs (other --seed): "
+                         "mean, the larger of the scatter and the runs' own errors, their consistency chi^2, the fits "
+                         "and <out>/fit.png, <out>/combined.json")
     ap.add_argument("--save-series", action="store_true",
                     help="also write <out>/series-L<L>.npz (production x and the frozen weight) to redo the analysis")
     ap.add_argument("--half-width", type=int, default=3,
@@ -310,6 +422,8 @@ def main(argv=None) -> int:
     args.schedule_of = {s[0]: (s[1], s[2]) for s in args.schedule}
     if args.reanalyse:
         return reanalyse(args, log)
+    if args.combine:
+        return combine(args, log)
     if args.vacua:
         spec = []
         for L in args.L:
@@ -355,26 +469,8 @@ def main(argv=None) -> int:
                      xlabel=r"Im $\omega_h$" if args.variable == "im_omega_h" else r"arg $\omega_h$",
                      title=f"U(3), d = {args.d}, beta {args.beta}, h 0.5, kappa 2, theta = pi: multicanonical")
     if have:
-        import matplotlib
-
-        matplotlib.use("Agg", force=True)
-        import matplotlib.pyplot as plt
-
-        fig, ax = plt.subplots(figsize=(5.6, 4.0))
-        Ls = np.array([r["L"] for r in have], float)
-        ax.errorbar(Ls ** (args.d - 1), [r["barrier_mean"]["value"] for r in have],
-                    [r["barrier_mean"]["error"] for r in have], fmt="o", label=r"$\Delta F(L)$")
-        if fit is not None:
-            grid = np.linspace(Ls.min(), Ls.max(), 100)
-            ax.plot(grid ** (args.d - 1), fit.model(grid), label=fr"fit: $\sigma$ = {fit.sigma:.4g} $\pm$ "
-                                                              fr"{fit.sigma_error:.2g}, p = {fit.p_value:.2g}")
-        ax.set_xlabel(fr"$L^{{{args.d - 1}}}$")
-        ax.set_ylabel(r"$\Delta F = F_{saddle} - \bar F_{min}$")
-        ax.legend(fontsize=8)
-        fig.suptitle("barrier vs volume (Binder 1982)\nresearch toy, not a physical prediction", fontsize=9)
-        fig.tight_layout()
-        atomic_output(out / "fit.png", lambda tmp: fig.savefig(tmp, format="png", dpi=120), what="figure")
-        plt.close(fig)
+        draw_fit([(r["L"], r["barrier_mean"]["value"], r["barrier_mean"]["error"]) for r in have], fit, args.d,
+                 out / "fit.png")
     log(f"wrote {out / 'interface_tension.json'}, {out / 'profiles.png'}")
     return 0
 
