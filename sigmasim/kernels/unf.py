@@ -719,7 +719,23 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
                     q = uc0 + np.uint64(j)
                     U[comp, j] = re[comp, q]
                     U[nc + comp, j] = im[comp, q]
-            for a in range(nf):
+            if nf == 3:  # one pass per entry, the sums in locals (the order of the generic loop below)
+                for a in range(3):
+                    for e in range(3):
+                        cw = a * 3 + e
+                        for j in range(m):
+                            wr = 0.0
+                            wi = 0.0
+                            for c in range(3):
+                                ur = U[a * 3 + c, j]
+                                ui = U[9 + a * 3 + c, j]
+                                mr = M[e * 3 + c, j]
+                                mi = M[9 + e * 3 + c, j]
+                                wr += ur * mr + ui * mi
+                                wi += ui * mr - ur * mi
+                            W[cw, j] = wr
+                            W[9 + cw, j] = wi
+            for a in range(nf if nf != 3 else 0):
                 for e in range(nf):
                     cw = a * nf + e
                     for j in range(m):
