@@ -820,7 +820,14 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
             # ---- U(nf): the phase step, accepted with the determinant's Metropolis ratio
             if not special:
                 # z = Tr W; the proposal e (hb: von Mises around conj z, or: (conj z / |z|)^2)
-                for s in range(m):
+                if nf == 3:  # the loop below with the flavour sum unrolled: a vector loop
+                    for s in range(m):
+                        zr = ((0.0 + W[0, s]) + W[4, s]) + W[8, s]
+                        zi = ((0.0 + W[9, s]) + W[13, s]) + W[17, s]
+                        V[0, s] = zr
+                        V[1, s] = zi
+                        V[2, s] = np.sqrt(zr * zr + zi * zi)
+                for s in range(m if nf != 3 else 0):
                     zr = 0.0
                     zi = 0.0
                     for a in range(nf):
