@@ -74,6 +74,25 @@ def _set_run(M, nc, dst, re, im, src, n, c):
 
 
 @njit(cache=True, inline="always")
+def _add_run2(M, nc, dst, re, im, src, src2, n, c, first):
+    """M[(c, nc + c), dst + i] = ((M or 0) + (re, im)[c, src + i]) + (re, im)[c, src2 + i] for i < n:
+    two directions in one pass, the additions in the order of two :func:`_add_run` passes."""
+    s = np.uint64(src)
+    s2 = np.uint64(src2)
+    d = np.uint64(dst)
+    if first:
+        for i in range(n):
+            p = d + np.uint64(i)
+            M[c, p] = (0.0 + re[c, s + np.uint64(i)]) + re[c, s2 + np.uint64(i)]
+            M[nc + c, p] = (0.0 + im[c, s + np.uint64(i)]) + im[c, s2 + np.uint64(i)]
+    else:
+        for i in range(n):
+            p = d + np.uint64(i)
+            M[c, p] = (M[c, p] + re[c, s + np.uint64(i)]) + re[c, s2 + np.uint64(i)]
+            M[nc + c, p] = (M[nc + c, p] + im[c, s + np.uint64(i)]) + im[c, s2 + np.uint64(i)]
+
+
+@njit(cache=True, inline="always")
 def _fast_rows_scaled(Mc, Tc, X, x, src, m, h, fo, ff, fl, beta):
     """Tc = ((Mc + plus) + minus) * beta: :func:`u3._fast_rows` and the scaling in one pass."""
     us = np.uint64(src)
@@ -317,7 +336,20 @@ def _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, h
         for comp in range(2 * nc):
             for j in range(m):
                 R[comp, j] = 0.0
-    for k in range(rnbr.shape[0]):
+    nk = rnbr.shape[0]
+    npair = nk // 2
+    for kp in range(npair):  # two directions per pass over runs contiguous in both
+        k = 2 * kp
+        g = r0
+        while g < r1:
+            g2 = g + 1
+            while g2 < r1 and rnbr[k, g2] == rnbr[k, g2 - 1] + 1 and rnbr[k + 1, g2] == rnbr[k + 1, g2 - 1] + 1:
+                g2 += 1
+            for c in range(nc):
+                _add_run2(R, nc, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, other + rnbr[k + 1, g] * h + j0,
+                          (g2 - g) * w, c, k == 0)
+            g = g2
+    for k in range(2 * npair, nk):
         g = r0
         while g < r1:
             g2 = g + 1
@@ -687,7 +719,23 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
                     q = uc0 + np.uint64(j)
                     U[comp, j] = re[comp, q]
                     U[nc + comp, j] = im[comp, q]
-            for a in range(nf):
+            if nf == 3:  # one pass per entry, the sums in locals (the order of the generic loop below)
+                for a in range(3):
+                    for e in range(3):
+                        cw = a * 3 + e
+                        for j in range(m):
+                            wr = 0.0
+                            wi = 0.0
+                            for c in range(3):
+                                ur = U[a * 3 + c, j]
+                                ui = U[9 + a * 3 + c, j]
+                                mr = M[e * 3 + c, j]
+                                mi = M[9 + e * 3 + c, j]
+                                wr += ur * mr + ui * mi
+                                wi += ui * mr - ur * mi
+                            W[cw, j] = wr
+                            W[9 + cw, j] = wi
+            for a in range(nf if nf != 3 else 0):
                 for e in range(nf):
                     cw = a * nf + e
                     for j in range(m):
@@ -772,7 +820,14 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
             # ---- U(nf): the phase step, accepted with the determinant's Metropolis ratio
             if not special:
                 # z = Tr W; the proposal e (hb: von Mises around conj z, or: (conj z / |z|)^2)
-                for s in range(m):
+                if nf == 3:  # the loop below with the flavour sum unrolled: a vector loop
+                    for s in range(m):
+                        zr = ((0.0 + W[0, s]) + W[4, s]) + W[8, s]
+                        zi = ((0.0 + W[9, s]) + W[13, s]) + W[17, s]
+                        V[0, s] = zr
+                        V[1, s] = zi
+                        V[2, s] = np.sqrt(zr * zr + zi * zi)
+                for s in range(m if nf != 3 else 0):
                     zr = 0.0
                     zi = 0.0
                     for a in range(nf):
