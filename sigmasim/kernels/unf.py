@@ -74,25 +74,6 @@ def _set_run(M, nc, dst, re, im, src, n, c):
 
 
 @njit(cache=True, inline="always")
-def _add_run2(M, nc, dst, re, im, src, src2, n, c, first):
-    """M[(c, nc + c), dst + i] = ((M or 0) + (re, im)[c, src + i]) + (re, im)[c, src2 + i] for i < n:
-    two directions in one pass, the additions in the order of two :func:`_add_run` passes."""
-    s = np.uint64(src)
-    s2 = np.uint64(src2)
-    d = np.uint64(dst)
-    if first:
-        for i in range(n):
-            p = d + np.uint64(i)
-            M[c, p] = (0.0 + re[c, s + np.uint64(i)]) + re[c, s2 + np.uint64(i)]
-            M[nc + c, p] = (0.0 + im[c, s + np.uint64(i)]) + im[c, s2 + np.uint64(i)]
-    else:
-        for i in range(n):
-            p = d + np.uint64(i)
-            M[c, p] = (M[c, p] + re[c, s + np.uint64(i)]) + re[c, s2 + np.uint64(i)]
-            M[nc + c, p] = (M[nc + c, p] + im[c, s + np.uint64(i)]) + im[c, s2 + np.uint64(i)]
-
-
-@njit(cache=True, inline="always")
 def _fast_rows_scaled(Mc, Tc, X, x, src, m, h, fo, ff, fl, beta):
     """Tc = ((Mc + plus) + minus) * beta: :func:`u3._fast_rows` and the scaling in one pass."""
     us = np.uint64(src)
@@ -336,20 +317,7 @@ def _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, h
         for comp in range(2 * nc):
             for j in range(m):
                 R[comp, j] = 0.0
-    nk = rnbr.shape[0]
-    npair = nk // 2
-    for kp in range(npair):  # two directions per pass over runs contiguous in both
-        k = 2 * kp
-        g = r0
-        while g < r1:
-            g2 = g + 1
-            while g2 < r1 and rnbr[k, g2] == rnbr[k, g2 - 1] + 1 and rnbr[k + 1, g2] == rnbr[k + 1, g2 - 1] + 1:
-                g2 += 1
-            for c in range(nc):
-                _add_run2(R, nc, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, other + rnbr[k + 1, g] * h + j0,
-                          (g2 - g) * w, c, k == 0)
-            g = g2
-    for k in range(2 * npair, nk):
+    for k in range(rnbr.shape[0]):
         g = r0
         while g < r1:
             g2 = g + 1
