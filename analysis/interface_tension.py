@@ -68,13 +68,20 @@ runs/it-b080 --saddle-window 0.15 [--L ...]``, 9 CPU s): 2 sigma L^2 + const ove
 sigma = 0.1001(9), const = -0.40(8), chi^2 43.5 / 3 (p 2e-9): the form does not describe the data;
 over L = 6..12: sigma = 0.1103(19), const = -2.24(31), chi^2 6.35 / 2 (p 0.04); over L = 8..12:
 0.1115(21), chi^2 3.97 / 1 (p 0.05); with a ln L term as well over L = 4..12: sigma = 0.122(4),
-chi^2 2.51 / 2 (p 0.29).  sigma depends on the fit form far more than on the statistics.  Two more
-L = 12 runs (benchmarks/multicanonical_roundtrip.py notes: other seeds and schedules) gave 28.32(41)
-and 27.53(76): with 29.88(32), chi^2 13.8 for 2 dof about the weighted mean (p 0.001), so the
-block-bootstrap errors at 50-75 round trips are too small by a factor of about 2.6 (not yet
-understood: likely the Gamma-method tau_int of the left/right occupation, which the block length
-rests on, is underestimated when the series holds only about 30 round trips), and the chi^2 of the
-fits above is inflated accordingly.  Research toy numbers, not physical predictions.
+chi^2 2.51 / 2 (p 0.29).  sigma depends on the fit form far more than on the statistics.
+
+Independent runs: the same command with --seed 101 and --seed 201 (and --out of their own) gave
+Delta F = 2.916(57), 6.73(15), 11.81(18), 19.37(21), 29.48(49) and 2.974(51), 6.66(15), 12.10(18),
+18.82(81), 29.32(38) at L = 4..12; the three runs agree at every L (chi^2 about their mean 1.3-2.1
+for 2 dof), and ``--combine`` gives 2.926(33), 6.56(18), 11.92(12), 19.14(30), 29.56(23) (README).
+At L = 12 each production chain holds only about 16 tau_int of arg omega_h (tau_int about 2500
+sweeps), so its block length is capped and the profile lists it in ``short`` (errors
+underestimated); quote errors from independent runs there.  Two L = 12 runs of
+benchmarks/multicanonical_roundtrip.py with other Wang-Landau schedules and production lengths
+(its notes) gave 28.32(41) and 27.53(76), 3.0 and 2.7 of their own errors below the combined
+29.56(23); not understood (the benchmark fits every extremum over 7 bins where this study widens the
+saddle's window, and one of those runs left its grid's tails unvisited).  Research toy numbers, not
+physical predictions.
 """
 
 from __future__ import annotations

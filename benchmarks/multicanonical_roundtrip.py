@@ -74,9 +74,11 @@ minima at -0.924 and +0.937 still have 5 and 8 visited bins beyond them): a flat
 histogram at f = 1/4 does not make W accurate there.  58 passages, 690 sweeps (68 %: 600-794) and
 5.1 CPU s per round trip; Delta F(12) = 27.53 +- 0.76.  The three independent L = 12 estimates on
 these grids (28.32(41) here, 29.88(32) from analysis/interface_tension.py at seed 13, 27.53(76))
-scatter with chi^2 13.8 for 2 dof (p 0.001) about their weighted mean: the block-bootstrap errors
-are too small by a factor of about 2.6 at 50-75 round trips; their plain mean and scatter give
-Delta F(12) = 28.6 +- 0.7 (2.4 %).
+scatter with chi^2 13.8 for 2 dof (p 0.001) about their weighted mean.  Three runs of
+analysis/interface_tension.py with one schedule and seeds 1, 101, 201 agree with each other (29.88(32),
+29.48(49), 29.32(38); combined 29.56(23)), so the two runs here sit below
+them; not understood (3.0 and 2.7 of their own errors; this script fits every extremum over 7 bins where the study widens the
+saddle's window; the second run left its grid's tails unvisited).
 
 Research toy numbers, not physical predictions.
 """

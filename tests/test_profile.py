@@ -434,8 +434,7 @@ def test_a_chain_shorter_than_100_tau_int_is_flagged_short():
     such chains: the 68 % interval of ln P(x > 0) - ln P(x < 0) covered the exact 0 in 0.52 of them,
     against 0.63 at switching probability 0.05), and the profile must say so (``short``, the
     summary, the multicanonical summary); at switching probability 0.05 (tau_int about 10) it must
-    not.  The three beta = 0.80, L = 12 interface chains of README were such chains (16 tau_int;
-    their barriers scattered 2.6x beyond their bootstrap errors)."""
+    not.  The beta = 0.80, L = 12 interface chains of README are such chains (16 tau_int)."""
     from sigmasim.protocols.multicanonical import _SHORT
     from sigmasim.synth import telegraph
 
@@ -460,8 +459,8 @@ def _script_main():
 
 def test_combining_independent_chains_covers_when_their_own_errors_are_too_small():
     """Bias and coverage of combine_replicas (analysis/interface_tension.py) on synthetic Delta F:
-    R independent chains, each Gaussian about the truth with sd 1 but reporting an error 1/2.6 (as
-    the beta 0.80, L = 12 chains did).  The combined 68 % interval must cover the truth in 68 % of
+    R independent chains, each Gaussian about the truth with sd 1 but reporting an error 1/2.6 (own
+    errors too small, as a chain shorter than 100 tau_int has them).  The combined 68 % interval must cover the truth in 68 % of
     1500 trials or more (the error is the larger of the Student-t scatter half width and the own
     errors), for R = 2 (the few-chains corner), 3 and 8; the mean is unbiased; with honest own
     errors the coverage stays >= 68 % (no over-shrinking).  The consistency chi^2 flags the

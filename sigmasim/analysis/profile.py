@@ -42,9 +42,9 @@ length is ``ceil(10 tau_int)`` of the window's series from Wolff's Gamma method
 capped so that at least 10 blocks remain.  A series whose block length had to be capped (shorter
 than ``10 x 10 = 100 tau_int``: a multicanonical chain with a few dozen round trips) is listed in
 ``short``: its blocks are shorter than the correlations and its tau_int itself is estimated low, so
-its errors are underestimated (a beta = 0.80, L = 12 interface study gave three independent chains of
-about 16 tau_int whose barriers scattered 2.6x beyond their bootstrap errors): run it longer or
-take the error from the scatter of independent chains.  A window with fewer than
+its errors are underestimated (at beta = 0.80, L = 12 a multicanonical production chain of 40000
+sweeps holds about 16 tau_int of arg omega_h): run it longer or take the error from the scatter of
+independent chains.  A window with fewer than
 :data:`sigmasim.analysis.gamma.MIN_SAMPLES` samples gets blocks of one sample and is listed in
 ``sparse`` (its errors are then iid errors: too few samples to measure an autocorrelation).  Each
 replica resamples blocks with replacement inside every window independently and re-solves WHAM.
