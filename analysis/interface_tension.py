@@ -79,8 +79,10 @@ sweeps), so its block length is capped and the profile lists it in ``short`` (er
 underestimated); quote errors from independent runs there.  Two L = 12 runs of
 benchmarks/multicanonical_roundtrip.py with other Wang-Landau schedules and production lengths
 (its notes) gave 28.32(41) and 27.53(76), 3.0 and 2.7 of their own errors below the combined
-29.56(23); not understood (the benchmark fits every extremum over 7 bins where this study widens the
-saddle's window, and one of those runs left its grid's tails unvisited).  Research toy numbers, not
+29.56(23); not understood: neither the schedule (this script with the first one's six-iteration
+Wang-Landau schedule, ``--L 12 --grid 12 -1.030 1.030 344 --wl-iterations 6 --schedule 12 4000 30000
+--seed 301``, gave 29.45(35)) nor the saddle window (7-bin windows everywhere: 29.99(36), 29.53(51),
+29.38(43) for the three runs above).  Research toy numbers, not
 physical predictions.
 """
 
