@@ -160,6 +160,20 @@ def draw_fit(points, fit, d, path, note=""):
     plt.close(fig)
 
 
+def fit_forms(points, d, log) -> dict:
+    """Fit Delta F = 2 sigma L^(d-1) [+ const [+ log]] to ``points`` ((L, Delta F, error) each) in every
+    form the number of volumes allows; logs each fit and returns {terms: fit}."""
+    from sigmasim.analysis import profile as pr
+
+    fits = {}
+    for terms in ((), ("const",), ("const", "log")):
+        if len(points) > len(terms) + 1:
+            fits[terms] = fit = pr.fit_interface_tension(*zip(*points), d=d, terms=terms)
+            log(f"fit Delta F = 2 sigma L^{d - 1}{''.join(' + ' + t for t in terms)} over L = "
+                f"{[q[0] for q in points]}: {fit.summary()}")
+    return fits
+
+
 def combine_replicas(values, errors):
     """One volume's Delta F from R >= 2 independent chains (different seeds).
 
@@ -186,7 +200,6 @@ def combine_replicas(values, errors):
 def combine(args, log) -> int:
     """--combine DIR...: Delta F(L) from the interface_tension.json of independent runs (other --seed),
     the fits of every --fit-terms form over the volumes all runs have, <out>/combined.json and <out>/fit.png."""
-    from sigmasim.analysis import profile as pr
     from sigmasim.storage import atomic_output
 
     runs = []
@@ -220,16 +233,10 @@ def combine(args, log) -> int:
         points.append((L, mean, err))
         log(f"L = {L}: Delta F = {mean:.4g} +- {err:.2g} from {len(v)} runs ({', '.join(f'{a:.4g}({b:.2g})' for a, b in zip(v, e))}); "
             f"scatter error {scatter:.2g}; chi^2 of the runs about their mean {chi2:.3g} / {len(v) - 1} (p {p:.2g})")
-    fits, chosen = {}, None
-    for terms in ((), ("const",), ("const", "log")):
-        if len(points) > len(terms) + 1:
-            fit = pr.fit_interface_tension(*zip(*points), d=args.d, terms=terms)
-            fits[" + ".join(("2 sigma L^2",) + terms)] = {"params": fit.params, "errors": fit.errors, "chi2": fit.chi2,
-                                                        "dof": fit.dof, "p_value": fit.p_value}
-            log(f"fit Delta F = 2 sigma L^{args.d - 1}{''.join(' + ' + t for t in terms)} over L = "
-                f"{[q[0] for q in points]}: {fit.summary()}")
-            if tuple(args.fit_terms) == terms:
-                chosen = fit
+    done = fit_forms(points, args.d, log)
+    fits = {" + ".join(("2 sigma L^2",) + t): {"params": f.params, "errors": f.errors, "chi2": f.chi2, "dof": f.dof,
+                                               "p_value": f.p_value} for t, f in done.items()}
+    chosen = done.get(tuple(args.fit_terms))
     out = Path(args.out)
     text = json.dumps({"note": "research toy, not a physical prediction", "runs": [str(d) for d in args.combine],
                        "seeds": seeds, "volumes": rows, "fits": fits}, indent=1)
@@ -286,11 +293,7 @@ def reanalyse(args, log) -> int:
               f"7200 CPU s (1 h on 2 cores): {rel[-1] * math.sqrt(t[-1] / 7200):.2g}")
         if not br.at_edge:
             have.append((L, v[-1], e[-1]))
-    for terms in ((), ("const",), ("const", "log")):
-        if len(have) > len(terms) + 1:
-            fit = pr.fit_interface_tension(*zip(*have), d=args.d, terms=terms)
-            log(f"fit Delta F = 2 sigma L^{args.d - 1}{''.join(' + ' + t for t in terms)} over L = {[h[0] for h in have]}: "
-                f"{fit.summary()}")
+    fit_forms(have, args.d, log)
     return 0
 
 

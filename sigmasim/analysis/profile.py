@@ -83,7 +83,6 @@ Everything shown from this module is a research toy, not a physical prediction.
 
 from __future__ import annotations
 
-import math
 import warnings
 from dataclasses import dataclass, field
 from typing import Callable, Sequence
@@ -536,16 +535,24 @@ def _refine(c, F, i, hw, kind):
     return float(c[i]), float(F[i]), False
 
 
-def _extrema(c, F, split, hw, hws=None):
-    """(xL, FL, xS, FS, xR, FR, all refined) of one profile; NaNs when a side has no finite bin.
-    ``hws``: half width of the saddle's fitting window (default ``hw``)."""
+def _minimum_bins(c, F, split):
+    """The lowest visited bin left and right of ``split`` (``None`` when a side has none)."""
     fin = np.isfinite(F)
     left = np.nonzero(fin & (c < split))[0]
     right = np.nonzero(fin & (c >= split))[0]
     if len(left) == 0 or len(right) == 0:
+        return None
+    return left[np.argmin(F[left])], right[np.argmin(F[right])]
+
+
+def _extrema(c, F, split, hw, hws=None):
+    """(xL, FL, xS, FS, xR, FR, all refined) of one profile; NaNs when a side has no finite bin.
+    ``hws``: half width of the saddle's fitting window (default ``hw``)."""
+    ends = _minimum_bins(c, F, split)
+    if ends is None:
         return (np.nan,) * 6 + (False,)
-    il = left[np.argmin(F[left])]
-    ir = right[np.argmin(F[right])]
+    il, ir = ends
+    fin = np.isfinite(F)
     mid = np.arange(il, ir + 1)
     mid = mid[fin[mid]]
     i_s = mid[np.argmax(F[mid])]
@@ -644,8 +651,7 @@ def barrier(profile: Profile, split: float | None = None, half_width: int = 4,
         else:
             errs[k] = float("nan")
     fin = np.isfinite(profile.F)
-    left, right = np.nonzero(fin & (c < split))[0], np.nonzero(fin & (c >= split))[0]
-    il, ir = left[np.argmin(profile.F[left])], right[np.argmin(profile.F[right])]   # as in _extrema
+    il, ir = _minimum_bins(c, profile.F, split)
     outer = {"left": int(np.count_nonzero(fin[:il])), "right": int(np.count_nonzero(fin[ir + 1:]))}
     return BarrierResult({k: float(v) for k, v in vals.items()}, errs, samp, bool(central[6]), failed, outer)
 
