@@ -90,15 +90,16 @@ def initial_field(config, lattice) -> tuple[np.ndarray, np.ndarray]:
             phase = np.exp(2j * np.pi * config.start_branch / nf)
         u = np.broadcast_to(phase * np.eye(nf, dtype=np.complex128), (volume, nf, nf))
     else:
+        # Haar measure: Gram-Schmidt on the rows of a complex Gaussian matrix (the QR construction
+        # with R's diagonal made positive, F. Mezzadri, Notices AMS 54 (2007) 592); for SU(nf) the
+        # det phase divided out.  Done by the kernels' own projection, not LAPACK: numpy's QR runs
+        # CPU-dependent BLAS code, so its last bits (and then the whole chain) differed between machines.
         rng = np.random.default_rng([config.seed, 0x407])
-        # Haar measure via QR with the phase fix (F. Mezzadri, Notices AMS 54 (2007) 592)
-        z = (rng.normal(size=(volume, nf, nf)) + 1j * rng.normal(size=(volume, nf, nf))) / np.sqrt(2)
-        q, r = np.linalg.qr(z)
-        d = np.diagonal(r, axis1=1, axis2=2)
-        u = q * (d / np.abs(d))[:, None, :]
-        if config.special:
-            det = np.linalg.det(u)
-            u = u * np.exp(-1j * np.angle(det) / nf)[:, None, None]
+        z = rng.normal(size=(volume, nf, nf)) + 1j * rng.normal(size=(volume, nf, nf))
+        flat = z.reshape(volume, nf * nf).T
+        re, im = np.ascontiguousarray(flat.real), np.ascontiguousarray(flat.imag)
+        reunitarize(re, im, nf, bool(config.special), 1)
+        return re, im
     flat = np.ascontiguousarray(u.reshape(volume, nf * nf).T)
     return np.ascontiguousarray(flat.real), np.ascontiguousarray(flat.imag)
 
