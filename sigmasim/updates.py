@@ -139,7 +139,7 @@ def _one_call_update(sim, name):
         tried = 0 if cfg.special else 2 * lat.half
 
         def fn(st):
-            acc = local_unf_update(*head, seed_hash, st.step, rows, get_num_threads())
+            acc = local_unf_update(*head, seed_hash, st.step, rows, get_num_threads(), False)
             st.step += 2
             return int(acc), tried
     made[name] = fn

@@ -872,13 +872,18 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
 
 
 @njit(cache=True)
-def local_unf_update(re, im, rnbr, rpar, h, nf, beta, hdiag, k2r, k2i, special, hb, seed_hash, step, rows, nblk):
+def local_unf_update(re, im, rnbr, rpar, h, nf, beta, hdiag, k2r, k2i, special, hb, seed_hash, step, rows, nblk,
+                     generic):
     """One heatbath or overrelaxation update of both colours in one call: colour ``c`` is colour
-    update ``step + c`` with key ``step_key(seed, step + c)``.  Returns the accepted phase steps."""
+    update ``step + c`` with key ``step_key(seed, step + c)``.  Returns the accepted phase steps.
+    ``generic`` as in :func:`local_unf` (False in runs); an argument from Python, so that
+    local_unf is compiled for a plain bool, as when the tests call it (an omitted default or a
+    constant False would each be a type of its own and compile the largest kernel twice)."""
     acc = 0
     for colour in range(2):
         key = tables.step_key_nb(seed_hash, step + colour, 0)
-        acc += local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special, hb, key, rows, nblk)
+        acc += local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special, hb, key, rows, nblk,
+                         generic)
     return acc
 
 
@@ -1035,7 +1040,7 @@ def metropolis_u2_update(re, im, rnbr, rpar, h, beta, hdiag, k2r, k2i, special, 
     for colour in range(2):
         key = tables.step_key_nb(seed_hash, step + colour, 0)
         tkey = tables.step_key_nb(seed_hash, step + colour, salt)
-        tables.rotation_table(2, special, eps, tkey, table, dets)
+        tables.rotation_table(np.int64(2), special, eps, tkey, table, dets)  # int64, not a literal: one compile
         pack_table2(table, dets, tab)
         acc += metropolis_u2(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhits, key, rows, nblk)
     return acc
