@@ -37,7 +37,7 @@ from sigmasim.kernels.general import flavour_order
 from sigmasim.kernels.group import KP_MIN, det, det_lu_in_place
 from sigmasim.kernels.serial import total, zeros_int
 from sigmasim.kernels.simd import exp_le0, log1m, log_pos, lookup16, one_minus_exp_neg, sincos_pm_pi, u01_from_bits
-from sigmasim.kernels.u3 import CHUNK_SITES, _det3
+from sigmasim.kernels.u3 import CHUNK_SITES, _chunk_field, _det3
 from sigmasim.rng import SITE_STRIDE, bits, uniform
 
 __all__ = ["local_unf", "local_unf_update", "metropolis_u2", "metropolis_u2_update", "pack_table2", "MAX_SUB",
@@ -47,88 +47,6 @@ MAX_SUB = 28  # subgroups of nf = 8
 SUB_STRIDE = np.uint64(1 << 19)  # MAX_SUB + 1 of them fit SITE_STRIDE = 2^24
 _ONE = np.uint64(1)
 _TWO = np.uint64(2)
-
-
-@njit(cache=True, inline="always")
-def _add_run(M, nc, dst, re, im, src, n, c):
-    """M[(c, nc + c), dst + i] += (re, im)[c, src + i] for i < n (unsigned indices: affine)."""
-    s = np.uint64(src)
-    d = np.uint64(dst)
-    for i in range(n):
-        q = s + np.uint64(i)
-        p = d + np.uint64(i)
-        M[c, p] += re[c, q]
-        M[nc + c, p] += im[c, q]
-
-
-@njit(cache=True, inline="always")
-def _set_run(M, nc, dst, re, im, src, n, c):
-    """M[(c, nc + c), dst + i] = 0 + (re, im)[c, src + i]: :func:`_add_run` on zeroed rows, in one pass."""
-    s = np.uint64(src)
-    d = np.uint64(dst)
-    for i in range(n):
-        q = s + np.uint64(i)
-        p = d + np.uint64(i)
-        M[c, p] = 0.0 + re[c, q]
-        M[nc + c, p] = 0.0 + im[c, q]
-
-
-@njit(cache=True, inline="always")
-def _fast_rows_scaled(Mc, Tc, X, x, src, m, h, fo, ff, fl, beta):
-    """Tc = ((Mc + plus) + minus) * beta: :func:`u3._fast_rows` and the scaling in one pass."""
-    us = np.uint64(src)
-    uh = np.uint64(h)
-    for i in range(m):
-        X[uh + np.uint64(i)] = x[us + np.uint64(i)]
-    for i in range(m):
-        k = uh + np.uint64(i)
-        xc = X[k]
-        xp = X[k + np.uint64(1)]
-        xpw = X[k + np.uint64(1) - uh]
-        xm = X[k - np.uint64(1)]
-        xmw = X[k - np.uint64(1) + uh]
-        a = xpw if fl[i] != 0 else xp
-        b = xmw if ff[i] != 0 else xm
-        o = fo[i] != 0
-        Tc[i] = ((Mc[i] + (a if o else xc)) + (xc if o else b)) * beta
-
-
-@njit(cache=True, inline="always")
-def _fast_row(M, nc, b, re, im, rs, h, o, j0, w):
-    """The fastest-direction neighbours (+ before -) of the sites j0 .. j0 + w - 1 of one row
-    (chunk offset b, other colour's row at rs): :func:`u3._fast_row18` for nc components."""
-    ub = np.uint64(b)
-    urs = np.uint64(rs)
-    uh = np.uint64(h)
-    if o == 0:
-        i0 = 0
-        if j0 == 0:
-            for comp in range(nc):
-                M[comp, ub] = (M[comp, ub] + re[comp, urs]) + re[comp, urs + uh - _ONE]
-                M[nc + comp, ub] = (M[nc + comp, ub] + im[comp, urs]) + im[comp, urs + uh - _ONE]
-            i0 = 1
-        q0 = urs + np.uint64(j0)
-        for comp in range(nc):
-            for i in range(i0, w):
-                p = ub + np.uint64(i)
-                q = q0 + np.uint64(i)
-                M[comp, p] = (M[comp, p] + re[comp, q]) + re[comp, q - _ONE]
-                M[nc + comp, p] = (M[nc + comp, p] + im[comp, q]) + im[comp, q - _ONE]
-    else:
-        n1 = w
-        if j0 + w == h:
-            p = ub + np.uint64(w - 1)
-            for comp in range(nc):
-                M[comp, p] = (M[comp, p] + re[comp, urs]) + re[comp, urs + uh - _ONE]
-                M[nc + comp, p] = (M[nc + comp, p] + im[comp, urs]) + im[comp, urs + uh - _ONE]
-            n1 = w - 1
-        q0 = urs + np.uint64(j0)
-        for comp in range(nc):
-            for i in range(n1):
-                p = ub + np.uint64(i)
-                q = q0 + np.uint64(i)
-                M[comp, p] = (M[comp, p] + re[comp, q + _ONE]) + re[comp, q]
-                M[nc + comp, p] = (M[nc + comp, p] + im[comp, q + _ONE]) + im[comp, q]
 
 
 # ----------------------------------------------------------------------------- rejection loops
@@ -305,52 +223,6 @@ def _det_site(U, nf, nc, s, work):
     if nf == 3:
         return det(work, nf, work)  # the closed form only reads its matrix
     return det_lu_in_place(work, nf)
-
-
-@njit(cache=True, inline="always")
-def _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, hdiag, rows, r0, r1, j0, w, m,
-                 other):
-    """M[:, :m] = beta N + diag(conj hdiag) of the chunk's sites (rows r0..r1, sites j0..j0+w of
-    each), components a nf + b (real) and nf^2 + a nf + b (imaginary); R, X, fo: scratch."""
-    nc = nf * nf
-    if rnbr.shape[0] == 0:
-        for comp in range(2 * nc):
-            for j in range(m):
-                R[comp, j] = 0.0
-    for k in range(rnbr.shape[0]):
-        g = r0
-        while g < r1:
-            g2 = g + 1
-            while g2 < r1 and rnbr[k, g2] == rnbr[k, g2 - 1] + 1:
-                g2 += 1
-            for c in range(nc):
-                if k == 0:  # the runs of one direction cover the chunk once: the first sets R = 0 + N_0
-                    _set_run(R, nc, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, (g2 - g) * w, c)
-                else:
-                    _add_run(R, nc, (g - r0) * w, re, im, other + rnbr[k, g] * h + j0, (g2 - g) * w, c)
-            g = g2
-    if rows > 0:
-        for g in range(r0, r1):
-            o = (colour + rpar[g]) % 2 == 1
-            b = (g - r0) * h
-            for j in range(h):
-                fo[b + j] = o
-        src = other + r0 * h
-        for comp in range(nc):
-            _fast_rows_scaled(R[comp], M[comp], X, re[comp], src, m, h, fo, ff, fl, beta)
-            _fast_rows_scaled(R[nc + comp], M[nc + comp], X, im[comp], src, m, h, fo, ff, fl, beta)
-    else:
-        for g in range(r0, r1):
-            _fast_row(R, nc, (g - r0) * w, re, im, other + g * h, h, (colour + rpar[g]) % 2, j0, w)
-        for comp in range(2 * nc):
-            for j in range(m):
-                M[comp, j] = R[comp, j] * beta
-    for a in range(nf):
-        hr = hdiag[a].real
-        hi = -hdiag[a].imag
-        for j in range(m):
-            M[a * nf + a, j] += hr
-            M[nc + a * nf + a, j] += hi
 
 
 # ----------------------------------------------------------------------------- nf = 2 fast path
@@ -636,23 +508,16 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
     flavour_order(key, nf, perm)
     acc = zeros_int(nch)
     nblk = nch if nblk <= 0 else min(nch, nblk)
-    ff = zeros_int(CHUNK_SITES)  # int64 masks: the select loop vectorises (bool: 1.8x slower)
-    fl = zeros_int(CHUNK_SITES)
-    if rows > 0:
-        for g in range(rows):
-            ff[g * h] = 1
-            fl[g * h + h - 1] = 1
     phase_base = np.uint64(MAX_SUB) * SUB_STRIDE
     for blk in prange(nblk):
         S = np.empty(max(2 * nc, S2_SLOTS) * CHUNK_SITES)  # the nf = 2 slots; M its first 2 nc rows
         M = S[: 2 * nc * CHUNK_SITES].reshape((2 * nc, CHUNK_SITES))
-        R = np.empty((2 * nc, CHUNK_SITES))
+        R = np.empty(2 * nc * CHUNK_SITES)  # the slow-direction sums (flat, see _chunk_field)
         U = np.empty((2 * nc, CHUNK_SITES))
         W = np.empty((2 * nc, CHUNK_SITES))
         V = np.empty((6, CHUNK_SITES))  # per-site SU(2) data: A (2), B (2), alpha, x
         Q = np.empty((4, CHUNK_SITES))  # the rotation r0, r1 per site
-        X = np.empty(CHUNK_SITES + 2 * h if rows > 0 else 1)
-        fo = np.empty(CHUNK_SITES, dtype=np.int64)
+        fl = np.empty(CHUNK_SITES, dtype=np.int64)  # int64 flags: the select loop vectorises (bool: 1.8x slower)
         work = np.empty((nf, nf), dtype=np.complex128)
         # the rejection loops' list of sites and scratch: separate arrays (LLVM's run-time overlap
         # checks do not cover two rows of one array written in one loop; with them it does not vectorise)
@@ -676,8 +541,7 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
             uc0 = np.uint64(c0)
             na = 0
             # ---- neighbour sums -> M = beta N + diag(conj h)
-            _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, hdiag, rows, r0, r1,
-                         j0, w, m, other)
+            _chunk_field(S, R, fl, re, im, rnbr, rpar, h, colour, nf, beta, hdiag, rows, r0, r1, j0, w, m, other)
             if nf == 2 and not generic:
                 acc[ch] = _chunk_u2(S, re, im, uc0, m, perm[0], hb, special, k2r, k2i, key, phase_base, L, T, OK)
                 continue
@@ -966,22 +830,16 @@ def metropolis_u2(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
         nch = nrows * nseg
     acc = zeros_int(nch)
     nblk = nch if nblk <= 0 else min(nch, nblk)
-    ff = zeros_int(CHUNK_SITES)  # int64 masks: the select loop vectorises (bool: 1.8x slower)
-    fl = zeros_int(CHUNK_SITES)
-    if rows > 0:
-        for g in range(rows):
-            ff[g * h] = 1
-            fl[g * h + h - 1] = 1
     for blk in prange(nblk):
-        M = np.empty((8, CHUNK_SITES))
-        R = np.empty((8, CHUNK_SITES))
+        Mf = np.empty(8 * CHUNK_SITES)
+        M = Mf.reshape((8, CHUNK_SITES))
+        R = np.empty(8 * CHUNK_SITES)
         W = np.empty((8, CHUNK_SITES))
         D = np.empty((2, CHUNK_SITES))
         T = np.empty((10, CHUNK_SITES))
         uu = np.empty(CHUNK_SITES)
         ix = np.empty(CHUNK_SITES, dtype=np.int64)
-        X = np.empty(CHUNK_SITES + 2 * h if rows > 0 else 1)
-        fo = np.empty(CHUNK_SITES, dtype=np.int64)
+        fl = np.empty(CHUNK_SITES, dtype=np.int64)  # int64 flags: the select loop vectorises (bool: 1.8x slower)
         for ch in range(blk * nch // nblk, (blk + 1) * nch // nblk):
             if rows > 0:
                 r0 = ch * rows
@@ -996,8 +854,7 @@ def metropolis_u2(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
             m = (r1 - r0) * w
             c0 = start + r0 * h + j0
             uc0 = np.uint64(c0)
-            _chunk_field(M, R, X, fo, ff, fl, re, im, rnbr, rpar, h, colour, nf, beta, hdiag, rows, r0, r1,
-                         j0, w, m, other)
+            _chunk_field(Mf, R, fl, re, im, rnbr, rpar, h, colour, nf, beta, hdiag, rows, r0, r1, j0, w, m, other)
             for comp in range(4):
                 for j in range(m):
                     q = uc0 + np.uint64(j)
