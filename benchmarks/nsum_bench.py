@@ -5,8 +5,9 @@
 Loops over every chunk of both colours as the nf >= 2 kernels do (scratch once, one thread)
 and prints the best of several repetitions in ns per site.  Compare two versions only within
 one process (this machine is shared and noisy); a checkout's own numbers from another run are
-not comparable.  Set NUMBA_CPU_NAME (with a NUMBA_CACHE_DIR of its own) for another target,
-e.g. znver3 for AVX2 code.
+not comparable.  For AVX2 code on an AVX-512 machine set NUMBA_CPU_NAME=znver3 and
+NUMBA_CPU_FEATURES to the host's features with every avx512* off (the name alone keeps the
+host's features), with a NUMBA_CACHE_DIR of its own.
 """
 
 from __future__ import annotations
