@@ -320,18 +320,20 @@ def test_lookup16_is_a_table_lookup():
 
 
 # ---------------------------------------------------------------------------- re-unitarisation
-def test_reunitarize3_is_the_generic_projection():
-    from sigmasim.kernels.measure import reunitarize, reunitarize3
+@pytest.mark.parametrize("nf", [2, 3])
+def test_reunitarize2_and_3_are_the_generic_projection(nf):
+    from sigmasim.kernels.measure import reunitarize, reunitarize2, reunitarize3
 
+    fast = reunitarize2 if nf == 2 else reunitarize3
     rng = np.random.default_rng(29)
     for v, nblocks in ((2, 1), (10, 3), (300, 7), (4096, 64)):
-        u = _random_unitary(rng, 3, v)
+        u = _random_unitary(rng, nf, v)
         u = u * (1 + 1e-7 * rng.normal(size=(v, 1, 1))) + 1e-6 * rng.normal(size=u.shape)
-        flat = u.reshape(v, 9).T
+        flat = u.reshape(v, nf * nf).T
         a = (np.ascontiguousarray(flat.real), np.ascontiguousarray(flat.imag))
         b = (a[0].copy(), a[1].copy())
-        da = reunitarize(*a, 3, False, nblocks)
-        db = reunitarize3(*b, nblocks)
+        da = reunitarize(*a, nf, False, nblocks)
+        db = fast(*b, nblocks)
         np.testing.assert_array_equal(b[0], a[0])
         np.testing.assert_array_equal(b[1], a[1])
         # the drift is the same entry, taken as sqrt of its squared modulus instead of hypot
