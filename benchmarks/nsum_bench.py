@@ -18,7 +18,7 @@ import time
 import numpy as np
 from numba import njit
 
-from sigmasim.kernels.u3 import CHUNK_SITES, _chunk_field, rows_per_chunk3
+from sigmasim.kernels.u3 import CHUNK_SITES, _chunk_field, chunk_span, rows_per_chunk3
 from sigmasim.lattice import make_lattice
 
 
@@ -43,16 +43,7 @@ def sweep_sums(re, im, rnbr, rpar, h, nf, beta, hdiag, rows, reps):
         for colour in range(2):
             other = (1 - colour) * half
             for ch in range(nch):
-                if rows > 0:
-                    r0 = ch * rows
-                    r1 = min(nrows, r0 + rows)
-                    j0 = 0
-                    w = h
-                else:
-                    r0 = ch // nseg
-                    r1 = r0 + 1
-                    j0 = (ch % nseg) * CHUNK_SITES
-                    w = min(CHUNK_SITES, h - j0)
+                r0, r1, j0, w = chunk_span(ch, rows, nseg, nrows, h)
                 m = (r1 - r0) * w
                 _chunk_field(M, R, fl, re, im, rnbr, rpar, h, colour, nf, beta, hdiag, rows, r0, r1, j0, w, m,
                              other)

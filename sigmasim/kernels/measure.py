@@ -12,7 +12,7 @@ from numba import njit, prange
 
 from sigmasim.kernels.group import det, load, reunitarize_site, store
 from sigmasim.kernels.serial import largest, zeros_float
-from sigmasim.kernels.simd import load18, store18
+from sigmasim.kernels.simd import load8, load18, store8, store18
 
 __all__ = ["slice_sums", "slice_sums_rows", "lattice_slice_sums", "reunitarize", "reunitarize2", "reunitarize3", "reunitarize_u1", "field_is_finite"]
 
@@ -242,21 +242,12 @@ def reunitarize2(re, im, nblocks):
         dmax = 0.0
         for c0 in range(lo, hi, _W3):
             n = min(_W3, hi - c0)
-            uf = np.uint64(c0)
-            for c in range(4):
-                for j in range(n):
-                    q = uf + np.uint64(j)
-                    W[c, j] = re[c, q]
-                    W[4 + c, j] = im[c, q]
+            load8(W, re, im, c0, n)
             for j in range(n):
                 dv[j] = _gram_schmidt2(W, j)
             for j in range(n):
                 dmax = dv[j] if dv[j] > dmax else dmax
-            for c in range(4):
-                for j in range(n):
-                    q = uf + np.uint64(j)
-                    re[c, q] = W[c, j]
-                    im[c, q] = W[4 + c, j]
+            store8(W, re, im, c0, n)
         drift[blk] = np.sqrt(dmax)
     return largest(drift)
 

@@ -285,6 +285,29 @@ def is_shift(nbr, k, c0, m, off):
 
 
 @njit(cache=True, inline="always")
+def load8(W, re, im, first, n):
+    """W[0..3, j] = re[0..3, first + j], W[4..7, j] = im[0..3, first + j] for j < n (a 2x2 field
+    into chunk scratch)."""
+    uf = np.uint64(first)
+    for c in range(4):
+        for j in range(n):
+            q = uf + np.uint64(j)
+            W[c, j] = re[c, q]
+            W[4 + c, j] = im[c, q]
+
+
+@njit(cache=True, inline="always")
+def store8(W, re, im, first, n):
+    """The inverse of :func:`load8`: chunk scratch back into the field."""
+    uf = np.uint64(first)
+    for c in range(4):
+        for j in range(n):
+            q = uf + np.uint64(j)
+            re[c, q] = W[c, j]
+            im[c, q] = W[4 + c, j]
+
+
+@njit(cache=True, inline="always")
 def load18(W, re, im, first, n):
     """W[0..8, j] = re[0..8, first + j], W[9..17, j] = im[0..8, first + j] for j < n (a 3x3 field
     into chunk scratch, six component streams per pass: see ``u3``'s notes on L1 sets)."""

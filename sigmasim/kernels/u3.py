@@ -67,6 +67,18 @@ def rows_per_chunk3(h: int, target: int = CHUNK_SITES) -> int:
     return target // max(1, h)
 
 
+@njit(cache=True, inline="always")
+def chunk_span(ch, rows, nseg, nrows, h):
+    """Rows r0..r1 and sites j0..j0 + w of each row that chunk ``ch`` covers: ``rows`` whole rows per
+    chunk, or (``rows`` = 0) rows longer than a chunk cut into ``nseg`` segments of CHUNK_SITES."""
+    if rows > 0:
+        r0 = ch * rows
+        return r0, min(nrows, r0 + rows), 0, h
+    r0 = ch // nseg
+    j0 = (ch % nseg) * CHUNK_SITES
+    return r0, r0 + 1, j0, min(CHUNK_SITES, h - j0)
+
+
 # ----------------------------------------------------------------------------- neighbour sums
 # M = beta N + diag(conj hdiag) of a chunk, N the sum of the neighbours in the order of
 # ``lattice.neighbours`` (the slow directions, then + and - of the fastest), so every sum has the
@@ -275,16 +287,7 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
         ix = np.empty(CHUNK_SITES, dtype=np.int64)
         fl = np.empty(CHUNK_SITES, dtype=np.int64)
         for ch in range(blk * nch // nblk, (blk + 1) * nch // nblk):
-            if rows > 0:
-                r0 = ch * rows
-                r1 = min(nrows, r0 + rows)
-                j0 = 0
-                w = h
-            else:
-                r0 = ch // nseg
-                r1 = r0 + 1
-                j0 = (ch % nseg) * CHUNK_SITES
-                w = min(CHUNK_SITES, h - j0)
+            r0, r1, j0, w = chunk_span(ch, rows, nseg, nrows, h)
             m = (r1 - r0) * w
             c0 = start + r0 * h + j0
             na = 0

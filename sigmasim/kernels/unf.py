@@ -36,8 +36,9 @@ from sigmasim.kernels import tables
 from sigmasim.kernels.general import flavour_order
 from sigmasim.kernels.group import KP_MIN, det, det_lu_in_place
 from sigmasim.kernels.serial import total, zeros_int
-from sigmasim.kernels.simd import exp_le0, log1m, log_pos, lookup16, one_minus_exp_neg, sincos_pm_pi, u01_from_bits
-from sigmasim.kernels.u3 import CHUNK_SITES, _chunk_field, _det3
+from sigmasim.kernels.simd import (exp_le0, load8, log1m, log_pos, lookup16, one_minus_exp_neg, sincos_pm_pi, store8,
+                                   u01_from_bits)
+from sigmasim.kernels.u3 import CHUNK_SITES, _chunk_field, _det3, chunk_span
 from sigmasim.rng import SITE_STRIDE, bits, uniform
 
 __all__ = ["local_unf", "local_unf_update", "metropolis_u2", "metropolis_u2_update", "pack_table2", "MAX_SUB",
@@ -526,16 +527,7 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
         T = (np.empty(CHUNK_SITES), np.empty(CHUNK_SITES), np.empty(CHUNK_SITES), np.empty(CHUNK_SITES),
              np.empty(CHUNK_SITES))
         for ch in range(blk * nch // nblk, (blk + 1) * nch // nblk):
-            if rows > 0:
-                r0 = ch * rows
-                r1 = min(nrows, r0 + rows)
-                j0 = 0
-                w = h
-            else:
-                r0 = ch // nseg
-                r1 = r0 + 1
-                j0 = (ch % nseg) * CHUNK_SITES
-                w = min(CHUNK_SITES, h - j0)
+            r0, r1, j0, w = chunk_span(ch, rows, nseg, nrows, h)
             m = (r1 - r0) * w
             c0 = start + r0 * h + j0
             uc0 = np.uint64(c0)
@@ -841,25 +833,12 @@ def metropolis_u2(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
         ix = np.empty(CHUNK_SITES, dtype=np.int64)
         fl = np.empty(CHUNK_SITES, dtype=np.int64)  # int64 flags: the select loop vectorises (bool: 1.8x slower)
         for ch in range(blk * nch // nblk, (blk + 1) * nch // nblk):
-            if rows > 0:
-                r0 = ch * rows
-                r1 = min(nrows, r0 + rows)
-                j0 = 0
-                w = h
-            else:
-                r0 = ch // nseg
-                r1 = r0 + 1
-                j0 = (ch % nseg) * CHUNK_SITES
-                w = min(CHUNK_SITES, h - j0)
+            r0, r1, j0, w = chunk_span(ch, rows, nseg, nrows, h)
             m = (r1 - r0) * w
             c0 = start + r0 * h + j0
             uc0 = np.uint64(c0)
             _chunk_field(Mf, R, fl, re, im, rnbr, rpar, h, colour, nf, beta, hdiag, rows, r0, r1, j0, w, m, other)
-            for comp in range(4):
-                for j in range(m):
-                    q = uc0 + np.uint64(j)
-                    W[comp, j] = re[comp, q]
-                    W[4 + comp, j] = im[comp, q]
+            load8(W, re, im, c0, m)
             for j in range(m):
                 ar = W[0, j]; ai = W[4, j]; br = W[1, j]; bi = W[5, j]
                 cr = W[2, j]; ci = W[6, j]; dr = W[3, j]; di = W[7, j]
@@ -876,11 +855,7 @@ def metropolis_u2(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
                     lookup16(tab, ix, T, 10, j8)
                 for j in range(m):
                     na += _hit2(W, M, D, T, uu, j, k2r, k2i)
-            for comp in range(4):
-                for j in range(m):
-                    q = uc0 + np.uint64(j)
-                    re[comp, q] = W[comp, j]
-                    im[comp, q] = W[4 + comp, j]
+            store8(W, re, im, c0, m)
             acc[ch] = na
     return total(acc)
 
