@@ -18,7 +18,7 @@ import time
 import numpy as np
 from numba import njit
 
-from sigmasim.kernels.u3 import CHUNK_SITES, _chunk_field, chunk_span, rows_per_chunk3
+from sigmasim.kernels.u3 import CHUNK_SITES, _chunk_field, chunk_count, chunk_span, rows_per_chunk3
 from sigmasim.lattice import make_lattice
 
 
@@ -28,13 +28,7 @@ def sweep_sums(re, im, rnbr, rpar, h, nf, beta, hdiag, rows, reps):
     nc = nf * nf
     half = re.shape[1] // 2
     nrows = rpar.shape[0]
-    rows = min(rows, CHUNK_SITES // h)
-    if rows > 0:
-        nseg = 1
-        nch = (nrows + rows - 1) // rows
-    else:
-        nseg = (h + CHUNK_SITES - 1) // CHUNK_SITES
-        nch = nrows * nseg
+    rows, nseg, nch = chunk_count(nrows, rows, h)  # a chunk must fit the scratch
     M = np.empty(2 * nc * CHUNK_SITES)
     R = np.empty(2 * nc * CHUNK_SITES)
     fl = np.empty(CHUNK_SITES, dtype=np.int64)

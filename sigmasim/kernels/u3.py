@@ -68,6 +68,17 @@ def rows_per_chunk3(h: int, target: int = CHUNK_SITES) -> int:
 
 
 @njit(cache=True, inline="always")
+def chunk_count(nrows, rows, h):
+    """(rows per chunk, segments per row, chunks) for ``nrows`` rows of ``h`` sites: ``rows`` capped so
+    that a chunk fits CHUNK_SITES; 0 rows means rows longer than a chunk, cut into segments."""
+    rows = min(rows, CHUNK_SITES // h)
+    if rows > 0:
+        return rows, 1, (nrows + rows - 1) // rows
+    nseg = (h + CHUNK_SITES - 1) // CHUNK_SITES
+    return rows, nseg, nrows * nseg
+
+
+@njit(cache=True, inline="always")
 def chunk_span(ch, rows, nseg, nrows, h):
     """Rows r0..r1 and sites j0..j0 + w of each row that chunk ``ch`` covers: ``rows`` whole rows per
     chunk, or (``rows`` = 0) rows longer than a chunk cut into ``nseg`` segments of CHUNK_SITES."""
@@ -266,13 +277,7 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
     mask = np.uint64(TABLE_ENTRIES - 1)
     if tab.shape[1] != TABLE_ENTRIES:
         raise ValueError("metropolis_u3 needs a 16-entry table")
-    rows = min(rows, CHUNK_SITES // h)  # a chunk must fit the scratch
-    if rows > 0:
-        nseg = 1
-        nch = (nrows + rows - 1) // rows
-    else:
-        nseg = (h + CHUNK_SITES - 1) // CHUNK_SITES
-        nch = nrows * nseg
+    rows, nseg, nch = chunk_count(nrows, rows, h)  # a chunk must fit the scratch
     acc = zeros_int(nch)
     nblk = nch if nblk <= 0 else min(nch, nblk)
     for blk in prange(nblk):

@@ -38,7 +38,7 @@ from sigmasim.kernels.group import KP_MIN, det, det_lu_in_place
 from sigmasim.kernels.serial import total, zeros_int
 from sigmasim.kernels.simd import (exp_le0, load8, log1m, log_pos, lookup16, one_minus_exp_neg, sincos_pm_pi, store8,
                                    u01_from_bits)
-from sigmasim.kernels.u3 import CHUNK_SITES, _chunk_field, _det3, chunk_span
+from sigmasim.kernels.u3 import CHUNK_SITES, _chunk_field, _det3, chunk_count, chunk_span
 from sigmasim.rng import SITE_STRIDE, bits, uniform
 
 __all__ = ["local_unf", "local_unf_update", "metropolis_u2", "metropolis_u2_update", "pack_table2", "MAX_SUB",
@@ -498,13 +498,7 @@ def local_unf(re, im, rnbr, rpar, h, colour, nf, beta, hdiag, k2r, k2i, special,
     nrows = rpar.shape[0]
     start = colour * half
     other = (1 - colour) * half
-    rows = min(rows, CHUNK_SITES // h)
-    if rows > 0:
-        nseg = 1
-        nch = (nrows + rows - 1) // rows
-    else:
-        nseg = (h + CHUNK_SITES - 1) // CHUNK_SITES
-        nch = nrows * nseg
+    rows, nseg, nch = chunk_count(nrows, rows, h)  # a chunk must fit the scratch
     perm = np.empty(nf, dtype=np.int64)
     flavour_order(key, nf, perm)
     acc = zeros_int(nch)
@@ -813,13 +807,7 @@ def metropolis_u2(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
     start = colour * half
     other = (1 - colour) * half
     mask = np.uint64(TABLE_ENTRIES - 1)
-    rows = min(rows, CHUNK_SITES // h)
-    if rows > 0:
-        nseg = 1
-        nch = (nrows + rows - 1) // rows
-    else:
-        nseg = (h + CHUNK_SITES - 1) // CHUNK_SITES
-        nch = nrows * nseg
+    rows, nseg, nch = chunk_count(nrows, rows, h)  # a chunk must fit the scratch
     acc = zeros_int(nch)
     nblk = nch if nblk <= 0 else min(nch, nblk)
     for blk in prange(nblk):
