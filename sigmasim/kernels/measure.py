@@ -14,7 +14,7 @@ from sigmasim.kernels.group import det, load, reunitarize_site, store
 from sigmasim.kernels.serial import largest, zeros_float
 from sigmasim.kernels.simd import load8, load18, store8, store18
 
-__all__ = ["slice_sums", "slice_sums_rows", "lattice_slice_sums", "reunitarize", "reunitarize2", "reunitarize3", "reunitarize_u1", "field_is_finite"]
+__all__ = ["slice_sums", "slice_sums_rows", "lattice_slice_sums", "reunitarize", "reunitarize_rows", "reunitarize_u1", "field_is_finite"]
 
 
 @njit(cache=True, inline="always")
@@ -190,17 +190,20 @@ def reunitarize_u1(c, s, nblocks):
     return largest(drift)
 
 
-_W3 = 128  # sites per scratch chunk of reunitarize3
+_W3 = 128  # sites per scratch chunk of reunitarize_rows
 
 
 @njit(cache=True, parallel=True, error_model="numpy")
-def reunitarize3(re, im, nblocks):
-    """U(3) fast path of :func:`reunitarize` (Gram-Schmidt on the rows, the same arithmetic).
+def reunitarize_rows(re, im, nf, nblocks):
+    """U(2) and U(3) fast path of :func:`reunitarize` (Gram-Schmidt on the rows, the same arithmetic,
+    so the same bits; nf must be 2 or 3).
 
-    The 3x3 complex algebra is unrolled into real locals and the sites of a block are
-    copied to scratch a few components at a time (the components of a site lie V
-    doubles apart), so the loop vectorises across sites.  Returns the largest
-    ``|U^dagger U - 1|`` entry found, as sqrt of the largest squared modulus.
+    The 2x2 or 3x3 complex algebra is unrolled into real locals and the sites of a block are
+    copied to scratch a few components at a time (the components of a site lie V doubles apart),
+    so the loop vectorises across sites.  Returns the largest ``|U^dagger U - 1|`` entry found, as
+    sqrt of the largest squared modulus.  The generic projection (complex scratch matrices per
+    site) took about 90 ns per site for nf = 2, this one 6: at the default
+    ``reunitarize_every = 10`` that was about a quarter of a U(2) overrelaxation sweep.
     """
     nsite = re.shape[1]
     drift = zeros_float(nblocks)
@@ -213,41 +216,18 @@ def reunitarize3(re, im, nblocks):
         dmax = 0.0
         for c0 in range(lo, hi, _W3):
             n = min(_W3, hi - c0)
-            load18(W, re, im, c0, n)
-            for j in range(n):
-                dv[j] = _gram_schmidt3(W, j)
-            for j in range(n):
-                dmax = dv[j] if dv[j] > dmax else dmax
-            store18(W, re, im, c0, n)
-        drift[blk] = np.sqrt(dmax)
-    return largest(drift)
-
-
-@njit(cache=True, parallel=True, error_model="numpy")
-def reunitarize2(re, im, nblocks):
-    """U(2) fast path of :func:`reunitarize`: :func:`reunitarize3` for 2x2 (the same arithmetic as
-    ``group.reunitarize_site``, so the same bits; the drift as sqrt of the largest squared modulus).
-
-    The generic projection takes about 90 ns per site for nf = 2 (complex scratch matrices per
-    site); at the default ``reunitarize_every = 10`` that was about a quarter of a U(2)
-    overrelaxation sweep.
-    """
-    nsite = re.shape[1]
-    drift = zeros_float(nblocks)
-    for blk in prange(nblocks):
-        lo = blk * nsite // nblocks
-        hi = (blk + 1) * nsite // nblocks
-        W = np.empty((8, _W3))  # compile-time width: LLVM sees that the rows do not overlap
-        dv = np.empty(_W3)
-        dmax = 0.0
-        for c0 in range(lo, hi, _W3):
-            n = min(_W3, hi - c0)
-            load8(W, re, im, c0, n)
-            for j in range(n):
-                dv[j] = _gram_schmidt2(W, j)
+            if nf == 2:
+                load8(W, re, im, c0, n)
+                for j in range(n):
+                    dv[j] = _gram_schmidt2(W, j)
+                store8(W, re, im, c0, n)
+            else:
+                load18(W, re, im, c0, n)
+                for j in range(n):
+                    dv[j] = _gram_schmidt3(W, j)
+                store18(W, re, im, c0, n)
             for j in range(n):
                 dmax = dv[j] if dv[j] > dmax else dmax
-            store8(W, re, im, c0, n)
         drift[blk] = np.sqrt(dmax)
     return largest(drift)
 

@@ -16,7 +16,7 @@ import math
 
 import numpy as np
 
-from sigmasim.kernels.measure import lattice_slice_sums, reunitarize, reunitarize2, reunitarize3, reunitarize_u1
+from sigmasim.kernels.measure import lattice_slice_sums, reunitarize, reunitarize_rows, reunitarize_u1
 from sigmasim.updates import apply
 
 KIND = "chiral"
@@ -109,10 +109,8 @@ def project(sim) -> float:
     st, cfg = sim.state, sim.config
     if cfg.nf == 1:
         return reunitarize_u1(st.re[0], st.im[0], sim.blocks)
-    if cfg.nf == 3 and not cfg.special:
-        return reunitarize3(st.re, st.im, sim.blocks)
-    if cfg.nf == 2 and not cfg.special:
-        return reunitarize2(st.re, st.im, sim.blocks)
+    if cfg.nf in (2, 3) and not cfg.special:
+        return reunitarize_rows(st.re, st.im, cfg.nf, sim.blocks)
     return reunitarize(st.re, st.im, cfg.nf, cfg.special, sim.blocks)
 
 
