@@ -22,7 +22,7 @@ from numba.core import cgutils
 from numba.extending import intrinsic
 
 __all__ = ["bits_to_f64", "f64_to_bits", "exp_le0", "log_pos", "log1m", "one_minus_exp_neg", "sincos_pm_pi",
-           "u01_from_bits", "is_shift", "load18", "lookup16", "lookup16_generic", "store18", "LN2_HI", "LN2_LO"]
+           "u01_from_bits", "is_shift", "load18", "lookup16", "lookup16_generic", "nsum8", "store18", "LN2_HI", "LN2_LO"]
 
 LN2_HI = 0.6931471803691238  # 0x1.62e42fee00000p-1: n * LN2_HI is exact for |n| < 2^11
 LN2_LO = 1.9082149292705877e-10  # 0x1.a39ef35793c76p-33
@@ -122,6 +122,67 @@ def _make_lookup16(allow_avx512: bool):
 
 lookup16 = _make_lookup16(True)
 lookup16_generic = _make_lookup16(False)  # the portable form, for tests on any machine
+
+
+
+@intrinsic
+def nsum8(typingctx, M, mo, X, c, offs, ko, nk, fb, jn, jp, o, beta):
+    """The neighbour sum of 8 consecutive sites of one row, one real component, in registers:
+
+        M[mo + l] = (((0 + X[c, offs[ko] + l]) + ...) + X[c, offs[ko + nk - 1] + l] + plus_l) + minus_l) * beta
+
+    for l < 8, the slow directions first (``offs[ko:ko + nk]``: the nk neighbour rows' element
+    offsets of the 8 sites), then the fastest direction's pair from the 8 entries at ``fb`` of the other colour's
+    row and its two wrapped ends ``jn`` (the entry after them) and ``jp`` (the one before):
+    ``o`` = 1: plus = the entry after the site, minus = the site's own; ``o`` = 0: plus = its own,
+    minus = the one before.  The order of additions of ``u3._chunk_field``, so the same bits;
+    one vector load per direction and two lane shifts instead of a select per site.  M: flat
+    C-contiguous float64; X: C-contiguous float64 (components, sites); offs: int64.
+    """
+    for a, nd in ((M, 1), (X, 2), (offs, 1)):
+        if not (isinstance(a, types.Array) and a.ndim == nd and a.layout == "C"):
+            return None
+    if M.dtype != types.float64 or X.dtype != types.float64 or offs.dtype != types.int64:
+        return None
+
+    def codegen(context, builder, sig, args):
+        m_v, mo_v, x_v, c_v, offs_v, ko_v, nk_v, fb_v, jn_v, jp_v, o_v, beta_v = args
+        ma = context.make_array(sig.args[0])(context, builder, m_v)
+        xa = context.make_array(sig.args[2])(context, builder, x_v)
+        oa = context.make_array(sig.args[4])(context, builder, offs_v)
+        f64 = ir.DoubleType()
+        i32 = ir.IntType(32)
+        v8d = ir.VectorType(f64, 8)
+
+        def ix(k):
+            return context.cast(builder, args[k], sig.args[k], types.intp)
+
+        row = builder.gep(xa.data, [builder.mul(ix(3), builder.extract_value(xa.shape, 1))])
+        acc = cgutils.alloca_once_value(builder, ir.Constant(v8d, [0.0] * 8))
+        ko = ix(5)
+        with cgutils.for_range(builder, ix(6)) as loop:
+            off = builder.load(builder.gep(oa.data, [builder.add(ko, loop.index)]))
+            v = builder.load(builder.bitcast(builder.gep(row, [off]), v8d.as_pointer()), align=8)
+            builder.store(builder.fadd(builder.load(acc), v), acc)
+        a = builder.load(acc)
+        f = builder.load(builder.bitcast(builder.gep(row, [ix(7)]), v8d.as_pointer()), align=8)
+        fn = builder.insert_element(ir.Constant(v8d, None), builder.load(builder.gep(row, [ix(8)])),
+                                    ir.Constant(i32, 0))
+        fp = builder.insert_element(ir.Constant(v8d, None), builder.load(builder.gep(row, [ix(9)])),
+                                    ir.Constant(i32, 7))
+        after = builder.shuffle_vector(f, fn, ir.Constant(ir.VectorType(i32, 8), list(range(1, 9))))
+        before = builder.shuffle_vector(fp, f, ir.Constant(ir.VectorType(i32, 8), list(range(7, 15))))
+        on = builder.icmp_unsigned("!=", ix(10), ir.Constant(ir.IntType(64), 0))
+        plus = builder.select(on, after, f)
+        minus = builder.select(on, f, before)
+        bv = context.cast(builder, beta_v, sig.args[11], types.float64)
+        bvec = builder.insert_element(ir.Constant(v8d, None), bv, ir.Constant(i32, 0))
+        bvec = builder.shuffle_vector(bvec, ir.Constant(v8d, None), ir.Constant(ir.VectorType(i32, 8), [0] * 8))
+        r = builder.fmul(builder.fadd(builder.fadd(a, plus), minus), bvec)
+        builder.store(r, builder.bitcast(builder.gep(ma.data, [ix(1)]), v8d.as_pointer()), align=8)
+        return context.get_dummy_value()
+
+    return types.void(M, mo, X, c, offs, ko, nk, fb, jn, jp, o, beta), codegen
 
 
 @njit(cache=True, inline="always", error_model="numpy")

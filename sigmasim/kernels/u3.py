@@ -18,9 +18,12 @@ the compile-time width ``CHUNK_SITES``).  Every loop over a chunk is branch
 free and call free, the 3x3 complex arithmetic fully unrolled in scalar
 locals, so LLVM vectorises it across sites:
 
-- neighbour sums in the slow directions are contiguous runs of rows
-  (:func:`_chunk_field`: one loop per run, component and two directions);
-- the fastest direction is one pass per component over the chunk that
+- where rows are whole 8-site vectors (fastest extent a multiple of 16), the
+  neighbour sum of 8 sites and one component is one :func:`simd.nsum8`: a
+  vector load per direction, the fastest direction's pair by lane shifts;
+- else the sums in the slow directions are contiguous runs of rows
+  (:func:`_chunk_field`: one loop per run, component and two directions), and
+  the fastest direction is one pass per component over the chunk that
   selects, per site, the neighbour at j, j - 1 or j + 1 (or the wrapped end
   of the row), read from the field itself;
 - the neighbours are added in the order of ``lattice.neighbours``, so every
@@ -41,7 +44,7 @@ from numba import njit, prange
 
 from sigmasim.kernels import tables
 from sigmasim.kernels.serial import total, zeros_int
-from sigmasim.kernels.simd import exp_le0, load18, lookup16, store18, u01_from_bits
+from sigmasim.kernels.simd import exp_le0, load18, lookup16, nsum8, store18, u01_from_bits
 from sigmasim.rng import SITE_STRIDE, bits
 
 __all__ = ["metropolis_u3", "metropolis_u3_update", "pack_table3", "rotation_tables3", "rows_per_chunk3"]
@@ -93,7 +96,8 @@ def chunk_span(ch, rows, nseg, nrows, h):
 # ----------------------------------------------------------------------------- neighbour sums
 # M = beta N + diag(conj hdiag) of a chunk, N the sum of the neighbours in the order of
 # ``lattice.neighbours`` (the slow directions, then + and - of the fastest), so every sum has the
-# bits of the site-by-site one.  The chunk's rows are cut where any slow direction's neighbour
+# bits of the site-by-site one (tests/test_neighbour_sums.py).  Rows of whole 8-site vectors take
+# :func:`simd.nsum8` (below in _chunk_field); for other row lengths the chunk's rows are cut where any slow direction's neighbour
 # rows stop being consecutive (one to three runs of rows; on a run every neighbour is affine in
 # the site).  Per run and component (re and im together) one loop adds two slow directions into
 # R; then per component one loop over the chunk adds the fastest direction's pair, read from the
@@ -196,54 +200,75 @@ def _chunk_field(M, R, fl, re, im, rnbr, rpar, h, colour, nf, beta, hdiag, rows,
     R (flat, 2 nf^2 slots) and fl (int64, CHUNK_SITES): scratch."""
     nc = nf * nf
     nk = rnbr.shape[0]
-    # the fastest direction's flags per site (one int64 array: one load per site in the pass)
-    for g in range(r0, r1):
-        o = (colour + rpar[g]) % 2
-        b = (g - r0) * w
-        for j in range(w):
-            fl[b + j] = o
-        if rows > 0:  # whole rows: the wrap at their ends (a segment of a long row: one by one)
-            fl[b + h - 1] += 2
-            fl[b] += 4
-    src = other + r0 * h + j0
-    uh = np.uint64(h)
-    # the last pass reads the field from src + i - max(h - 1, 1) to src + i + max(h - 1, 1): the
-    # sites i < i0 and i >= i1 would read outside it (chunks at the ends of the field)
-    reach = max(h - 1, 1)
-    i0 = min(m, max(0, reach - src))
-    i1 = max(i0, min(m, re.shape[1] - reach - src))
-    if rows == 0:  # a segment of a long row: its wrapped end, if any, one by one too
-        if fl[0] == 1 and j0 + w == h:
-            i1 = min(i1, m - 1)
-        if fl[0] == 0 and j0 == 0:
-            i0 = max(i0, 1)
-        i1 = max(i0, i1)
-    if nk == 0:
-        for j in range(2 * nc * CHUNK_SITES):
-            R[j] = 0.0
-    g = r0
-    while g < r1:
-        g2 = g + 1
-        while g2 < r1:
-            cont = True
-            for k in range(nk):
-                if rnbr[k, g2] != rnbr[k, g2 - 1] + 1:
-                    cont = False
-            if not cont:
-                break
-            g2 += 1
-        dst = (g - r0) * w
-        n = (g2 - g) * w
-        for k in range(0, nk, 2):
-            for c in range(nc):
-                _sum2(R, re, im, c, dst, n, other + rnbr[k, g] * h + j0, other + rnbr[k + 1, g] * h + j0, k == 0)
-        g = g2
-    for c in range(nc):
-        _fast_pass(M, R, re, im, nc, c, src, i0, i1, uh, fl, beta)
-    for i in range(i0):
-        _fast_site(M, R, re, im, other + (r0 + i // w) * h, nf, i, j0 + i % w, h, (fl[i] & 1) != 0, beta)
-    for i in range(i1, m):
-        _fast_site(M, R, re, im, other + (r0 + i // w) * h, nf, i, j0 + i % w, h, (fl[i] & 1) != 0, beta)
+    if h % 8 == 0:
+        # rows of whole 8-site vectors: per row, 8 sites and component one :func:`simd.nsum8`
+        # (every neighbour one vector load, the fastest direction's pair two lane shifts, no
+        # select per site): 16^3, AVX-512, one thread, same process, nf = 2 / 3: 9.9 -> 5.0 /
+        # 20 -> 12.9 ns per site.  Components outer (each component's rows in turn): 1.3-1.7x
+        # slower; the row ends by selects, not by % h (an integer division per call: 1.5x slower).
+        nv = w // 8
+        for g in range(r0, r1):
+            o = (colour + rpar[g]) % 2
+            rs = other + g * h
+            for t in range(nv):
+                jv = j0 + 8 * t
+                for k in range(nk):
+                    fl[k] = other + rnbr[k, g] * h + jv  # fl: the neighbour rows' offsets of the 8 sites
+                jn = rs + jv + 8 if jv + 8 < h else rs  # the row's entries after and before the 8
+                jp = rs + jv - 1 if jv > 0 else rs + h - 1
+                dst = (g - r0) * w + 8 * t
+                for c in range(nc):
+                    nsum8(M, c * CHUNK_SITES + dst, re, c, fl, 0, nk, rs + jv, jn, jp, o, beta)
+                    nsum8(M, (nc + c) * CHUNK_SITES + dst, im, c, fl, 0, nk, rs + jv, jn, jp, o, beta)
+    else:
+        # the fastest direction's flags per site (one int64 array: one load per site in the pass)
+        for g in range(r0, r1):
+            o = (colour + rpar[g]) % 2
+            b = (g - r0) * w
+            for j in range(w):
+                fl[b + j] = o
+            if rows > 0:  # whole rows: the wrap at their ends (a segment of a long row: one by one)
+                fl[b + h - 1] += 2
+                fl[b] += 4
+        src = other + r0 * h + j0
+        uh = np.uint64(h)
+        # the last pass reads the field from src + i - max(h - 1, 1) to src + i + max(h - 1, 1): the
+        # sites i < i0 and i >= i1 would read outside it (chunks at the ends of the field)
+        reach = max(h - 1, 1)
+        i0 = min(m, max(0, reach - src))
+        i1 = max(i0, min(m, re.shape[1] - reach - src))
+        if rows == 0:  # a segment of a long row: its wrapped end, if any, one by one too
+            if fl[0] == 1 and j0 + w == h:
+                i1 = min(i1, m - 1)
+            if fl[0] == 0 and j0 == 0:
+                i0 = max(i0, 1)
+            i1 = max(i0, i1)
+        if nk == 0:
+            for j in range(2 * nc * CHUNK_SITES):
+                R[j] = 0.0
+        g = r0
+        while g < r1:
+            g2 = g + 1
+            while g2 < r1:
+                cont = True
+                for k in range(nk):
+                    if rnbr[k, g2] != rnbr[k, g2 - 1] + 1:
+                        cont = False
+                if not cont:
+                    break
+                g2 += 1
+            dst = (g - r0) * w
+            n = (g2 - g) * w
+            for k in range(0, nk, 2):
+                for c in range(nc):
+                    _sum2(R, re, im, c, dst, n, other + rnbr[k, g] * h + j0, other + rnbr[k + 1, g] * h + j0, k == 0)
+            g = g2
+        for c in range(nc):
+            _fast_pass(M, R, re, im, nc, c, src, i0, i1, uh, fl, beta)
+        for i in range(i0):
+            _fast_site(M, R, re, im, other + (r0 + i // w) * h, nf, i, j0 + i % w, h, (fl[i] & 1) != 0, beta)
+        for i in range(i1, m):
+            _fast_site(M, R, re, im, other + (r0 + i // w) * h, nf, i, j0 + i % w, h, (fl[i] & 1) != 0, beta)
     # + diag(conj hdiag) after the scaling, as a separate add (+ 0.0 on the other components
     # would turn their -0.0 into +0.0)
     for a in range(nf):
