@@ -282,6 +282,15 @@ def _rows_ij(S, base, us, sw):
 
 
 @njit(cache=True, inline="always")
+def _field_rows_ij(re, im, q, sw):
+    """:func:`_rows_ij` of U read from the field at site q."""
+    r00 = re[0, q]; r01 = re[1, q]; r10 = re[2, q]; r11 = re[3, q]
+    i00 = im[0, q]; i01 = im[1, q]; i10 = im[2, q]; i11 = im[3, q]
+    return (r10 if sw else r00, i10 if sw else i00, r11 if sw else r01, i11 if sw else i01,
+            r00 if sw else r10, i00 if sw else i10, r01 if sw else r11, i01 if sw else i11)
+
+
+@njit(cache=True, inline="always")
 def _rot2(r0r, r0i, r1r, r1i, x0r, x0i, x1r, x1i, y0r, y0i, y1r, y1i):
     """Rows x, y -> r (rows x, y), r = [[r0, r1], [-conj r1, conj r0]] (as :func:`_rot_rows`)."""
     n0r = (r0r * x0r - r0i * x0i) + (r1r * y0r - r1i * y0i)
@@ -329,7 +338,7 @@ def _chunk_u2(S, re, im, uc0, m, i, hb, special, k2r, k2i, key, phase_base, L, T
     """
     sw = i == 1
     na = 0
-    for c in range(4):
+    for c in range(4 if hb else 0):  # overrelaxation reads U straight from the field
         for s in range(m):
             q = uc0 + np.uint64(s)
             S[(S2_U + c) * CHUNK_SITES + s] = re[c, q]
@@ -337,7 +346,7 @@ def _chunk_u2(S, re, im, uc0, m, i, hb, special, k2r, k2i, key, phase_base, L, T
     if not hb:
         for s in range(m):
             us = np.uint64(s)
-            x0r, x0i, x1r, x1i, y0r, y0i, y1r, y1i = _rows_ij(S, S2_U, us, sw)
+            x0r, x0i, x1r, x1i, y0r, y0i, y1r, y1i = _field_rows_ij(re, im, uc0 + us, sw)
             a0r, a0i, a1r, a1i, b0r, b0i, b1r, b1i = _rows_ij(S, S2_M, us, sw)
             wiir, wiii = _w2(x0r, x0i, x1r, x1i, a0r, a0i, a1r, a1i)
             wijr, wiji = _w2(x0r, x0i, x1r, x1i, b0r, b0i, b1r, b1i)
