@@ -393,11 +393,12 @@ def _chunk_u2(S, re, im, uc0, m, i, hb, special, k2r, k2i, key, phase_base, L, T
                 na += np.int64(ok)
                 fr = _ld(S, S2_V, us) if ok else 1.0
                 fi = _ld(S, S2_V + 1, us) if ok else 0.0
+                q = uc0 + us
                 for c in range(4):
                     xr = _ld(S, S2_U + c, us)
                     xi = _ld(S, S2_U + 4 + c, us)
-                    _st(S, S2_U + c, us, fr * xr - fi * xi)
-                    _st(S, S2_U + 4 + c, us, fr * xi + fi * xr)
+                    re[c, q] = fr * xr - fi * xi
+                    im[c, q] = fr * xi + fi * xr
     else:
         # ---- W and the subgroup direction
         for s in range(m):
@@ -495,7 +496,7 @@ def _chunk_u2(S, re, im, uc0, m, i, hb, special, k2r, k2i, key, phase_base, L, T
                 _st(S, S2_U + 1, us, fr * u1r - fi * u1i); _st(S, S2_U + 5, us, fr * u1i + fi * u1r)
                 _st(S, S2_U + 2, us, fr * u2r - fi * u2i); _st(S, S2_U + 6, us, fr * u2i + fi * u2r)
                 _st(S, S2_U + 3, us, fr * u3r - fi * u3i); _st(S, S2_U + 7, us, fr * u3i + fi * u3r)
-    for c in range(4):
+    for c in range(4 if (hb or special) else 0):  # (the overrelaxation's phase loop stores U itself)
         for s in range(m):
             q = uc0 + np.uint64(s)
             re[c, q] = S[(S2_U + c) * CHUNK_SITES + s]
