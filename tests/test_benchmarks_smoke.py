@@ -71,11 +71,22 @@ def test_scaling_one_short_repetition(tmp_path):
         pytest.skip("a 1-CPU machine: nothing to scale")
     assert p.returncode == 0, p.stderr
     rows = [json.loads(line) for f in tmp_path.glob("scaling-*.jsonl") for line in f.read_text().splitlines()]
-    assert [r["model"] for r in rows] == ["U1_d3", "U3_d3"]
+    assert [(r["model"], r["update"]) for r in rows] == [("U1_d3", "metropolis"), ("U3_d3", "metropolis")]
     for r in rows:
         assert r["sigmasim_speedup"] > 0 and r["toy_vector_bound"] > 0 and "c_speedup" not in r
     assert "sigmasim median" in p.stdout
 
+
+def test_scaling_unknown_case_is_one_line(tmp_path):
+    script = ROOT / "benchmarks" / "scaling.py"
+    p = subprocess.run([sys.executable, str(script), "--cases", "U2_d3:hbor,U2_d3:warp", "--no-c",
+                        "--results", str(tmp_path)], cwd=tmp_path, capture_output=True, text=True, timeout=300,
+                       env=subprocess_env(NUMBA_NUM_THREADS=2))
+    if "needs at least 2 CPUs" in p.stdout:
+        pytest.skip("a 1-CPU machine")
+    assert p.returncode == 2
+    assert len(p.stderr.strip().splitlines()) == 1 and "U2_d3:warp" in p.stderr
+    assert not list(tmp_path.iterdir())
 
 
 @pytest.fixture(scope="module")
