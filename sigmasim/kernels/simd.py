@@ -54,6 +54,13 @@ def f64_to_bits(typingctx, x):
     return types.int64(x), codegen
 
 
+def _c_arrays(*specs) -> bool:
+    """True if every (numba type, ndim, dtype) is a C-contiguous array of that ndim and dtype (the
+    intrinsics below type only for those; anything else is no match)."""
+    return all(isinstance(a, types.Array) and a.ndim == nd and a.layout == "C" and a.dtype == dt
+               for a, nd, dt in specs)
+
+
 def _has_avx512(context) -> bool:
     # the features the code is compiled for (numba's cache is keyed by them too)
     feats = getattr(context.codegen(), "_tm_features", "") or ""
@@ -71,10 +78,7 @@ def _make_lookup16(allow_avx512: bool):
         per-site table lookup that costs about what a vector load does.  The values
         moved are the table's, so both forms give the same bits.
         """
-        for a, nd in ((tab, 2), (out, 2), (idx, 1)):
-            if not (isinstance(a, types.Array) and a.ndim == nd and a.layout == "C"):
-                return None
-        if tab.dtype != types.float64 or out.dtype != types.float64 or idx.dtype != types.int64:
+        if not _c_arrays((tab, 2, types.float64), (out, 2, types.float64), (idx, 1, types.int64)):
             return None
 
         def codegen(context, builder, sig, args):
@@ -139,20 +143,13 @@ def nsum8(typingctx, M, mo, X, c, offs, ko, nk, fb, jn, jp, o, beta):
     one vector load per direction and two lane shifts instead of a select per site.  M: flat
     C-contiguous float64; X: C-contiguous float64 (components, sites); offs: int64.
     """
-    for a, nd in ((M, 1), (X, 2), (offs, 1)):
-        if not (isinstance(a, types.Array) and a.ndim == nd and a.layout == "C"):
-            return None
-    if M.dtype != types.float64 or X.dtype != types.float64 or offs.dtype != types.int64:
+    if not _c_arrays((M, 1, types.float64), (X, 2, types.float64), (offs, 1, types.int64)):
         return None
 
     def codegen(context, builder, sig, args):
-        m_v, mo_v, x_v, c_v, offs_v, ko_v, nk_v, fb_v, jn_v, jp_v, o_v, beta_v = args
-        ma = context.make_array(sig.args[0])(context, builder, m_v)
-        xa = context.make_array(sig.args[2])(context, builder, x_v)
-        oa = context.make_array(sig.args[4])(context, builder, offs_v)
-        f64 = ir.DoubleType()
+        ma, xa, oa = (context.make_array(sig.args[k])(context, builder, args[k]) for k in (0, 2, 4))  # M, X, offs
         i32 = ir.IntType(32)
-        v8d = ir.VectorType(f64, 8)
+        v8d = ir.VectorType(ir.DoubleType(), 8)
 
         def ix(k):
             return context.cast(builder, args[k], sig.args[k], types.intp)
@@ -175,7 +172,7 @@ def nsum8(typingctx, M, mo, X, c, offs, ko, nk, fb, jn, jp, o, beta):
         on = builder.icmp_unsigned("!=", ix(10), ir.Constant(ir.IntType(64), 0))
         plus = builder.select(on, after, f)
         minus = builder.select(on, f, before)
-        bv = context.cast(builder, beta_v, sig.args[11], types.float64)
+        bv = context.cast(builder, args[11], sig.args[11], types.float64)
         bvec = builder.insert_element(ir.Constant(v8d, None), bv, ir.Constant(i32, 0))
         bvec = builder.shuffle_vector(bvec, ir.Constant(v8d, None), ir.Constant(ir.VectorType(i32, 8), [0] * 8))
         r = builder.fmul(builder.fadd(builder.fadd(a, plus), minus), bvec)
