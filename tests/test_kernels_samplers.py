@@ -162,5 +162,25 @@ def test_vectorised_rejection_loops_are_the_scalar_samplers():
         ang = np.arctan2(got[2], got[1])
         d = np.angle(np.exp(1j * (ang - _draw_vm(a, key, n))))
         assert np.abs(d).max() < 1e-12, (a, np.abs(d).max())
+    # both branches, no field and non-finite input mixed in one chunk: many sites with alpha >= 3
+    # (both branches evaluated for every site) and few (a Creutz loop over all sites, then a
+    # Kennedy-Pendleton loop over the list of the few)
+    kinds = np.array([1.0, 4.5, 0.3, 3.0, 2.999999, 12.0, 0.0, np.nan])
+    many = kinds[np.arange(n) * 5 % len(kinds)]
+    few = many.copy()
+    few[few >= 3.0] = 1.0
+    few[::37] = 4.5
+    few[5::41] = 3.0
+    assert 0 < np.sum(few >= 3.0) * 16 <= n < np.sum(many >= 3.0) * 16
+    for mixed in (many, few):
+        got = _vector_draws(mixed, key)[0]
+        for a in kinds:
+            sel = mixed == a if np.isfinite(a) else np.isnan(mixed)
+            if not np.isfinite(a):
+                assert np.isnan(got[sel]).all()
+            elif a < 2e-300:
+                assert (got[sel] == 2.0).all()
+            else:
+                np.testing.assert_allclose(got[sel], _draw_x0(a, key, n)[sel], rtol=0, atol=1e-12)
     # the test can fail: another key gives other draws
     assert np.abs(_vector_draws(np.full(n, 1.0), step_key(7, 1))[0] - _draw_x0(1.0, key, n)).max() > 0.1

@@ -81,18 +81,43 @@ def _x0_attempt(alpha, key, n):
     return 1.0 - (xk if kp else xc), (okk if kp else okc)
 
 
+@njit(cache=True, inline="always", error_model="numpy")
+def _x0_creutz(alpha, key, n):
+    """:func:`_x0_attempt` for alpha < KP_MIN (Creutz's branch alone, the same operations)."""
+    u1 = uniform(key, n)
+    u2 = uniform(key, n + _ONE)
+    xc = -log1m(u1 * one_minus_exp_neg(2.0 * alpha)) * (1.0 / alpha)
+    return 1.0 - xc, u2 * u2 < xc * (2.0 - xc)
+
+
 @njit(cache=True, error_model="numpy")
 def _x0_draws(A, X, L, P, Z, OK, key, uc0, base, m):
     """X[s] = x0 for the chunk sites s < m with alpha = A[s] (counters from
     ``(uc0 + s) * SITE_STRIDE + base``); 2.0 where alpha < 2e-300 (no field: r = 1), NaN where
     alpha is not finite.  L, P, Z, OK: scratch of m entries."""
+    # first attempts.  Where few sites have alpha >= KP_MIN (at beta = 0.5, 16^3: 0.2-0.4 % of the U(3)
+    # sites, 8 % of the U(2) ones) Creutz's attempt for every site in one loop, then Kennedy-Pendleton's
+    # for the list of those sites: the same numbers as _x0_attempt's select, without evaluating both
+    # branches for every site (U(3) heatbath 1.06-1.09x; with 8 % of the sites on the list 0.97x, so
+    # above one site in 16 both branches for all: U(2) heatbath 0.99-1.00x)
+    cnt = 0
+    for s in range(m):
+        a = A[s]
+        L[cnt] = s
+        cnt += 1 if (a >= KP_MIN and a < np.inf) else 0
+    few = cnt * 16 <= m
     for s in range(m):
         a = A[s]
         none = a < 2e-300
         bad = not (a >= 0.0 and a < np.inf)
-        x0, ok = _x0_attempt(2.0 if (none or bad) else a, key, (uc0 + np.uint64(s)) * SITE_STRIDE + base)
+        aa = 2.0 if (none or bad) else a
+        n = (uc0 + np.uint64(s)) * SITE_STRIDE + base
+        x0, ok = _x0_creutz(aa, key, n) if few else _x0_attempt(aa, key, n)
         X[s] = 2.0 if none else (np.nan if bad else x0)
         OK[s] = ok or none or bad
+    for t in range(cnt if few else 0):
+        s = L[t]
+        X[s], OK[s] = _x0_attempt(A[s], key, (uc0 + np.uint64(s)) * SITE_STRIDE + base)
     cnt = 0
     for s in range(m):
         L[cnt] = s
