@@ -130,13 +130,13 @@ lookup16_generic = _make_lookup16(False)  # the portable form, for tests on any 
 
 
 @intrinsic
-def nsum8(typingctx, M, mo, X, c, offs, ko, nk, fb, jn, jp, o, beta):
+def nsum8(typingctx, M, mo, X, c, offs, nk, fb, jn, jp, o, beta):
     """The neighbour sum of 8 consecutive sites of one row, one real component, in registers:
 
-        M[mo + l] = (((0 + X[c, offs[ko] + l]) + ...) + X[c, offs[ko + nk - 1] + l] + plus_l) + minus_l) * beta
+        M[mo + l] = (((0 + X[c, offs[0] + l]) + ...) + X[c, offs[nk - 1] + l] + plus_l) + minus_l) * beta
 
-    for l < 8, the slow directions first (``offs[ko:ko + nk]``: the nk neighbour rows' element
-    offsets of the 8 sites), then the fastest direction's pair from the 8 entries at ``fb`` of the other colour's
+    for l < 8, the slow directions first (``offs[:nk]``: the nk neighbour rows' element offsets
+    of the 8 sites), then the fastest direction's pair from the 8 entries at ``fb`` of the other colour's
     row and its two wrapped ends ``jn`` (the entry after them) and ``jp`` (the one before):
     ``o`` = 1: plus = the entry after the site, minus = the site's own; ``o`` = 0: plus = its own,
     minus = the one before.  The order of additions of ``u3._chunk_field``, so the same bits;
@@ -156,30 +156,29 @@ def nsum8(typingctx, M, mo, X, c, offs, ko, nk, fb, jn, jp, o, beta):
 
         row = builder.gep(xa.data, [builder.mul(ix(3), builder.extract_value(xa.shape, 1))])
         acc = cgutils.alloca_once_value(builder, ir.Constant(v8d, [0.0] * 8))
-        ko = ix(5)
-        with cgutils.for_range(builder, ix(6)) as loop:
-            off = builder.load(builder.gep(oa.data, [builder.add(ko, loop.index)]))
+        with cgutils.for_range(builder, ix(5)) as loop:
+            off = builder.load(builder.gep(oa.data, [loop.index]))
             v = builder.load(builder.bitcast(builder.gep(row, [off]), v8d.as_pointer()), align=8)
             builder.store(builder.fadd(builder.load(acc), v), acc)
         a = builder.load(acc)
-        f = builder.load(builder.bitcast(builder.gep(row, [ix(7)]), v8d.as_pointer()), align=8)
-        fn = builder.insert_element(ir.Constant(v8d, None), builder.load(builder.gep(row, [ix(8)])),
+        f = builder.load(builder.bitcast(builder.gep(row, [ix(6)]), v8d.as_pointer()), align=8)
+        fn = builder.insert_element(ir.Constant(v8d, None), builder.load(builder.gep(row, [ix(7)])),
                                     ir.Constant(i32, 0))
-        fp = builder.insert_element(ir.Constant(v8d, None), builder.load(builder.gep(row, [ix(9)])),
+        fp = builder.insert_element(ir.Constant(v8d, None), builder.load(builder.gep(row, [ix(8)])),
                                     ir.Constant(i32, 7))
         after = builder.shuffle_vector(f, fn, ir.Constant(ir.VectorType(i32, 8), list(range(1, 9))))
         before = builder.shuffle_vector(fp, f, ir.Constant(ir.VectorType(i32, 8), list(range(7, 15))))
-        on = builder.icmp_unsigned("!=", ix(10), ir.Constant(ir.IntType(64), 0))
+        on = builder.icmp_unsigned("!=", ix(9), ir.Constant(ir.IntType(64), 0))
         plus = builder.select(on, after, f)
         minus = builder.select(on, f, before)
-        bv = context.cast(builder, args[11], sig.args[11], types.float64)
+        bv = context.cast(builder, args[10], sig.args[10], types.float64)
         bvec = builder.insert_element(ir.Constant(v8d, None), bv, ir.Constant(i32, 0))
         bvec = builder.shuffle_vector(bvec, ir.Constant(v8d, None), ir.Constant(ir.VectorType(i32, 8), [0] * 8))
         r = builder.fmul(builder.fadd(builder.fadd(a, plus), minus), bvec)
         builder.store(r, builder.bitcast(builder.gep(ma.data, [ix(1)]), v8d.as_pointer()), align=8)
         return context.get_dummy_value()
 
-    return types.void(M, mo, X, c, offs, ko, nk, fb, jn, jp, o, beta), codegen
+    return types.void(M, mo, X, c, offs, nk, fb, jn, jp, o, beta), codegen
 
 
 @njit(cache=True, inline="always", error_model="numpy")

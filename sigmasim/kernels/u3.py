@@ -218,8 +218,8 @@ def _chunk_field(M, R, fl, re, im, rnbr, rpar, h, colour, nf, beta, hdiag, rows,
                 jp = rs + jv - 1 if jv > 0 else rs + h - 1
                 dst = (g - r0) * w + 8 * t
                 for c in range(nc):
-                    nsum8(M, c * CHUNK_SITES + dst, re, c, fl, 0, nk, rs + jv, jn, jp, o, beta)
-                    nsum8(M, (nc + c) * CHUNK_SITES + dst, im, c, fl, 0, nk, rs + jv, jn, jp, o, beta)
+                    nsum8(M, c * CHUNK_SITES + dst, re, c, fl, nk, rs + jv, jn, jp, o, beta)
+                    nsum8(M, (nc + c) * CHUNK_SITES + dst, im, c, fl, nk, rs + jv, jn, jp, o, beta)
     else:
         # the fastest direction's flags per site (one int64 array: one load per site in the pass)
         for g in range(r0, r1):
