@@ -297,22 +297,23 @@ def _phase2(er, ei, ur0, ui0, ur1, ui1, ur2, ui2, ur3, ui3, k2r, k2i):
 
 
 @njit(cache=True, inline="always")
-def _rows_ij(S, base, us, sw):
-    """Rows i, j (i = 1 when ``sw``) of the 2x2 matrix in slots base.. (re 0..3, im 4..7)."""
-    r00 = _ld(S, base, us); r01 = _ld(S, base + 1, us); r10 = _ld(S, base + 2, us); r11 = _ld(S, base + 3, us)
-    i00 = _ld(S, base + 4, us); i01 = _ld(S, base + 5, us); i10 = _ld(S, base + 6, us)
-    i11 = _ld(S, base + 7, us)
+def _order_rows(r00, r01, r10, r11, i00, i01, i10, i11, sw):
+    """Rows i, j (i = 1 when ``sw``) of a 2x2 matrix given by its entries: (re, im) of row i, then row j."""
     return (r10 if sw else r00, i10 if sw else i00, r11 if sw else r01, i11 if sw else i01,
             r00 if sw else r10, i00 if sw else i10, r01 if sw else r11, i01 if sw else i11)
 
 
 @njit(cache=True, inline="always")
+def _rows_ij(S, base, us, sw):
+    """Rows i, j (i = 1 when ``sw``) of the 2x2 matrix in slots base.. (re 0..3, im 4..7)."""
+    return _order_rows(_ld(S, base, us), _ld(S, base + 1, us), _ld(S, base + 2, us), _ld(S, base + 3, us),
+                       _ld(S, base + 4, us), _ld(S, base + 5, us), _ld(S, base + 6, us), _ld(S, base + 7, us), sw)
+
+
+@njit(cache=True, inline="always")
 def _field_rows_ij(re, im, q, sw):
     """:func:`_rows_ij` of U read from the field at site q."""
-    r00 = re[0, q]; r01 = re[1, q]; r10 = re[2, q]; r11 = re[3, q]
-    i00 = im[0, q]; i01 = im[1, q]; i10 = im[2, q]; i11 = im[3, q]
-    return (r10 if sw else r00, i10 if sw else i00, r11 if sw else r01, i11 if sw else i01,
-            r00 if sw else r10, i00 if sw else i10, r01 if sw else r11, i01 if sw else i11)
+    return _order_rows(re[0, q], re[1, q], re[2, q], re[3, q], im[0, q], im[1, q], im[2, q], im[3, q], sw)
 
 
 @njit(cache=True, inline="always")
