@@ -2,8 +2,9 @@
 in the order of ``lattice.neighbours``, bit for bit (no statistics).
 
 Both ways of forming them are covered: rows of whole 8-site vectors (the fastest extent a multiple
-of 16: one :func:`simd.nsum8` per row, 8 sites and component) and any other row length (passes over
-the chunk with a select per site), whole-row chunks and long rows cut into segments, d = 1..4."""
+of 16: per row and 8 sites one :func:`simd.nsum8x4`, ``nsum8x3`` or ``nsum8`` call for four, three or
+one component, as nf = 2, 3 or more) and any other row length (passes over the chunk with a select
+per site), whole-row chunks and long rows cut into segments, d = 1..4."""
 
 import numpy as np
 import pytest
@@ -40,7 +41,7 @@ def _all_chunks(re, im, rnbr, rpar, h, nf, beta, hdiag, rows, out):
                     out[c, x] = M[c * CHUNK_SITES + i]
 
 
-@pytest.mark.parametrize("nf", [2, 3])
+@pytest.mark.parametrize("nf", [2, 3, 4])  # nf = 2, 3: components 4 / 3 at a time; 4: one at a time
 @pytest.mark.parametrize("shape, rows", CASES)
 def test_chunk_sums_are_the_site_by_site_sums(shape, rows, nf):
     lat = make_lattice(shape)
@@ -51,7 +52,7 @@ def test_chunk_sums_are_the_site_by_site_sums(shape, rows, nf):
     re[0, ::5] = -0.0  # signed zeros: 0 + (-0) must stay +0 as in the site-by-site sum
     im[1, ::7] = 0.0
     beta = 0.7
-    hdiag = np.array([0.3 - 0.2j, -0.1 + 0.05j, 0.25 + 0.0j])[:nf]
+    hdiag = np.array([0.3 - 0.2j, -0.1 + 0.05j, 0.25 + 0.0j, -0.15 + 0.1j])[:nf]
     nbr = lat.neighbours
     want = np.zeros((2 * nc, lat.volume))
     for k in range(nbr.shape[0]):  # (0 + n_0) + n_1 + ..., the order of lattice.neighbours

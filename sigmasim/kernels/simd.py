@@ -22,7 +22,7 @@ from numba.core import cgutils
 from numba.extending import intrinsic
 
 __all__ = ["bits_to_f64", "f64_to_bits", "exp_le0", "log_pos", "log1m", "one_minus_exp_neg", "sincos_pm_pi",
-           "u01_from_bits", "is_shift", "load18", "lookup16", "lookup16_generic", "nsum8", "store18", "LN2_HI", "LN2_LO"]
+           "u01_from_bits", "is_shift", "load18", "lookup16", "lookup16_generic", "nsum8", "nsum8x3", "nsum8x4", "store18", "LN2_HI", "LN2_LO"]
 
 LN2_HI = 0.6931471803691238  # 0x1.62e42fee00000p-1: n * LN2_HI is exact for |n| < 2^11
 LN2_LO = 1.9082149292705877e-10  # 0x1.a39ef35793c76p-33
@@ -129,56 +129,73 @@ lookup16_generic = _make_lookup16(False)  # the portable form, for tests on any 
 
 
 
-@intrinsic
-def nsum8(typingctx, M, mo, X, c, offs, nk, fb, jn, jp, o, beta):
-    """The neighbour sum of 8 consecutive sites of one row, one real component, in registers:
+def _make_nsum8(K: int):
+    @intrinsic
+    def nsum(typingctx, M, mo, ms, X, c, offs, nk, fb, jn, jp, o, beta):
+        """The neighbour sums of 8 consecutive sites of one row, components c .. c + K - 1, in
+        registers: for i < K and l < 8,
 
-        M[mo + l] = (((0 + X[c, offs[0] + l]) + ...) + X[c, offs[nk - 1] + l] + plus_l) + minus_l) * beta
+            M[mo + i ms + l] = (((0 + X[c + i, offs[0] + l]) + ...) + X[c + i, offs[nk - 1] + l]
+                                + plus_l) + minus_l) * beta,
 
-    for l < 8, the slow directions first (``offs[:nk]``: the nk neighbour rows' element offsets
-    of the 8 sites), then the fastest direction's pair from the 8 entries at ``fb`` of the other colour's
-    row and its two wrapped ends ``jn`` (the entry after them) and ``jp`` (the one before):
-    ``o`` = 1: plus = the entry after the site, minus = the site's own; ``o`` = 0: plus = its own,
-    minus = the one before.  The order of additions of ``u3._chunk_field``, so the same bits;
-    one vector load per direction and two lane shifts instead of a select per site.  M: flat
-    C-contiguous float64; X: C-contiguous float64 (components, sites); offs: int64.
-    """
-    if not _c_arrays((M, 1, types.float64), (X, 2, types.float64), (offs, 1, types.int64)):
-        return None
+        the slow directions first (``offs[:nk]``: the nk neighbour rows' element offsets of the 8
+        sites), then the fastest direction's pair from the 8 entries at ``fb`` of the other
+        colour's row and its two wrapped ends ``jn`` (the entry after them) and ``jp`` (the one
+        before): ``o`` = 1: plus = the entry after the site, minus = the site's own; ``o`` = 0:
+        plus = its own, minus = the one before.  The order of additions of ``u3._chunk_field``,
+        so the same bits; one vector load per direction and two lane shifts instead of a select
+        per site.  The K components' sums are built side by side (K independent chains of
+        additions, one offset load per direction for all of them).  M: flat C-contiguous
+        float64; X: C-contiguous float64 (components, sites); offs: int64.
+        """
+        if not _c_arrays((M, 1, types.float64), (X, 2, types.float64), (offs, 1, types.int64)):
+            return None
 
-    def codegen(context, builder, sig, args):
-        ma, xa, oa = (context.make_array(sig.args[k])(context, builder, args[k]) for k in (0, 2, 4))  # M, X, offs
-        i32 = ir.IntType(32)
-        v8d = ir.VectorType(ir.DoubleType(), 8)
+        def codegen(context, builder, sig, args):
+            ma, xa, oa = (context.make_array(sig.args[k])(context, builder, args[k]) for k in (0, 3, 5))
+            i32 = ir.IntType(32)
+            v8d = ir.VectorType(ir.DoubleType(), 8)
 
-        def ix(k):
-            return context.cast(builder, args[k], sig.args[k], types.intp)
+            def ix(k):
+                return context.cast(builder, args[k], sig.args[k], types.intp)
 
-        row = builder.gep(xa.data, [builder.mul(ix(3), builder.extract_value(xa.shape, 1))])
-        acc = cgutils.alloca_once_value(builder, ir.Constant(v8d, [0.0] * 8))
-        with cgutils.for_range(builder, ix(5)) as loop:
-            off = builder.load(builder.gep(oa.data, [loop.index]))
-            v = builder.load(builder.bitcast(builder.gep(row, [off]), v8d.as_pointer()), align=8)
-            builder.store(builder.fadd(builder.load(acc), v), acc)
-        a = builder.load(acc)
-        f = builder.load(builder.bitcast(builder.gep(row, [ix(6)]), v8d.as_pointer()), align=8)
-        fn = builder.insert_element(ir.Constant(v8d, None), builder.load(builder.gep(row, [ix(7)])),
-                                    ir.Constant(i32, 0))
-        fp = builder.insert_element(ir.Constant(v8d, None), builder.load(builder.gep(row, [ix(8)])),
-                                    ir.Constant(i32, 7))
-        after = builder.shuffle_vector(f, fn, ir.Constant(ir.VectorType(i32, 8), list(range(1, 9))))
-        before = builder.shuffle_vector(fp, f, ir.Constant(ir.VectorType(i32, 8), list(range(7, 15))))
-        on = builder.icmp_unsigned("!=", ix(9), ir.Constant(ir.IntType(64), 0))
-        plus = builder.select(on, after, f)
-        minus = builder.select(on, f, before)
-        bv = context.cast(builder, args[10], sig.args[10], types.float64)
-        bvec = builder.insert_element(ir.Constant(v8d, None), bv, ir.Constant(i32, 0))
-        bvec = builder.shuffle_vector(bvec, ir.Constant(v8d, None), ir.Constant(ir.VectorType(i32, 8), [0] * 8))
-        r = builder.fmul(builder.fadd(builder.fadd(a, plus), minus), bvec)
-        builder.store(r, builder.bitcast(builder.gep(ma.data, [ix(1)]), v8d.as_pointer()), align=8)
-        return context.get_dummy_value()
+            width = builder.extract_value(xa.shape, 1)
+            rows = [builder.gep(xa.data, [builder.mul(builder.add(ix(4), ir.Constant(width.type, i)), width)])
+                    for i in range(K)]
+            accs = [cgutils.alloca_once_value(builder, ir.Constant(v8d, [0.0] * 8)) for _ in range(K)]
+            with cgutils.for_range(builder, ix(6)) as loop:
+                off = builder.load(builder.gep(oa.data, [loop.index]))
+                for i in range(K):
+                    v = builder.load(builder.bitcast(builder.gep(rows[i], [off]), v8d.as_pointer()), align=8)
+                    builder.store(builder.fadd(builder.load(accs[i]), v), accs[i])
+            on = builder.icmp_unsigned("!=", ix(10), ir.Constant(ir.IntType(64), 0))
+            bv = context.cast(builder, args[11], sig.args[11], types.float64)
+            bvec = builder.insert_element(ir.Constant(v8d, None), bv, ir.Constant(i32, 0))
+            bvec = builder.shuffle_vector(bvec, ir.Constant(v8d, None), ir.Constant(ir.VectorType(i32, 8), [0] * 8))
+            for i in range(K):
+                row = rows[i]
+                f = builder.load(builder.bitcast(builder.gep(row, [ix(7)]), v8d.as_pointer()), align=8)
+                fn = builder.insert_element(ir.Constant(v8d, None), builder.load(builder.gep(row, [ix(8)])),
+                                            ir.Constant(i32, 0))
+                fp = builder.insert_element(ir.Constant(v8d, None), builder.load(builder.gep(row, [ix(9)])),
+                                            ir.Constant(i32, 7))
+                after = builder.shuffle_vector(f, fn, ir.Constant(ir.VectorType(i32, 8), list(range(1, 9))))
+                before = builder.shuffle_vector(fp, f, ir.Constant(ir.VectorType(i32, 8), list(range(7, 15))))
+                plus = builder.select(on, after, f)
+                minus = builder.select(on, f, before)
+                r = builder.fmul(builder.fadd(builder.fadd(builder.load(accs[i]), plus), minus), bvec)
+                mo = builder.add(ix(1), builder.mul(ir.Constant(width.type, i), ix(2)))
+                builder.store(r, builder.bitcast(builder.gep(ma.data, [mo]), v8d.as_pointer()), align=8)
+            return context.get_dummy_value()
 
-    return types.void(M, mo, X, c, offs, nk, fb, jn, jp, o, beta), codegen
+        return types.void(M, mo, ms, X, c, offs, nk, fb, jn, jp, o, beta), codegen
+
+    return nsum
+
+
+nsum8 = _make_nsum8(1)
+nsum8x3 = _make_nsum8(3)
+nsum8x4 = _make_nsum8(4)
 
 
 @njit(cache=True, inline="always", error_model="numpy")
