@@ -83,3 +83,23 @@ def test_simulate_still_matches_a_plain_loop():
             sim.sweep()
         recs.append(sim.measure())
     np.testing.assert_array_equal(d["action"], [r["action"] for r in recs])
+
+
+def test_state_field_starts_where_the_vector_loads_want_it():
+    # re on a 4096-byte boundary, im 2048 bytes past one (chain.field_array): whole-cache-line
+    # vector loads and no shared L1 sets between re's and im's rows; always a copy, same values.
+    from sigmasim.chain import ChainState
+    rng = np.random.default_rng(3)
+    re = rng.normal(size=(4, 64))[:, :48]  # not contiguous, and numpy's own placement
+    im = rng.normal(size=(4, 48)).astype(np.float32)
+    st = ChainState(re, im)
+    assert st.re.ctypes.data % 4096 == 0 and st.im.ctypes.data % 4096 == 2048
+    assert st.re.flags.c_contiguous and st.im.flags.c_contiguous
+    assert st.re.dtype == np.float64 and st.im.dtype == np.float64
+    assert np.array_equal(st.re, re) and np.array_equal(st.im, im.astype(np.float64))
+    assert not np.shares_memory(st.re, re)
+    cfg = config_from_dict({"name": "a", "seed": 1, "lattice": {"shape": [4, 4]},
+                            "model": {"nf": 2, "beta": 0.5, "mass": 0.1, "kappa": 0.2, "theta": 1.0},
+                            "run": {"thermalize": 0, "measurements": 1, "start": "hot"}})
+    sim = Simulation(cfg)
+    assert sim.state.re.ctypes.data % 4096 == 0 and sim.state.im.ctypes.data % 4096 == 2048
