@@ -128,7 +128,7 @@ def _ref_metropolis_u3(re, im, nbr, start, stop, beta, hdiag, k2r, k2i, tab, nhi
             uu[0] = u01_from_bits(b)
             for comp in range(20):
                 R[comp, 0] = tab[comp, idx]
-            na += _hit(W, M, D, R, uu, 0, k2r, k2i)
+            na += _hit(W, W, M, D, D, R, uu, 0, k2r, k2i)
         for comp in range(9):
             re[comp, x] = W[comp, 0]
             im[comp, x] = W[9 + comp, 0]

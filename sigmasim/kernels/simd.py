@@ -22,7 +22,7 @@ from numba.core import cgutils
 from numba.extending import intrinsic
 
 __all__ = ["bits_to_f64", "f64_to_bits", "exp_le0", "log_pos", "log1m", "one_minus_exp_neg", "sincos_pm_pi",
-           "u01_from_bits", "is_shift", "load18", "lookup16", "lookup16_generic", "nsum8", "nsum8x3", "nsum8x4", "store18", "LN2_HI", "LN2_LO"]
+           "u01_from_bits", "is_shift", "load18", "lookup16", "lookup16_generic", "masked_stores_cheap", "nsum8", "nsum8x3", "nsum8x4", "store18", "LN2_HI", "LN2_LO"]
 
 LN2_HI = 0.6931471803691238  # 0x1.62e42fee00000p-1: n * LN2_HI is exact for |n| < 2^11
 LN2_LO = 1.9082149292705877e-10  # 0x1.a39ef35793c76p-33
@@ -65,6 +65,20 @@ def _has_avx512(context) -> bool:
     # the features the code is compiled for (numba's cache is keyed by them too)
     feats = getattr(context.codegen(), "_tm_features", "") or ""
     return "+avx512f" in feats.split(",")
+
+
+@intrinsic
+def masked_stores_cheap(typingctx):
+    """True where the code is compiled for AVX-512 (a compile-time constant LLVM folds away).
+
+    A site loop that writes ``x if ok else y`` back where it read ``y`` is vectorised with
+    masked stores: one cheap instruction with AVX-512, a microcoded one with AVX2 (AMD:
+    tens of cycles).  Kernels with such a loop write to a second buffer where this is false.
+    """
+    def codegen(context, builder, sig, args):
+        return ir.Constant(ir.IntType(1), int(_has_avx512(context)))
+
+    return types.boolean(), codegen
 
 
 def _make_lookup16(allow_avx512: bool):
