@@ -2,7 +2,7 @@
 
 Compiled for AVX-512, ``u3.metropolis_u3`` and ``unf.metropolis_u2`` write each hit's U and
 det U back into the scratch they read (masked stores are cheap there); compiled without it,
-they alternate between two buffers (``simd.masked_stores_cheap``).  Only one of the two is
+they alternate between two buffers (``simd.avx512_code``).  Only one of the two is
 compiled on a given machine, so the other is compiled here in a subprocess for a target with
 every avx512 feature off (AVX2 and FMA kept): on an AVX-512 host that is the buffered path,
 on an AVX2 host the subprocess gives the same code as this process and the test still runs.
@@ -19,7 +19,7 @@ from runfiles import subprocess_env
 SCRIPT = r"""
 import hashlib, sys
 import numpy as np
-from sigmasim.kernels.simd import masked_stores_cheap
+from sigmasim.kernels.simd import avx512_code
 from sigmasim.kernels.u3 import metropolis_u3_update, rows_per_chunk3
 from sigmasim.kernels.unf import metropolis_u2_update
 from sigmasim.lattice import make_lattice
@@ -27,7 +27,7 @@ from numba import njit
 
 @njit(cache=False)
 def cheap():
-    return masked_stores_cheap()
+    return avx512_code()
 
 def digest():
     out = [str(cheap())]

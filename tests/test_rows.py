@@ -295,27 +295,35 @@ def test_fast_tables_equal_proposal_table():
             np.testing.assert_array_equal(np.signbit(q), np.signbit(p))
 
 
-from sigmasim.kernels.simd import lookup16, lookup16_generic  # noqa: E402
+from sigmasim.kernels.simd import lookup16, lookup16_generic, lookup16_rows, table_rows  # noqa: E402
 
 
 @njit(cache=True)
-def _lookup_all(tab, idx, out, generic):
+def _lookup_all(tab, idx, out, form):
+    rows = table_rows(tab)
     for j in range(0, idx.shape[0], 8):
-        if generic:
+        if form == 1:
             lookup16_generic(tab, idx, out, tab.shape[0], j)
+        elif form == 2:
+            lookup16_rows(rows, idx, out, rows.shape[1] // 4, j)
         else:
             lookup16(tab, idx, out, tab.shape[0], j)
 
 
-def test_lookup16_is_a_table_lookup():
-    # both forms (AVX-512 permute where compiled for it, scalar loads otherwise) move the table's values
+@pytest.mark.parametrize("ncomp", [20, 10, 2])
+def test_lookup16_is_a_table_lookup(ncomp):
+    # every form (AVX-512 permute where compiled for it, scalar loads otherwise, whole entries
+    # and a transpose) moves the table's values; the entry-by-entry form pads to 4 components
     rng = np.random.default_rng(23)
-    tab = rng.normal(size=(20, 16))
+    tab = rng.normal(size=(ncomp, 16))
+    tab[0, 3] = -0.0
     idx = rng.integers(-2**62, 2**62, 64).astype(np.int64)  # only the low 4 bits count
-    for generic in (False, True):
-        out = np.full((20, 72), np.nan)
-        _lookup_all(tab, idx, out, generic)
-        np.testing.assert_array_equal(out[:, :64], tab[:, idx & 15])
+    assert np.array_equal(table_rows(tab)[:, :ncomp], tab.T) and not table_rows(tab)[:, ncomp:].any()
+    for form in (0, 1, 2):
+        out = np.full((4 * ((ncomp + 3) // 4), 72), np.nan)
+        _lookup_all(tab, idx, out, form)
+        np.testing.assert_array_equal(out[:ncomp, :64], tab[:, idx & 15])
+        np.testing.assert_array_equal(np.signbit(out[:ncomp, :64]), np.signbit(tab[:, idx & 15]))
         assert np.isnan(out[:, 64:]).all()
 
 

@@ -22,7 +22,7 @@ from numba.core import cgutils
 from numba.extending import intrinsic
 
 __all__ = ["bits_to_f64", "f64_to_bits", "exp_le0", "log_pos", "log1m", "one_minus_exp_neg", "sincos_pm_pi",
-           "u01_from_bits", "is_shift", "load18", "lookup16", "lookup16_generic", "masked_stores_cheap", "nsum8", "nsum8x3", "nsum8x4", "store18", "LN2_HI", "LN2_LO"]
+           "u01_from_bits", "is_shift", "load18", "lookup16", "lookup16_generic", "lookup16_rows", "table_rows", "avx512_code", "nsum8", "nsum8x3", "nsum8x4", "store18", "LN2_HI", "LN2_LO"]
 
 LN2_HI = 0.6931471803691238  # 0x1.62e42fee00000p-1: n * LN2_HI is exact for |n| < 2^11
 LN2_LO = 1.9082149292705877e-10  # 0x1.a39ef35793c76p-33
@@ -68,12 +68,15 @@ def _has_avx512(context) -> bool:
 
 
 @intrinsic
-def masked_stores_cheap(typingctx):
+def avx512_code(typingctx):
     """True where the code is compiled for AVX-512 (a compile-time constant LLVM folds away).
 
-    A site loop that writes ``x if ok else y`` back where it read ``y`` is vectorised with
-    masked stores: one cheap instruction with AVX-512, a microcoded one with AVX2 (AMD:
-    tens of cycles).  Kernels with such a loop write to a second buffer where this is false.
+    Kernels pick their form by it where the two instruction sets differ by much: a site loop
+    that writes ``x if ok else y`` back where it read ``y`` is vectorised with masked stores,
+    one cheap instruction with AVX-512 and a microcoded one with AVX2 (AMD: tens of cycles),
+    so without AVX-512 such loops write to a second buffer; a 16-entry table lookup is one
+    two-register permute with AVX-512 (:func:`lookup16`) and a load and transpose of whole
+    entries without it (:func:`lookup16_rows`).  Every form gives the same numbers.
     """
     def codegen(context, builder, sig, args):
         return ir.Constant(ir.IntType(1), int(_has_avx512(context)))
@@ -140,6 +143,70 @@ def _make_lookup16(allow_avx512: bool):
 
 lookup16 = _make_lookup16(True)
 lookup16_generic = _make_lookup16(False)  # the portable form, for tests on any machine
+
+
+@intrinsic
+def lookup16_rows(typingctx, rows, idx, out, nblk, j):
+    """``out[c, j + l] = rows[idx[j + l] & 15, c]`` for ``c < 4 nblk``, ``l < 8``: the lookup of
+    :func:`lookup16` from the table stored entry by entry (``rows``: C-contiguous float64 (16,
+    >= 4 nblk), each entry's components padded to a multiple of 4).
+
+    Per 4 sites and 4 components: one 4-wide load of each site's entry and a 4x4 transpose
+    (eight shuffles), instead of 16 scalar loads put together lane by lane: the form for code
+    without AVX-512 (no two-register permute there).  Moves the table's values: same bits.
+    """
+    if not _c_arrays((rows, 2, types.float64), (out, 2, types.float64), (idx, 1, types.int64)):
+        return None
+
+    def codegen(context, builder, sig, args):
+        ra, ia, oa = (context.make_array(sig.args[k])(context, builder, args[k]) for k in (0, 1, 2))
+        i32 = ir.IntType(32)
+        i64 = ir.IntType(64)
+        v4d = ir.VectorType(ir.DoubleType(), 4)
+        j = context.cast(builder, args[4], sig.args[4], types.intp)
+        nb = context.cast(builder, args[3], sig.args[3], types.intp)
+        rw = builder.extract_value(ra.shape, 1)
+        ow = builder.extract_value(oa.shape, 1)
+
+        def shuf(a, b, mask):
+            return builder.shuffle_vector(a, b, ir.Constant(ir.VectorType(i32, 4), mask))
+
+        with cgutils.for_range(builder, nb) as loop:
+            c0 = builder.mul(loop.index, ir.Constant(i64, 4))
+            for half in (0, 4):
+                vs = []
+                for lane in range(4):
+                    pos = builder.add(j, ir.Constant(i64, half + lane))
+                    k = builder.and_(builder.load(builder.gep(ia.data, [pos])), ir.Constant(i64, 15))
+                    src = builder.gep(ra.data, [builder.add(builder.mul(k, rw), c0)])
+                    vs.append(builder.load(builder.bitcast(src, v4d.as_pointer()), align=8))
+                t0 = shuf(vs[0], vs[1], [0, 4, 2, 6])
+                t1 = shuf(vs[0], vs[1], [1, 5, 3, 7])
+                t2 = shuf(vs[2], vs[3], [0, 4, 2, 6])
+                t3 = shuf(vs[2], vs[3], [1, 5, 3, 7])
+                cols = (shuf(t0, t2, [0, 1, 4, 5]), shuf(t1, t3, [0, 1, 4, 5]),
+                        shuf(t0, t2, [2, 3, 6, 7]), shuf(t1, t3, [2, 3, 6, 7]))
+                for c in range(4):
+                    row = builder.add(c0, ir.Constant(i64, c))
+                    dst = builder.gep(oa.data, [builder.add(builder.mul(row, ow),
+                                                            builder.add(j, ir.Constant(i64, half)))])
+                    builder.store(cols[c], builder.bitcast(dst, v4d.as_pointer()), align=8)
+        return context.get_dummy_value()
+
+    return types.void(rows, idx, out, nblk, j), codegen
+
+
+@njit(cache=True)
+def table_rows(tab):
+    """``rows[k, c] = tab[c, k]`` (float64 (entries, 4 ceil(components / 4)), zero padded): the
+    table of :func:`lookup16_rows`."""
+    nc = tab.shape[0]
+    w = 4 * ((nc + 3) // 4)
+    rows = np.empty((tab.shape[1], w))
+    for k in range(tab.shape[1]):
+        for c in range(w):
+            rows[k, c] = tab[c, k] if c < nc else 0.0
+    return rows
 
 
 

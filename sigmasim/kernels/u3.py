@@ -44,8 +44,8 @@ from numba import njit, prange
 
 from sigmasim.kernels import tables
 from sigmasim.kernels.serial import total, zeros_int
-from sigmasim.kernels.simd import (exp_le0, load18, lookup16, masked_stores_cheap, nsum8, nsum8x3, nsum8x4, store18,
-                                   u01_from_bits)
+from sigmasim.kernels.simd import (avx512_code, exp_le0, load18, lookup16, lookup16_rows, nsum8, nsum8x3, nsum8x4,
+                                   store18, table_rows, u01_from_bits)
 from sigmasim.rng import SITE_STRIDE, bits
 
 __all__ = ["metropolis_u3", "metropolis_u3_update", "pack_table3", "rotation_tables3", "rows_per_chunk3"]
@@ -316,6 +316,7 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
         raise ValueError("metropolis_u3 needs a 16-entry table")
     rows, nseg, nch = chunk_count(nrows, rows, h)  # a chunk must fit the scratch
     acc = zeros_int(nch)
+    trows = table_rows(tab)  # the table entry by entry, for the lookups without AVX-512
     nblk = nch if nblk <= 0 else min(nch, nblk)
     for blk in prange(nblk):
         # scratch once per block of chunks (the blocks only share out the work)
@@ -326,9 +327,9 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
         W2 = np.empty((18, CHUNK_SITES))
         D = np.empty((2, CHUNK_SITES))
         D2 = np.empty((2, CHUNK_SITES))
-        cheap = masked_stores_cheap()
-        Wn = W if cheap else W2  # where a hit writes U and det U (the one before reads W, D)
-        Dn = D if cheap else D2
+        avx512 = avx512_code()
+        Wn = W if avx512 else W2  # where a hit writes U and det U (the one before reads W, D)
+        Dn = D if avx512 else D2
         R = np.empty((20, CHUNK_SITES))  # the looked-up R
         uu = np.empty(CHUNK_SITES)
         ix = np.empty(CHUNK_SITES, dtype=np.int64)
@@ -355,17 +356,20 @@ def metropolis_u3(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
                     ix[j] = np.int64(bb & mask)
                     uu[j] = u01_from_bits(bb)
                 for j8 in range(0, m, 8):
-                    lookup16(tab, ix, R, 20, j8)
+                    if avx512:
+                        lookup16(tab, ix, R, 20, j8)
+                    else:
+                        lookup16_rows(trows, ix, R, 5, j8)
                 # without AVX-512, U and det U go back and forth between (W, D) and (W2, D2): the
                 # select written back where its other value was read is a masked store, microcoded
                 # on AVX2 (16^3, one thread, same process: AVX2 code 1.29x, AVX-512 code 1.00-1.07x)
-                if cheap or hit % 2 == 0:
+                if avx512 or hit % 2 == 0:
                     for j in range(m):
                         na += _hit(W, Wn, M, D, Dn, R, uu, j, k2r, k2i)
                 else:
                     for j in range(m):
                         na += _hit(W2, W, M, D2, D, R, uu, j, k2r, k2i)
-            store18(W if cheap or nhits % 2 == 0 else W2, re, im, c0, m)
+            store18(W if avx512 or nhits % 2 == 0 else W2, re, im, c0, m)
             acc[ch] = na
     return total(acc)
 

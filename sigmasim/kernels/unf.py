@@ -36,8 +36,8 @@ from sigmasim.kernels import tables
 from sigmasim.kernels.general import flavour_order
 from sigmasim.kernels.group import KP_MIN, det, det_lu_in_place
 from sigmasim.kernels.serial import total, zeros_int
-from sigmasim.kernels.simd import (exp_le0, load8, log1m, log_pos, lookup16, masked_stores_cheap, one_minus_exp_neg,
-                                   sincos_pm_pi, store8, u01_from_bits)
+from sigmasim.kernels.simd import (avx512_code, exp_le0, load8, log1m, log_pos, lookup16, lookup16_rows, one_minus_exp_neg,
+                                   sincos_pm_pi, store8, table_rows, u01_from_bits)
 from sigmasim.kernels.u3 import CHUNK_SITES, _chunk_field, _det3, chunk_count, chunk_span
 from sigmasim.rng import SITE_STRIDE, bits, uniform
 
@@ -869,6 +869,7 @@ def metropolis_u2(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
     mask = np.uint64(TABLE_ENTRIES - 1)
     rows, nseg, nch = chunk_count(nrows, rows, h)  # a chunk must fit the scratch
     acc = zeros_int(nch)
+    trows = table_rows(tab)  # the table entry by entry, for the lookups without AVX-512
     nblk = nch if nblk <= 0 else min(nch, nblk)
     for blk in prange(nblk):
         Mf = np.empty(8 * CHUNK_SITES)
@@ -878,10 +879,10 @@ def metropolis_u2(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
         W2 = np.empty((8, CHUNK_SITES))
         D = np.empty((2, CHUNK_SITES))
         D2 = np.empty((2, CHUNK_SITES))
-        cheap = masked_stores_cheap()
-        Wn = W if cheap else W2  # where a hit writes U and det U (the one before reads W, D)
-        Dn = D if cheap else D2
-        T = np.empty((10, CHUNK_SITES))
+        avx512 = avx512_code()
+        Wn = W if avx512 else W2  # where a hit writes U and det U (the one before reads W, D)
+        Dn = D if avx512 else D2
+        T = np.empty((12, CHUNK_SITES))  # 10 rows (lookup16_rows writes 12)
         uu = np.empty(CHUNK_SITES)
         ix = np.empty(CHUNK_SITES, dtype=np.int64)
         fl = np.empty(CHUNK_SITES, dtype=np.int64)  # int64 flags: the select loop vectorises (bool: 1.8x slower)
@@ -905,18 +906,21 @@ def metropolis_u2(re, im, rnbr, rpar, h, colour, beta, hdiag, k2r, k2i, tab, nhi
                     ix[j] = np.int64(bb & mask)
                     uu[j] = u01_from_bits(bb)
                 for j8 in range(0, m, 8):
-                    lookup16(tab, ix, T, 10, j8)
+                    if avx512:
+                        lookup16(tab, ix, T, 10, j8)
+                    else:
+                        lookup16_rows(trows, ix, T, 3, j8)
                 # without AVX-512, U and det U go back and forth between (W, D) and (W2, D2): the
                 # select written back where its other value was read is a masked store, microcoded
                 # on AVX2 (16^3, one thread, same process: AVX2 code 1.28x, AVX-512 code 1.03x; the second
                 # buffer with AVX-512 code too: 0.95x)
-                if cheap or hit % 2 == 0:
+                if avx512 or hit % 2 == 0:
                     for j in range(m):
                         na += _hit2(W, Wn, M, D, Dn, T, uu, j, k2r, k2i)
                 else:
                     for j in range(m):
                         na += _hit2(W2, W, M, D2, D, T, uu, j, k2r, k2i)
-            store8(W if cheap or nhits % 2 == 0 else W2, re, im, c0, m)
+            store8(W if avx512 or nhits % 2 == 0 else W2, re, im, c0, m)
             acc[ch] = na
     return total(acc)
 
