@@ -72,8 +72,8 @@ def test_buffered_hits_give_the_in_place_numbers(tmp_path):
     space = {}
     exec(SCRIPT.replace("print(digest())", ""), space)
     a = space["digest"]().split()  # this process: the path compiled for this machine
-    other = subprocess.run([sys.executable, "-c", SCRIPT], capture_output=True, text=True,
-                           env=_no_avx512_env(tmp_path), timeout=600)
+    env = _no_avx512_env(tmp_path)  # subprocess_env (one thread) plus the target without avx512
+    other = subprocess.run([sys.executable, "-c", SCRIPT], capture_output=True, text=True, env=env, timeout=600)
     assert other.returncode == 0, other.stderr
     b = other.stdout.split()
     assert b[0] == "False"  # the subprocess compiled the buffered path
